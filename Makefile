@@ -1,0 +1,44 @@
+# The two commands of the README: `make demo` and `make test`.
+# Everything else (venv, pinned install) is set up on demand from python3 alone.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed-stamp
+CORES ?= 2
+# Pin BLAS/OpenMP threads: jobs run side by side, and one thread per job keeps
+# floating-point results identical whatever --cores is (DESIGN invariant 2).
+export OPENBLAS_NUM_THREADS := 1
+export OMP_NUM_THREADS := 1
+export MKL_NUM_THREADS := 1
+
+.PHONY: demo test env bundle verify benchmark lint clean
+
+$(STAMP): requirements/lock.txt pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check --upgrade pip==26.3
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check -r requirements/lock.txt
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check --no-deps --no-build-isolation -e .
+	touch $(STAMP)
+
+env: $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES)
+
+test: $(STAMP)
+	$(BIN)/python -m pytest $(PYTEST_ARGS)
+
+lint: $(STAMP)
+	$(BIN)/snakemake --lint
+
+bundle: $(STAMP)
+	$(BIN)/python -m foldwise.bundle make
+
+verify: $(STAMP)
+	$(BIN)/python -m foldwise.bundle verify --cores $(CORES)
+
+benchmark: $(STAMP)
+	for script in benchmarks/bench_*.py; do $(BIN)/python $$script || exit 1; done
+
+clean:
+	rm -rf results .snakemake

@@ -1,0 +1,191 @@
+"""File I/O at the edges: atomic, deterministic writers and careful readers.
+
+Every writer here writes to a temporary name in the destination folder and
+renames it into place (DESIGN invariant 5), and produces the same bytes for
+the same content (invariant 2): gzip headers carry no time stamp and no file
+name, figures carry no date, tables use one float format.
+"""
+
+import contextlib
+import gzip
+import io
+import json
+import os
+import tempfile
+import zlib
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+
+try:  # a faster gzip decoder/encoder from PyPI; the standard one is the fallback
+    from isal import igzip as _fast_gzip
+except ImportError:  # pragma: no cover - exercised only where isal is absent
+    _fast_gzip = None
+
+__all__ = [
+    "atomic_path",
+    "write_bytes_atomic",
+    "write_text_atomic",
+    "write_json",
+    "write_tsv",
+    "read_tsv",
+    "gzip_bytes",
+    "gunzip_bytes",
+    "save_nifti",
+    "load_nifti",
+    "save_figure",
+    "FLOAT_FORMAT",
+]
+
+# Seven significant digits: float32 round-trips through text at this width.
+FLOAT_FORMAT = "%.7g"
+
+
+@contextlib.contextmanager
+def atomic_path(path):
+    """Yield a temporary path beside ``path``; rename it into place on success.
+
+    On any exception the temporary file is removed, so an interrupted or
+    failed write never leaves a file that looks finished.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(handle)
+    try:
+        yield Path(temporary)
+        os.chmod(temporary, 0o644)
+        os.replace(temporary, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(temporary)
+        raise
+
+
+def write_bytes_atomic(path, data):
+    """Write ``data`` to ``path`` atomically (fsync before the rename)."""
+    with atomic_path(path) as temporary:
+        with open(temporary, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+
+
+def write_text_atomic(path, text):
+    """Write UTF-8 ``text`` to ``path`` atomically."""
+    write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def write_json(path, obj):
+    """Write ``obj`` as indented JSON with sorted keys, atomically."""
+    write_text_atomic(path, json.dumps(obj, indent=2, sort_keys=True, allow_nan=False) + "\n")
+
+
+def gzip_bytes(data, level=6):
+    """Compress to gzip with a zero time stamp and no file name (reproducible)."""
+    if _fast_gzip is not None:
+        return _fast_gzip.compress(data, compresslevel=min(level, 3), mtime=0)
+    return gzip.compress(data, compresslevel=level, mtime=0)
+
+
+def gunzip_bytes(data):
+    """Decompress gzip data with the fastest decoder available."""
+    if _fast_gzip is not None:
+        return _fast_gzip.decompress(data)
+    return gzip.decompress(data)
+
+
+def write_tsv(path, frame):
+    """Write a DataFrame as TSV (gzip if the name ends in .gz), atomically.
+
+    Floats use ``FLOAT_FORMAT``; missing values are written ``n/a`` (BIDS).
+    """
+    text = frame.to_csv(sep="\t", index=False, float_format=FLOAT_FORMAT, na_rep="n/a", lineterminator="\n")
+    data = text.encode("utf-8")
+    write_bytes_atomic(path, gzip_bytes(data) if str(path).endswith(".gz") else data)
+
+
+def read_tsv(path, required_columns=(), what="table"):
+    """Read a TSV (``n/a`` as missing) and check its required columns.
+
+    Raises
+    ------
+    InputError
+        If the file is missing, unreadable, or lacks a required column.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
+    try:
+        frame = pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False)
+    except pd.errors.EmptyDataError:
+        raise InputError(path, "header", f"the {what} is empty", "write a header line and at least one row") from None
+    except (pd.errors.ParserError, UnicodeDecodeError) as error:
+        raise InputError(path, "format", f"the {what} is not a readable TSV ({error})", "save it as tab-separated UTF-8 text") from None
+    missing = [column for column in required_columns if column not in frame.columns]
+    if missing:
+        raise InputError(path, ", ".join(missing), f"required column(s) missing from the {what} (found: {', '.join(map(str, frame.columns))})",
+                         f"add the column(s) {', '.join(missing)}")
+    return frame
+
+
+def save_nifti(path, data, affine, header=None, dtype=np.float32):
+    """Save an array as NIfTI-1 (gzip if ``.nii.gz``), atomically and reproducibly.
+
+    The image is serialised in memory, so the gzip stream carries neither the
+    temporary file name nor a time stamp.
+    """
+    array = np.asarray(data, dtype=dtype)
+    image = nib.Nifti1Image(array, np.asarray(affine, dtype=np.float64), header=header)
+    image.header.set_data_dtype(dtype)
+    if header is None:
+        image.header.set_xyzt_units("mm", "sec")
+    image.set_qform(image.affine, code=1)
+    image.set_sform(image.affine, code=1)
+    raw = image.to_bytes()
+    write_bytes_atomic(path, gzip_bytes(raw) if str(path).endswith(".gz") else raw)
+
+
+def load_nifti(path, what="image"):
+    """Load a NIfTI file fully into memory, decoding gzip with the fast decoder.
+
+    Returns
+    -------
+    nibabel.Nifti1Image
+        An in-memory image; ``get_fdata`` applies scl_slope/scl_inter.
+
+    Raises
+    ------
+    InputError
+        If the file is missing, truncated or not a NIfTI image.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
+    data = path.read_bytes()
+    try:
+        if str(path).endswith(".gz"):
+            data = gunzip_bytes(data)
+        image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
+        image = image_class.from_bytes(data)
+        image.get_fdata(caching="unchanged", dtype=np.float32)  # force a full read: truncation shows here
+    except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
+        raise InputError(path, "content", f"the {what} is truncated or not a NIfTI file ({type(error).__name__}: {error})",
+                         "re-export or re-copy the file") from None
+    return image
+
+
+def save_figure(figure, path):
+    """Save a matplotlib figure (PNG or SVG by suffix) without a date stamp."""
+    suffix = Path(path).suffix.lower()
+    metadata = {"Software": None} if suffix == ".png" else {"Date": None, "Creator": None}
+    import matplotlib
+
+    matplotlib.rcParams["svg.hashsalt"] = "foldwise"  # stable SVG element ids
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format=suffix.lstrip("."), metadata=metadata, dpi=100)
+    write_bytes_atomic(path, buffer.getvalue())

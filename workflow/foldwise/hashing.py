@@ -1,0 +1,158 @@
+"""Canonical hashes of config entries, package code and file contents.
+
+These hashes are the narrow keys of the workflow (DESIGN invariant 3) and the
+ingredients of the content memo (invariant 4).
+"""
+
+import ast
+import hashlib
+import json
+import math
+import os
+from pathlib import Path
+
+__all__ = [
+    "canonical_json",
+    "hash_object",
+    "hash_bytes",
+    "hash_file",
+    "module_closure",
+    "code_hash",
+    "seed_from",
+]
+
+_PACKAGE_DIR = Path(__file__).resolve().parent
+_CHUNK_BYTES = 1 << 20
+
+
+def canonical_json(obj):
+    """Serialise ``obj`` to JSON with sorted keys and no insignificant spaces.
+
+    Floats that are integral stay distinguishable from ints (``1.0`` vs ``1``)
+    because Python's JSON encoder keeps them apart; NaN is refused because it
+    has no canonical JSON form.
+    """
+    def _check(value):
+        if isinstance(value, float) and not math.isfinite(value):
+            raise ValueError(f"cannot hash a non-finite float: {value!r}")
+        if isinstance(value, dict):
+            for item in value.values():
+                _check(item)
+        elif isinstance(value, (list, tuple)):
+            for item in value:
+                _check(item)
+
+    _check(obj)
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+
+
+def hash_bytes(data):
+    """sha256 hex digest of a bytes object."""
+    return hashlib.sha256(data).hexdigest()
+
+
+def hash_object(obj):
+    """sha256 of the canonical JSON of ``obj`` (a config entry, params, ...)."""
+    return hash_bytes(canonical_json(obj).encode("utf-8"))
+
+
+def hash_file(path):
+    """sha256 hex digest of a file's content, read in 1 MiB chunks."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(_CHUNK_BYTES), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _imported_package_modules(source_path):
+    """Names of ``foldwise.*`` modules imported by one source file."""
+    tree = ast.parse(Path(source_path).read_text(encoding="utf-8"))
+    names = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            for alias in node.names:
+                if alias.name.startswith("foldwise"):
+                    names.add(alias.name)
+        elif isinstance(node, ast.ImportFrom):
+            if node.level == 1:  # ``from .x import y`` inside the package
+                base = "foldwise" + (f".{node.module}" if node.module else "")
+            elif node.module and node.module.startswith("foldwise"):
+                base = node.module
+            else:
+                continue
+            names.add(base)
+            for alias in node.names:  # ``from foldwise import glm``
+                names.add(f"{base}.{alias.name}")
+    return names
+
+
+def _module_path(name):
+    parts = name.split(".")[1:]
+    if not parts:
+        return _PACKAGE_DIR / "__init__.py"
+    candidate = _PACKAGE_DIR.joinpath(*parts).with_suffix(".py")
+    if candidate.is_file():
+        return candidate
+    package_init = _PACKAGE_DIR.joinpath(*parts, "__init__.py")
+    return package_init if package_init.is_file() else None
+
+
+def module_closure(*entry_points):
+    """Source files of the package that the given modules or scripts import.
+
+    Parameters
+    ----------
+    *entry_points : str
+        Module names (``"foldwise.glm"``) or paths to script files.
+
+    Returns
+    -------
+    list of pathlib.Path
+        Sorted source files: the entry points and every ``foldwise`` module
+        they reach through imports, transitively.
+    """
+    pending, seen = [], set()
+    for entry in entry_points:
+        path = Path(entry) if (os.sep in str(entry) or str(entry).endswith(".py")) else _module_path(entry)
+        if path is None or not Path(path).is_file():
+            raise ValueError(f"no source file for {entry!r}")
+        pending.append(Path(path).resolve())
+    while pending:
+        path = pending.pop()
+        if path in seen:
+            continue
+        seen.add(path)
+        for name in _imported_package_modules(path):
+            module_path = _module_path(name)
+            if module_path is not None:
+                pending.append(module_path.resolve())
+    return sorted(seen)
+
+
+def code_hash(*entry_points):
+    """sha256 over the source text of ``module_closure(*entry_points)``.
+
+    Snakemake's code trigger never sees modules a script imports, so each
+    rule carries this hash in its params (DESIGN, measured Snakemake facts).
+    File names enter relative to the package so the hash is machine-free.
+    """
+    digest = hashlib.sha256()
+    for path in module_closure(*entry_points):
+        try:
+            label = path.relative_to(_PACKAGE_DIR.parent)
+        except ValueError:
+            label = Path(path.name)
+        digest.update(str(label).encode("utf-8") + b"\0")
+        digest.update(path.read_bytes() + b"\0")
+    return digest.hexdigest()
+
+
+def seed_from(study_seed, *identity):
+    """A 63-bit seed derived from the study seed and a job's identity.
+
+    Never from time (DESIGN invariant 2): the same study seed and the same
+    identity strings (rule, subject, analysis, ROI, ...) give the same seed.
+    """
+    text = canonical_json([int(study_seed), [str(part) for part in identity]])
+    return int(hashlib.sha256(text.encode("utf-8")).hexdigest()[:16], 16) >> 1

@@ -1,0 +1,53 @@
+"""Narrow keys: canonical hashes of settings, code closures and seeds (foldwise.hashing)."""
+
+import hashlib
+
+import pytest
+
+from foldwise.hashing import canonical_json, code_hash, hash_file, hash_object, module_closure, seed_from
+
+
+def test_canonical_json_ignores_key_order_but_not_values():
+    assert canonical_json({"b": 1, "a": [1, 2]}) == canonical_json({"a": [1, 2], "b": 1})
+    assert hash_object({"a": 1}) != hash_object({"a": 1.0}) or canonical_json(1) != canonical_json(1.0)
+    assert hash_object({"a": [1, 2]}) != hash_object({"a": [2, 1]})
+
+
+def test_canonical_json_refuses_nan():
+    with pytest.raises(ValueError, match="non-finite"):
+        canonical_json({"x": float("nan")})
+
+
+def test_hash_file_equals_hashlib(tmp_path):
+    # Reference: hashlib.sha256 of the whole content (Python standard library).
+    path = tmp_path / "blob.bin"
+    data = bytes(range(256)) * 9000
+    path.write_bytes(data)
+    assert hash_file(path) == hashlib.sha256(data).hexdigest()
+
+
+def test_module_closure_follows_imports_transitively():
+    names = {path.name for path in module_closure("foldwise.memo")}
+    assert {"memo.py", "errors.py", "fileio.py", "hashing.py"} <= names
+    assert "config.py" not in names
+
+
+def test_code_hash_changes_with_an_imported_module(tmp_path, monkeypatch):
+    import foldwise.hashing as hashing
+
+    package = tmp_path / "foldwise"
+    package.mkdir()
+    (package / "__init__.py").write_text("")
+    (package / "a.py").write_text("from .b import f\n")
+    (package / "b.py").write_text("def f():\n    return 1\n")
+    monkeypatch.setattr(hashing, "_PACKAGE_DIR", package)
+    before = code_hash("foldwise.a")
+    (package / "b.py").write_text("def f():\n    return 2\n")
+    assert code_hash("foldwise.a") != before
+
+
+def test_seed_from_is_stable_and_identity_specific():
+    assert seed_from(7, "decode", "01") == seed_from(7, "decode", "01")
+    assert seed_from(7, "decode", "01") != seed_from(7, "decode", "02")
+    assert seed_from(7, "decode", "01") != seed_from(8, "decode", "01")
+    assert 0 <= seed_from(7, "x") < 2**63

@@ -1,0 +1,189 @@
+"""Load and validate the study config before any job runs.
+
+The schema (``config/schema.yaml``) is strict: unknown keys, wrong types and
+bad choices are errors that name the key path (``analyses[1].classifier``).
+Validation fills in every default, nested ones included, so the rest of the
+workflow never guesses. Cross-references the schema cannot express (an
+analysis naming an unknown ROI, cross-decoding sets whose class labels
+differ) are checked here too. YAML is loaded with ``yaml.safe_load`` and no
+config value is ever evaluated.
+"""
+
+import copy
+import difflib
+from pathlib import Path
+
+import jsonschema
+import yaml
+
+from .errors import InputError
+
+__all__ = ["SCHEMA_PATH", "load_yaml", "validate", "load_study_config", "key_path"]
+
+SCHEMA_PATH = Path(__file__).resolve().parents[2] / "config" / "schema.yaml"
+
+
+def key_path(parts):
+    """Render a JSON-schema path (``deque(['analyses', 1, 'kind'])``) as ``analyses[1].kind``."""
+    text = ""
+    for part in parts:
+        text += f"[{part}]" if isinstance(part, int) else (f".{part}" if text else str(part))
+    return text or "(top level)"
+
+
+def load_yaml(path, what="config file"):
+    """Load a YAML file safely; a missing or malformed file is an InputError."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, "file", f"the {what} does not exist", "create it or pass the right path (make demo CONFIG=path)")
+    try:
+        data = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as error:
+        mark = getattr(error, "problem_mark", None)
+        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None else "YAML syntax"
+        problem = getattr(error, "problem", None) or str(error).splitlines()[0]
+        raise InputError(path, where, f"malformed YAML ({problem})", "fix the indentation or quoting at that line") from None
+    if data is None:
+        data = {}
+    if not isinstance(data, dict):
+        raise InputError(path, "(top level)", f"expected a mapping of keys, found {type(data).__name__}", "start the file with keys such as 'dataset:'")
+    return data
+
+
+def _with_defaults(validator_class):
+    """A validator class that fills ``default`` values while it validates."""
+    validate_properties = validator_class.VALIDATORS["properties"]
+
+    def fill_defaults(validator, properties, instance, schema):
+        if isinstance(instance, dict):
+            for name, subschema in properties.items():
+                if "default" in subschema and name not in instance:
+                    instance[name] = copy.deepcopy(subschema["default"])
+        yield from validate_properties(validator, properties, instance, schema)
+
+    return jsonschema.validators.extend(validator_class, {"properties": fill_defaults})
+
+
+_Validator = _with_defaults(jsonschema.Draft202012Validator)
+
+
+def _describe(error, schema_root):
+    """One readable sentence for a schema error, naming the key path."""
+    path = key_path(error.absolute_path)
+    if error.validator == "additionalProperties":
+        allowed = sorted(error.schema.get("properties", {}))
+        extra = sorted(set(error.instance) - set(allowed))
+        hints = []
+        for key in extra:
+            close = difflib.get_close_matches(key, allowed, n=1)
+            hints.append(f"'{key}'" + (f" (did you mean '{close[0]}'?)" if close else ""))
+        return path, f"unknown key {', '.join(hints)}", f"remove or rename it; allowed keys here: {', '.join(allowed)}"
+    if error.validator == "type":
+        return path, f"expected {error.validator_value}, found {error.instance!r}", f"give {path} a value of type {error.validator_value}"
+    if error.validator == "enum":
+        return path, f"{error.instance!r} is not one of {error.validator_value}", f"choose one of {', '.join(map(str, error.validator_value))}"
+    if error.validator == "required":
+        return path, error.message, "add the missing key"
+    if error.validator == "oneOf":
+        if "voxel_counts" in path:
+            return path, f"{error.instance!r} is not a voxel count", "use a whole number of at least 1, or 'all'"
+        if path.startswith("rois") and len(error.absolute_path) == 2:
+            return path, "an ROI needs exactly one of 'labels', 'image' or 'sphere'", "keep one of the three definitions"
+        if path.startswith("analyses") and len(error.absolute_path) == 2:
+            return path, "a 'within' analysis needs 'classes', a 'cross' analysis needs 'sets'", "add the key that matches 'kind'"
+    if error.validator in ("minimum", "exclusiveMinimum", "maximum", "exclusiveMaximum"):
+        return path, f"{error.instance!r} is out of range ({error.validator} {error.validator_value})", f"give {path} a value within the range"
+    return path, error.message, f"correct {path} (see the README's config reference)"
+
+
+def validate(config, path="config/config.yaml", schema_path=SCHEMA_PATH):
+    """Validate a config dict against the schema, fill defaults, check references.
+
+    Parameters
+    ----------
+    config : dict
+        The parsed config; it is not modified (a filled copy is returned).
+    path : str
+        The config file's name, for messages.
+
+    Returns
+    -------
+    dict
+        The config with every default filled in.
+
+    Raises
+    ------
+    InputError
+        On the first problem, naming the key path and the fix.
+    """
+    schema = yaml.safe_load(Path(schema_path).read_text(encoding="utf-8"))
+    filled = copy.deepcopy(config)
+    errors = sorted(_Validator(schema).iter_errors(filled), key=lambda e: (len(e.absolute_path), key_path(e.absolute_path)))
+    if errors:
+        error = jsonschema.exceptions.best_match(errors) if len(errors) > 1 else errors[0]
+        field, problem, fix = _describe(error, schema)
+        raise InputError(path, field, problem, fix)
+    _check_references(filled, path)
+    return filled
+
+
+def _duplicates(names):
+    seen, repeated = set(), []
+    for name in names:
+        if name in seen:
+            repeated.append(name)
+        seen.add(name)
+    return repeated
+
+
+def _check_references(config, path):
+    roi_names = [roi["name"] for roi in config["rois"]]
+    for repeated in _duplicates(roi_names):
+        raise InputError(path, "rois[].name", f"the ROI name '{repeated}' is used twice", "give each ROI a unique name")
+    analysis_names = [analysis["name"] for analysis in config["analyses"]]
+    for repeated in _duplicates(analysis_names):
+        raise InputError(path, "analyses[].name", f"the analysis name '{repeated}' is used twice", "give each analysis a unique name")
+    for index, analysis in enumerate(config["analyses"]):
+        where = f"analyses[{index}]"
+        for roi in analysis["rois"]:
+            if roi not in roi_names:
+                close = difflib.get_close_matches(roi, roi_names, n=1)
+                hint = f" (did you mean '{close[0]}'?)" if close else ""
+                raise InputError(path, f"{where}.rois", f"unknown ROI '{roi}'{hint}", f"use one of {', '.join(roi_names)} or define it under rois")
+        if analysis["kind"] == "within":
+            if "sets" in analysis:
+                raise InputError(path, f"{where}.sets", "a 'within' analysis takes 'classes', not 'sets'", "remove 'sets' or set kind: cross")
+            conditions = [c for members in analysis["classes"].values() for c in members]
+            for repeated in _duplicates(conditions):
+                raise InputError(path, f"{where}.classes", f"condition '{repeated}' belongs to two classes", "put each condition in one class only")
+        else:
+            if "classes" in analysis:
+                raise InputError(path, f"{where}.classes", "a 'cross' analysis takes 'sets', not 'classes'", "remove 'classes' or set kind: within")
+            (name_a, set_a), (name_b, set_b) = analysis["sets"].items()
+            if sorted(set_a) != sorted(set_b):
+                raise InputError(path, f"{where}.sets", f"the class labels of set '{name_a}' ({', '.join(sorted(set_a))}) and set '{name_b}' "
+                                 f"({', '.join(sorted(set_b))}) do not match", "map the same class labels in both sets")
+            for set_name, mapping in analysis["sets"].items():
+                if not _valid_set_name(set_name):
+                    raise InputError(path, f"{where}.sets.{set_name}", "set names may hold letters, digits and underscores only", "rename the set")
+                for repeated in _duplicates(mapping.values()):
+                    raise InputError(path, f"{where}.sets.{set_name}", f"condition '{repeated}' stands for two classes", "map each class to its own condition")
+        counts = [count for count in analysis["voxel_counts"] if count != "all"]
+        if counts != sorted(counts):
+            raise InputError(path, f"{where}.voxel_counts", f"counts {counts} are not increasing", "list the counts from small to large ('all' last)")
+    excluded = set(config["dataset"]["exclude_subjects"])
+    chosen = config["dataset"]["subjects"]
+    if chosen and not set(chosen) - excluded:
+        raise InputError(path, "dataset.exclude_subjects", "every listed subject is excluded", "exclude fewer subjects")
+    for name in config["searchlight"]["analyses"]:
+        if name not in analysis_names:
+            raise InputError(path, "searchlight.analyses", f"unknown analysis '{name}'", f"use one of {', '.join(analysis_names)}")
+
+
+def _valid_set_name(name):
+    return name.replace("_", "").isalnum()
+
+
+def load_study_config(path):
+    """Load, validate and fill the study config at ``path``."""
+    return validate(load_yaml(path), path=str(path))

@@ -1,0 +1,283 @@
+"""The content memo and the provenance record of every job.
+
+A job's memo key is sha256 over (step, code hash, canonical settings, the
+content hash of every input). Outputs are kept in a content-addressed store;
+a job whose key is already stored restores its outputs from there (hard link,
+or copy across file systems) instead of computing them, and says so in its
+log. A touched-but-unchanged input or a reverted edit therefore costs almost
+nothing (DESIGN invariant 4).
+
+Store layout (``study.store_dir``, ``results/.store`` by default)::
+
+    objects/ab/<key>/entry.json   what the entry holds: output names, sha256
+    objects/ab/<key>/0, 1, ...    the output files, read-only
+    hashes/<sha1 of path>.json    content hash of an input, by path+size+mtime
+    incoming/                     entries being written (renamed into objects/)
+
+Every entry is written under ``incoming/`` and renamed into place as a whole,
+so a reader never sees half an entry and two jobs that store the same key at
+once cannot corrupt it (the second rename finds the first's entry and drops
+its own copy). Restored files are checked against their sha256 first; a
+damaged entry is discarded and the job recomputes.
+"""
+
+import contextlib
+import hashlib
+import json
+import logging
+import os
+import platform
+import resource
+import shutil
+import sys
+import tempfile
+import time
+from importlib import metadata
+from pathlib import Path
+
+from .errors import InputError
+from .fileio import write_json
+from .hashing import canonical_json, hash_file, hash_object
+
+__all__ = ["MemoStore", "memo_key", "run_job", "package_versions", "relative_path"]
+
+_VERSIONED_PACKAGES = ("numpy", "scipy", "nibabel", "scikit-learn", "pandas", "PyYAML", "matplotlib", "snakemake", "isal", "foldwise")
+
+
+def relative_path(path, root=None):
+    """``path`` relative to ``root`` (default: the working directory), never absolute.
+
+    Provenance records must not reveal a user's home or machine: a path
+    outside the repository keeps only its file name, prefixed ``<outside>/``.
+    """
+    root = Path(root or os.getcwd()).resolve()
+    absolute = Path(os.path.abspath(path))
+    try:
+        return absolute.relative_to(root).as_posix()
+    except ValueError:
+        return f"<outside>/{absolute.name}"
+
+
+def _flatten(named):
+    """[(name, index, path)] for a dict of name -> path or list of paths, in order."""
+    items = []
+    for name in sorted(named):
+        value = named[name]
+        paths = [value] if isinstance(value, (str, os.PathLike)) else list(value)
+        for index, path in enumerate(paths):
+            items.append((name, index, str(path)))
+    return items
+
+
+class MemoStore:
+    """A content-addressed store of job outputs under one folder."""
+
+    def __init__(self, root):
+        self.root = Path(root)
+
+    # -- input hashing, cached per path + size + mtime ---------------------
+    def content_hash(self, path):
+        """sha256 of a file's content, cached by (path, size, mtime_ns)."""
+        stat = os.stat(path)
+        cache_name = hashlib.sha1(os.path.abspath(path).encode("utf-8")).hexdigest()
+        cache_path = self.root / "hashes" / f"{cache_name}.json"
+        stamp = [stat.st_size, stat.st_mtime_ns]
+        with contextlib.suppress(OSError, ValueError, KeyError):
+            cached = json.loads(cache_path.read_text(encoding="utf-8"))
+            if cached["stamp"] == stamp:
+                return cached["sha256"]
+        digest = hash_file(path)
+        with contextlib.suppress(OSError):
+            write_json(cache_path, {"path": os.path.abspath(path), "stamp": stamp, "sha256": digest})
+        return digest
+
+    # -- entries -----------------------------------------------------------
+    def entry_dir(self, key):
+        return self.root / "objects" / key[:2] / key
+
+    def restore(self, key, outputs, log):
+        """Restore ``outputs`` (name -> path(s)) from the entry ``key``.
+
+        Returns True if every file was restored and matches its recorded
+        sha256; False if there is no usable entry (a damaged one is removed).
+        """
+        entry = self.entry_dir(key)
+        try:
+            record = json.loads((entry / "entry.json").read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return False
+        items = _flatten(outputs)
+        stored = record.get("files", [])
+        if [(f["name"], f["index"]) for f in stored] != [(name, index) for name, index, _ in items]:
+            return False
+        for number, (file_record, (_, _, path)) in enumerate(zip(stored, items)):
+            source = entry / str(number)
+            if not source.is_file() or hash_file(source) != file_record["sha256"]:
+                log.warning("memo entry %s is damaged (file %d); discarding it and recomputing", key[:12], number)
+                shutil.rmtree(entry, ignore_errors=True)
+                return False
+        for number, (_, _, path) in enumerate(items):
+            _link_or_copy(entry / str(number), Path(path))
+        return True
+
+    def store(self, key, outputs, description):
+        """Add the finished ``outputs`` as the entry ``key`` (atomically)."""
+        final = self.entry_dir(key)
+        if (final / "entry.json").is_file():
+            return
+        incoming = self.root / "incoming"
+        incoming.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=f"{key[:12]}.", dir=incoming))
+        try:
+            files = []
+            for number, (name, index, path) in enumerate(_flatten(outputs)):
+                target = staging / str(number)
+                shutil.copyfile(path, target)
+                os.chmod(target, 0o444)
+                files.append({"name": name, "index": index, "sha256": hash_file(target), "size": target.stat().st_size})
+            (staging / "entry.json").write_text(json.dumps({"key": key, "files": files, "job": description}, indent=1, sort_keys=True))
+            final.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                os.rename(staging, final)  # atomic; fails if another job stored the key first
+            except OSError:
+                if not (final / "entry.json").is_file():
+                    raise
+        finally:
+            if staging.exists():
+                shutil.rmtree(staging, ignore_errors=True)
+
+
+def _link_or_copy(source, destination):
+    """Put ``source`` at ``destination`` atomically: hard link, else copy."""
+    destination.parent.mkdir(parents=True, exist_ok=True)
+    temporary = destination.with_name(f".{destination.name}.{os.getpid()}.restore")
+    with contextlib.suppress(FileNotFoundError):
+        os.unlink(temporary)
+    try:
+        os.link(source, temporary)
+    except OSError:
+        shutil.copyfile(source, temporary)
+    os.replace(temporary, destination)
+
+
+def memo_key(step, code, settings, input_hashes, output_names):
+    """The memo key of a job: sha256 of its step, code, settings and input contents.
+
+    ``input_hashes`` maps input name -> list of content hashes (order kept);
+    ``output_names`` maps output name -> number of files, so a rule that
+    gains an output does not restore an old, shorter entry.
+    """
+    return hash_object({"step": step, "code": code, "settings": settings, "inputs": input_hashes, "outputs": output_names})
+
+
+def package_versions():
+    """Installed versions of the packages that shape the numbers."""
+    versions = {"python": platform.python_version()}
+    for name in _VERSIONED_PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = None
+    return versions
+
+
+def _job_logger(log_path):
+    logger = logging.getLogger(f"foldwise.job.{os.getpid()}")
+    logger.setLevel(logging.INFO)
+    logger.propagate = False
+    formatter = logging.Formatter("%(levelname)s %(message)s")
+    if log_path:
+        Path(log_path).parent.mkdir(parents=True, exist_ok=True)
+        file_handler = logging.FileHandler(log_path, mode="w", encoding="utf-8")
+        file_handler.setFormatter(formatter)
+        logger.addHandler(file_handler)
+    stream_handler = logging.StreamHandler(sys.stderr)
+    stream_handler.setLevel(logging.WARNING)
+    stream_handler.setFormatter(logging.Formatter("foldwise %(levelname)s: %(message)s"))
+    logger.addHandler(stream_handler)
+    logging.captureWarnings(True)
+    logging.getLogger("py.warnings").handlers = logger.handlers
+    return logger
+
+
+def _named(namedlist, exclude=()):
+    """Snakemake's named input/output items as a plain dict of str or list of str."""
+    result = {}
+    for name, value in namedlist.items():
+        if name in exclude:
+            continue
+        result[name] = str(value) if isinstance(value, (str, os.PathLike)) else [str(v) for v in value]
+    return result
+
+
+def run_job(smk, step, job):
+    """Run one Snakemake job through the memo, and write its provenance record.
+
+    Parameters
+    ----------
+    smk : snakemake.script.Snakemake
+        The object Snakemake hands a script. Its params must hold
+        ``settings`` (the exact config subset the step reads) and ``code``
+        (the hash of the code the step runs); its outputs must include
+        ``provenance``; ``log[0]`` is the job's log file.
+    step : str
+        The step's name (a rule name).
+    job : callable
+        ``job(inputs, outputs, settings, log)``: the job function.
+    """
+    started = time.perf_counter()
+    log = _job_logger(smk.log[0] if len(smk.log) else None)
+    inputs = _named(smk.input)
+    outputs = _named(smk.output, exclude=("provenance",))
+    settings = json.loads(canonical_json(dict(smk.params.settings)))
+    code = smk.params.code
+    store = MemoStore(smk.config["study"]["store_dir"])
+    try:
+        input_hashes = {name: [store.content_hash(path) for path in ([paths] if isinstance(paths, str) else paths)]
+                        for name, paths in sorted(inputs.items())}
+        output_counts = {name: (1 if isinstance(paths, str) else len(paths)) for name, paths in outputs.items()}
+        key = memo_key(step, code, settings, input_hashes, output_counts)
+        # FOLDWISE_MEMO=off (set by `make verify`) recomputes everything for real.
+        use_memo = os.environ.get("FOLDWISE_MEMO", "on") != "off"
+        restored = use_memo and store.restore(key, outputs, log)
+        if restored:
+            log.info("restored from the content memo (key %s); nothing recomputed", key)
+        else:
+            job(inputs, outputs, settings, log)
+            missing = [path for _, _, path in _flatten(outputs) if not os.path.isfile(path)]
+            if missing:
+                raise RuntimeError(f"step {step} did not write {', '.join(missing)}")
+            if use_memo:
+                store.store(key, outputs, {"step": step, "wildcards": dict(smk.wildcards.items())})
+            log.info("computed (key %s)%s", key, " and stored in the content memo" if use_memo else "; memo off")
+    except InputError as error:
+        log.error("%s", error)
+        _close(log)
+        print(f"foldwise: {error}", file=sys.stderr)
+        sys.exit(1)
+    wall_time_s = time.perf_counter() - started
+    record = {
+        "step": step,
+        "wildcards": dict(smk.wildcards.items()),
+        "key": key,
+        "restored_from_memo": restored,
+        "code_hash": code,
+        "settings": settings,
+        "inputs": [{"name": name, "path": relative_path(path), "sha256": digest}
+                   for name, paths in sorted(inputs.items())
+                   for path, digest in zip([paths] if isinstance(paths, str) else paths, input_hashes[name])],
+        "outputs": [{"name": name, "path": relative_path(path), "sha256": store.content_hash(path)}
+                    for name, _, path in _flatten(outputs)],
+        "versions": package_versions(),
+        "platform": {"system": platform.system(), "machine": platform.machine()},
+        "wall_time_s": round(wall_time_s, 3),
+        "peak_memory_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0, 1),
+    }
+    write_json(smk.output.provenance, record)
+    _close(log)
+
+
+def _close(log):
+    for handler in list(log.handlers):
+        handler.close()
+        log.removeHandler(handler)

@@ -1,0 +1,29 @@
+# foldwise: one Snakemake workflow for a whole fMRI MVPA study.
+# The study config is validated (strictly, defaults filled) before any job
+# runs; the rules are wiring, the science lives in workflow/foldwise.
+#
+#   snakemake --profile config/profiles/local                  # the demo study
+#   snakemake --profile config/profiles/local --config config_file=my_study.yaml
+
+include: "workflow/rules/common.smk"
+include: "workflow/rules/demo.smk"
+include: "workflow/rules/glm.smk"
+include: "workflow/rules/rois.smk"
+include: "workflow/rules/decoding.smk"
+include: "workflow/rules/group.smk"
+include: "workflow/rules/report.smk"
+include: "workflow/rules/manifest.smk"
+
+
+rule all:
+    default_target: True
+    input:
+        manifest=MANIFEST,
+
+
+onsuccess:
+    print_group_summaries()
+
+
+onerror:
+    print("foldwise: the run stopped; the message above names the file, the field and the fix.")

@@ -1,0 +1,220 @@
+# Shared wiring: the validated study config, the runs of every subject, path
+# templates, named input functions and the narrow-key helper.
+import os
+
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # one BLAS thread per job: same bits whatever --cores
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+from foldwise.config import load_yaml, validate
+from foldwise.errors import InputError
+from foldwise.hashing import code_hash, hash_object
+from foldwise.workflow_plan import plan_study
+
+
+# The study config: `--configfile path` or `--config config_file=path` names it;
+# the default is the demo study. Our own loader reads YAML safely and reports
+# a malformed file by line.
+CONFIG_FILE = config.pop("config_file", None)
+try:
+    if config and CONFIG_FILE is None:
+        STUDY = validate(dict(config), path="the --configfile given to snakemake")
+    else:
+        CONFIG_FILE = CONFIG_FILE or "config/config.yaml"
+        STUDY = validate(load_yaml(CONFIG_FILE), path=CONFIG_FILE)
+    PLAN = plan_study(STUDY)
+except InputError as error:
+    raise WorkflowError(f"foldwise: {error}") from None
+config.clear()
+config.update(STUDY)  # scripts read study.store_dir from here
+
+SCRIPTS = os.path.join(workflow.basedir, "workflow", "scripts")
+SUBJECTS = PLAN.subjects
+ROI_NAMES = [roi["name"] for roi in STUDY["rois"]]
+ANALYSES = {analysis["name"]: analysis for analysis in STUDY["analyses"]}
+
+wildcard_constraints:
+    subject="[A-Za-z0-9]+",
+    run_id="(ses-[A-Za-z0-9]+_)?run-[A-Za-z0-9]+",
+    roi="[A-Za-z0-9]+",
+    analysis="[A-Za-z0-9][A-Za-z0-9_]*",
+
+# -- output path templates (the data contract of DESIGN.md) ------------------
+DEMO_DESCRIPTION = os.path.join(STUDY["dataset"]["bids_root"], "dataset_description.json")
+DEMO_TRUTH = "results/demo/ground_truth.json"
+BRAIN_MASK = "results/masks/sub-{subject}/sub-{subject}_brainmask.nii.gz"
+BRAIN_MEAN = "results/masks/sub-{subject}/sub-{subject}_mean.nii.gz"
+BRAIN_SUMMARY = "results/masks/sub-{subject}/sub-{subject}_brainmask.json"
+PATTERN_STEM = "results/patterns/sub-{subject}/sub-{subject}_{run_id}"
+ROI_MASK = "results/masks/sub-{subject}/sub-{subject}_roi-{roi}_mask.nii.gz"
+ROI_INFO = "results/masks/sub-{subject}/sub-{subject}_roi-{roi}.json"
+ROI_COUNTS = "results/masks/sub-{subject}/sub-{subject}_roi_counts.tsv"
+DECODE_STEM = "results/decoding/{analysis}/sub-{subject}/sub-{subject}_roi-{roi}"
+SUBJECT_SCORES = "results/decoding/{analysis}/sub-{subject}_scores.tsv"
+SUBJECT_SUMMARY = "results/decoding/{analysis}/sub-{subject}_summary.tsv"
+GROUP_STEM = "results/group/{analysis}/{analysis}"
+MANIFEST = "results/manifest.tsv"
+
+
+def provenance_path(rule_name, pattern):
+    """Where a job's provenance record goes: results/provenance/<rule>/<wildcards>.json."""
+    return f"results/provenance/{rule_name}/{pattern}.json"
+
+
+def log_path(rule_name, pattern):
+    return f"results/logs/{rule_name}/{pattern}.log"
+
+
+def step_code(script_name, *modules):
+    """Hash of a step's script and every package module it imports (narrow code key)."""
+    return code_hash(os.path.join(SCRIPTS, script_name), *modules)
+
+
+# -- runs ----------------------------------------------------------------------
+def subject_runs(subject):
+    return PLAN.runs_of(subject)
+
+
+def run_record(wildcards):
+    return PLAN.run(wildcards.subject, wildcards.run_id)
+
+
+def subject_bold(wildcards):
+    return [run["bold"] for run in subject_runs(wildcards.subject)]
+
+
+def subject_pattern_files(wildcards):
+    return [expand(PATTERN_STEM + "_patterns.nii.gz", subject=wildcards.subject, run_id=run["run_id"])[0]
+            for run in subject_runs(wildcards.subject)]
+
+
+def subject_pattern_tables(wildcards):
+    return [expand(PATTERN_STEM + "_patterns.tsv", subject=wildcards.subject, run_id=run["run_id"])[0]
+            for run in subject_runs(wildcards.subject)]
+
+
+def all_pattern_files():
+    return [expand(PATTERN_STEM + "_patterns.nii.gz", subject=run["subject"], run_id=run["run_id"])[0] for run in PLAN.runs]
+
+
+def analysis_rois(name):
+    return ANALYSES[name]["rois"] or ROI_NAMES
+
+
+def print_group_summaries():
+    for name in ANALYSES:
+        path = expand(GROUP_STEM + "_summary.txt", analysis=name)[0]
+        if os.path.isfile(path):
+            print(open(path, encoding="utf-8").read().rstrip())
+
+
+# -- narrow settings: exactly the config each step reads ---------------------
+# Each rule's params carry `settings` (this dict) and `code` (the hash of the
+# code it runs), so Snakemake's params trigger reruns exactly what changed.
+def demo_settings():
+    dataset = STUDY["dataset"]
+    return {"demo": STUDY["demo"], "seed": STUDY["study"]["seed"], "task": dataset["task"], "bids_root": dataset["bids_root"],
+            "patterns": dataset["patterns"], "confounds": dataset["confounds"]}
+
+
+def brain_mask_settings(wildcards):
+    return {"brain_mask": STUDY["brain_mask"], "subject": wildcards.subject}
+
+
+def glm_settings(wildcards):
+    run = run_record(wildcards)
+    return {"glm": STUDY["glm"], "confounds": STUDY["dataset"]["confounds"], "subject": run["subject"],
+            "session": run["session"], "run_id": run["run_id"]}
+
+
+def roi_entry(name):
+    return next(roi for roi in STUDY["rois"] if roi["name"] == name)
+
+
+def roi_settings(wildcards):
+    return {"roi": roi_entry(wildcards.roi), "subject": wildcards.subject}
+
+
+def subject_settings(wildcards):
+    return {"subject": wildcards.subject}
+
+
+def analysis_without_roi_list(name):
+    """An analysis entry minus its ROI list: one ROI's job does not depend on the others."""
+    return {key: value for key, value in ANALYSES[name].items() if key != "rois"}
+
+
+def decode_settings(wildcards):
+    return {"analysis": analysis_without_roi_list(wildcards.analysis), "subject": wildcards.subject, "roi": wildcards.roi,
+            "seed": STUDY["study"]["seed"]}
+
+
+def decode_gather_settings(wildcards):
+    return {"analysis": analysis_without_roi_list(wildcards.analysis), "subject": wildcards.subject}
+
+
+def group_settings(wildcards):
+    return {"group": STUDY["group"], "analysis": ANALYSES[wildcards.analysis], "subjects": list(SUBJECTS),
+            "seed": STUDY["study"]["seed"]}
+
+
+# -- named input functions ---------------------------------------------------
+def brain_mask_inputs(wildcards):
+    inputs = {"bold": subject_bold(wildcards)}
+    given = subject_runs(wildcards.subject)[0]["brain_mask"]
+    if given:
+        inputs["given_mask"] = given
+    return inputs
+
+
+def glm_inputs(wildcards):
+    run = run_record(wildcards)
+    inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"],
+              "mask": expand(BRAIN_MASK, subject=run["subject"])[0]}
+    if STUDY["dataset"]["confounds"]:
+        inputs["confounds"] = run["confounds"]
+    return inputs
+
+
+def roi_inputs(wildcards):
+    roi = roi_entry(wildcards.roi)
+    inputs = {"brain_mask": expand(BRAIN_MASK, subject=wildcards.subject)[0]}
+    if "labels" in roi:
+        inputs["atlas"] = STUDY["dataset"]["atlas_image"]
+        inputs["atlas_labels"] = STUDY["dataset"]["atlas_labels"]
+    elif "image" in roi:
+        inputs["image"] = roi["image"]
+    return inputs
+
+
+def subject_roi_infos(wildcards):
+    return expand(ROI_INFO, subject=wildcards.subject, roi=ROI_NAMES)
+
+
+def subject_analysis_scores(wildcards):
+    return expand(DECODE_STEM + "_scores.tsv", analysis=wildcards.analysis, subject=wildcards.subject,
+                  roi=analysis_rois(wildcards.analysis))
+
+
+def analysis_summaries(wildcards):
+    return expand(SUBJECT_SUMMARY, analysis=wildcards.analysis, subject=SUBJECTS)
+
+
+def analysis_nulls(wildcards):
+    return expand(DECODE_STEM + "_null.tsv.gz", analysis=wildcards.analysis, subject=SUBJECTS,
+                  roi=analysis_rois(wildcards.analysis))
+
+
+def all_provenance_records():
+    """Every job's provenance record: the manifest is built from them."""
+    records = [provenance_path("demo_dataset", "study")] if STUDY["dataset"]["source"] == "demo" else []
+    records += expand(provenance_path("brain_mask", "sub-{subject}"), subject=SUBJECTS)
+    records += [provenance_path("glm", f"sub-{run['subject']}_{run['run_id']}") for run in PLAN.runs]
+    records += expand(provenance_path("roi_mask", "sub-{subject}_roi-{roi}"), subject=SUBJECTS, roi=ROI_NAMES)
+    records += expand(provenance_path("roi_counts", "sub-{subject}"), subject=SUBJECTS)
+    for name in ANALYSES:
+        records += expand(provenance_path("decode", "{analysis}_sub-{subject}_roi-{roi}"), analysis=name, subject=SUBJECTS,
+                          roi=analysis_rois(name))
+        records += expand(provenance_path("decode_gather", "{analysis}_sub-{subject}"), analysis=name, subject=SUBJECTS)
+        records += expand(provenance_path("group", "{analysis}"), analysis=name)
+    records += REPORT_PROVENANCE
+    return records

@@ -32,7 +32,7 @@ lint: $(STAMP)
 	$(BIN)/snakemake --lint
 
 bundle: $(STAMP)
-	$(BIN)/python -m foldwise.bundle make
+	$(BIN)/python -m foldwise.bundle make $(if $(INCLUDE_IMAGES),--include-images)
 
 verify: $(STAMP)
 	$(BIN)/python -m foldwise.bundle verify --cores $(CORES)

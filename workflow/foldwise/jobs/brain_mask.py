@@ -1,0 +1,74 @@
+"""Job: one subject's brain mask (derived from the BOLD runs, or a given mask checked against them)."""
+
+import numpy as np
+
+from ..bids import load_bold
+from ..errors import InputError
+from ..fileio import load_nifti, save_nifti, write_json
+from ..masks import combine_run_statistics, run_statistics, same_grid, threshold_mean_image
+
+__all__ = ["GRID_TOLERANCE_MM", "run"]
+
+# Images of one subject share one grid; voxel centres may differ by float
+# rounding of the affine only (common practice, no source).
+GRID_TOLERANCE_MM = 0.01
+
+
+def _as_list(paths):
+    return [paths] if isinstance(paths, str) else list(paths)
+
+
+def _load_given_mask(path, shape, affine):
+    image = load_nifti(path, what="brain mask")
+    data = image.get_fdata(caching="unchanged", dtype=np.float32)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"expected a 3D brain mask, got shape {data.shape}", "give one 3D mask volume")
+    if not same_grid(data.shape, image.affine, shape, affine, GRID_TOLERANCE_MM):
+        raise InputError(path, "affine", f"the brain mask's grid (shape {data.shape}) differs from the BOLD grid (shape {tuple(shape)})",
+                         "give a brain mask on the BOLD runs' grid (same shape and affine)")
+    return np.isfinite(data) & (data > 0)
+
+
+def run(inputs, outputs, params, log):
+    """Write ``mask`` (uint8), ``mean`` (float32) and ``summary`` (JSON) for one subject.
+
+    The mean image is the mean over runs of each run's time mean. Without a
+    given mask, the mask is derived by :func:`foldwise.masks.threshold_mean_image`
+    (``brain_mask.mean_fraction``); a given mask is kept as it is except for
+    voxels whose data hold NaN or Inf, which are left out with a warning.
+    """
+    subject = params["subject"]
+    mean_fraction = params["brain_mask"]["mean_fraction"]
+    bold_paths = _as_list(inputs["bold"])
+    if not bold_paths:
+        raise InputError(None, "bold", f"subject {subject} has no BOLD run", "add runs or exclude the subject")
+    statistics, shape, affine = [], None, None
+    for path in bold_paths:  # one run in memory at a time
+        data, run_affine, _ = load_bold(path)
+        if affine is None:
+            shape, affine = data.shape[:3], run_affine
+        elif not same_grid(data.shape, run_affine, shape, affine, GRID_TOLERANCE_MM):
+            raise InputError(path, "affine", f"this run's grid (shape {data.shape[:3]}) differs from that of {bold_paths[0]} (shape {shape})",
+                             "resample all runs of a subject to one grid")
+        statistics.append(run_statistics(data))
+        del data
+    mean, finite, varying = combine_run_statistics(statistics)
+
+    given_path = inputs.get("given_mask")
+    if given_path:
+        given = _load_given_mask(given_path, shape, affine)
+        n_nonfinite = int((given & ~finite).sum())
+        mask, source, where = given & finite, "given", given_path
+    else:
+        n_nonfinite = int((~finite).sum())
+        mask, source, where = threshold_mean_image(mean, varying, mean_fraction), "derived", bold_paths[0]
+    if n_nonfinite:
+        log.warning("subject %s: excluded %d voxel(s) whose BOLD holds NaN or Inf in some run", subject, n_nonfinite)
+    if not mask.any():
+        raise InputError(where, "mask", f"subject {subject}: no voxel is left in the brain mask ({source})",
+                         "check the BOLD data (finite, non-constant, positive mean) or lower brain_mask.mean_fraction")
+    save_nifti(outputs["mask"], mask.astype(np.uint8), affine, dtype=np.uint8)
+    save_nifti(outputs["mean"], mean, affine, dtype=np.float32)
+    write_json(outputs["summary"], {"n_voxels": int(mask.sum()), "n_nonfinite_excluded": n_nonfinite, "source": source})

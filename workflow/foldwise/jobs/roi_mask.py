@@ -1,0 +1,55 @@
+"""Job: one subject's mask of one ROI (atlas labels, an image, or a sphere), inside the brain mask."""
+
+import numpy as np
+
+from ..errors import InputError
+from ..fileio import load_nifti, read_tsv, save_nifti, write_json
+from ..masks import resample_nearest, restrict_to_brain, roi_from_image, roi_from_labels, sphere_mask
+from .brain_mask import GRID_TOLERANCE_MM
+
+__all__ = ["run"]
+
+_DEFAULT_MIN_VOXELS = 10  # the schema's default, for entries not filled by validation
+
+
+def _needed(inputs, name, roi):
+    path = inputs.get(name)
+    if not path:
+        raise InputError(None, name, f"ROI {roi} needs the {name} input but none was given", "set dataset.atlas_image / atlas_labels")
+    return path
+
+
+def run(inputs, outputs, params, log):
+    """Write ``mask`` (uint8 NIfTI on the brain-mask grid) and ``info`` (JSON) for one subject and ROI."""
+    entry, subject = params["roi"], params["subject"]
+    name = entry["name"]
+    min_voxels = int(entry.get("min_voxels", _DEFAULT_MIN_VOXELS))
+    brain_image = load_nifti(inputs["brain_mask"], what="brain mask")
+    brain = np.asarray(brain_image.dataobj) > 0
+    shape, affine = brain.shape, brain_image.affine
+
+    if "labels" in entry:
+        atlas_path, labels_path = _needed(inputs, "atlas", name), _needed(inputs, "atlas_labels", name)
+        table = read_tsv(labels_path, required_columns=("index", "name"), what="atlas label table")
+        atlas_image = load_nifti(atlas_path, what="atlas")
+        atlas = resample_nearest(atlas_image.get_fdata(caching="unchanged", dtype=np.float32), atlas_image.affine,
+                                 shape, affine, GRID_TOLERANCE_MM, source_file=atlas_path)
+        roi = roi_from_labels(atlas, table, entry["labels"], entry.get("threshold"), source_file=labels_path)
+        source = atlas_path
+    elif "image" in entry:
+        image_path = _needed(inputs, "image", name)
+        image = load_nifti(image_path, what="ROI image")
+        data = resample_nearest(image.get_fdata(caching="unchanged", dtype=np.float32), image.affine, shape, affine,
+                                GRID_TOLERANCE_MM, source_file=image_path)
+        roi = roi_from_image(data, entry.get("threshold"), source_file=image_path)
+        source = image_path
+    elif "sphere" in entry:
+        roi = sphere_mask(entry["sphere"]["center_mm"], entry["sphere"]["radius_mm"], shape, affine)
+        source = inputs["brain_mask"]
+    else:
+        raise InputError(None, f"rois[{name}]", "the ROI entry has none of labels, image, sphere", "give exactly one of them")
+
+    kept = restrict_to_brain(roi, brain, min_voxels, subject, name, source_file=source)
+    save_nifti(outputs["mask"], kept.astype(np.uint8), affine, dtype=np.uint8)
+    write_json(outputs["info"], {"roi": name, "subject": subject, "n_voxels": int(kept.sum()), "min_voxels": min_voxels,
+                                 "definition": entry})

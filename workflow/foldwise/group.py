@@ -1,0 +1,597 @@
+"""Group statistics over subjects' decoding scores.
+
+Every function works on whole arrays of "cells": one cell is one ROI x
+direction x voxel count of an analysis. Subject scores come as an array of
+shape ``(n_subjects, n_cells)``; subject-level permutation nulls as
+``(n_subjects, n_permutations, n_cells)``, where permutation ``k`` of a subject
+is the same relabeling in every cell, so the cells share one joint null.
+
+Public functions, in the order a group analysis uses them:
+
+``mean_sem_ci``          mean, standard error and t-based confidence interval
+``t_test_greater``       one-sided one-sample t-test against chance
+``wilcoxon_greater``     one-sided Wilcoxon signed-rank test against chance
+``draw_indices``         one index matrix of random per-subject permutation picks
+``group_mean_null``      the null of the group mean (Stelzer, Chen & Turner 2013)
+``group_minimum_null``   the null of the minimum over subjects (Allefeld et al. 2016)
+``permutation_p``        p-value of an observed statistic against its null draws
+``max_statistic_p``      family-wise corrected p by the maximum statistic
+``prevalence_p``         p-value of the prevalence null gamma <= gamma0
+``prevalence_bound``     the largest gamma0 whose prevalence null is rejected
+``group_statistics``     all of the above for one analysis
+"""
+
+import numpy as np
+from scipy import stats
+
+from .errors import InputError
+
+__all__ = [
+    "TIE_TOLERANCE",
+    "MIN_SUBJECTS",
+    "mean_sem_ci",
+    "t_test_greater",
+    "wilcoxon_greater",
+    "draw_indices",
+    "group_mean_null",
+    "group_minimum_null",
+    "permutation_p",
+    "max_statistic_p",
+    "prevalence_p",
+    "prevalence_bound",
+    "group_statistics",
+]
+
+# Scores reach this stage through TSV text with 7 significant digits
+# (fileio.FLOAT_FORMAT), so a group mean that equals the observed one in exact
+# arithmetic can differ from it by up to ~5e-8 after reading. Accuracy means
+# that truly differ are at least ~1e-5 apart (one test trial of one fold of one
+# subject among thousands), so differences below 1e-6 on the score scale count
+# as ties, and ties count as "at least as extreme" (the conservative side).
+TIE_TOLERANCE = 1e-6
+
+# Below this many subjects the stage reports descriptive statistics only.
+MIN_SUBJECTS = 3
+
+# scipy.stats.wilcoxon enumerates all sign flips up to this many subjects when
+# there are ties or zeros (its documented "auto" threshold); we do the same.
+_WILCOXON_MAX_EXACT = 13
+_DIFFERENCE_DECIMALS = 12  # collapse float noise so equal differences tie
+
+
+def _fail(field, problem, fix):
+    raise InputError(None, field, problem, fix)
+
+
+def _check_scores(scores, chance):
+    scores = np.asarray(scores, dtype=np.float64)
+    if scores.ndim != 2:
+        _fail("scores", f"expected a 2-D array (subjects x cells), got shape {scores.shape}",
+              "pass one row per subject and one column per cell")
+    if scores.shape[0] < 1 or scores.shape[1] < 1:
+        _fail("scores", f"empty array of shape {scores.shape}", "pass at least one subject and one cell")
+    if not np.all(np.isfinite(scores)):
+        _fail("scores", "non-finite value(s) among the scores", "remove or recompute the missing scores")
+    chance = np.asarray(chance, dtype=np.float64)
+    if chance.ndim > 1 or chance.size not in (1, scores.shape[1]):
+        _fail("chance", f"expected a scalar or {scores.shape[1]} values (one per cell), got shape {chance.shape}",
+              "pass one chance level per cell")
+    chance = np.broadcast_to(chance.reshape(-1), (scores.shape[1],))
+    if not np.all(np.isfinite(chance)):
+        _fail("chance", f"non-finite chance level(s): {chance[~np.isfinite(chance)][:3]}", "pass finite chance levels")
+    return scores, chance
+
+
+def mean_sem_ci(scores, confidence=0.95):
+    """Mean, standard error of the mean and t-based confidence interval per cell.
+
+    Parameters
+    ----------
+    scores : array_like, shape (n_subjects, n_cells)
+        One score per subject and cell.
+    confidence : float
+        Two-sided coverage of the interval, in (0, 1).
+
+    Returns
+    -------
+    dict of ndarray, shape (n_cells,)
+        ``mean``, ``sem`` (sample SD with ddof=1 over sqrt(n)), ``ci_low``,
+        ``ci_high``. ``sem`` and the interval are NaN with one subject.
+
+    Notes
+    -----
+    The interval is ``mean +/- t_{(1+confidence)/2, n-1} * sem``, the
+    Student-t interval for a mean (Student 1908, Biometrika 6:1-25), the same
+    as ``scipy.stats.ttest_1samp(...).confidence_interval``.
+
+    Example
+    -------
+    >>> out = mean_sem_ci([[0.5], [0.6], [0.7]])
+    >>> round(float(out["mean"][0]), 3), round(float(out["sem"][0]), 4)
+    (0.6, 0.0577)
+    """
+    if not 0 < confidence < 1:
+        _fail("confidence", f"must lie in (0, 1), got {confidence!r}", "pass e.g. 0.95")
+    scores, _ = _check_scores(scores, 0.0)
+    n_subjects = scores.shape[0]
+    mean = scores.mean(axis=0)
+    if n_subjects < 2:
+        nan = np.full(scores.shape[1], np.nan)
+        return {"mean": mean, "sem": nan, "ci_low": nan.copy(), "ci_high": nan.copy()}
+    sem = scores.std(axis=0, ddof=1) / np.sqrt(n_subjects)
+    half_width = stats.t.ppf(0.5 + confidence / 2, n_subjects - 1) * sem
+    return {"mean": mean, "sem": sem, "ci_low": mean - half_width, "ci_high": mean + half_width}
+
+
+def t_test_greater(scores, chance):
+    """One-sided one-sample t-test of the mean score against chance, per cell.
+
+    Parameters
+    ----------
+    scores : array_like, shape (n_subjects, n_cells)
+    chance : array_like, shape (n_cells,) or scalar
+
+    Returns
+    -------
+    t : ndarray, shape (n_cells,)
+        ``(mean - chance) / sem``.
+    p : ndarray, shape (n_cells,)
+        Upper tail of Student's t with n - 1 degrees of freedom.
+
+    Notes
+    -----
+    Student (1908); equals ``scipy.stats.ttest_1samp(scores, chance,
+    alternative="greater")``. Where all subjects have exactly the same score
+    the variance is zero and the test is undefined: ``t`` and ``p`` are NaN
+    there (scipy warns and returns an unreliable value instead). Fewer than two
+    subjects give NaN throughout.
+    """
+    scores, chance = _check_scores(scores, chance)
+    n_subjects = scores.shape[0]
+    t_value = np.full(scores.shape[1], np.nan)
+    p_value = np.full(scores.shape[1], np.nan)
+    if n_subjects < 2:
+        return t_value, p_value
+    varying = np.ptp(scores, axis=0) > 0
+    sem = scores[:, varying].std(axis=0, ddof=1) / np.sqrt(n_subjects)
+    t_value[varying] = (scores[:, varying].mean(axis=0) - chance[varying]) / sem
+    p_value[varying] = stats.t.sf(t_value[varying], n_subjects - 1)
+    return t_value, p_value
+
+
+def wilcoxon_greater(scores, chance, max_exact=_WILCOXON_MAX_EXACT):
+    """One-sided Wilcoxon signed-rank test of ``score - chance`` > 0, per cell.
+
+    Parameters
+    ----------
+    scores : array_like, shape (n_subjects, n_cells)
+    chance : array_like, shape (n_cells,) or scalar
+    max_exact : int
+        Up to this many subjects the p-value is exact (all ``2**n`` sign flips
+        enumerated); above it, the normal approximation.
+
+    Returns
+    -------
+    ndarray, shape (n_cells,)
+        p-values; NaN where every difference is zero (no subject differs from
+        chance, the test is undefined).
+
+    Notes
+    -----
+    Wilcoxon (1945), Biometrics Bulletin 1:80-83. Zero differences (subjects
+    exactly at chance, common with discrete accuracies) follow Pratt (1959),
+    JASA 54:655-667: they take part in the ranking of ``|d|`` and their ranks
+    are then dropped, so subjects at chance still weaken the evidence instead
+    of vanishing (``scipy.stats.wilcoxon(zero_method="pratt")``). Tied ``|d|``
+    get average ranks. With ``W+`` the rank sum of positive differences and
+    ``r`` the ranks of the non-zero differences:
+
+    - exact: ``p = #{sign flips s : sum(s * r) >= W+} / 2**n``, the exact
+      conditional null given the ranks (what scipy enumerates for n <= 13
+      with ties or zeros, and what its exact distribution gives without them);
+    - approximate: ``z = (W+ - sum(r)/2) / sqrt(sum(r**2)/4)``, ``p = 1 -
+      Phi(z)``, no continuity correction. ``sum(r**2)/4`` is the exact null
+      variance given the ranks and equals the tie (Cureton 1967, JASA
+      62:1068-1069) and zero corrections that scipy applies.
+
+    Differences are rounded to 12 decimals first so that values equal in
+    exact arithmetic tie (scipy's documentation advises the same).
+
+    Example
+    -------
+    >>> d = [6, 8, 14, 16, 23, 24, 28, 29, 41, -48, 49, 56, 60, -67, 75]
+    >>> float(wilcoxon_greater(np.reshape(d, (-1, 1)), 0.0, max_exact=15)[0])
+    0.0206298828125
+    """
+    if not isinstance(max_exact, (int, np.integer)) or not 0 <= max_exact <= 20:
+        _fail("max_exact", f"must be an integer in [0, 20], got {max_exact!r}", "pass e.g. 13")
+    scores, chance = _check_scores(scores, chance)
+    n_subjects, n_cells = scores.shape
+    difference = np.round(scores - chance, _DIFFERENCE_DECIMALS)
+    ranks = stats.rankdata(np.abs(difference), axis=0)  # Pratt: zeros ranked too
+    ranks = np.where(difference == 0, 0.0, ranks)       # ... then dropped
+    rank_sum_positive = np.where(difference > 0, ranks, 0.0).sum(axis=0)
+    p_value = np.full(n_cells, np.nan)
+    defined = np.any(difference != 0, axis=0)
+    if n_subjects <= max_exact:
+        flips = (np.arange(2 ** n_subjects)[:, None] >> np.arange(n_subjects)) & 1
+        null_sums = flips.astype(np.float64) @ ranks[:, defined]
+        # ranks are multiples of 0.5, so sums are exact; the margin is for safety
+        at_least = (null_sums >= rank_sum_positive[defined] - 1e-9).sum(axis=0)
+        p_value[defined] = at_least / 2 ** n_subjects
+    else:
+        mean = ranks[:, defined].sum(axis=0) / 2
+        sd = np.sqrt((ranks[:, defined] ** 2).sum(axis=0) / 4)
+        p_value[defined] = stats.norm.sf((rank_sum_positive[defined] - mean) / sd)
+    return p_value
+
+
+def draw_indices(rng, n_choices, n_subjects, n_draws):
+    """One matrix of random per-subject picks, shared by every cell.
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+    n_choices : int
+        How many null values each subject offers (its permutations).
+    n_subjects : int
+    n_draws : int
+
+    Returns
+    -------
+    ndarray of int64, shape (n_draws, n_subjects)
+        Uniform picks in ``[0, n_choices)``, with replacement.
+
+    Notes
+    -----
+    Using the same row of picks in every cell makes the draws a joint null
+    across cells, which the maximum-statistic correction needs (Nichols &
+    Holmes 2002, Human Brain Mapping 15:1-25).
+    """
+    if not isinstance(rng, np.random.Generator):
+        _fail("rng", f"expected a numpy.random.Generator, got {type(rng).__name__}",
+              "pass np.random.default_rng(seed)")
+    for name, value in (("n_choices", n_choices), ("n_subjects", n_subjects), ("n_draws", n_draws)):
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+            _fail(name, f"must be a positive integer, got {value!r}", f"pass {name} >= 1")
+    return rng.integers(0, int(n_choices), size=(int(n_draws), int(n_subjects)), dtype=np.int64)
+
+
+def _check_null(subject_nulls, indices):
+    subject_nulls = np.asarray(subject_nulls, dtype=np.float64)
+    indices = np.asarray(indices)
+    if subject_nulls.ndim != 3:
+        _fail("subject_nulls", f"expected shape (subjects, permutations, cells), got {subject_nulls.shape}",
+              "stack one (permutations x cells) array per subject")
+    if indices.ndim != 2 or indices.shape[1] != subject_nulls.shape[0]:
+        _fail("indices", f"expected shape (draws, {subject_nulls.shape[0]}), got {indices.shape}",
+              "draw one index per subject per draw")
+    if not np.issubdtype(indices.dtype, np.integer):
+        _fail("indices", f"expected integers, got dtype {indices.dtype}", "pass the output of draw_indices")
+    if indices.size and (indices.min() < 0 or indices.max() >= subject_nulls.shape[1]):
+        _fail("indices", f"values outside [0, {subject_nulls.shape[1]}): min {indices.min()}, max {indices.max()}",
+              "draw indices with n_choices equal to the number of permutations")
+    if not np.all(np.isfinite(subject_nulls)):
+        _fail("subject_nulls", "non-finite value(s) in the permutation null", "recompute the subject-level null")
+    return subject_nulls, indices
+
+
+def group_mean_null(subject_nulls, indices):
+    """Null distribution of the group mean, one value per draw and cell.
+
+    Parameters
+    ----------
+    subject_nulls : array_like, shape (n_subjects, n_permutations, n_cells)
+        Each subject's fold-mean score under each label permutation.
+    indices : array_like of int, shape (n_draws, n_subjects)
+        Which permutation of each subject enters each draw (``draw_indices``).
+
+    Returns
+    -------
+    ndarray, shape (n_draws, n_cells)
+        ``mean_s subject_nulls[s, indices[d, s], c]``.
+
+    Notes
+    -----
+    Stelzer, Chen & Turner (2013), NeuroImage 65:69-82: a group-level null
+    built by combining one subject-level permutation per subject, drawn with
+    replacement, many times.
+
+    Example
+    -------
+    >>> nulls = np.array([[[0.4], [0.6]], [[0.5], [0.7]]])
+    >>> group_mean_null(nulls, np.array([[0, 1], [1, 0]]))[:, 0].round(3).tolist()
+    [0.55, 0.55]
+    """
+    subject_nulls, indices = _check_null(subject_nulls, indices)
+    n_subjects = subject_nulls.shape[0]
+    total = np.zeros((indices.shape[0], subject_nulls.shape[2]))
+    # One gather per subject: the full (draws x subjects x cells) array would
+    # not fit in memory for 10,000 draws x 30 subjects x 100 cells.
+    for subject in range(n_subjects):
+        total += subject_nulls[subject][indices[:, subject]]
+    return total / n_subjects
+
+
+def group_minimum_null(subject_values, indices):
+    """Null distribution of the minimum over subjects, one value per draw and cell.
+
+    Parameters
+    ----------
+    subject_values : array_like, shape (n_subjects, n_choices, n_cells)
+        Each subject's scores under its labelings; for prevalence inference
+        choice 0 is the actual (neutral) labeling and 1.. the permutations.
+    indices : array_like of int, shape (n_draws, n_subjects)
+
+    Returns
+    -------
+    ndarray, shape (n_draws, n_cells)
+        ``min_s subject_values[s, indices[d, s], c]``.
+
+    Notes
+    -----
+    The minimum statistic of Allefeld, Gorgen & Haynes (2016), NeuroImage
+    141:378-392: it exceeds a threshold only if every subject does.
+    """
+    subject_values, indices = _check_null(subject_values, indices)
+    minimum = np.full((indices.shape[0], subject_values.shape[2]), np.inf)
+    for subject in range(subject_values.shape[0]):  # one gather per subject, as above
+        np.minimum(minimum, subject_values[subject][indices[:, subject]], out=minimum)
+    return minimum
+
+
+def _check_observed_null(observed, null):
+    observed = np.asarray(observed, dtype=np.float64)
+    null = np.asarray(null, dtype=np.float64)
+    if observed.ndim != 1:
+        _fail("observed", f"expected a 1-D array (cells), got shape {observed.shape}", "pass one value per cell")
+    if null.ndim != 2 or null.shape[1] != observed.shape[0] or null.shape[0] < 1:
+        _fail("null", f"expected shape (draws, {observed.shape[0]}), got {null.shape}", "pass one row per draw")
+    return observed, null
+
+
+def permutation_p(observed, null, tolerance=TIE_TOLERANCE):
+    """p-value of each observed statistic against its null draws (upper tail).
+
+    Parameters
+    ----------
+    observed : array_like, shape (n_cells,)
+    null : array_like, shape (n_draws, n_cells)
+    tolerance : float
+        Null values within ``tolerance`` below the observed count as ties.
+
+    Returns
+    -------
+    ndarray, shape (n_cells,)
+        ``(1 + #{null >= observed}) / (1 + n_draws)``.
+
+    Notes
+    -----
+    Counting the observed labeling as one of the draws keeps the test valid
+    with random draws (Phipson & Smyth 2010, Stat Appl Genet Mol Biol 9:39);
+    Stelzer et al. (2013) and Allefeld et al. (2016) use this form. The tie
+    tolerance follows ``scipy.stats.permutation_test``, which also compares
+    against ``observed - gamma``; ours is on the score scale (``TIE_TOLERANCE``).
+
+    Example
+    -------
+    >>> permutation_p([0.6], [[0.5], [0.6], [0.7], [0.4]]).tolist()
+    [0.6]
+    """
+    if not tolerance >= 0:
+        _fail("tolerance", f"must be >= 0, got {tolerance!r}", "pass e.g. 1e-6")
+    observed, null = _check_observed_null(observed, null)
+    at_least = (null >= observed - tolerance).sum(axis=0)
+    return (1.0 + at_least) / (1.0 + null.shape[0])
+
+
+def max_statistic_p(observed, null, families, tolerance=TIE_TOLERANCE):
+    """Family-wise corrected p-values by the maximum statistic.
+
+    Parameters
+    ----------
+    observed : array_like, shape (n_cells,)
+        Observed statistic per cell (here: group mean minus chance).
+    null : array_like, shape (n_draws, n_cells)
+        The statistic under each joint null draw (the same draw in every cell).
+    families : array_like, shape (n_cells,)
+        A label per cell; cells with the same label form one family.
+    tolerance : float
+        Tie tolerance as in ``permutation_p``.
+
+    Returns
+    -------
+    ndarray, shape (n_cells,)
+        ``(1 + #{d : max_{c' in family(c)} null[d, c'] >= observed[c]}) /
+        (1 + n_draws)``.
+
+    Notes
+    -----
+    Nichols & Holmes (2002), Human Brain Mapping 15:1-25: the distribution of
+    the family's maximum over the joint permutation null controls the chance
+    of any false positive in the family (weak and, by subset pivotality,
+    strong control). The statistic must be on one scale across the family.
+
+    Example
+    -------
+    >>> null = [[0.1, 0.3], [0.2, 0.0], [0.0, 0.1]]
+    >>> max_statistic_p([0.25, 0.05], null, [0, 0]).tolist()
+    [0.5, 1.0]
+    """
+    if not tolerance >= 0:
+        _fail("tolerance", f"must be >= 0, got {tolerance!r}", "pass e.g. 1e-6")
+    observed, null = _check_observed_null(observed, null)
+    families = np.asarray(families)
+    if families.shape != observed.shape:
+        _fail("families", f"expected shape {observed.shape}, got {families.shape}", "pass one family label per cell")
+    p_value = np.empty(observed.shape[0])
+    for family in np.unique(families):  # a handful of families; each step is whole-array
+        members = families == family
+        family_max = np.sort(null[:, members].max(axis=1))
+        below = np.searchsorted(family_max, observed[members] - tolerance, side="left")
+        p_value[members] = (1.0 + family_max.size - below) / (1.0 + null.shape[0])
+    return p_value
+
+
+def _check_prevalence_args(p_global, n_subjects):
+    if isinstance(n_subjects, bool) or not isinstance(n_subjects, (int, np.integer)) or n_subjects < 1:
+        _fail("n_subjects", f"must be a positive integer, got {n_subjects!r}", "pass the number of subjects")
+    p_global = np.asarray(p_global, dtype=np.float64)
+    finite = p_global[np.isfinite(p_global)]
+    if np.any((finite <= 0) | (finite > 1)):
+        _fail("p_global", f"p-values must lie in (0, 1], got {finite[(finite <= 0) | (finite > 1)][:3]}",
+              "pass p-values of the global null")
+    return p_global
+
+
+def prevalence_p(p_global, n_subjects, gamma0):
+    """p-value of the prevalence null hypothesis ``gamma <= gamma0``.
+
+    Parameters
+    ----------
+    p_global : array_like
+        p-value of the global null (no subject has an effect) from the
+        minimum statistic.
+    n_subjects : int
+    gamma0 : float or array_like
+        Prevalence threshold(s) in [0, 1).
+
+    Returns
+    -------
+    ndarray
+        ``((1 - gamma0) * p_global**(1/N) + gamma0)**N``.
+
+    Notes
+    -----
+    Allefeld, Gorgen & Haynes (2016), NeuroImage 141:378-392 (formula as we
+    remember it): under ``gamma <= gamma0`` each subject's first-level test
+    is significant at level ``a`` with probability at most ``(1 - gamma0) a +
+    gamma0``, and the minimum statistic is significant only if all N are.
+    ``gamma0 = 0.5`` gives the majority test.
+
+    Example
+    -------
+    >>> float(prevalence_p(0.0016, 4, 0.5))  # (0.5 * 0.2 + 0.5)**4
+    0.1296
+    """
+    p_global = _check_prevalence_args(p_global, n_subjects)
+    gamma0 = np.asarray(gamma0, dtype=np.float64)
+    if np.any((gamma0 < 0) | (gamma0 >= 1)):
+        _fail("gamma0", f"must lie in [0, 1), got {gamma0}", "pass a prevalence threshold such as 0.5")
+    root = p_global ** (1.0 / n_subjects)
+    return ((1.0 - gamma0) * root + gamma0) ** n_subjects
+
+
+def prevalence_bound(p_global, n_subjects, alpha):
+    """The largest prevalence threshold gamma0 whose null is rejected at alpha.
+
+    Parameters
+    ----------
+    p_global : array_like
+        p-value of the global null from the minimum statistic.
+    n_subjects : int
+    alpha : float
+        Significance level in (0, 1).
+
+    Returns
+    -------
+    ndarray
+        ``gamma0* = (alpha**(1/N) - p_global**(1/N)) / (1 - p_global**(1/N))``
+        where ``p_global <= alpha``; NaN where even the global null stands.
+
+    Notes
+    -----
+    ``prevalence_p`` increases with gamma0, so the rejected thresholds form
+    ``[0, gamma0*]``; solving ``prevalence_p(gamma0) = alpha`` gives the closed
+    form (Allefeld, Gorgen & Haynes 2016, NeuroImage 141:378-392; from memory).
+    One can then say: the share of the population with an effect exceeds
+    gamma0* (at level alpha).
+
+    Example
+    -------
+    >>> round(float(prevalence_bound(0.0016, 4, 0.05)), 4)  # (0.05**0.25 - 0.2) / 0.8
+    0.3411
+    """
+    if not 0 < alpha < 1:
+        _fail("alpha", f"must lie in (0, 1), got {alpha!r}", "pass e.g. 0.05")
+    p_global = _check_prevalence_args(p_global, n_subjects)
+    root = p_global ** (1.0 / n_subjects)
+    level_root = alpha ** (1.0 / n_subjects)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        bound = (level_root - root) / (1.0 - root)
+    return np.where(p_global <= alpha, bound, np.nan)
+
+
+def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha, prevalence=True):
+    """Every group statistic of one analysis, per cell.
+
+    Parameters
+    ----------
+    scores : array_like, shape (n_subjects, n_cells)
+        Observed balanced accuracies.
+    chance : array_like, shape (n_cells,)
+    subject_nulls : array_like, shape (n_subjects, n_permutations, n_cells) or None
+        Subject-level permutation nulls (the same permutation ``k`` across the
+        cells of a subject); ``None`` or zero permutations: no permutation tests.
+    families : array_like, shape (n_cells,)
+        Family label per cell for the maximum-statistic correction.
+    rng : numpy.random.Generator
+    n_draws : int
+        Group-level draws.
+    alpha : float
+        Level for the prevalence bound.
+    prevalence : bool
+        Whether to run prevalence inference.
+
+    Returns
+    -------
+    columns : dict of ndarray, shape (n_cells,)
+        ``mean, sem, ci_low, ci_high, t, p_t, p_wilcoxon, p_perm, p_fwe,
+        prevalence_p_global, prevalence_gamma0, prevalence_p_majority``
+        (NaN where not computed).
+    null_mean : ndarray, shape (n_draws, n_cells) or None
+        The group-mean null (``None`` when no permutation test ran).
+
+    Notes
+    -----
+    Fewer than ``MIN_SUBJECTS`` subjects: descriptive columns only (the
+    interval too is left out). The random stream is used in a fixed order:
+    first the (n_draws x n_subjects) picks among the permutations for the
+    group-mean null, then, if prevalence is on, the picks among the neutral
+    labeling and the permutations for the minimum null. Each is one matrix used
+    in every cell.
+    """
+    scores, chance = _check_scores(scores, chance)
+    n_subjects, n_cells = scores.shape
+    nan = np.full(n_cells, np.nan)
+    columns = mean_sem_ci(scores)
+    for name in ("t", "p_t", "p_wilcoxon", "p_perm", "p_fwe",
+                 "prevalence_p_global", "prevalence_gamma0", "prevalence_p_majority"):
+        columns[name] = nan.copy()
+    if n_subjects < MIN_SUBJECTS:
+        columns["ci_low"], columns["ci_high"] = nan.copy(), nan.copy()
+        return columns, None
+    columns["t"], columns["p_t"] = t_test_greater(scores, chance)
+    columns["p_wilcoxon"] = wilcoxon_greater(scores, chance)
+    if subject_nulls is None or np.asarray(subject_nulls).shape[1] == 0:
+        return columns, None
+    subject_nulls = np.asarray(subject_nulls, dtype=np.float64)
+    if subject_nulls.shape[0] != n_subjects or subject_nulls.shape[2] != n_cells:
+        _fail("subject_nulls", f"shape {subject_nulls.shape} does not match scores {scores.shape}",
+              "pass one (permutations x cells) null per subject, cells as in scores")
+    n_permutations = subject_nulls.shape[1]
+    indices = draw_indices(rng, n_permutations, n_subjects, n_draws)
+    null_mean = group_mean_null(subject_nulls, indices)
+    observed_mean = columns["mean"]
+    columns["p_perm"] = permutation_p(observed_mean, null_mean)
+    columns["p_fwe"] = max_statistic_p(observed_mean - chance, null_mean - chance, families)
+    if prevalence:
+        # Choice 0 is the neutral (actual) labeling, as in Allefeld et al. (2016).
+        labelings = np.concatenate([scores[:, None, :], subject_nulls], axis=1)
+        prevalence_indices = draw_indices(rng, n_permutations + 1, n_subjects, n_draws)
+        null_minimum = group_minimum_null(labelings, prevalence_indices)
+        p_global = permutation_p(scores.min(axis=0), null_minimum)
+        columns["prevalence_p_global"] = p_global
+        columns["prevalence_gamma0"] = prevalence_bound(p_global, n_subjects, alpha)
+        columns["prevalence_p_majority"] = prevalence_p(p_global, n_subjects, 0.5)
+    return columns, null_mean

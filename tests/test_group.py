@@ -1,0 +1,476 @@
+"""Tests of foldwise.group (group statistics) and its job, foldwise.jobs.group.
+
+Outside references, named beside each check: scipy.stats (ttest_1samp,
+wilcoxon, sem, binom), the worked example of scipy's own wilcoxon
+documentation (Wilcoxon 1945 data), brute-force enumeration of the published
+definitions (Stelzer, Chen & Turner 2013; Nichols & Holmes 2002), and
+hand-derived values for prevalence inference (Allefeld, Gorgen & Haynes 2016,
+formulas from memory). Simulated data are invented, with known ground truth.
+"""
+
+import doctest
+import gzip
+import itertools
+import logging
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+import foldwise.group
+from foldwise import group
+from foldwise.errors import InputError
+from foldwise.fileio import write_tsv
+from foldwise.hashing import seed_from
+from foldwise.jobs import group as group_job
+
+
+# -- descriptives, t-test, Wilcoxon ------------------------------------------
+
+def _scores(rng, n_subjects=12, n_cells=5):
+    return 0.5 + rng.normal(0.03, 0.06, size=(n_subjects, n_cells))
+
+
+def test_t_test_equals_scipy_ttest_1samp_greater():
+    rng = np.random.default_rng(1)
+    scores, chance = _scores(rng), np.array([0.5, 0.5, 0.25, 0.5, 0.45])
+    t_value, p_value = group.t_test_greater(scores, chance)
+    # Source: scipy.stats.ttest_1samp (the reference library), one cell at a time.
+    for cell in range(scores.shape[1]):
+        reference = stats.ttest_1samp(scores[:, cell], chance[cell], alternative="greater")
+        assert t_value[cell] == pytest.approx(reference.statistic, rel=1e-12)
+        assert p_value[cell] == pytest.approx(reference.pvalue, rel=1e-10)
+
+
+def test_mean_sem_ci_equal_scipy():
+    rng = np.random.default_rng(2)
+    scores = _scores(rng, n_subjects=9)
+    out = group.mean_sem_ci(scores, confidence=0.95)
+    for cell in range(scores.shape[1]):
+        # Source: scipy.stats.sem and the two-sided interval of scipy.stats.ttest_1samp.
+        interval = stats.ttest_1samp(scores[:, cell], 0.5).confidence_interval(0.95)
+        assert out["sem"][cell] == pytest.approx(stats.sem(scores[:, cell]), rel=1e-12)
+        assert out["ci_low"][cell] == pytest.approx(interval.low, rel=1e-12)
+        assert out["ci_high"][cell] == pytest.approx(interval.high, rel=1e-12)
+        assert out["mean"][cell] == pytest.approx(np.mean(scores[:, cell]), rel=1e-14)
+
+
+def test_t_test_is_undefined_without_variance():
+    scores = np.column_stack([np.full(6, 0.75), np.linspace(0.4, 0.9, 6)])
+    t_value, p_value = group.t_test_greater(scores, 0.5)
+    assert np.isnan(t_value[0]) and np.isnan(p_value[0])  # zero variance: stated as n/a, no warning
+    assert np.isfinite(t_value[1]) and np.isfinite(p_value[1])
+
+
+def test_wilcoxon_exact_equals_scipy_documentation_example():
+    # Source: scipy.stats.wilcoxon docstring, the Wilcoxon (1945) differences;
+    # its exact one-sided p-value is printed there as 0.0206298828125.
+    differences = np.array([6, 8, 14, 16, 23, 24, 28, 29, 41, -48, 49, 56, 60, -67, 75], dtype=float)
+    p_exact = group.wilcoxon_greater(differences[:, None], 0.0, max_exact=15)
+    assert p_exact[0] == pytest.approx(0.0206298828125, abs=1e-15)
+    # Above max_exact the normal approximation; source: scipy.stats.wilcoxon(method="asymptotic").
+    p_normal = group.wilcoxon_greater(differences[:, None], 0.0, max_exact=13)
+    reference = stats.wilcoxon(differences, alternative="greater", method="asymptotic")
+    assert p_normal[0] == pytest.approx(reference.pvalue, rel=1e-10)
+
+
+@pytest.mark.parametrize("n_subjects", [8, 20])
+def test_wilcoxon_with_ties_and_zeros_equals_scipy_pratt(n_subjects):
+    rng = np.random.default_rng(n_subjects)
+    chance = 1 / 3
+    # Discrete accuracies (multiples of 1/12): ties and subjects exactly at chance.
+    scores = chance + rng.integers(-2, 4, size=(n_subjects, 4)) / 12
+    scores[:3, 0] = chance
+    p_value = group.wilcoxon_greater(scores, chance)
+    for cell in range(scores.shape[1]):
+        # Source: scipy.stats.wilcoxon with Pratt's zero handling; scipy enumerates all
+        # sign flips for n <= 13 and uses the tie- and zero-corrected normal law above.
+        difference = np.round(scores[:, cell] - chance, 12)
+        reference = stats.wilcoxon(difference, zero_method="pratt", alternative="greater")
+        assert p_value[cell] == pytest.approx(reference.pvalue, rel=1e-10)
+
+
+def test_wilcoxon_counts_zeros_the_pratt_way_and_is_undefined_when_all_zero():
+    # Hand derivation (Pratt 1959), d = [0, 0, .1, .2, .3, -.15, .25, -.05]:
+    # |d| ranks with the zeros: 0, 0 -> 1, 2 (dropped); .05 -> 3, .1 -> 4, .15 -> 5,
+    # .2 -> 6, .25 -> 7, .3 -> 8. W+ = 4 + 6 + 7 + 8 = 25 of a total 33, so a sign
+    # flip reaches it iff its negative ranks sum to <= 8: {}, {3}, {4}, {5}, {6},
+    # {7}, {8}, {3,4}, {3,5} -> 9 of 2**6 = 64 flips, p = 9/64 = 0.140625.
+    # Discarding zeros instead (ranks 1..6, W+ = 17 of 21) would give 7/64.
+    # Both agree with scipy.stats.wilcoxon(zero_method="pratt" / "wilcox").
+    differences = np.array([0, 0, 0.1, 0.2, 0.3, -0.15, 0.25, -0.05])
+    assert group.wilcoxon_greater(0.5 + differences[:, None], 0.5)[0] == pytest.approx(9 / 64, abs=1e-15)
+    assert stats.wilcoxon(differences, zero_method="wilcox", alternative="greater").pvalue == pytest.approx(7 / 64)
+    assert np.isnan(group.wilcoxon_greater(np.full((5, 1), 0.5), 0.5)[0])
+
+
+# -- group permutation test (Stelzer et al. 2013) ------------------------------
+
+def _tiny_null_study():
+    rng = np.random.default_rng(7)
+    observed = np.array([[0.62, 0.55], [0.58, 0.52], [0.66, 0.50]])  # 3 subjects x 2 cells
+    nulls = 0.5 + rng.normal(0, 0.06, size=(3, 4, 2))                 # 4 permutations each
+    return observed, nulls
+
+
+def test_group_permutation_p_equals_exhaustive_enumeration():
+    observed, nulls = _tiny_null_study()
+    combinations = np.array(list(itertools.product(range(4), repeat=3)))  # all 4**3 = 64
+    null_mean = group.group_mean_null(nulls, combinations)
+    p_value = group.permutation_p(observed.mean(axis=0), null_mean)
+    # Source: the definition in Stelzer, Chen & Turner (2013): one permutation
+    # per subject, averaged; here every combination once, by a plain loop.
+    for cell in range(2):
+        count = 0
+        for picks in itertools.product(range(4), repeat=3):
+            mean = sum(nulls[subject, pick, cell] for subject, pick in enumerate(picks)) / 3
+            count += mean >= observed[:, cell].mean()
+        assert p_value[cell] == pytest.approx((1 + count) / (1 + 64), abs=1e-15)
+
+
+def test_sampled_group_p_converges_to_the_enumeration():
+    observed, nulls = _tiny_null_study()
+    combinations = np.array(list(itertools.product(range(4), repeat=3)))
+    exact_share = (group.group_mean_null(nulls, combinations) >= observed.mean(axis=0)).mean(axis=0)
+    n_draws = 200_000
+    indices = group.draw_indices(np.random.default_rng(11), 4, 3, n_draws)
+    sampled = group.permutation_p(observed.mean(axis=0), group.group_mean_null(nulls, indices))
+    # Binomial standard error of a share estimated from n_draws draws; 5 SE is a loose bound.
+    bound = 5 * np.sqrt(exact_share * (1 - exact_share) / n_draws) + 1 / n_draws
+    assert np.all(np.abs(sampled - exact_share) <= bound)
+
+
+def test_draws_are_one_joint_matrix_across_cells():
+    rng = np.random.default_rng(3)
+    nulls = rng.random((5, 20, 3))
+    indices = group.draw_indices(np.random.default_rng(5), 20, 5, 50)
+    assert indices.shape == (50, 5) and indices.min() >= 0 and indices.max() < 20
+    together = group.group_mean_null(nulls, indices)
+    for cell in range(3):  # the same picks in every cell
+        alone = group.group_mean_null(nulls[:, :, [cell]], indices)[:, 0]
+        np.testing.assert_array_equal(together[:, cell], alone)
+    np.testing.assert_array_equal(indices, group.draw_indices(np.random.default_rng(5), 20, 5, 50))
+
+
+def test_permutation_p_counts_ties_as_at_least_as_extreme():
+    # Scores stored at 7 digits: a tie off by 4e-8 still counts (TIE_TOLERANCE).
+    assert group.permutation_p([0.6], [[0.59999996], [0.5]])[0] == pytest.approx(2 / 3)
+    assert group.permutation_p([0.6], [[0.5999], [0.5]])[0] == pytest.approx(1 / 3)
+
+
+# -- max-statistic correction (Nichols & Holmes 2002) --------------------------
+
+def test_max_statistic_p_equals_brute_force_loop():
+    rng = np.random.default_rng(4)
+    null = rng.normal(size=(40, 6))
+    observed = np.array([1.9, 0.2, 1.1, 2.5, -0.3, 0.8])
+    families = np.array([0, 0, 0, 1, 1, 1])
+    p_fwe = group.max_statistic_p(observed, null, families)
+    # Source: Nichols & Holmes (2002), p = share of draws whose family maximum
+    # reaches the observed value, the observed labeling counted once.
+    for cell in range(6):
+        members = np.flatnonzero(families == families[cell])
+        count = sum(max(null[draw, member] for member in members) >= observed[cell] for draw in range(40))
+        assert p_fwe[cell] == pytest.approx((1 + count) / 41, abs=1e-15)
+    assert np.all(p_fwe >= group.permutation_p(observed, null, tolerance=0.0))
+
+
+def _simulated_subject_values(rng, n_subjects, n_permutations, n_cells, effect):
+    # One exchangeable set of (1 + n_permutations) labelings per subject; the
+    # shared term correlates the cells (as nested voxel counts are correlated).
+    shared = rng.normal(size=(n_subjects, n_permutations + 1, 1))
+    values = 0.5 + 0.05 * (np.sqrt(0.5) * shared + np.sqrt(0.5) * rng.normal(size=(n_subjects, n_permutations + 1, n_cells)))
+    values[:, 0, :] += effect  # row 0 is the actual labeling
+    return values[:, 0, :], values[:, 1:, :]
+
+
+def test_max_statistic_holds_familywise_error_on_null_studies():
+    rng = np.random.default_rng(20261201)
+    n_studies, n_subjects, n_permutations, n_cells, n_draws, alpha = 300, 10, 100, 6, 1000, 0.05
+    families = np.zeros(n_cells, dtype=int)
+    any_fwe = any_uncorrected = 0
+    for _ in range(n_studies):
+        observed, nulls = _simulated_subject_values(rng, n_subjects, n_permutations, n_cells, effect=0.0)
+        null_mean = group.group_mean_null(nulls, group.draw_indices(rng, n_permutations, n_subjects, n_draws))
+        mean = observed.mean(axis=0)
+        any_fwe += np.any(group.max_statistic_p(mean - 0.5, null_mean - 0.5, families) <= alpha)
+        any_uncorrected += np.any(group.permutation_p(mean, null_mean) <= alpha)
+    # Source: scipy.stats.binom; the 99% upper bound of the count of rejections
+    # among 300 studies if the family-wise error rate is exactly alpha.
+    assert any_fwe <= stats.binom.ppf(0.99, n_studies, alpha)
+    # Not vacuous: the rate is not far below alpha (same binomial, 1% lower bound),
+    # and without correction six cells reject far more often.
+    assert any_fwe >= stats.binom.ppf(0.01, n_studies, alpha)
+    assert any_uncorrected > stats.binom.ppf(0.99, n_studies, alpha)
+
+
+def test_max_statistic_finds_a_true_effect():
+    rng = np.random.default_rng(9)
+    observed, nulls = _simulated_subject_values(rng, 12, 200, 6, effect=0.0)
+    observed[:, 2] += 0.06  # ground truth: only cell 2 carries information
+    null_mean = group.group_mean_null(nulls, group.draw_indices(rng, 200, 12, 2000))
+    p_fwe = group.max_statistic_p(observed.mean(axis=0) - 0.5, null_mean - 0.5, np.zeros(6, dtype=int))
+    assert p_fwe[2] <= 0.01
+    assert p_fwe[2] == p_fwe.min()
+
+
+# -- prevalence inference (Allefeld, Gorgen & Haynes 2016) ---------------------
+
+def test_prevalence_worked_example_by_hand():
+    # N = 4 subjects, p_N = 0.0016, so p_N**(1/4) = 0.2 exactly.
+    # Majority: p(0.5) = ((1 - 0.5) * 0.2 + 0.5)**4 = 0.6**4 = 0.1296.
+    # Bound at alpha = 0.05: alpha**(1/4) = exp(ln(0.05) / 4) = exp(-0.7489331) = 0.4728708;
+    #   gamma0* = (0.4728708 - 0.2) / (1 - 0.2) = 0.3410885.
+    # Check: ((1 - 0.3410885) * 0.2 + 0.3410885)**4 = 0.4728708**4 = 0.05.
+    assert group.prevalence_p(0.0016, 4, 0.5) == pytest.approx(0.1296, rel=1e-12)
+    assert group.prevalence_p(0.0016, 4, 0.0) == pytest.approx(0.0016, rel=1e-12)  # gamma0 = 0 is the global null
+    bound = group.prevalence_bound(0.0016, 4, 0.05)
+    assert bound == pytest.approx(0.3410885, abs=1e-7)
+    assert group.prevalence_p(0.0016, 4, bound) == pytest.approx(0.05, rel=1e-12)
+    # The global null not rejected: no prevalence bound; exactly at alpha: bound 0.
+    assert np.isnan(group.prevalence_bound(0.2, 4, 0.05))
+    assert group.prevalence_bound(0.05, 4, 0.05) == pytest.approx(0.0, abs=1e-15)
+
+
+def test_minimum_statistic_p_global_by_hand():
+    # Three subjects, each with its actual labeling (choice 0) and one permutation (choice 1).
+    labelings = np.array([[[0.60], [0.40]], [[0.70], [0.80]], [[0.65], [0.50]]])
+    combinations = np.array(list(itertools.product(range(2), repeat=3)))  # all 8, the actual one included
+    minimum = group.group_minimum_null(labelings, combinations)
+    # By hand: the observed minimum is 0.60 (subject 1); a combination's minimum
+    # reaches 0.60 only if subject 1 keeps 0.60 and subject 3 keeps 0.65, whatever
+    # subject 2 does: 2 of the 8. p_N = (1 + 2) / (1 + 8) = 1/3.
+    assert sorted(minimum[:, 0].round(2).tolist()) == [0.4, 0.4, 0.4, 0.4, 0.5, 0.5, 0.6, 0.6]
+    assert group.permutation_p(labelings[:, 0, :].min(axis=0), minimum)[0] == pytest.approx(1 / 3)
+
+
+def test_group_statistics_prevalence_draws_include_the_actual_labeling():
+    # Every subject's actual score beats all its permutations; the minimum null then
+    # reaches the observed minimum only on draws that pick the actual labeling for
+    # every subject, each with chance (1/(P+1))**N.
+    rng = np.random.default_rng(12)
+    n_subjects, n_permutations, n_draws = 3, 1, 40_000
+    scores = np.array([[0.7], [0.8], [0.75]])
+    nulls = np.full((n_subjects, n_permutations, 1), 0.4)
+    columns, _ = group.group_statistics(scores, [0.5], nulls, [0], rng, n_draws, 0.05)
+    expected = (1 + n_draws * 0.5 ** 3) / (1 + n_draws)
+    assert columns["prevalence_p_global"][0] == pytest.approx(expected, abs=5 * np.sqrt(0.125 * 0.875 / n_draws))
+
+
+def test_group_statistics_below_three_subjects_is_descriptive_only():
+    columns, null_mean = group.group_statistics([[0.6, 0.7], [0.5, 0.8]], [0.5, 0.5], np.full((2, 5, 2), 0.5),
+                                                [0, 0], np.random.default_rng(0), 100, 0.05)
+    assert null_mean is None
+    np.testing.assert_allclose(columns["mean"], [0.55, 0.75])
+    for name in ("ci_low", "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_gamma0"):
+        assert np.all(np.isnan(columns[name])), name
+
+
+def test_module_examples_run():
+    # The docstring examples double as checks (the Wilcoxon one is scipy's documented value).
+    result = doctest.testmod(foldwise.group, optionflags=doctest.NORMALIZE_WHITESPACE)
+    assert result.attempted >= 8 and result.failed == 0
+
+
+@pytest.mark.parametrize("call, field", [
+    (lambda: group.t_test_greater(np.ones(4), 0.5), "scores"),
+    (lambda: group.t_test_greater([[0.5, np.nan], [0.6, 0.7]], 0.5), "scores"),
+    (lambda: group.mean_sem_ci([[0.5], [0.6]], confidence=1.5), "confidence"),
+    (lambda: group.wilcoxon_greater(np.ones((4, 3)), [0.5, 0.5]), "chance"),
+    (lambda: group.wilcoxon_greater(np.ones((4, 3)), 0.5, max_exact=2.5), "max_exact"),
+    (lambda: group.draw_indices(np.random.default_rng(0), 0, 3, 10), "n_choices"),
+    (lambda: group.draw_indices(0, 4, 3, 10), "rng"),
+    (lambda: group.group_mean_null(np.zeros((3, 4, 2)), np.full((5, 3), 4)), "indices"),
+    (lambda: group.max_statistic_p([0.1, 0.2], np.zeros((5, 2)), [0]), "families"),
+    (lambda: group.prevalence_bound(0.01, 5, 1.0), "alpha"),
+    (lambda: group.prevalence_p(0.01, 5, 1.0), "gamma0"),
+])
+def test_pure_functions_reject_bad_arguments(call, field):
+    with pytest.raises(InputError) as error:
+        call()
+    assert error.value.field == field
+
+
+# -- the job: files in, files out ----------------------------------------------
+
+ANALYSIS = "lantern_shape"
+
+
+def _write_study(folder, subjects=("01", "02", "03", "04", "05"), rois=("ember", "glow"), counts=("10", "all"),
+                 directions=("within",), n_permutations=30, effect=None, seed=0, chance=1 / 3):
+    """An invented lanterns study: per-subject summaries and per-subject x ROI nulls."""
+    rng = np.random.default_rng(seed)
+    effect = effect or {}
+    summaries, nulls = [], []
+    for subject in subjects:
+        summary_rows, null_frames = [], {roi: [] for roi in rois}
+        for roi in rois:
+            for direction in directions:
+                for count in counts:
+                    score = np.clip(chance + effect.get(roi, 0.0) + rng.normal(0, 0.04), 0, 1)
+                    summary_rows.append({"subject": subject, "analysis": ANALYSIS, "roi": roi, "direction": direction,
+                                         "n_voxels": count, "n_used": 10 if count == "10" else 57, "n_folds": 4,
+                                         "accuracy": score, "balanced_accuracy": score, "chance": chance})
+                    values = np.clip(chance + rng.normal(0, 0.04, n_permutations), 0, 1)
+                    null_frames[roi].append(pd.DataFrame({
+                        "subject": subject, "analysis": ANALYSIS, "roi": roi, "direction": direction, "n_voxels": count,
+                        "permutation": np.arange(1, n_permutations + 1), "balanced_accuracy": values, "accuracy": values}))
+        path = folder / f"sub-{subject}_summary.tsv"
+        write_tsv(path, pd.DataFrame(summary_rows))
+        summaries.append(str(path))
+        for roi in rois:
+            path = folder / f"sub-{subject}_roi-{roi}_null.tsv.gz"
+            columns = list(group_job.SUBJECT_NULL_COLUMNS)
+            write_tsv(path, pd.concat(null_frames[roi]) if null_frames[roi] else pd.DataFrame(columns=columns))
+            nulls.append(str(path))
+    return {"summaries": summaries, "nulls": nulls}
+
+
+def _params(subjects=("01", "02", "03", "04", "05"), n_draws=500, prevalence=True, analysis=None):
+    analysis = analysis or {"name": ANALYSIS, "kind": "within", "classes": {"round": ["seen_round"]},
+                            "rois": [], "voxel_counts": [10, "all"]}
+    return {"group": {"n_draws": n_draws, "alpha": 0.05, "prevalence": prevalence}, "analysis": analysis,
+            "subjects": list(subjects), "seed": 20261201}
+
+
+def _outputs(folder):
+    return {"table": str(folder / "out" / "group.tsv"), "null": str(folder / "out" / "group_null.tsv.gz"),
+            "summary": str(folder / "out" / "summary.txt")}
+
+
+LOG = logging.getLogger("test_group")
+
+
+def test_job_writes_table_null_and_summary(tmp_path):
+    inputs = _write_study(tmp_path, effect={"ember": 0.15})
+    outputs = _outputs(tmp_path)
+    group_job.run(inputs, outputs, _params(), LOG)
+    table = pd.read_csv(outputs["table"], sep="\t", dtype={"n_voxels": str})
+    assert list(table.columns) == group_job.TABLE_COLUMNS
+    assert table[["roi", "n_voxels"]].values.tolist() == [["ember", "10"], ["ember", "all"], ["glow", "10"], ["glow", "all"]]
+    assert (table["n_subjects"] == 5).all() and table["p_fwe"].notna().all()
+    assert (table.loc[table["roi"] == "ember", "p_fwe"] <= 0.05).all()  # ground truth: ember carries the shape
+    null = pd.read_csv(outputs["null"], sep="\t", dtype={"n_voxels": str})
+    assert list(null.columns) == group_job.NULL_COLUMNS and len(null) == 4 * 500
+    assert null["draw"].tolist()[:3] == [1, 2, 3]
+    summary = Path(outputs["summary"]).read_text(encoding="utf-8")
+    assert "roi ember, n_voxels 10" in summary and "roi glow" not in summary
+    assert "not about how many subjects" in summary and "research use only" in summary
+    first = {name: Path(path).read_bytes() for name, path in outputs.items()}
+    group_job.run(inputs, outputs, _params(), LOG)
+    assert first == {name: Path(path).read_bytes() for name, path in outputs.items()}  # byte-identical
+
+
+def test_job_equals_the_pure_functions_with_its_seed(tmp_path):
+    inputs = _write_study(tmp_path, seed=3)
+    outputs = _outputs(tmp_path)
+    group_job.run(inputs, outputs, _params(n_draws=300), LOG)
+    table = pd.read_csv(outputs["table"], sep="\t")
+    frames = [pd.read_csv(path, sep="\t", dtype={"n_voxels": str}) for path in inputs["summaries"]]
+    scores = np.array([frame["balanced_accuracy"].to_numpy() for frame in frames])  # cell order as written
+    nulls = np.stack([np.concatenate([pd.read_csv(path, sep="\t")["balanced_accuracy"].to_numpy().reshape(2, 30).T
+                                      for path in inputs["nulls"][2 * s: 2 * s + 2]], axis=1) for s in range(5)])
+    rng = np.random.default_rng(seed_from(20261201, "group", ANALYSIS))
+    chance = frames[0]["chance"].to_numpy()  # as stored, 7 digits
+    columns, null_mean = group.group_statistics(scores, chance, nulls, np.zeros(4, dtype=int), rng, 300, 0.05)
+    for name in ("mean", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global"):
+        np.testing.assert_allclose(table[name], columns[name], rtol=1e-6, err_msg=name)  # 7 digits on disk
+    written = pd.read_csv(outputs["null"], sep="\t")["mean"].to_numpy().reshape(4, 300).T
+    np.testing.assert_allclose(written, null_mean, rtol=1e-6)
+
+
+def test_job_corrects_each_cross_direction_separately(tmp_path):
+    directions = ("seen->heard", "heard->seen", "seen<->heard", "seen->seen", "heard->heard")
+    inputs = _write_study(tmp_path, directions=directions[::-1], effect={"ember": 0.05}, seed=5)
+    analysis = {"name": ANALYSIS, "kind": "cross", "sets": {"seen": {"round": "seen_round"}, "heard": {"round": "heard_round"}},
+                "rois": ["glow", "ember"], "voxel_counts": [10, "all"]}
+    outputs = _outputs(tmp_path)
+    group_job.run(inputs, outputs, _params(analysis=analysis, n_draws=400), LOG)
+    table = pd.read_csv(outputs["table"], sep="\t", dtype={"n_voxels": str})
+    assert list(dict.fromkeys(table["roi"])) == ["glow", "ember"]  # configured ROI order
+    assert list(dict.fromkeys(table["direction"])) == list(directions)  # configured direction order
+    null = pd.read_csv(outputs["null"], sep="\t", dtype={"n_voxels": str})
+    for direction in directions:
+        rows = table["direction"] == direction
+        draws = np.stack([null.loc[(null["roi"] == r) & (null["direction"] == direction) & (null["n_voxels"] == c), "mean"]
+                          for r, c in table.loc[rows, ["roi", "n_voxels"]].values], axis=1)
+        expected = group.max_statistic_p(table.loc[rows, "mean"].to_numpy() - 1 / 3, draws - 1 / 3, np.zeros(4))
+        # The written null carries 7 digits; allow one draw's worth of difference.
+        np.testing.assert_allclose(table.loc[rows, "p_fwe"], expected, atol=1.5 / 401)
+    assert "direction seen<->heard" in Path(outputs["summary"]).read_text(encoding="utf-8")
+
+
+def test_job_with_two_subjects_is_descriptive_with_a_warning(tmp_path, caplog):
+    inputs = _write_study(tmp_path, subjects=("01", "02"))
+    outputs = _outputs(tmp_path)
+    with caplog.at_level(logging.WARNING, logger="test_group"):
+        group_job.run(inputs, outputs, _params(subjects=("01", "02")), LOG)
+    assert "descriptive statistics only" in caplog.text
+    table = pd.read_csv(outputs["table"], sep="\t")
+    assert table["mean"].notna().all() and table[["t", "p_t", "p_wilcoxon", "p_perm", "p_fwe"]].isna().all().all()
+    assert "\tn/a\t" in Path(outputs["table"]).read_text(encoding="utf-8")
+    assert gzip.decompress(Path(outputs["null"]).read_bytes()).decode() == "\t".join(group_job.NULL_COLUMNS) + "\n"
+
+
+def test_job_without_permutations_warns_and_leaves_permutation_columns_empty(tmp_path, caplog):
+    inputs = _write_study(tmp_path, n_permutations=0)
+    outputs = _outputs(tmp_path)
+    with caplog.at_level(logging.WARNING, logger="test_group"):
+        group_job.run(inputs, outputs, _params(), LOG)
+    assert "no permutation null" in caplog.text
+    table = pd.read_csv(outputs["table"], sep="\t")
+    assert table["p_t"].notna().all() and table[["p_perm", "p_fwe", "prevalence_p_global"]].isna().all().all()
+
+
+def test_job_without_prevalence(tmp_path):
+    inputs = _write_study(tmp_path)
+    outputs = _outputs(tmp_path)
+    group_job.run(inputs, outputs, _params(prevalence=False), LOG)
+    table = pd.read_csv(outputs["table"], sep="\t")
+    assert table["p_fwe"].notna().all()
+    assert table[["prevalence_p_global", "prevalence_gamma0", "prevalence_p_majority"]].isna().all().all()
+
+
+def _rewrite(path, change):
+    frame = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
+    write_tsv(path, change(frame))
+
+
+@pytest.mark.parametrize("damage, params_change, field, words", [
+    (None, {"subjects": ["01", "02", "03", "04", "05", "06"]}, "subject", ["06", "exclude_subjects"]),
+    (lambda inputs: inputs["summaries"].pop(1), {}, "subject", ["02", "exclude_subjects"]),
+    (lambda inputs: _rewrite(inputs["summaries"][2], lambda f: f[f["n_voxels"] != "all"]), {},
+     "roi, direction, n_voxels", ["03", "voxel-count sweep"]),
+    (lambda inputs: _rewrite(inputs["summaries"][3], lambda f: f[f["roi"] != "glow"]), {},
+     "roi, direction, n_voxels", ["04", "lacks"]),
+    (lambda inputs: _rewrite(inputs["summaries"][0], lambda f: f.assign(analysis="other")), {}, "analysis", ["other"]),
+    (lambda inputs: _rewrite(inputs["summaries"][1], lambda f: f.assign(balanced_accuracy="high")), {},
+     "balanced_accuracy", ["high"]),
+    (lambda inputs: _rewrite(inputs["summaries"][1], lambda f: f.drop(columns="chance")), {}, "chance", ["missing"]),
+    (lambda inputs: _rewrite(inputs["summaries"][4], lambda f: f.assign(chance="0.5")), {}, "chance", ["05"]),
+    (lambda inputs: inputs["nulls"].pop(3), {}, "subject, roi", ["02/glow"]),
+    (lambda inputs: _rewrite(inputs["nulls"][0], lambda f: f[f["permutation"] != "30"]), {}, "permutation",
+     ["different numbers"]),
+    (lambda inputs: _rewrite(inputs["nulls"][0], lambda f: f.assign(permutation=f["permutation"].replace("2", "1"))), {}, "permutation",
+     ["exactly once"]),
+    (None, {"group": {"n_draws": 0, "alpha": 0.05, "prevalence": True}}, "group.n_draws", ["0"]),
+])
+def test_job_rejects_bad_inputs(tmp_path, damage, params_change, field, words):
+    inputs = _write_study(tmp_path)
+    if damage is not None:
+        damage(inputs)
+    params = {**_params(), **params_change}
+    with pytest.raises(InputError) as error:
+        group_job.run(inputs, _outputs(tmp_path), params, LOG)
+    assert error.value.field == field
+    for word in words:
+        assert word in str(error.value)
+    assert not (tmp_path / "out").exists()  # nothing written on bad input
+
+
+def test_job_accepts_bids_style_subject_labels(tmp_path):
+    inputs = _write_study(tmp_path, subjects=("sub-01", "sub-02", "sub-03"))
+    group_job.run(inputs, _outputs(tmp_path), _params(subjects=("01", "02", "03")), LOG)
+    assert pd.read_csv(_outputs(tmp_path)["table"], sep="\t")["n_subjects"].eq(3).all()

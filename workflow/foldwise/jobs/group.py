@@ -1,0 +1,414 @@
+"""Job: group statistics of one analysis over every subject (file I/O at the edges).
+
+Reads each subject's decoding summary and per-ROI permutation nulls, checks
+that all subjects share the same cells and permutations, runs
+``foldwise.group.group_statistics`` and writes the group table, the group-mean
+null and a short plain-text summary.
+"""
+
+import io
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import group as group_stats
+from ..errors import InputError
+from ..fileio import gunzip_bytes, write_text_atomic, write_tsv
+from ..hashing import seed_from
+
+__all__ = ["run", "TABLE_COLUMNS", "NULL_COLUMNS"]
+
+SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds",
+                   "accuracy", "balanced_accuracy", "chance")
+SUBJECT_NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation",
+                        "balanced_accuracy", "accuracy")
+TABLE_COLUMNS = ["analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low",
+                 "ci_high", "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global",
+                 "prevalence_gamma0", "prevalence_p_majority"]
+NULL_COLUMNS = ["roi", "direction", "n_voxels", "draw", "mean"]
+
+_KEY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels")
+_CHANCE_TOLERANCE = 1e-6  # chance levels travel as 7-digit text
+_RERUN_FIX = "rerun the decoding stage for every subject with the current config (snakemake reruns it when asked)"
+_LIST_LIMIT = 6
+
+
+def _short_list(items):
+    items = [str(item) for item in items]
+    shown = ", ".join(items[:_LIST_LIMIT])
+    return shown + (f" and {len(items) - _LIST_LIMIT} more" if len(items) > _LIST_LIMIT else "")
+
+
+def _subject_label(value):
+    return str(value).removeprefix("sub-")
+
+
+def _read_table(path, required, what):
+    """Read a TSV (or .tsv.gz) with the key columns as strings; InputError on any problem."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, "file", f"the {what} does not exist", _RERUN_FIX)
+    data = path.read_bytes()
+    try:
+        if path.name.endswith(".gz"):
+            data = gunzip_bytes(data)
+        # Key columns as text: subject "01" must not become 1, n_voxels mixes counts and "all".
+        frame = pd.read_csv(io.BytesIO(data), sep="\t", dtype={column: str for column in _KEY_COLUMNS},
+                            na_values=["n/a"], keep_default_na=False)
+    except pd.errors.EmptyDataError:
+        raise InputError(path, "header", f"the {what} is empty", _RERUN_FIX) from None
+    except (pd.errors.ParserError, UnicodeDecodeError, OSError, EOFError) as error:
+        raise InputError(path, "format", f"the {what} is not a readable TSV ({type(error).__name__}: {error})",
+                         _RERUN_FIX) from None
+    missing = [column for column in required if column not in frame.columns]
+    if missing:
+        raise InputError(path, ", ".join(missing),
+                         f"required column(s) missing from the {what} (found: {', '.join(map(str, frame.columns))})",
+                         _RERUN_FIX)
+    for column in _KEY_COLUMNS:
+        if frame[column].isna().any():
+            row = int(np.flatnonzero(frame[column].isna().to_numpy())[0])
+            raise InputError(path, column, f"empty or n/a value in data row {row + 1}", _RERUN_FIX)
+    return frame
+
+
+def _single_value(frame, column, path):
+    values = frame[column].drop_duplicates().tolist()
+    if len(values) != 1:
+        raise InputError(path, column, f"expected one {column} per file, found {_short_list(values) or 'none'}",
+                         "pass one file per subject (and per ROI for nulls)")
+    return values[0]
+
+
+def _scores_column(frame, column, path, low=0.0, high=1.0):
+    values = pd.to_numeric(frame[column], errors="coerce").to_numpy(dtype=np.float64)
+    bad = ~np.isfinite(values) | (values < low) | (values > high)
+    if bad.any():
+        row = int(np.flatnonzero(bad)[0])
+        raise InputError(path, column, f"value {frame[column].iloc[row]!r} in data row {row + 1} is not a number "
+                         f"in [{low}, {high}]", _RERUN_FIX)
+    return values
+
+
+def _check_params(params):
+    for key in ("group", "analysis", "subjects", "seed"):
+        if key not in params:
+            raise InputError(None, f"params.{key}", "missing from the job's params", "pass it from the group rule")
+    settings = params["group"]
+    n_draws = settings.get("n_draws")
+    if isinstance(n_draws, bool) or not isinstance(n_draws, int) or n_draws < 1:
+        raise InputError(None, "group.n_draws", f"must be a positive integer, got {n_draws!r}", "set group.n_draws, e.g. 10000")
+    alpha = settings.get("alpha")
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+        raise InputError(None, "group.alpha", f"must be a number in (0, 1), got {alpha!r}", "set group.alpha, e.g. 0.05")
+    if not isinstance(settings.get("prevalence"), bool):
+        raise InputError(None, "group.prevalence", f"must be true or false, got {settings.get('prevalence')!r}",
+                         "set group.prevalence")
+    name = params["analysis"].get("name") if isinstance(params["analysis"], dict) else None
+    if not isinstance(name, str) or not name:
+        raise InputError(None, "analysis.name", f"missing or not a string: {name!r}", "pass the analysis entry of the config")
+    subjects = params["subjects"]
+    if not isinstance(subjects, list) or not subjects or len(set(map(str, subjects))) != len(subjects):
+        raise InputError(None, "params.subjects", f"expected a non-empty list of distinct subject ids, got {subjects!r}",
+                         "pass the study's subjects")
+    return n_draws, float(alpha), settings["prevalence"], name, [_subject_label(s) for s in subjects]
+
+
+def _direction_order(analysis):
+    """Directions in configured order: within, or A->B, B->A, A<->B, A->A, B->B."""
+    if analysis.get("kind") == "cross" and isinstance(analysis.get("sets"), dict) and len(analysis["sets"]) == 2:
+        first, second = list(analysis["sets"])
+        return [f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}", f"{first}->{first}",
+                f"{second}->{second}"]
+    return ["within"]
+
+
+def _read_summaries(paths, name, expected):
+    """Per subject: the summary frame and its path, in the order of ``expected``."""
+    by_subject = {}
+    for path in paths:
+        frame = _read_table(path, SUMMARY_COLUMNS, "decoding summary")
+        subject = _subject_label(_single_value(frame, "subject", path))
+        analysis = _single_value(frame, "analysis", path)
+        if analysis != name:
+            raise InputError(path, "analysis", f"the summary is of analysis {analysis!r}, this job groups {name!r}",
+                             "pass this analysis's summaries only")
+        if subject in by_subject:
+            raise InputError(path, "subject", f"subject {subject} also has the summary {by_subject[subject][1]}",
+                             "pass one summary per subject")
+        by_subject[subject] = (frame, path)
+    missing = [subject for subject in expected if subject not in by_subject]
+    if missing:
+        raise InputError(None, "subject", f"analysis {name!r} has no results for subject(s) {_short_list(missing)}",
+                         "run the decoding stage for them, or leave them out with dataset.exclude_subjects in the config")
+    extra = [subject for subject in by_subject if subject not in expected]
+    if extra:
+        raise InputError(by_subject[extra[0]][1], "subject",
+                         f"summaries of subject(s) {_short_list(extra)} that the study does not list",
+                         "pass only the study's subjects' summaries, or add them to dataset.subjects")
+    return [by_subject[subject] for subject in expected]
+
+
+def _cell_keys(frame):
+    return list(zip(frame["roi"].tolist(), frame["direction"].tolist(), frame["n_voxels"].tolist()))
+
+
+def _ordered_cells(reference_frame, reference_path, analysis):
+    """The reference subject's cells, sorted by configured ROI, direction and count order."""
+    keys = _cell_keys(reference_frame)
+    duplicated = [key for index, key in enumerate(keys) if key in keys[:index]]
+    if duplicated:
+        raise InputError(reference_path, "roi, direction, n_voxels", f"duplicate rows for cell(s) {_short_list(duplicated)}",
+                         _RERUN_FIX)
+    directions = _direction_order(analysis)
+    unknown = sorted({key[1] for key in keys} - set(directions))
+    if unknown:
+        raise InputError(reference_path, "direction", f"direction(s) {_short_list(unknown)} do not belong to analysis "
+                         f"{analysis['name']!r} (expected {_short_list(directions)})", _RERUN_FIX)
+    rois = list(analysis.get("rois") or []) or list(dict.fromkeys(key[0] for key in keys))
+    stray = sorted({key[0] for key in keys} - set(rois))
+    if stray:
+        raise InputError(reference_path, "roi", f"ROI(s) {_short_list(stray)} are not among the analysis's ROIs "
+                         f"({_short_list(rois)})", _RERUN_FIX)
+    counts = [str(count) for count in analysis.get("voxel_counts") or []] or list(dict.fromkeys(key[2] for key in keys))
+    stray = sorted({key[2] for key in keys} - set(counts))
+    if stray:
+        raise InputError(reference_path, "n_voxels", f"voxel count(s) {_short_list(stray)} are not in the analysis's "
+                         f"voxel_counts ({_short_list(counts)})", _RERUN_FIX)
+    rank = {"roi": {v: i for i, v in enumerate(rois)}, "direction": {v: i for i, v in enumerate(directions)},
+            "count": {v: i for i, v in enumerate(counts)}}
+    return sorted(keys, key=lambda key: (rank["roi"][key[0]], rank["direction"][key[1]], rank["count"][key[2]]))
+
+
+def _describe_difference(reference_cells, cells):
+    reference, own = set(reference_cells), set(cells)
+    parts = []
+    sweeps = {}
+    for roi, direction, count in reference ^ own:
+        sweeps.setdefault((roi, direction), []).append(count)
+    shared_pairs = {key[:2] for key in own} & {key[:2] for key in reference}
+    changed = sorted(pair for pair in sweeps if pair in shared_pairs)
+    if changed:
+        parts.append("a different voxel-count sweep for " + _short_list("/".join(pair) for pair in changed))
+    lacking = sorted(key for key in reference - own if key[:2] not in shared_pairs)
+    extra = sorted(key for key in own - reference if key[:2] not in shared_pairs)
+    if lacking:
+        parts.append("lacks " + _short_list("/".join(key) for key in lacking))
+    if extra:
+        parts.append("has extra " + _short_list("/".join(key) for key in extra))
+    if len(cells) != len(own):
+        parts.append("has duplicate cells")
+    return "; ".join(parts)
+
+
+def _subject_scores(subject_frames, cells, subjects):
+    """(n_subjects, n_cells) balanced accuracies and the shared chance level per cell."""
+    position = {key: index for index, key in enumerate(cells)}
+    scores = np.empty((len(subjects), len(cells)))
+    chance = np.empty((len(subjects), len(cells)))
+    differing = []
+    for row, (frame, path) in enumerate(subject_frames):
+        keys = _cell_keys(frame)
+        if len(keys) != len(cells) or set(keys) != set(cells):
+            differing.append(f"{subjects[row]} ({_describe_difference(cells, keys)})")
+            continue
+        columns = [position[key] for key in keys]
+        scores[row, columns] = _scores_column(frame, "balanced_accuracy", path)
+        chance[row, columns] = _scores_column(frame, "chance", path)
+    if differing:
+        raise InputError(None, "roi, direction, n_voxels",
+                         f"subjects differ from {subjects[0]} in their cells: {'; '.join(differing)}",
+                         "rerun decoding for these subjects with the same analysis config, or leave them out "
+                         "with dataset.exclude_subjects")
+    off = np.abs(chance - chance[0]) > _CHANCE_TOLERANCE
+    if off.any():
+        bad_subjects = [subjects[index] for index in np.flatnonzero(off.any(axis=1))]
+        raise InputError(None, "chance", f"subject(s) {_short_list(bad_subjects)} have other chance levels than "
+                         f"{subjects[0]} for the same cells", _RERUN_FIX)
+    return scores, chance[0]
+
+
+def _subject_nulls(paths, name, cells, subjects):
+    """(n_subjects, n_permutations, n_cells) null scores, or None without permutations."""
+    if not paths:
+        return None
+    subject_row = {subject: index for index, subject in enumerate(subjects)}
+    cells_of_roi = {}
+    for index, (roi, direction, count) in enumerate(cells):
+        cells_of_roi.setdefault(roi, {})[f"{direction}\t{count}"] = index
+    pieces, seen = {}, {}
+    for path in paths:
+        frame = _read_table(path, SUBJECT_NULL_COLUMNS, "permutation null")
+        if frame.empty:
+            pieces[None] = path  # zero permutations
+            continue
+        subject = _subject_label(_single_value(frame, "subject", path))
+        roi = _single_value(frame, "roi", path)
+        analysis = _single_value(frame, "analysis", path)
+        if analysis != name:
+            raise InputError(path, "analysis", f"the null is of analysis {analysis!r}, this job groups {name!r}",
+                             "pass this analysis's nulls only")
+        if subject not in subject_row:
+            raise InputError(path, "subject", f"subject {subject} is not among the study's subjects",
+                             "pass only the study's subjects' nulls")
+        if roi not in cells_of_roi:
+            raise InputError(path, "roi", f"ROI {roi!r} has no cells in the summaries ({_short_list(cells_of_roi)})",
+                             _RERUN_FIX)
+        if (subject, roi) in seen:
+            raise InputError(path, "subject, roi", f"a second null for subject {subject}, ROI {roi} "
+                             f"(first: {seen[(subject, roi)]})", "pass one null per subject and ROI")
+        seen[(subject, roi)] = path
+        # Few distinct keys over many rows: look cells up per distinct (direction, count) pair.
+        direction_codes, directions = pd.factorize(frame["direction"])
+        count_codes, counts = pd.factorize(frame["n_voxels"])
+        lookup = np.array([[cells_of_roi[roi].get(f"{direction}\t{count}", -1) for count in counts]
+                           for direction in directions], dtype=np.int64).reshape(len(directions), len(counts))
+        keys = lookup[direction_codes, count_codes]
+        if np.any(keys < 0):
+            row = int(np.flatnonzero(keys < 0)[0])
+            raise InputError(path, "direction, n_voxels", f"cell {frame['direction'].iloc[row]}/"
+                             f"{frame['n_voxels'].iloc[row]} (data row {row + 1}) is not in the subject's summary",
+                             _RERUN_FIX)
+        permutation = pd.to_numeric(frame["permutation"], errors="coerce").to_numpy(dtype=np.float64)
+        if not np.all(np.isfinite(permutation)) or np.any(permutation < 1) or np.any(permutation != np.round(permutation)):
+            raise InputError(path, "permutation", "permutation numbers must be integers 1, 2, ...", _RERUN_FIX)
+        pieces[(subject, roi)] = (keys, permutation.astype(np.int64) - 1,
+                                  _scores_column(frame, "balanced_accuracy", path), path)
+    if set(pieces) == {None}:
+        return None
+    wanted = [(subject, roi) for subject in subjects for roi in cells_of_roi]
+    missing = [f"{subject}/{roi}" for subject, roi in wanted if (subject, roi) not in pieces]
+    if missing:
+        where = pieces.get(None)
+        raise InputError(where, "subject, roi", f"no permutation null for subject/ROI {_short_list(missing)}"
+                         + (" (this file has no permutations)" if where else ""), _RERUN_FIX)
+    counts = {key: int(piece[1].max()) + 1 for key, piece in pieces.items() if key is not None}
+    n_permutations = counts[wanted[0]]
+    differing = [f"{subject}/{roi}: {count}" for (subject, roi), count in counts.items() if count != n_permutations]
+    if differing:
+        raise InputError(None, "permutation", f"subjects/ROIs have different numbers of permutations (the first, "
+                         f"{wanted[0][0]}/{wanted[0][1]}, has {n_permutations}; {_short_list(differing)})", _RERUN_FIX)
+    nulls = np.empty((len(subjects), n_permutations, len(cells)))
+    for (subject, roi), (columns, permutation, values, path) in ((k, v) for k, v in pieces.items() if k is not None):
+        n_roi_cells = len(cells_of_roi[roi])
+        local = np.full(len(cells), -1, dtype=np.int64)  # study cell index -> index within this ROI
+        local[list(cells_of_roi[roi].values())] = np.arange(n_roi_cells)
+        flat = local[columns] * n_permutations + permutation
+        if flat.size != n_roi_cells * n_permutations or np.any(np.bincount(flat, minlength=flat.size) != 1):
+            raise InputError(path, "permutation", f"every cell needs each permutation 1..{n_permutations} exactly once "
+                             f"({n_roi_cells} cells, {flat.size} rows)", _RERUN_FIX)
+        nulls[subject_row[subject], permutation, columns] = values
+    return nulls
+
+
+def _result_table(name, cells, n_subjects, chance, columns):
+    table = pd.DataFrame({
+        "analysis": [name] * len(cells),
+        "roi": [cell[0] for cell in cells],
+        "direction": [cell[1] for cell in cells],
+        "n_voxels": [cell[2] for cell in cells],
+        "n_subjects": np.full(len(cells), n_subjects, dtype=np.int64),
+        "chance": chance,
+    })
+    for column in TABLE_COLUMNS[6:]:
+        table[column] = columns[column]
+    return table[TABLE_COLUMNS]
+
+
+def _null_table(cells, null_mean):
+    if null_mean is None:
+        return pd.DataFrame({column: pd.Series(dtype=float if column == "mean" else str) for column in NULL_COLUMNS})
+    n_draws, n_cells = null_mean.shape
+    return pd.DataFrame({
+        "roi": np.repeat(np.array([cell[0] for cell in cells], dtype=object), n_draws),
+        "direction": np.repeat(np.array([cell[1] for cell in cells], dtype=object), n_draws),
+        "n_voxels": np.repeat(np.array([cell[2] for cell in cells], dtype=object), n_draws),
+        "draw": np.tile(np.arange(1, n_draws + 1, dtype=np.int64), n_cells),
+        "mean": null_mean.T.ravel(),
+    })
+
+
+def _summary_text(name, analysis, table, directions, n_subjects, n_draws, alpha, notes):
+    kind = analysis.get("kind", "within")
+    lines = [f"Group statistics of analysis {name!r} ({kind} decoding), {n_subjects} subjects; "
+             "score: balanced accuracy (fold mean per subject)."]
+    lines += notes
+    if not table["p_fwe"].notna().any():
+        lines.append("No family-wise corrected p-values (see the note above); nothing is tested.")
+    else:
+        lines.append(f"Family-wise correction: maximum statistic (group mean minus chance) over all ROIs x voxel "
+                     f"counts, separately per direction; {n_draws} group draws; alpha {alpha:g}.")
+        for direction in directions:
+            rows = table[table["direction"] == direction]
+            surviving = rows[rows["p_fwe"] <= alpha]
+            if surviving.empty:
+                lines.append(f"direction {direction}: nothing survives FWE correction at alpha {alpha:g}.")
+                continue
+            lines.append(f"direction {direction}: cells surviving FWE correction at alpha {alpha:g}:")
+            for row in surviving.itertuples(index=False):
+                gamma = "n/a" if pd.isna(row.prevalence_gamma0) else f"{row.prevalence_gamma0:.3f}"
+                lines.append(f"  roi {row.roi}, n_voxels {row.n_voxels}: mean {row.mean:.4f} (chance {row.chance:.4f}), "
+                             f"p_fwe {row.p_fwe:.4g}, prevalence gamma0 {gamma}")
+    lines.append("Reading: a group test on accuracies speaks about the mean over subjects (is the population-average "
+                 "accuracy above chance?), not about how many subjects show the effect; that is what prevalence "
+                 "inference addresses (gamma0: the share of the population with an effect exceeds it, at alpha).")
+    lines.append("For research use only; not for clinical or diagnostic decisions.")
+    return "\n".join(lines) + "\n"
+
+
+def run(inputs, outputs, params, log):
+    """Group statistics of one analysis: table, group-mean null and summary text.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``summaries``: per-subject summary TSVs; ``nulls``: per-subject x ROI
+        permutation nulls (TSV.gz).
+    outputs : dict
+        ``table`` (TSV), ``null`` (TSV.gz), ``summary`` (text).
+    params : dict
+        ``group`` ({n_draws, alpha, prevalence}), ``analysis`` (the config
+        entry), ``subjects`` (expected subject ids), ``seed`` (study seed).
+    log : logging.Logger
+        Receives warnings (too few subjects, no permutations).
+
+    Notes
+    -----
+    The random stream is ``default_rng(seed_from(seed, "group", analysis))``;
+    the same inputs and params give byte-identical outputs.
+    """
+    n_draws, alpha, prevalence, name, subjects = _check_params(params)
+    analysis = params["analysis"]
+    summaries = inputs.get("summaries") or []
+    summaries = [summaries] if isinstance(summaries, str) else list(summaries)
+    nulls = inputs.get("nulls") or []
+    nulls = [nulls] if isinstance(nulls, str) else list(nulls)
+    subject_frames = _read_summaries(summaries, name, subjects)
+    cells = _ordered_cells(*subject_frames[0], analysis)
+    scores, chance = _subject_scores(subject_frames, cells, subjects)
+    notes = []
+    if len(subjects) < group_stats.MIN_SUBJECTS:
+        message = (f"only {len(subjects)} subject(s): descriptive statistics only, inferential columns are n/a "
+                   f"(at least {group_stats.MIN_SUBJECTS} are needed)")
+        log.warning(message)
+        notes.append("Note: " + message + ".")
+        subject_nulls = None
+    else:
+        subject_nulls = _subject_nulls(nulls, name, cells, subjects)
+        if subject_nulls is None:
+            message = "no permutation null (n_permutations is 0): p_perm, p_fwe and prevalence columns are n/a"
+            log.warning(message)
+            notes.append("Note: " + message + ".")
+        elif 1.0 / (1 + n_draws) > alpha:
+            log.warning("group.n_draws %d cannot reach p <= alpha %g; raise group.n_draws", n_draws, alpha)
+    directions = [d for d in _direction_order(analysis) if any(cell[1] == d for cell in cells)]
+    families = np.array([directions.index(cell[1]) for cell in cells])
+    rng = np.random.default_rng(seed_from(params["seed"], "group", name))
+    columns, null_mean = group_stats.group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha,
+                                                       prevalence=prevalence)
+    table = _result_table(name, cells, len(subjects), chance, columns)
+    write_tsv(outputs["table"], table)
+    write_tsv(outputs["null"], _null_table(cells, null_mean))
+    write_text_atomic(outputs["summary"], _summary_text(name, analysis, table, directions, len(subjects), n_draws,
+                                                        alpha, notes))

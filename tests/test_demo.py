@@ -152,6 +152,17 @@ def test_informative_voxels_decode_better_than_the_whole_region(study, study_bet
     assert np.mean(gains) > 0.03, gains
 
 
+def test_the_decoding_check_is_not_tied_to_one_seed(tmp_path):
+    runs, paths = _write(tmp_path, seed=SEED + 1)
+    labels = np.asarray(load_nifti(paths["atlas"]).dataobj)
+    by_subject = {}
+    for run in runs:
+        by_subject.setdefault(run["subject"], []).append(_run_betas(run))
+    accuracy = {family: np.mean([_loro_accuracy(np.stack(b), _family_voxels(labels, family), SEEN, SEEN) for b in by_subject.values()])
+                for family in ("ember", "glow", "hush")}
+    assert accuracy["ember"] > 0.6 and accuracy["glow"] > 0.6 and 0.2 < accuracy["hush"] < 0.5, accuracy
+
+
 def test_without_signal_nothing_is_decodable(tmp_path):
     runs, paths = _write(tmp_path, {"n_subjects": 3, "signal_to_noise": 0.0})
     labels = np.asarray(load_nifti(paths["atlas"]).dataobj)

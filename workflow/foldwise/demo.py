@@ -121,7 +121,7 @@ def check_settings(demo_settings):
         value = settings[key]
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
             raise InputError("the study config", f"demo.{key}", f"expected an integer >= {minimum}, got {value!r}", f"set demo.{key} to {minimum} or more")
-        if key == "n_subjects" and value > 99 or key == "n_runs" and value > 99:
+        if key in ("n_subjects", "n_runs") and value > 99:
             raise InputError("the study config", f"demo.{key}", f"at most 99 (labels have two digits), got {value!r}", f"set demo.{key} <= 99")
     shape = settings["grid_shape"]
     if not (isinstance(shape, (list, tuple)) and len(shape) == 3 and all(isinstance(n, (int, np.integer)) and not isinstance(n, bool) and n >= 8 for n in shape)):
@@ -383,8 +383,8 @@ def trial_regressors(onsets_s, durations_s, n_scans, tr_s):
 
 def _motion(n_scans, rng):
     """Six smooth random walks (mm, radians) and framewise displacement."""
-    steps = np.column_stack([rng.normal(0.0, _MOTION_STEP_SD[name[:-2] if name.startswith("trans") else "rot"], n_scans)
-                             for name in MOTION_COLUMNS])
+    step_sd = [_MOTION_STEP_SD["trans" if name.startswith("trans") else "rot"] for name in MOTION_COLUMNS]
+    steps = rng.normal(0.0, 1.0, size=(n_scans, len(MOTION_COLUMNS))) * np.array(step_sd)
     walks = np.cumsum(steps, axis=0)
     window = np.ones(_MOTION_SMOOTHING) / _MOTION_SMOOTHING
     padded = np.pad(walks, ((_MOTION_SMOOTHING // 2, _MOTION_SMOOTHING // 2), (0, 0)), mode="edge")

@@ -261,7 +261,7 @@ def discover_runs(bids_root, patterns, task, subjects=()):
     depth = template.count("/")
 
     matches = {}
-    for folder, dirnames, filenames in os.walk(root):
+    for folder, dirnames, filenames in os.walk(root, followlinks=True):  # depth-limited, so link loops end
         relative_folder = os.path.relpath(folder, root)
         level = 0 if relative_folder == "." else relative_folder.count(os.sep) + 1
         if level >= depth:

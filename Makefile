@@ -5,6 +5,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-stamp
 CORES ?= 2
+CONFIG ?= config/config.yaml
 # Pin BLAS/OpenMP threads: jobs run side by side, and one thread per job keeps
 # floating-point results identical whatever --cores is (DESIGN invariant 2).
 export OPENBLAS_NUM_THREADS := 1
@@ -23,19 +24,19 @@ $(STAMP): requirements/lock.txt pyproject.toml
 env: $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest $(PYTEST_ARGS)
 
 lint: $(STAMP)
-	$(BIN)/snakemake --lint
+	$(BIN)/snakemake --lint --config config_file=$(CONFIG)
 
 bundle: $(STAMP)
-	$(BIN)/python -m foldwise.bundle make $(if $(INCLUDE_IMAGES),--include-images)
+	$(BIN)/python -m foldwise.bundle make --config $(CONFIG) $(if $(INCLUDE_IMAGES),--include-images)
 
 verify: $(STAMP)
-	$(BIN)/python -m foldwise.bundle verify --cores $(CORES)
+	$(BIN)/python -m foldwise.bundle verify --cores $(CORES) --config $(CONFIG)
 
 benchmark: $(STAMP)
 	for script in benchmarks/bench_*.py; do $(BIN)/python $$script || exit 1; done

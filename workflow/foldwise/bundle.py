@@ -172,7 +172,7 @@ def compare_outputs(reference_manifest, root=".", reference_root=None):
     return pd.DataFrame(rows, columns=["path", "status"])
 
 
-def verify(root=".", cores=2, recompute=True, snakemake_args=()):
+def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
     """Check the bundled results, then (optionally) recompute and compare. Returns an exit code."""
     root = Path(root).resolve()
     reference_path = root / "REVIEW/manifest.tsv"
@@ -202,7 +202,8 @@ def verify(root=".", cores=2, recompute=True, snakemake_args=()):
         os.replace(root / path, destination)  # recompute from scratch; keep the bundled copy for comparison
     print("Step 2: recomputing the study with the content memo off")
     environment = dict(os.environ, FOLDWISE_MEMO="off")
-    command = [sys.executable, "-m", "snakemake", "--profile", "config/profiles/local", "--cores", str(cores), "--forceall", *snakemake_args]
+    command = [sys.executable, "-m", "snakemake", "--profile", "config/profiles/local", "--cores", str(cores), "--forceall",
+               "--config", f"config_file={config_path}"]
     completed = subprocess.run(command, cwd=root, env=environment)
     if completed.returncode != 0:
         print("foldwise verify: the recomputation failed (see above)")
@@ -225,14 +226,16 @@ def main(argv=None):
     commands = parser.add_subparsers(dest="command", required=True)
     making = commands.add_parser("make", help="write the reviewer bundle")
     making.add_argument("--include-images", action="store_true", help="also bundle participant images (NIfTI)")
+    making.add_argument("--config", default="config/config.yaml", help="the study config (default: config/config.yaml)")
     checking = commands.add_parser("verify", help="check and recompute an unpacked bundle")
     checking.add_argument("--cores", type=int, default=2)
     checking.add_argument("--check-only", action="store_true", help="only check the bundled files against the manifest")
+    checking.add_argument("--config", default="config/config.yaml", help="the study config (default: config/config.yaml)")
     arguments = parser.parse_args(argv)
     if arguments.command == "make":
-        print(f"foldwise: wrote {make_bundle(include_images=arguments.include_images)}")
+        print(f"foldwise: wrote {make_bundle(include_images=arguments.include_images, config_path=arguments.config)}")
         return 0
-    return verify(cores=arguments.cores, recompute=not arguments.check_only)
+    return verify(cores=arguments.cores, recompute=not arguments.check_only, config_path=arguments.config)
 
 
 if __name__ == "__main__":

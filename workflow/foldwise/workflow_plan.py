@@ -30,10 +30,6 @@ class StudyPlan:
         raise KeyError(f"no run {run_id} for subject {subject}")
 
 
-def _run_id(session, run):
-    return f"ses-{session}_run-{run}" if session else f"run-{run}"
-
-
 def plan_study(study):
     """Build the StudyPlan of a validated study config."""
     dataset = study["dataset"]
@@ -41,7 +37,7 @@ def plan_study(study):
         runs = []
         for subject, session, run in demo.planned_runs(study["demo"]):
             files = bids.run_files(dataset["bids_root"], dataset["patterns"], dataset["task"], subject, session, run)
-            runs.append({"subject": subject, "session": session, "run": run, "run_id": _run_id(session, run), **files})
+            runs.append({"subject": subject, "session": session, "run": run, "run_id": bids.make_run_id(session, run), **files})
         if dataset["subjects"]:
             known = sorted({run["subject"] for run in runs})
             absent = [subject for subject in dataset["subjects"] if subject not in known]

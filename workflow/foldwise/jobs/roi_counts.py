@@ -10,7 +10,10 @@ __all__ = ["run"]
 
 
 def run(inputs, outputs, params, log):
-    """Write ``subject, roi, n_voxels, min_voxels, below_minimum`` for one subject."""
+    """Write ``subject, roi, n_voxels, min_voxels`` for one subject.
+
+    An ROI below its minimum never gets here: the ROI job stops with an error.
+    """
     infos = [json.loads(open(path, encoding="utf-8").read()) for path in inputs["infos"]]
     table = pd.DataFrame({
         "subject": [params["subject"]] * len(infos),
@@ -18,5 +21,4 @@ def run(inputs, outputs, params, log):
         "n_voxels": [int(info["n_voxels"]) for info in infos],
         "min_voxels": [int(info["min_voxels"]) for info in infos],
     })
-    table["below_minimum"] = table["n_voxels"] < table["min_voxels"]
     write_tsv(outputs["table"], table)

@@ -19,7 +19,6 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-import foldwise.group
 from foldwise import group
 from foldwise.errors import InputError
 from foldwise.fileio import write_tsv
@@ -270,7 +269,7 @@ def test_group_statistics_below_three_subjects_is_descriptive_only():
 
 def test_module_examples_run():
     # The docstring examples double as checks (the Wilcoxon one is scipy's documented value).
-    result = doctest.testmod(foldwise.group, optionflags=doctest.NORMALIZE_WHITESPACE)
+    result = doctest.testmod(group, optionflags=doctest.NORMALIZE_WHITESPACE)
     assert result.attempted >= 8 and result.failed == 0
 
 

@@ -17,7 +17,7 @@ from ..errors import InputError
 from ..fileio import gunzip_bytes, write_text_atomic, write_tsv
 from ..hashing import seed_from
 
-__all__ = ["run", "TABLE_COLUMNS", "NULL_COLUMNS"]
+__all__ = ["run", "SUMMARY_COLUMNS", "SUBJECT_NULL_COLUMNS", "TABLE_COLUMNS", "NULL_COLUMNS"]
 
 SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds",
                    "accuracy", "balanced_accuracy", "chance")
@@ -352,7 +352,8 @@ def _summary_text(name, analysis, table, directions, n_subjects, n_draws, alpha,
                              f"p_fwe {row.p_fwe:.4g}, prevalence gamma0 {gamma}")
     lines.append("Reading: a group test on accuracies speaks about the mean over subjects (is the population-average "
                  "accuracy above chance?), not about how many subjects show the effect; that is what prevalence "
-                 "inference addresses (gamma0: the share of the population with an effect exceeds it, at alpha).")
+                 "inference addresses (gamma0: the share of the population with an effect exceeds it, at alpha; "
+                 "n/a where not even the global null of no effect in anyone is rejected).")
     lines.append("For research use only; not for clinical or diagnostic decisions.")
     return "\n".join(lines) + "\n"
 

@@ -1,0 +1,836 @@
+"""Least-squares estimation of activity patterns from one run.
+
+Estimators: ordinary least squares (OLS), AR(1) prewhitened least squares,
+least squares - all (LSA: every trial in one model) and least squares -
+separate (LSS: one model per trial). Every estimator works on whole arrays:
+label-free work (factorisations of the design, whitened designs, the small
+per-trial models of LSS) is done once, and the data meet it in a few matrix
+products per block of voxels. Voxels are processed in blocks of
+``CHUNK_VOXELS`` columns so that float64 copies of the data stay small; a
+block boundary never changes a voxel's result beyond rounding.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .design import PATTERN_MODES, DesignMatrix, build_design
+from .errors import InputError
+from .hrf import DERIVATIVE_CHOICES
+
+__all__ = [
+    "NOISE_MODELS",
+    "STATISTICS",
+    "GLM_SETTING_KEYS",
+    "AR1_LIMIT",
+    "AR1_STEP",
+    "CHUNK_VOXELS",
+    "NOISE_FLOOR",
+    "LinearFit",
+    "PatternEstimate",
+    "fit_ols",
+    "ar1_moment_table",
+    "ar1_coefficients",
+    "bin_ar1",
+    "whiten_ar1",
+    "fit_ar1",
+    "fit_lss",
+    "estimate_patterns",
+]
+
+#: Accepted values of ``glm.noise_model`` and ``glm.statistic``.
+NOISE_MODELS = ("ols", "ar1")
+STATISTICS = ("beta", "t")
+#: The keys of the ``glm`` config section that :func:`estimate_patterns` reads.
+GLM_SETTING_KEYS = ("hrf_derivatives", "highpass_s", "noise_model", "pattern_mode", "statistic", "conditions", "oversampling")
+#: Estimated AR(1) coefficients are clipped to [-AR1_LIMIT, AR1_LIMIT]: the
+#: whitening filter then stays well conditioned (1 / sqrt(1 - rho^2) <= 2.3);
+#: common practice, no source.
+AR1_LIMIT = 0.9
+#: ... and rounded to multiples of AR1_STEP, so voxels whose coefficients
+#: round alike share one whitened design (common practice, no source).
+AR1_STEP = 0.01
+#: Voxels per block of float64 work (8192 x 200 scans = 13 MB).
+CHUNK_VOXELS = 8192
+#: A residual root-sum-of-squares below this fraction of the data's is
+#: float64 rounding, not noise: its variance is reported as 0 and its t as 0.
+NOISE_FLOOR = 1e-10
+_FIRST_SCAN_CHOICES = ("keep", "drop")
+_ESTIMABLE_TOLERANCE = 1e-8
+
+
+@dataclass(frozen=True, eq=False)
+class LinearFit:
+    """Result of one least-squares estimator over many voxels.
+
+    Attributes
+    ----------
+    betas : numpy.ndarray
+        ``(n_coefficients, n_voxels)`` float64: every design column for
+        :func:`fit_ols` and :func:`fit_ar1`; the trials' own (canonical)
+        coefficients for :func:`fit_lss`.
+    t_values : numpy.ndarray or None
+        ``(n_patterns, n_voxels)`` t-values of the pattern columns (None if
+        not requested).
+    residual_variance : numpy.ndarray
+        ``(n_voxels,)`` residual sum of squares over residual degrees of
+        freedom (of the whitened model under AR(1); of the all-trials model
+        for LSS).
+    dof : numpy.ndarray
+        ``(n_patterns,)`` int residual degrees of freedom behind each t-value.
+    rho : numpy.ndarray or None
+        ``(n_voxels,)`` AR(1) coefficient each voxel was whitened with.
+    """
+
+    betas: np.ndarray
+    t_values: object
+    residual_variance: np.ndarray
+    dof: np.ndarray
+    rho: object = None
+
+
+@dataclass(frozen=True, eq=False)
+class PatternEstimate:
+    """Patterns of one run (see :func:`estimate_patterns`).
+
+    Attributes
+    ----------
+    patterns : numpy.ndarray
+        ``(n_patterns, n_voxels)`` float64 betas or t-values.
+    table : pandas.DataFrame
+        One row per pattern: ``condition``, ``trial_index``, ``onset_s``.
+    design : foldwise.design.DesignMatrix
+        The design the patterns come from (trial-wise for LSS).
+    residual_variance : numpy.ndarray
+        ``(n_voxels,)`` float64.
+    dof : numpy.ndarray
+        ``(n_patterns,)`` int degrees of freedom of each pattern's t-value.
+    rho : numpy.ndarray or None
+        ``(n_voxels,)`` AR(1) coefficients used (None under OLS).
+    """
+
+    patterns: np.ndarray
+    table: pd.DataFrame
+    design: DesignMatrix
+    residual_variance: np.ndarray
+    dof: np.ndarray
+    rho: object = None
+
+
+class _Factor:
+    """Thin SVD of a design: everything OLS needs, computed once."""
+
+    def __init__(self, matrix):
+        u, s, vt = np.linalg.svd(matrix, full_matrices=False)
+        tolerance = (s[0] if s.size else 0.0) * max(matrix.shape) * np.finfo(np.float64).eps  # numpy.linalg.matrix_rank's rule
+        rank = int(np.count_nonzero(s > tolerance))
+        self.n_rows = matrix.shape[0]
+        self.rank = rank
+        self.u = np.ascontiguousarray(u[:, :rank])
+        scaled = vt[:rank] / s[:rank, None]
+        self.coefficients_from_z = np.ascontiguousarray(scaled.T)  # beta = this @ (u' y)
+        self.variance_factors = np.einsum("ij,ij->j", scaled, scaled)  # diag of (X'X)^+
+        self.estimable = np.einsum("ij,ij->j", vt[:rank], vt[:rank]) > 1.0 - _ESTIMABLE_TOLERANCE
+
+
+def _column_label(index, column_names):
+    return f"design column {index}" + (f" ({column_names[index]})" if column_names is not None else "")
+
+
+def _check_design(design_matrix):
+    design = np.asarray(design_matrix, dtype=np.float64)
+    if design.ndim != 2 or design.shape[1] < 1 or not np.all(np.isfinite(design)):
+        raise InputError(None, "design_matrix", f"need a finite 2-D (scans x regressors) array (got shape {design.shape})",
+                         "build it with foldwise.design.build_design")
+    return design
+
+
+def _check_bold(bold_2d, n_scans):
+    bold = np.asarray(bold_2d)
+    if bold.ndim != 2 or not np.issubdtype(bold.dtype, np.number) or bold.shape[0] != n_scans:
+        raise InputError(None, "bold_2d", f"need a numeric (scans x voxels) array with {n_scans} rows (got shape {bold.shape}, "
+                         f"dtype {bold.dtype})", "pass the masked BOLD data with one row per volume")
+    return bold
+
+
+def _check_columns(columns, n_columns, field):
+    if columns is None:
+        return np.arange(n_columns)
+    index = np.asarray(columns)
+    if index.ndim != 1 or not np.issubdtype(index.dtype, np.integer) or (index.size and (index.min() < 0 or index.max() >= n_columns)):
+        raise InputError(None, field, f"must be integer column indices in [0, {n_columns}) (got {columns!r})",
+                         "pass DesignMatrix.pattern_columns")
+    return index.astype(np.int64)
+
+
+def _check_first_scan(first_scan):
+    if first_scan not in _FIRST_SCAN_CHOICES:
+        raise InputError(None, "first_scan", f"unknown choice {first_scan!r}", "use 'keep' (Prais-Winsten) or 'drop'")
+
+
+def _float64_block(bold, columns):
+    block = np.asarray(bold[:, columns], dtype=np.float64)
+    if not np.all(np.isfinite(block)):
+        raise InputError(None, "bold_2d", "the data contain NaN or infinite values inside the mask",
+                         "fix the preprocessed BOLD or exclude those voxels from the brain mask")
+    return block
+
+
+def _voxel_blocks(n_voxels):
+    for start in range(0, n_voxels, CHUNK_VOXELS):
+        yield slice(start, min(start + CHUNK_VOXELS, n_voxels))
+
+
+def _t_values(betas, variance):
+    """beta / sqrt(variance); 0 where the variance is 0 (a voxel without residual noise)."""
+    t = np.zeros_like(betas)
+    np.divide(betas, np.sqrt(variance), out=t, where=variance > 0)
+    return t
+
+
+def _above_rounding(residual_sum_of_squares, data):
+    """Residual sums of squares, set to 0 where they are rounding error of the data.
+
+    A voxel the model fits exactly (e.g. a constant voxel) leaves residuals of
+    float64 rounding size; dividing by them would give meaningless t-values.
+    Below ``(NOISE_FLOOR * ||y||)^2`` the residual counts as none.
+    """
+    floor = NOISE_FLOOR ** 2 * np.einsum("ij,ij->j", data, data)
+    return np.where(residual_sum_of_squares > floor, residual_sum_of_squares, 0.0)
+
+
+def _ols_block(factor, data, pattern_columns, with_t):
+    """OLS on one block of float64 data: betas, residual variance, t of the pattern columns."""
+    z = factor.u.T @ data
+    betas = factor.coefficients_from_z @ z
+    residuals = data - factor.u @ z
+    residual_variance = _above_rounding(np.einsum("ij,ij->j", residuals, residuals), data) / (factor.n_rows - factor.rank)
+    t = None
+    if with_t:
+        t = _t_values(betas[pattern_columns], factor.variance_factors[pattern_columns][:, None] * residual_variance[None, :])
+    return betas, residual_variance, t
+
+
+def _require_estimable(factor, pattern_columns, column_names):
+    bad = [int(j) for j in pattern_columns if not factor.estimable[j]]
+    if bad:
+        raise InputError(None, ", ".join(_column_label(j, column_names) for j in bad),
+                         "pattern regressor(s) not estimable: a linear combination of the other regressors",
+                         "check the events for duplicated or overlapping trials and the confounds for copies of event regressors")
+    if factor.n_rows - factor.rank < 1:
+        raise InputError(None, "design", f"rank {factor.rank} leaves no residual degrees of freedom for {factor.n_rows} scans",
+                         "use fewer regressors per run")
+
+
+def fit_ols(design_matrix, bold_2d, pattern_columns=None, with_t=True, column_names=None):
+    """Ordinary least squares for all voxels with one factorisation of the design.
+
+    Parameters
+    ----------
+    design_matrix : array_like
+        ``(n_scans, n_regressors)``.
+    bold_2d : array_like
+        ``(n_scans, n_voxels)`` data (any float dtype; estimation in float64).
+    pattern_columns : array_like of int, optional
+        Columns whose t-values are wanted (default: every column).
+    with_t : bool, optional
+        Compute t-values (default True).
+    column_names : sequence of str, optional
+        Names used in error messages only.
+
+    Returns
+    -------
+    LinearFit
+        ``betas`` for every column; ``t_values`` for ``pattern_columns``.
+
+    Notes
+    -----
+    With the thin SVD ``X = U S V'`` (rank ``r``, small singular values
+    dropped by numpy's ``matrix_rank`` tolerance) the minimum-norm solution is
+    ``beta = V S^-1 U' y``; the residual variance is ``||y - U U' y||^2 /
+    (T - r)`` and ``t_j = beta_j / sqrt(sigma^2 [(X'X)^+]_jj)`` with
+    ``[(X'X)^+]_jj = sum_k V_jk^2 / s_k^2`` (e.g. Seber & Lee 2003, Linear
+    Regression Analysis, ch. 3 and 4). A pattern column outside the row space
+    of ``X`` (not estimable) is an error.
+    """
+    design = _check_design(design_matrix)
+    bold = _check_bold(bold_2d, design.shape[0])
+    columns = _check_columns(pattern_columns, design.shape[1], "pattern_columns")
+    factor = _Factor(design)
+    _require_estimable(factor, columns, column_names)
+    n_voxels = bold.shape[1]
+    betas = np.empty((design.shape[1], n_voxels))
+    residual_variance = np.empty(n_voxels)
+    t_values = np.empty((columns.size, n_voxels)) if with_t else None
+    for block in _voxel_blocks(n_voxels):
+        betas[:, block], residual_variance[block], t = _ols_block(factor, _float64_block(bold, block), columns, with_t)
+        if with_t:
+            t_values[:, block] = t
+    dof = np.full(columns.size, factor.n_rows - factor.rank, dtype=np.int64)
+    return LinearFit(betas=betas, t_values=t_values, residual_variance=residual_variance, dof=dof, rho=None)
+
+
+def _shift_sum(matrix):
+    """D1 @ matrix with D1 = (S + S') / 2 and S the lag-1 shift (ones below the diagonal)."""
+    shifted = np.zeros_like(matrix)
+    shifted[1:] += matrix[:-1]
+    shifted[:-1] += matrix[1:]
+    return 0.5 * shifted
+
+
+def ar1_moment_table(design_matrix, grid_step=0.001, grid_limit=0.99):
+    """Expected lag-1 autocorrelation of OLS residuals under AR(1) noise, on a grid.
+
+    Parameters
+    ----------
+    design_matrix : array_like
+        ``(n_scans, n_regressors)`` design whose OLS residuals are used.
+    grid_step : float, optional
+        Spacing of the grid of true coefficients (default 0.001).
+    grid_limit : float, optional
+        The grid spans ``[-grid_limit, grid_limit]`` (default 0.99).
+
+    Returns
+    -------
+    rho_grid : numpy.ndarray
+        True AR(1) coefficients.
+    expected_ratio : numpy.ndarray
+        ``E[sum_t r_t r_(t-1)] / E[sum_t r_t^2]`` for residuals ``r = M y``
+        of AR(1) noise with each coefficient (non-decreasing).
+
+    Notes
+    -----
+    With the residual-forming matrix ``M = I - X X^+``, ``D1`` half the sum
+    of the lag-1 shift and its transpose and the AR(1) correlation
+    ``R_ij = rho^|i-j|``, ``E[r' A r] = sigma^2 tr(A M R M)``, so the ratio
+    is ``tr(M D1 M R) / tr(M R) = sum_k rho^k n_k / sum_k rho^k m_k`` where
+    ``m_k`` and ``n_k`` are the sums of the k-th diagonals of ``M`` and
+    ``M D1 M``: one ``T x T`` product per design, then polynomials. This is
+    the bias correction of Worsley et al. (2002), NeuroImage 15:1-15, who
+    relate residual to true autocovariances through ``M`` (we quote their
+    idea from memory); here the expectation uses every lag of the AR(1)
+    correlation instead of a truncated one.
+    """
+    design = _check_design(design_matrix)
+    for value, field in ((grid_step, "grid_step"), (grid_limit, "grid_limit")):
+        if not (np.isscalar(value) and np.isfinite(value) and 0 < value < 1):
+            raise InputError(None, field, f"must be in (0, 1) (got {value!r})", "use the defaults")
+    factor = _Factor(design)
+    n_scans = design.shape[0]
+    residual_forming = np.eye(n_scans) - factor.u @ factor.u.T
+    lag_products = residual_forming @ _shift_sum(residual_forming)
+    scan = np.arange(n_scans)
+    lag = np.abs(scan[:, None] - scan[None, :]).ravel()
+    diagonal_sums_m = np.bincount(lag, weights=residual_forming.ravel(), minlength=n_scans)
+    diagonal_sums_n = np.bincount(lag, weights=lag_products.ravel(), minlength=n_scans)
+    rho_grid = np.arange(-round(grid_limit / grid_step), round(grid_limit / grid_step) + 1) * grid_step
+    powers = rho_grid[:, None] ** np.arange(n_scans)[None, :]
+    expected_ratio = (powers @ diagonal_sums_n) / (powers @ diagonal_sums_m)
+    return rho_grid, np.maximum.accumulate(expected_ratio)
+
+
+def _lag_ratio(residuals):
+    """Plain lag-1 autocorrelation sum r_t r_(t-1) / sum r_t^2 per column (0 without variance)."""
+    lag0 = np.einsum("ij,ij->j", residuals, residuals)
+    lag1 = np.einsum("ij,ij->j", residuals[1:], residuals[:-1])
+    ratio = np.zeros_like(lag0)
+    np.divide(lag1, lag0, out=ratio, where=lag0 > 0)
+    return ratio
+
+
+def ar1_coefficients(residuals, design_matrix):
+    """Bias-corrected AR(1) coefficients of OLS residuals, per voxel.
+
+    Parameters
+    ----------
+    residuals : array_like
+        ``(n_scans, n_voxels)`` OLS residuals of ``design_matrix``.
+    design_matrix : array_like
+        ``(n_scans, n_regressors)``.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n_voxels,)`` float64: the coefficient whose expected residual
+        autocorrelation (:func:`ar1_moment_table`) equals the observed one,
+        by linear interpolation in the table; within ``[-0.99, 0.99]``; 0 for
+        voxels without residual variance. Not binned (see :func:`bin_ar1`).
+
+    Notes
+    -----
+    Residuals are autocorrelated even for white noise, because ``M`` mixes
+    neighbouring scans: the plain estimate ``sum r_t r_(t-1) / sum r_t^2``
+    is biased (for a typical design with drifts, by about -0.05 at 200
+    scans). Matching its expectation through ``M`` removes that bias
+    (Worsley et al. 2002, NeuroImage 15:1-15); what remains is the O(1/T)
+    bias of a ratio estimator.
+    """
+    design = _check_design(design_matrix)
+    values = np.asarray(residuals, dtype=np.float64)
+    if values.ndim == 1:
+        values = values[:, None]
+    if values.ndim != 2 or values.shape[0] != design.shape[0]:
+        raise InputError(None, "residuals", f"need {design.shape[0]} rows (one per scan), got shape {values.shape}",
+                         "pass the OLS residuals of this design")
+    rho_grid, expected_ratio = ar1_moment_table(design)
+    return np.interp(_lag_ratio(values), expected_ratio, rho_grid)
+
+
+def bin_ar1(rho, step=AR1_STEP, limit=AR1_LIMIT):
+    """Clip AR(1) coefficients to ``[-limit, limit]`` and round them to multiples of ``step``.
+
+    Parameters
+    ----------
+    rho : array_like
+        Estimated coefficients.
+    step : float, optional
+        Bin width (default ``AR1_STEP`` = 0.01).
+    limit : float, optional
+        Clip bound, ``0 < limit < 1`` (default ``AR1_LIMIT`` = 0.9).
+
+    Returns
+    -------
+    numpy.ndarray
+        Binned coefficients (float64), exact multiples ``k * step``.
+
+    Notes
+    -----
+    Rounding costs at most ``step / 2`` in the coefficient, far below its
+    sampling error (about ``1 / sqrt(n_scans)``, i.e. 0.07 for 200 scans),
+    and lets voxels of one bin share a whitened design (common practice, no
+    source).
+
+    Examples
+    --------
+    >>> bin_ar1([0.234, -0.97, 0.5049]).tolist()
+    [0.23, -0.9, 0.5]
+    """
+    if not (np.isscalar(step) and np.isfinite(step) and 0 < step < 1):
+        raise InputError(None, "step", f"must be in (0, 1) (got {step!r})", "pass a bin width such as 0.01")
+    if not (np.isscalar(limit) and np.isfinite(limit) and 0 < limit < 1):
+        raise InputError(None, "limit", f"must be in (0, 1) (got {limit!r})", "pass a clip bound such as 0.9")
+    values = np.asarray(rho, dtype=np.float64)
+    if not np.all(np.isfinite(values)):
+        raise InputError(None, "rho", "AR(1) coefficients must be finite", "estimate them with ar1_coefficients")
+    levels = np.round(np.clip(values, -limit, limit) / step)
+    return levels * step
+
+
+def whiten_ar1(values, rho, first_scan="keep"):
+    """Apply the AR(1) whitening filter along the first axis.
+
+    Parameters
+    ----------
+    values : array_like
+        ``(n_scans,)`` or ``(n_scans, n_columns)``.
+    rho : float or array_like
+        AR(1) coefficient, scalar or one per column, ``|rho| < 1``.
+    first_scan : {"keep", "drop"}
+        ``keep``: Prais-Winsten, the first scan is scaled by
+        ``sqrt(1 - rho^2)`` (T rows out); ``drop``: Cochrane-Orcutt, the
+        first scan is dropped (T - 1 rows out).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``w_0 = sqrt(1 - rho^2) y_0`` (keep only) and ``w_t = y_t - rho y_{t-1}``.
+
+    Notes
+    -----
+    With ``keep`` the filter is the exact inverse square root of the AR(1)
+    correlation matrix ``rho^|i - j|`` up to the factor ``1 / (1 - rho^2)``,
+    so least squares on whitened data is exact GLS (Prais & Winsten 1954,
+    Cowles Commission Discussion Paper 383; Cochrane & Orcutt 1949, JASA
+    44:32-61).
+    """
+    _check_first_scan(first_scan)
+    array = np.asarray(values, dtype=np.float64)
+    coefficient = np.asarray(rho, dtype=np.float64)
+    if array.ndim not in (1, 2) or array.shape[0] < 2:
+        raise InputError(None, "values", f"need (scans,) or (scans, columns) with >= 2 scans (got shape {array.shape})",
+                         "pass one row per scan")
+    if coefficient.ndim > 1 or (coefficient.ndim == 1 and (array.ndim != 2 or coefficient.size != array.shape[1])):
+        raise InputError(None, "rho", f"need a scalar or one coefficient per column (got shape {coefficient.shape})",
+                         "pass one AR(1) coefficient per column")
+    if not np.all(np.abs(coefficient) < 1):
+        raise InputError(None, "rho", f"AR(1) coefficients must lie in (-1, 1) (got {coefficient!r})", "clip them with bin_ar1")
+    innovations = array[1:] - coefficient * array[:-1]
+    if first_scan == "drop":
+        return innovations
+    return np.concatenate([np.sqrt(1.0 - coefficient ** 2) * array[:1], innovations], axis=0)
+
+
+def _estimate_rho(rho_design, bold):
+    """Bias-corrected, binned AR(1) coefficients from the OLS residuals of ``rho_design``."""
+    factor = _Factor(rho_design)
+    rho_grid, expected_ratio = ar1_moment_table(rho_design)
+    rho = np.empty(bold.shape[1])
+    for block in _voxel_blocks(bold.shape[1]):
+        data = _float64_block(bold, block)
+        residuals = data - factor.u @ (factor.u.T @ data)
+        rho[block] = np.interp(_lag_ratio(residuals), expected_ratio, rho_grid)
+    return bin_ar1(rho)
+
+
+def _check_rho(rho, n_voxels):
+    values = np.asarray(rho, dtype=np.float64)
+    if values.ndim == 0:
+        values = np.full(n_voxels, float(values))
+    if values.shape != (n_voxels,) or not np.all(np.abs(values) < 1):
+        raise InputError(None, "rho", f"need one coefficient in (-1, 1) per voxel (got shape {values.shape})",
+                         "pass a scalar or an array of n_voxels coefficients")
+    return values
+
+
+def _noise_groups(rho):
+    """Voxel indices grouped by equal coefficient, each split into blocks of at most CHUNK_VOXELS."""
+    levels, inverse = np.unique(rho, return_inverse=True)
+    order = np.argsort(inverse, kind="stable")
+    bounds = np.searchsorted(inverse[order], np.arange(levels.size + 1))
+    for level_index, level in enumerate(levels):
+        members = order[bounds[level_index]:bounds[level_index + 1]]
+        for start in range(0, members.size, CHUNK_VOXELS):
+            yield float(level), members[start:start + CHUNK_VOXELS]
+
+
+def fit_ar1(design_matrix, bold_2d, pattern_columns=None, with_t=True, rho=None, rho_design=None, first_scan="keep",
+            column_names=None):
+    """AR(1) prewhitened least squares, voxels with equal coefficients solved together.
+
+    Parameters
+    ----------
+    design_matrix : array_like
+        ``(n_scans, n_regressors)``.
+    bold_2d : array_like
+        ``(n_scans, n_voxels)``.
+    pattern_columns : array_like of int, optional
+        Columns whose t-values are wanted (default: every column).
+    with_t : bool, optional
+        Compute t-values (default True).
+    rho : float or array_like, optional
+        Fixed coefficient(s), scalar or per voxel, used as given. Default:
+        estimate them (:func:`ar1_coefficients` on the OLS residuals of
+        ``rho_design``) and bin them (:func:`bin_ar1`).
+    rho_design : array_like, optional
+        Design whose OLS residuals give the coefficients (default: the
+        design itself).
+    first_scan : {"keep", "drop"}
+        Whitening variant (:func:`whiten_ar1`); ``keep`` (Prais-Winsten,
+        the default) is exact GLS; ``drop`` matches ``statsmodels`` GLSAR.
+    column_names : sequence of str, optional
+        Names used in error messages only.
+
+    Returns
+    -------
+    LinearFit
+        ``rho`` holds the coefficient each voxel was whitened with;
+        ``residual_variance`` is that of the whitened residuals (the
+        innovation variance), with ``T - rank`` (keep) or ``T - 1 - rank``
+        (drop) degrees of freedom.
+
+    Notes
+    -----
+    For each distinct coefficient the whitened design is factorised once
+    and the voxels of that bin are solved with the OLS algebra of
+    :func:`fit_ols`; with ~50 bins the cost is a few matrix products.
+    """
+    design = _check_design(design_matrix)
+    bold = _check_bold(bold_2d, design.shape[0])
+    columns = _check_columns(pattern_columns, design.shape[1], "pattern_columns")
+    _check_first_scan(first_scan)
+    n_voxels = bold.shape[1]
+    if rho is None:
+        noise_design = design if rho_design is None else _check_design(rho_design)
+        if noise_design.shape[0] != design.shape[0]:
+            raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
+                             "pass a design of the same run")
+        voxel_rho = _estimate_rho(noise_design, bold)
+    else:
+        voxel_rho = _check_rho(rho, n_voxels)
+    _require_estimable(_Factor(design), columns, column_names)
+    betas = np.empty((design.shape[1], n_voxels))
+    residual_variance = np.empty(n_voxels)
+    t_values = np.empty((columns.size, n_voxels)) if with_t else None
+    dof = None
+    for level, members in _noise_groups(voxel_rho):
+        factor = _Factor(whiten_ar1(design, level, first_scan))
+        data = whiten_ar1(_float64_block(bold, members), level, first_scan)
+        betas[:, members], residual_variance[members], t = _ols_block(factor, data, columns, with_t)
+        if with_t:
+            t_values[:, members] = t
+        dof = factor.n_rows - factor.rank
+    if dof is None:  # no voxels
+        dof = design.shape[0] - (first_scan == "drop") - _Factor(design).rank
+    return LinearFit(betas=betas, t_values=t_values, residual_variance=residual_variance,
+                     dof=np.full(columns.size, dof, dtype=np.int64), rho=voxel_rho)
+
+
+def _check_blocks(pattern_blocks, pattern_groups, n_columns):
+    blocks = np.asarray(pattern_blocks)
+    if blocks.ndim == 1:
+        blocks = blocks[:, None]
+    if (blocks.ndim != 2 or blocks.shape[0] < 1 or not np.issubdtype(blocks.dtype, np.integer)
+            or blocks.min() < 0 or blocks.max() >= n_columns or np.unique(blocks).size != blocks.size):
+        raise InputError(None, "pattern_blocks", f"need distinct column indices in [0, {n_columns}), one row per trial "
+                         f"(got shape {blocks.shape})", "pass DesignMatrix.pattern_blocks of a trial-wise design")
+    labels = np.asarray(pattern_groups)
+    if labels.shape != (blocks.shape[0],):
+        raise InputError(None, "pattern_groups", f"need one condition label per trial ({blocks.shape[0]}), got shape {labels.shape}",
+                         "pass the pattern table's condition column")
+    _, group_index = np.unique(labels, return_inverse=True)
+    return blocks.astype(np.int64), group_index.astype(np.int64)
+
+
+def _lss_selection(group_index, n_basis):
+    """Selection tensor G (n_trials, n_trials * n_basis, n_model_columns) of the LSS models.
+
+    Model ``k`` has, for each basis function: trial k; the sum of the other
+    trials of its condition; the sum of the trials of each other condition.
+    """
+    n_trials = group_index.size
+    n_groups = int(group_index.max()) + 1
+    same = group_index[:, None] == group_index[None, :]
+    trial_level = np.zeros((n_trials, n_trials, n_groups + 1))
+    trial_level[:, :, 0] = np.eye(n_trials)
+    trial_level[:, :, 1] = same & ~np.eye(n_trials, dtype=bool)
+    model, trial = np.nonzero(~same)
+    other = group_index[trial]
+    trial_level[model, trial, 2 + other - (other > group_index[model])] = 1.0
+    selection = np.einsum("kjc,bd->kjbcd", trial_level, np.eye(n_basis))
+    return selection.reshape(n_trials, n_trials * n_basis, (n_groups + 1) * n_basis)
+
+
+class _LSSOperator:
+    """Label-free pieces of all LSS models of one (whitened) design."""
+
+    def __init__(self, design, blocks, selection, nuisance_columns, column_names):
+        self.nuisance = _Factor(design[:, nuisance_columns])
+        trial_regressors = design[:, blocks.ravel()]
+        residualised = trial_regressors - self.nuisance.u @ (self.nuisance.u.T @ trial_regressors)  # Frisch-Waugh-Lovell
+        self.trials = _Factor(residualised)
+        coordinates = self.trials.u.T @ residualised  # (q, n_trials * n_basis)
+        models = np.matmul(coordinates, selection)  # (n_trials, q, p): each model's regressors in the q coordinates
+        u, s, vt = np.linalg.svd(models, full_matrices=False)
+        tolerance = s[:, :1] * max(models.shape[1:]) * np.finfo(np.float64).eps
+        valid = s > tolerance
+        inverse_s = np.zeros_like(s)
+        np.divide(1.0, s, out=inverse_s, where=valid)
+        own = vt[:, :, 0] * inverse_s  # coefficients of the trial's own canonical column
+        self.weights = np.einsum("kqj,kj->kq", u, own)  # beta_k = weights[k] @ z
+        self.variance_factors = np.einsum("kj,kj->k", own, own)
+        estimable = np.einsum("kj,kj->k", vt[:, :, 0] ** 2, valid.astype(np.float64)) > 1.0 - _ESTIMABLE_TOLERANCE
+        if not np.all(estimable):
+            bad = np.flatnonzero(~estimable)
+            names = [_column_label(int(blocks[k, 0]), column_names) for k in bad]
+            raise InputError(None, ", ".join(names), "trial regressor(s) not estimable in their LSS model",
+                             "check the events for duplicated trials (same onset and condition)")
+        masked = u * valid[:, None, :]
+        self.n_model_columns = masked.shape[2]
+        self.projectors = np.ascontiguousarray(masked.transpose(0, 2, 1).reshape(-1, masked.shape[1]))
+        n_rows = design.shape[0]
+        self.dof = n_rows - self.nuisance.rank - valid.sum(axis=1)
+        self.dof_all_trials = n_rows - self.nuisance.rank - self.trials.rank
+        if self.dof.min() < 1 or self.dof_all_trials < 1:
+            raise InputError(None, "design", "the trial-wise model leaves no residual degrees of freedom",
+                             "use fewer trials per run or per_condition patterns")
+
+    def apply(self, data, with_t):
+        residualised = data - self.nuisance.u @ (self.nuisance.u.T @ data)
+        z = self.trials.u.T @ residualised
+        betas = self.weights @ z
+        total = np.einsum("ij,ij->j", residualised, residualised)
+        explained_all = np.einsum("ij,ij->j", z, z)
+        residual_variance = _above_rounding(np.maximum(total - explained_all, 0.0), data) / self.dof_all_trials
+        t = None
+        if with_t:
+            projected = (self.projectors @ z).reshape(betas.shape[0], self.n_model_columns, -1)
+            explained = np.einsum("kpv,kpv->kv", projected, projected)
+            trial_rss = np.maximum(total[None, :] - explained, 0.0)
+            floor = NOISE_FLOOR ** 2 * np.einsum("ij,ij->j", data, data)
+            trial_variance = np.where(trial_rss > floor[None, :], trial_rss, 0.0) / self.dof[:, None]
+            t = _t_values(betas, self.variance_factors[:, None] * trial_variance)
+        return betas, residual_variance, t
+
+
+def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True, noise_model="ols", rho=None,
+            rho_design=None, column_names=None):
+    """Least squares - separate: one model per trial, without refitting the data per trial.
+
+    Parameters
+    ----------
+    design_matrix : array_like
+        ``(n_scans, n_regressors)`` trial-wise design (one block of basis
+        columns per trial, e.g. ``build_design(..., pattern_mode="lss")``).
+    bold_2d : array_like
+        ``(n_scans, n_voxels)``.
+    pattern_blocks : array_like of int
+        ``(n_trials, n_basis)`` columns of each trial, canonical first.
+        Every other column is nuisance.
+    pattern_groups : array_like
+        ``(n_trials,)`` condition label of each trial.
+    with_t : bool, optional
+        Compute t-values (default True).
+    noise_model : {"ols", "ar1"}
+        ``ar1``: whiten with per-voxel binned coefficients (estimated from
+        the OLS residuals of ``rho_design``, default the design itself,
+        unless ``rho`` is given), then the same algebra per bin.
+    rho : float or array_like, optional
+        Fixed AR(1) coefficient(s) (``noise_model="ar1"`` only).
+    rho_design : array_like, optional
+        Design for the AR(1) estimate (e.g. the per-condition design).
+    column_names : sequence of str, optional
+        Names used in error messages only.
+
+    Returns
+    -------
+    LinearFit
+        ``betas`` and ``t_values`` ``(n_trials, n_voxels)``: each trial's
+        canonical coefficient in its own model; ``residual_variance`` of the
+        model with every trial (the LSA model), which the algebra gives for
+        free; ``dof`` per trial.
+
+    Notes
+    -----
+    Model ``k`` (Mumford et al. 2012, NeuroImage 59:2636-2643) holds trial
+    ``k``, the other trials of its condition as one regressor, each other
+    condition as one regressor, and the nuisance columns. By the
+    Frisch-Waugh-Lovell theorem the trial coefficients and their covariance
+    equal those of the regression of the nuisance-residualised data on the
+    nuisance-residualised trial regressors. All of those lie in the span of
+    the residualised trial columns, with orthonormal basis ``U`` (``q``
+    columns), so with ``z = U' y_r`` model ``k`` is a ``q x p`` problem:
+    ``beta_k = w_k' z`` and ``RSS_k = ||y_r||^2 - ||Q_k' z||^2`` (``Q_k``
+    an orthonormal basis of model k's regressors in those coordinates),
+    with ``T - rank(N) - rank(model k)`` degrees of freedom. The data meet
+    the models in three products per block of voxels.
+    """
+    design = _check_design(design_matrix)
+    bold = _check_bold(bold_2d, design.shape[0])
+    blocks, group_index = _check_blocks(pattern_blocks, pattern_groups, design.shape[1])
+    if noise_model not in NOISE_MODELS:
+        raise InputError(None, "glm.noise_model", f"unknown noise model {noise_model!r}", f"use one of {', '.join(NOISE_MODELS)}")
+    if noise_model == "ols" and rho is not None:
+        raise InputError(None, "rho", "AR(1) coefficients given with noise_model 'ols'", "pass noise_model='ar1' or no rho")
+    n_voxels = bold.shape[1]
+    in_block = np.zeros(design.shape[1], dtype=bool)
+    in_block[blocks.ravel()] = True
+    nuisance_columns = np.flatnonzero(~in_block)
+    selection = _lss_selection(group_index, blocks.shape[1])
+    voxel_rho = None
+    if noise_model == "ar1":
+        if rho is None:
+            noise_design = design if rho_design is None else _check_design(rho_design)
+            if noise_design.shape[0] != design.shape[0]:
+                raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
+                                 "pass a design of the same run")
+            voxel_rho = _estimate_rho(noise_design, bold)
+        else:
+            voxel_rho = _check_rho(rho, n_voxels)
+    base = _LSSOperator(design, blocks, selection, nuisance_columns, column_names)
+    n_trials = blocks.shape[0]
+    betas = np.empty((n_trials, n_voxels))
+    residual_variance = np.empty(n_voxels)
+    t_values = np.empty((n_trials, n_voxels)) if with_t else None
+    if voxel_rho is None:
+        groups = ((None, block) for block in _voxel_blocks(n_voxels))
+    else:
+        groups = _noise_groups(voxel_rho)
+    operators = {}
+    for level, members in groups:
+        data = _float64_block(bold, members)
+        if level is None:
+            operator = base
+        else:
+            if level not in operators:
+                operators[level] = _LSSOperator(whiten_ar1(design, level), blocks, selection, nuisance_columns, column_names)
+            operator = operators[level]
+            data = whiten_ar1(data, level)
+        betas[:, members], residual_variance[members], t = operator.apply(data, with_t)
+        if with_t:
+            t_values[:, members] = t
+    return LinearFit(betas=betas, t_values=t_values, residual_variance=residual_variance,
+                     dof=base.dof.astype(np.int64), rho=voxel_rho)
+
+
+def _check_settings(glm_settings):
+    if not isinstance(glm_settings, dict):
+        raise InputError(None, "glm", f"expected a mapping of GLM settings (got {type(glm_settings).__name__})",
+                         "pass the glm section of the validated config")
+    missing = [key for key in GLM_SETTING_KEYS if key not in glm_settings]
+    unknown = sorted(set(glm_settings) - set(GLM_SETTING_KEYS))
+    if missing or unknown:
+        problem = "; ".join(part for part in (f"missing key(s) {missing}" if missing else "",
+                                              f"unknown key(s) {unknown}" if unknown else "") if part)
+        raise InputError(None, "glm", problem, f"give exactly the keys {', '.join(GLM_SETTING_KEYS)} (the config schema fills defaults)")
+    choices = {"noise_model": NOISE_MODELS, "statistic": STATISTICS, "pattern_mode": PATTERN_MODES,
+               "hrf_derivatives": DERIVATIVE_CHOICES}
+    for key, allowed in choices.items():
+        if glm_settings[key] not in allowed:
+            raise InputError(None, f"glm.{key}", f"unknown choice {glm_settings[key]!r}", f"use one of {', '.join(allowed)}")
+    return glm_settings
+
+
+def estimate_patterns(bold_2d, events, tr_s, glm_settings, confounds, confound_names):
+    """Estimate the activity patterns (betas or t-values) of one run.
+
+    Parameters
+    ----------
+    bold_2d : array_like
+        ``(n_scans, n_voxels)`` BOLD data of the voxels to fit.
+    events : pandas.DataFrame
+        ``onset``, ``duration`` (seconds), ``trial_type``.
+    tr_s : float
+        Repetition time in seconds.
+    glm_settings : dict
+        The ``glm`` config keys: ``hrf_derivatives``, ``highpass_s``,
+        ``noise_model``, ``pattern_mode``, ``statistic``, ``conditions``,
+        ``oversampling``.
+    confounds : array_like or None
+        ``(n_scans, n_confounds)``.
+    confound_names : sequence of str
+        Names of the confound columns.
+
+    Returns
+    -------
+    PatternEstimate
+
+    Notes
+    -----
+    ``per_condition`` and ``lsa`` fit one model (:func:`fit_ols` or
+    :func:`fit_ar1`); ``lss`` fits one model per trial (:func:`fit_lss`),
+    under AR(1) with coefficients from the OLS residuals of the
+    per-condition design of the same run (fewer parameters than the
+    trial-wise design, so a steadier estimate). If ``conditions`` is empty,
+    every trial type of the events (sorted) is a condition. A requested
+    condition with no events in this run gives no pattern row here
+    (``design.missing_conditions`` lists it); a run without any requested
+    condition is an error.
+    """
+    settings = _check_settings(glm_settings)
+    bold = np.asarray(bold_2d)
+    if bold.ndim != 2:
+        raise InputError(None, "bold_2d", f"need a (scans x voxels) array (got shape {bold.shape})", "pass the masked BOLD data")
+    design_arguments = dict(events=events, n_scans=bold.shape[0], tr_s=tr_s, conditions=list(settings["conditions"]),
+                            hrf_derivatives=settings["hrf_derivatives"], highpass_s=settings["highpass_s"],
+                            confounds=confounds, confound_names=confound_names, oversampling=settings["oversampling"])
+    design = build_design(pattern_mode=settings["pattern_mode"], **design_arguments)
+    if design.pattern_columns.size == 0:
+        raise InputError(None, "trial_type", f"none of the conditions {list(settings['conditions'])} occurs in this run",
+                         "check glm.conditions against the trial types of the events file")
+    with_t = settings["statistic"] == "t"
+    noise_model = settings["noise_model"]
+    if settings["pattern_mode"] == "lss":
+        rho_design = None
+        if noise_model == "ar1":
+            rho_design = build_design(pattern_mode="per_condition", **design_arguments).matrix
+        fit = fit_lss(design.matrix, bold, design.pattern_blocks, design.pattern_table["condition"].to_numpy(dtype=object).astype(str),
+                      with_t=with_t, noise_model=noise_model, rho_design=rho_design, column_names=design.names)
+        betas = fit.betas
+    else:
+        fitter = fit_ols if noise_model == "ols" else fit_ar1
+        fit = fitter(design.matrix, bold, design.pattern_columns, with_t=with_t, column_names=design.names)
+        betas = fit.betas[design.pattern_columns]
+    patterns = fit.t_values if with_t else betas
+    return PatternEstimate(patterns=patterns, table=design.pattern_table.copy(), design=design,
+                           residual_variance=fit.residual_variance, dof=fit.dof, rho=fit.rho)

@@ -1,0 +1,143 @@
+"""Job: the activity patterns of one subject x run (GLM betas or t-values)."""
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from ..bids import load_bold, read_confounds, read_events, read_tr_s
+from ..errors import InputError
+from ..fileio import load_nifti, save_figure, save_nifti, write_tsv
+from ..glm import estimate_patterns
+from ..masks import same_grid
+
+__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_figure"]
+
+# Voxel centres of the BOLD and the mask may differ by float rounding of the
+# affine only (common practice, no source; the brain-mask job uses the same).
+GRID_TOLERANCE_MM = 0.01
+TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
+_MAX_LABELLED_COLUMNS = 40
+
+
+def _load_mask(path, shape, affine):
+    image = load_nifti(path, what="brain mask")
+    data = np.asarray(image.dataobj)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"expected a 3D brain mask, got shape {data.shape}", "give one 3D mask volume")
+    if not same_grid(data.shape, image.affine, shape, affine, GRID_TOLERANCE_MM):
+        raise InputError(path, "affine", f"the brain mask's grid (shape {data.shape}) differs from the BOLD grid (shape {tuple(shape)})",
+                         "make the brain mask on this subject's BOLD grid (same shape and affine)")
+    mask = data > 0
+    if not mask.any():
+        raise InputError(path, "mask", "the brain mask holds no voxel", "rebuild the brain mask")
+    return mask
+
+
+def _file_at_fault(field, inputs, confound_names):
+    """The input file behind a problem the science reports by field only."""
+    if field.startswith("glm"):
+        return "the study config"
+    if field == "bold_2d":
+        return inputs["bold"]
+    if field in confound_names or field.startswith("confound"):
+        return inputs.get("confounds")
+    return inputs["events"]
+
+
+def design_figure(matrix, names, title):
+    """A small grey image of the design, each column scaled to its largest magnitude.
+
+    Parameters
+    ----------
+    matrix : array_like
+        ``(n_scans, n_regressors)``.
+    names : sequence of str
+        Column labels (every column labelled up to 40 columns, else every k-th).
+    title : str
+        Figure title.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        4 x 3 inches; built without pyplot, so no global figure state (the
+        Agg canvas renders it when saved).
+    """
+    values = np.asarray(matrix, dtype=np.float64)
+    scale = np.max(np.abs(values), axis=0)
+    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0)
+    figure = Figure(figsize=(4, 3))
+    axes = figure.add_axes((0.12, 0.32, 0.85, 0.58))
+    axes.imshow(shown, aspect="auto", cmap="gray", interpolation="nearest", vmin=-1, vmax=1)
+    step = max(1, int(np.ceil(len(names) / _MAX_LABELLED_COLUMNS)))
+    ticks = np.arange(0, len(names), step)
+    axes.set_xticks(ticks)
+    axes.set_xticklabels([names[index] for index in ticks], rotation=90, fontsize=4)
+    axes.tick_params(axis="y", labelsize=5)
+    axes.set_ylabel("scan", fontsize=6)
+    axes.set_title(title, fontsize=7)
+    return figure
+
+
+def run(inputs, outputs, params, log):
+    """Fit the GLM of one run inside the brain mask and write its patterns.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``bold``, ``events``, ``sidecar``, ``mask`` and, when confounds are
+        configured, ``confounds`` (paths).
+    outputs : dict
+        ``patterns`` (4D float32 NIfTI, zeros outside the mask), ``table``
+        (TSV, one row per volume), ``design`` (TSV), ``design_png``,
+        ``resvar`` (3D float32 NIfTI).
+    params : dict
+        ``glm`` (the glm config), ``confounds`` (column names), ``subject``,
+        ``session`` (None without sessions), ``run_id``.
+    log : logging.Logger
+        Receives a warning for each configured condition absent from the run.
+    """
+    glm_settings = params["glm"]
+    confound_names = list(params.get("confounds") or [])
+    subject, session, run_id = params["subject"], params.get("session"), params["run_id"]
+
+    bold, affine, header = load_bold(inputs["bold"])
+    n_scans = bold.shape[3]
+    tr_s = read_tr_s(inputs["sidecar"], header, inputs["bold"])
+    events = read_events(inputs["events"], n_scans, tr_s)
+    confounds = read_confounds(inputs.get("confounds"), confound_names, n_scans) if confound_names else None
+    mask = _load_mask(inputs["mask"], bold.shape[:3], affine)
+    bold_2d = bold[mask].T  # (scans, voxels) view of a (voxels, scans) copy
+    del bold
+
+    try:
+        estimate = estimate_patterns(bold_2d, events, tr_s, glm_settings, confounds, confound_names)
+    except InputError as error:
+        if error.file is not None:
+            raise
+        raise InputError(_file_at_fault(error.field, inputs, confound_names), error.field, error.problem, error.fix) from None
+    for condition in estimate.design.missing_conditions:
+        log.warning("sub-%s %s: condition %r has no events in this run; no pattern for it here", subject, run_id, condition)
+
+    n_patterns = estimate.patterns.shape[0]
+    volumes = np.zeros(mask.shape + (n_patterns,), dtype=np.float32)
+    volumes[mask] = estimate.patterns.T
+    save_nifti(outputs["patterns"], volumes, affine)
+    residual_variance = np.zeros(mask.shape, dtype=np.float32)
+    residual_variance[mask] = estimate.residual_variance
+    save_nifti(outputs["resvar"], residual_variance, affine)
+
+    table = pd.DataFrame({
+        "volume": np.arange(n_patterns, dtype=np.int64),
+        "subject": str(subject),
+        "session": "n/a" if session is None else str(session),
+        "run_id": str(run_id),
+        "condition": estimate.table["condition"].to_numpy(dtype=object),
+        "trial_index": estimate.table["trial_index"].astype("Int64").array,
+        "onset_s": estimate.table["onset_s"].to_numpy(dtype=np.float64),
+    }, columns=list(TABLE_COLUMNS))
+    write_tsv(outputs["table"], table)
+    write_tsv(outputs["design"], pd.DataFrame(estimate.design.matrix, columns=list(estimate.design.names)))
+    title = f"sub-{subject} {run_id}: {glm_settings['pattern_mode']} design"
+    save_figure(design_figure(estimate.design.matrix, estimate.design.names, title), outputs["design_png"])

@@ -473,3 +473,10 @@ def test_job_accepts_bids_style_subject_labels(tmp_path):
     inputs = _write_study(tmp_path, subjects=("sub-01", "sub-02", "sub-03"))
     group_job.run(inputs, _outputs(tmp_path), _params(subjects=("01", "02", "03")), LOG)
     assert pd.read_csv(_outputs(tmp_path)["table"], sep="\t")["n_subjects"].eq(3).all()
+
+
+def test_job_code_hash_covers_the_science_module():
+    # The group rule's code key (foldwise.hashing.code_hash) must change when group.py does.
+    from foldwise.hashing import module_closure
+
+    assert Path(group.__file__).resolve() in module_closure("foldwise.jobs.group")

@@ -12,10 +12,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .. import group as group_stats
-from ..errors import InputError
-from ..fileio import gunzip_bytes, write_text_atomic, write_tsv
-from ..hashing import seed_from
+# Absolute imports on purpose: foldwise.hashing.module_closure (the rule's code
+# hash) follows ``from .x`` and ``from foldwise.x`` but not ``from ..x``.
+from foldwise import group as group_stats
+from foldwise.errors import InputError
+from foldwise.fileio import gunzip_bytes, write_text_atomic, write_tsv
+from foldwise.hashing import seed_from
 
 __all__ = ["run", "SUMMARY_COLUMNS", "SUBJECT_NULL_COLUMNS", "TABLE_COLUMNS", "NULL_COLUMNS"]
 

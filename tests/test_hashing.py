@@ -51,3 +51,9 @@ def test_seed_from_is_stable_and_identity_specific():
     assert seed_from(7, "decode", "01") != seed_from(7, "decode", "02")
     assert seed_from(7, "decode", "01") != seed_from(8, "decode", "01")
     assert 0 <= seed_from(7, "x") < 2**63
+
+
+def test_job_modules_reach_their_science_through_two_level_relative_imports():
+    # jobs/*.py import ``from ..glm import x``: the code hash must cover glm.py and its imports.
+    names = {path.name for path in module_closure("foldwise.jobs.roi_counts")}
+    assert "fileio.py" in names and "errors.py" in names

@@ -39,6 +39,7 @@ __all__ = [
     "load_nifti",
     "save_figure",
     "FLOAT_FORMAT",
+    "TEXT_COLUMNS",
 ]
 
 # Seven significant digits: float32 round-trips through text at this width.
@@ -109,8 +110,16 @@ def write_tsv(path, frame):
     write_bytes_atomic(path, gzip_bytes(data) if str(path).endswith(".gz") else data)
 
 
-def read_tsv(path, required_columns=(), what="table"):
+# Identifier columns stay text: subject "01" must not become the number 1.
+TEXT_COLUMNS = ("subject", "session", "run", "run_id", "roi", "analysis", "direction", "n_voxels", "condition",
+                "trial_type", "name", "true_class", "predicted_class", "train_set", "test_runs")
+
+
+def read_tsv(path, required_columns=(), what="table", text_columns=TEXT_COLUMNS):
     """Read a TSV (``n/a`` as missing) and check its required columns.
+
+    Columns named in ``text_columns`` are read as text (identifiers such as
+    subject ``01`` keep their leading zeros).
 
     Raises
     ------
@@ -121,7 +130,8 @@ def read_tsv(path, required_columns=(), what="table"):
     if not path.is_file():
         raise InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
     try:
-        frame = pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False)
+        frame = pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False,
+                            dtype={column: str for column in text_columns})
     except pd.errors.EmptyDataError:
         raise InputError(path, "header", f"the {what} is empty", "write a header line and at least one row") from None
     except (pd.errors.ParserError, UnicodeDecodeError) as error:

@@ -65,9 +65,19 @@ def hash_file(path):
     return digest.hexdigest()
 
 
+def _package_of(source_path):
+    """The dotted package a source file belongs to (``foldwise.jobs``), or None outside it."""
+    try:
+        relative = Path(source_path).resolve().relative_to(_PACKAGE_DIR)
+    except ValueError:
+        return None
+    return ".".join(["foldwise", *relative.parts[:-1]])
+
+
 def _imported_package_modules(source_path):
-    """Names of ``foldwise.*`` modules imported by one source file."""
+    """Names of ``foldwise.*`` modules imported by one source file (relative imports resolved)."""
     tree = ast.parse(Path(source_path).read_text(encoding="utf-8"))
+    package = _package_of(source_path)
     names = set()
     for node in ast.walk(tree):
         if isinstance(node, ast.Import):
@@ -75,8 +85,14 @@ def _imported_package_modules(source_path):
                 if alias.name.startswith("foldwise"):
                     names.add(alias.name)
         elif isinstance(node, ast.ImportFrom):
-            if node.level == 1:  # ``from .x import y`` inside the package
-                base = "foldwise" + (f".{node.module}" if node.module else "")
+            if node.level:  # ``from .x import y`` / ``from ..x import y`` inside the package
+                if package is None:
+                    continue
+                parts = package.split(".")
+                parts = parts[: len(parts) - (node.level - 1)]
+                if not parts:
+                    continue
+                base = ".".join(parts + ([node.module] if node.module else []))
             elif node.module and node.module.startswith("foldwise"):
                 base = node.module
             else:

@@ -1,0 +1,138 @@
+"""Cross-validation folds that keep runs independent.
+
+Patterns from one fMRI run share that run's noise and drift, so a fold never
+splits a run: every run is held out whole. Folds are returned as pairs of
+integer index arrays into the patterns, in the order of the sorted unique run
+labels, so the same runs always give the same folds.
+"""
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["FOLD_SCHEMES", "make_folds", "held_out_runs", "check_training_classes"]
+
+FOLD_SCHEMES = ("leave_one_run_out", "run_groups")
+
+
+def make_folds(run_labels, scheme="leave_one_run_out", n_groups=2):
+    """Split patterns into folds that hold out whole runs.
+
+    Parameters
+    ----------
+    run_labels : array_like, shape (n_patterns,)
+        The run of each pattern (strings or integers; sorted with ``np.unique``).
+    scheme : {"leave_one_run_out", "run_groups"}
+        ``leave_one_run_out``: one fold per run, that run held out.
+        ``run_groups``: the sorted unique runs are cut into ``n_groups``
+        contiguous groups (``np.array_split``: sizes differ by at most one,
+        the larger groups first) and each group is held out once.
+    n_groups : int
+        Number of groups for ``run_groups`` (ignored otherwise); at least 2
+        and at most the number of runs.
+
+    Returns
+    -------
+    list of tuple of ndarray
+        One ``(train_idx, test_idx)`` pair per fold, int64 index arrays in
+        increasing order; the test sets partition the patterns.
+
+    Notes
+    -----
+    Holding out whole runs is leave-one-group-out cross-validation with runs
+    as groups; it keeps the temporal dependence inside a run out of the
+    train/test split (Pereira, Mitchell & Botvinick 2009, NeuroImage
+    45:S199-S209).
+
+    Examples
+    --------
+    >>> folds = make_folds(["run-01", "run-01", "run-02", "run-02"])
+    >>> [(train.tolist(), test.tolist()) for train, test in folds]
+    [([2, 3], [0, 1]), ([0, 1], [2, 3])]
+    """
+    if scheme not in FOLD_SCHEMES:
+        raise InputError(None, "folds.scheme", f"unknown fold scheme {scheme!r}", f"use one of {', '.join(FOLD_SCHEMES)}")
+    runs = np.asarray(run_labels)
+    if runs.ndim != 1 or runs.size == 0:
+        raise InputError(None, "run_id", f"run labels must be a non-empty 1-D array, got shape {runs.shape}",
+                         "pass one run label per pattern")
+    unique_runs, run_index = np.unique(runs, return_inverse=True)
+    n_runs = unique_runs.size
+    if n_runs < 2:
+        raise InputError(None, "run_id", f"cross-validation needs at least two runs, found {n_runs} ({unique_runs.tolist()})",
+                         "provide patterns from two or more runs")
+    if scheme == "leave_one_run_out":
+        groups = [np.array([run]) for run in range(n_runs)]
+    else:
+        if isinstance(n_groups, bool) or not isinstance(n_groups, (int, np.integer)) or not 2 <= n_groups <= n_runs:
+            raise InputError(None, "folds.n_groups", f"n_groups must be an integer from 2 to the number of runs ({n_runs}), got {n_groups!r}",
+                             f"set folds.n_groups between 2 and {n_runs}")
+        groups = np.array_split(np.arange(n_runs), int(n_groups))
+    folds = []
+    for group in groups:
+        held_out = np.isin(run_index, group)
+        folds.append((np.flatnonzero(~held_out).astype(np.int64), np.flatnonzero(held_out).astype(np.int64)))
+    return folds
+
+
+def held_out_runs(run_labels, folds):
+    """The sorted run labels held out in each fold.
+
+    Parameters
+    ----------
+    run_labels : array_like, shape (n_patterns,)
+        The run of each pattern.
+    folds : list of tuple of ndarray
+        Output of :func:`make_folds`.
+
+    Returns
+    -------
+    list of list
+        For each fold, the sorted unique runs of its test patterns.
+    """
+    runs = np.asarray(run_labels)
+    return [np.unique(runs[test]).tolist() for _, test in folds]
+
+
+def check_training_classes(labels, run_labels, folds, class_names, subject, file=None):
+    """Raise if a fold's training patterns lack one of the classes.
+
+    Parameters
+    ----------
+    labels : array_like of int, shape (n_patterns,)
+        Class index of each pattern, in ``range(len(class_names))``.
+    run_labels : array_like, shape (n_patterns,)
+        The run of each pattern.
+    folds : list of tuple of ndarray
+        Output of :func:`make_folds`.
+    class_names : sequence of str
+        Name of each class index.
+    subject : str
+        The subject, named in the message.
+    file : str or None
+        The file to name in the error (e.g. the pattern tables).
+
+    Raises
+    ------
+    InputError
+        Naming the subject, the held-out run(s) and the missing class.
+
+    Notes
+    -----
+    A classifier never trained on a class can never predict it; rather than
+    silently scoring such a fold, the analysis stops (common practice, no source).
+    """
+    labels = np.asarray(labels)
+    class_names = list(class_names)
+    if labels.ndim != 1 or labels.shape != np.shape(run_labels):
+        raise InputError(file, "condition", f"labels of shape {labels.shape} do not match run labels of shape {np.shape(run_labels)}",
+                         "pass one label and one run per pattern")
+    for (train, _), runs in zip(folds, held_out_runs(run_labels, folds)):
+        present = np.zeros(len(class_names), dtype=bool)
+        present[np.unique(labels[train])] = True
+        if not present.all():
+            missing = class_names[int(np.flatnonzero(~present)[0])]
+            raise InputError(
+                file, "condition",
+                f"subject {subject}: with run {'+'.join(map(str, runs))} held out, the training runs hold no pattern of class {missing!r}",
+                "model that class's conditions in more runs, drop the class from the analysis, or use folds.scheme run_groups")

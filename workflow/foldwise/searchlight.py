@@ -37,6 +37,7 @@ Public names, in the order a searchlight uses them:
 ``Neighbourhoods``           the spheres of a set of centres (index matrix and sizes)
 ``sphere_neighbourhoods``    build them inside a brain mask
 ``block_centres``            the centres of block ``b`` of ``n_blocks``
+``analysis_outline``         class, set and direction names of an analysis entry
 ``sample_design``            patterns, labels, runs and sets of one analysis entry
 ``neighbourhood_sums``       per-voxel values summed over every sphere
 ``predict_correlation_centroid``, ``predict_gaussian_nb``, ``predict_shrinkage_lda``,
@@ -69,6 +70,7 @@ __all__ = [
     "Neighbourhoods",
     "sphere_neighbourhoods",
     "block_centres",
+    "analysis_outline",
     "sample_design",
     "neighbourhood_sums",
     "predict_correlation_centroid",
@@ -314,6 +316,52 @@ def block_centres(n_voxels, n_blocks, block):
 
 
 # -- the analysis entry -------------------------------------------------------------------------
+def analysis_outline(analysis, file=None):
+    """Class names, set names, direction names and chance level of an analysis entry.
+
+    Parameters
+    ----------
+    analysis : dict
+        An ``analyses`` entry: ``kind: within`` with ``classes`` (class ->
+        list of conditions) or ``kind: cross`` with ``sets`` (two sets, each
+        class -> condition).
+    file : str, optional
+        Named in error messages.
+
+    Returns
+    -------
+    dict
+        ``class_names`` (entry order), ``set_names`` (``None`` for plain
+        decoding), ``directions`` (``["within"]`` or the five cross-decoding
+        directions of :func:`foldwise.decoding.cross_directions`, the order of
+        the map volumes) and ``chance`` (1 / number of classes).
+
+    Examples
+    --------
+    >>> analysis_outline({"name": "s", "kind": "cross", "sets": {"seen": {"a": "s_a", "b": "s_b"}, "heard": {"a": "h_a", "b": "h_b"}}})["directions"]
+    ['seen->heard', 'heard->seen', 'seen<->heard', 'seen->seen', 'heard->heard']
+    """
+    if not isinstance(analysis, dict) or analysis.get("kind") not in ("within", "cross"):
+        _fail("analyses.kind", f"expected an analysis entry with kind within or cross, got {analysis!r:.200}", "fix the analysis entry", file)
+    name = analysis.get("name", "?")
+    if analysis["kind"] == "within":
+        classes = analysis.get("classes") or {}
+        if len(classes) < 2:
+            _fail(f"analyses[{name}].classes", f"need at least two classes, got {list(classes)}", "define two or more classes", file)
+        class_names, set_names, directions = list(classes), None, ["within"]
+    else:
+        sets_entry = analysis.get("sets") or {}
+        set_names = list(sets_entry)
+        if len(set_names) != 2:
+            _fail(f"analyses[{name}].sets", f"cross-decoding needs exactly two sets, got {set_names}", "define two sets", file)
+        class_names = list(sets_entry[set_names[0]])
+        if sorted(class_names) != sorted(sets_entry[set_names[1]]) or len(class_names) < 2:
+            _fail(f"analyses[{name}].sets", f"the sets must share two or more class names, got {class_names} and {list(sets_entry[set_names[1]])}",
+                  "give both sets the same class names", file)
+        directions = list(cross_directions(set_names))
+    return {"class_names": class_names, "set_names": set_names, "directions": directions, "chance": 1.0 / len(class_names)}
+
+
 def sample_design(conditions, run_labels, analysis, file=None):
     """Which patterns an analysis uses, with their class, set and run.
 
@@ -356,14 +404,11 @@ def sample_design(conditions, run_labels, analysis, file=None):
     runs = np.asarray(run_labels)
     if conditions.ndim != 1 or runs.shape != conditions.shape:
         _fail("condition", f"conditions {conditions.shape} and runs {runs.shape} must be 1-D and match", "pass one condition and run per pattern", file)
-    if not isinstance(analysis, dict) or analysis.get("kind") not in ("within", "cross"):
-        _fail("analyses.kind", f"expected an analysis entry with kind within or cross, got {analysis!r:.200}", "fix the analysis entry", file)
+    outline = analysis_outline(analysis, file)
     name = analysis.get("name", "?")
+    class_names, set_names = outline["class_names"], outline["set_names"]
     if analysis["kind"] == "within":
-        classes = analysis.get("classes") or {}
-        if len(classes) < 2:
-            _fail(f"analyses[{name}].classes", f"need at least two classes, got {list(classes)}", "define two or more classes", file)
-        class_names = list(classes)
+        classes = analysis["classes"]
         owner = {}
         for index, class_name in enumerate(class_names):
             for condition in classes[class_name]:
@@ -373,17 +418,10 @@ def sample_design(conditions, run_labels, analysis, file=None):
                 owner[condition] = index
         label_of = np.array([owner.get(condition, -1) for condition in conditions], dtype=np.int64)
         rows = np.flatnonzero(label_of >= 0)
-        labels, sets, set_names, directions = label_of[rows], np.zeros(rows.size, dtype=np.int64), None, ["within"]
+        labels, sets = label_of[rows], np.zeros(rows.size, dtype=np.int64)
         wanted = {class_name: classes[class_name] for class_name in class_names}
     else:
-        sets_entry = analysis.get("sets") or {}
-        set_names = list(sets_entry)
-        if len(set_names) != 2:
-            _fail(f"analyses[{name}].sets", f"cross-decoding needs exactly two sets, got {set_names}", "define two sets", file)
-        class_names = list(sets_entry[set_names[0]])
-        if sorted(class_names) != sorted(sets_entry[set_names[1]]) or len(class_names) < 2:
-            _fail(f"analyses[{name}].sets", f"the sets must share two or more class names, got {class_names} and {list(sets_entry[set_names[1]])}",
-                  "give both sets the same class names", file)
+        sets_entry = analysis["sets"]
         owner = {}
         for set_index, set_name in enumerate(set_names):
             for class_name, condition in sets_entry[set_name].items():
@@ -395,15 +433,13 @@ def sample_design(conditions, run_labels, analysis, file=None):
         set_of = np.array([pair[1] for pair in pairs], dtype=np.int64)
         rows = np.flatnonzero(label_of >= 0)
         labels, sets = label_of[rows], set_of[rows]
-        directions = list(cross_directions(set_names))
         wanted = {f"{set_name}/{class_name}": [sets_entry[set_name][class_name]] for set_name in set_names for class_name in class_names}
     present = set(conditions[rows].tolist())
     for what, wanted_conditions in wanted.items():
         if not present.intersection(wanted_conditions):
             _fail("condition", f"analysis {name}: class {what} (conditions {wanted_conditions}) has no pattern; "
                   f"conditions found: {sorted(set(conditions.tolist()))}", "fix the condition names in the analysis or model them in the GLM", file)
-    return {"rows": rows.astype(np.int64), "labels": labels, "sets": sets, "runs": runs[rows], "class_names": class_names,
-            "set_names": set_names, "directions": directions, "chance": 1.0 / len(class_names)}
+    return {"rows": rows.astype(np.int64), "labels": labels, "sets": sets, "runs": runs[rows], **outline}
 
 
 # -- sums over spheres ---------------------------------------------------------------------------

@@ -1,0 +1,144 @@
+"""Job: searchlight scores and permutation null of one block of centres (one subject x analysis x block).
+
+Inputs
+    ``patterns`` (list): per run a 4D float32 NIfTI, one volume per pattern;
+    ``tables`` (list, same order): per run the TSV ``volume, subject, session,
+    run_id, condition, trial_index, onset_s``; ``mask``: the subject's brain
+    mask (3D uint8 NIfTI) on the patterns' grid.
+Params
+    ``searchlight`` (the config section: ``radius_mm``, ``classifier``,
+    ``n_blocks``, ``n_permutations``), ``analysis`` (one ``analyses`` entry),
+    ``subject``, ``block`` (0-based), ``seed`` (the study seed).
+Outputs
+    ``scores``: .npy float32 ``(n_block_centres, n_directions)``, fold-mean
+    balanced accuracy at each centre of the block (real labels);
+    ``null``: .npy float32 ``(n_permutations, n_block_centres, n_directions)``.
+
+Every block needs the whole brain's patterns (a sphere reaches beyond its
+block). The permutations are seeded by subject and analysis, never by block,
+so permutation ``k`` is the same relabeling in every block and the merged
+null is a joint null over the brain.
+"""
+
+import io
+
+import numpy as np
+
+from ..errors import InputError
+from ..fileio import load_nifti, read_tsv, write_bytes_atomic
+from ..hashing import seed_from
+from ..masks import same_grid
+from ..searchlight import SEARCHLIGHT_CLASSIFIERS, block_centres, sample_design, searchlight_scores, sphere_neighbourhoods
+
+__all__ = ["run", "GRID_TOLERANCE_MM", "load_brain_mask", "load_subject_patterns", "save_npy"]
+
+_TABLE_COLUMNS = ("volume", "condition", "run_id")
+# Two grids are one grid when their voxel centres agree to this many mm (common practice, no source).
+GRID_TOLERANCE_MM = 1e-3
+
+
+def save_npy(path, array):
+    """Write an array as .npy atomically (serialised in memory first)."""
+    buffer = io.BytesIO()
+    np.save(buffer, np.ascontiguousarray(array), allow_pickle=False)
+    write_bytes_atomic(path, buffer.getvalue())
+
+
+def load_brain_mask(path):
+    """The brain mask as (bool array, affine); refuses a non-3D or empty mask."""
+    image = load_nifti(path, what="brain mask")
+    data = np.asanyarray(image.dataobj)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"expected a 3D brain mask, got shape {data.shape}", "give one 3D mask volume")
+    mask = np.asarray(data) > 0
+    if not mask.any():
+        raise InputError(path, "data", "the brain mask holds no voxel", "check the brain mask step (brain_mask.mean_fraction)")
+    return mask, np.asarray(image.affine, dtype=np.float64)
+
+
+def load_subject_patterns(pattern_paths, table_paths, mask, affine):
+    """All runs' patterns inside the mask, with the condition and run of each.
+
+    Returns
+    -------
+    patterns : ndarray of float64, shape (n_patterns, n_voxels)
+        Brain voxels in C order of the mask.
+    conditions, runs : ndarray of str, shape (n_patterns,)
+    """
+    pattern_paths, table_paths = list(pattern_paths), list(table_paths)
+    if not pattern_paths or len(pattern_paths) != len(table_paths):
+        raise InputError(None, "patterns", f"got {len(pattern_paths)} pattern image(s) and {len(table_paths)} table(s)",
+                         "give one table per pattern image, in the same order")
+    blocks, conditions, runs, seen_runs = [], [], [], {}
+    for image_path, table_path in zip(pattern_paths, table_paths):
+        table = read_tsv(table_path, _TABLE_COLUMNS, what="pattern table")
+        image = load_nifti(image_path, what="pattern image")
+        if not same_grid(image.shape[:3], image.affine, mask.shape, affine, GRID_TOLERANCE_MM):
+            raise InputError(image_path, "affine", f"the patterns' grid {image.shape[:3]} does not match the brain mask's {mask.shape} "
+                             f"(or their voxel centres lie more than {GRID_TOLERANCE_MM} mm apart)", "compute patterns and mask on one grid")
+        data = np.asanyarray(image.dataobj)
+        if data.ndim == 3:
+            data = data[..., np.newaxis]
+        if data.ndim != 4:
+            raise InputError(image_path, "dim", f"expected a 4D pattern image, got shape {data.shape}", "write one volume per pattern")
+        volumes = table["volume"].to_numpy()
+        if len(table) != data.shape[3] or sorted(volumes.tolist()) != list(range(data.shape[3])):
+            raise InputError(table_path, "volume", f"the table lists volumes {volumes.tolist()[:10]} but the image has {data.shape[3]}",
+                             "keep one row per volume, numbered from 0")
+        run_ids = sorted(set(table["run_id"].astype(str)))
+        if len(run_ids) != 1:
+            raise InputError(table_path, "run_id", f"one table must hold one run, got {run_ids}", "write one table per run")
+        if run_ids[0] in seen_runs:
+            raise InputError(table_path, "run_id", f"run {run_ids[0]!r} also appears in {seen_runs[run_ids[0]]}", "give each run one table")
+        seen_runs[run_ids[0]] = str(table_path)
+        order = np.argsort(volumes)
+        inside = np.asarray(data[mask], dtype=np.float64).T  # (n_volumes, n_voxels)
+        if not np.all(np.isfinite(inside)):
+            raise InputError(image_path, "data", "the patterns hold NaN or infinite values inside the brain mask",
+                             "recompute the patterns, or remove those voxels from the brain mask")
+        blocks.append(inside)
+        conditions.append(table["condition"].astype(str).to_numpy()[order])
+        runs.append(np.full(len(table), run_ids[0]))
+    return np.vstack(blocks), np.concatenate(conditions), np.concatenate(runs)
+
+
+def run(inputs, outputs, params, log):
+    """Score one block of searchlight centres and its permutation null; see the module docstring."""
+    settings, analysis = params["searchlight"], params["analysis"]
+    subject, block, seed = str(params["subject"]), params["block"], params["seed"]
+    classifier = settings["classifier"]
+    if classifier not in SEARCHLIGHT_CLASSIFIERS:
+        raise InputError("config", "searchlight.classifier", f"unknown classifier {classifier!r}", f"use one of {', '.join(SEARCHLIGHT_CLASSIFIERS)}")
+    n_permutations = settings["n_permutations"]
+    if isinstance(n_permutations, bool) or not isinstance(n_permutations, int) or n_permutations < 0:
+        raise InputError("config", "searchlight.n_permutations", f"expected an integer >= 0, got {n_permutations!r}", "set it to e.g. 100")
+    mask, affine = load_brain_mask(inputs["mask"])
+    patterns, conditions, runs = load_subject_patterns(inputs["patterns"], inputs["tables"], mask, affine)
+    design = sample_design(conditions, runs, analysis, file=", ".join(map(str, inputs["tables"])))
+    if analysis.get("demean_patterns"):
+        log.warning("analysis %s: demean_patterns is ignored by the searchlight (it would demean per sphere)", analysis["name"])
+    centres = block_centres(int(mask.sum()), settings["n_blocks"], block)
+    spheres = sphere_neighbourhoods(mask, affine, settings["radius_mm"], centres=centres)
+    rng = np.random.default_rng(seed_from(seed, "searchlight-permutation", subject, analysis["name"]))
+    cross = analysis["kind"] == "cross"
+    folds = analysis.get("folds", {})
+    log.info("sub-%s %s block %d/%d: %d centres of %d brain voxels, spheres of %d-%d voxels (radius %.3g mm), %d patterns, %s, %d permutations",
+             subject, analysis["name"], block + 1, settings["n_blocks"], spheres.n_centres, spheres.n_voxels,
+             int(spheres.sizes.min()) if spheres.n_centres else 0, int(spheres.sizes.max()) if spheres.n_centres else 0,
+             settings["radius_mm"], design["rows"].size, classifier, n_permutations)
+    n_directions = len(design["directions"])
+    if spheres.n_centres == 0:
+        scores = np.zeros((1 + n_permutations, 0, n_directions))
+    else:
+        scores, directions = searchlight_scores(
+            patterns[design["rows"]], design["labels"], design["runs"], spheres,
+            set_index=design["sets"] if cross else None, set_names=design["set_names"], classifier=classifier,
+            n_permutations=n_permutations, rng=rng, fold_scheme=folds.get("scheme", "leave_one_run_out"),
+            n_groups=folds.get("n_groups", 2), svm_c=analysis.get("svm_c", 1.0), n_classes=len(design["class_names"]))
+        assert directions == design["directions"]
+        log.info("mean balanced accuracy over the block's centres: %s (chance %.4g)",
+                 ", ".join(f"{name} {value:.4f}" for name, value in zip(directions, scores[0].mean(axis=0))), design["chance"])
+    save_npy(outputs["scores"], scores[0].astype(np.float32))
+    save_npy(outputs["null"], scores[1:].astype(np.float32))

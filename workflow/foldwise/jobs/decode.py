@@ -1,0 +1,352 @@
+"""Job: fold-aware decoding of one subject x analysis x ROI, with its permutation null.
+
+Reads the subject's per-run pattern images and tables and the ROI mask,
+keeps the analysis's conditions, and writes the per-fold scores, the
+permutation null, the training-fold voxel rankings and the confusion counts
+(columns of DESIGN.md's data contract).
+
+Randomness: the permutations come from
+``default_rng(seed_from(seed, "permutation", subject, analysis))`` -- without
+the ROI, so permutation k relabels the patterns identically in every ROI of a
+subject (the group stage's maximum statistic across ROIs needs that joint
+null); the random voxel orders of selection ``none`` come from
+``default_rng(seed_from(seed, "voxel_order", subject, analysis, roi))``.
+"""
+
+import numpy as np
+import pandas as pd
+
+from ..decoding import decode_cross, decode_curve, resolve_counts
+from ..errors import InputError
+from ..fileio import load_nifti, read_tsv, write_tsv
+from ..folds import check_training_classes, make_folds
+from ..hashing import seed_from
+
+__all__ = [
+    "TABLE_COLUMNS",
+    "SCORE_COLUMNS",
+    "NULL_COLUMNS",
+    "RANKING_COLUMNS",
+    "CONFUSION_COLUMNS",
+    "permutation_rng",
+    "read_roi_patterns",
+    "analysis_labels",
+    "run",
+]
+
+TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
+SCORE_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "fold", "test_runs", "n_train", "n_test",
+                 "accuracy", "balanced_accuracy")
+NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation", "balanced_accuracy", "accuracy")
+RANKING_COLUMNS = ("fold", "rank", "voxel_index", "i", "j", "k", "score")
+CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
+_RUN_SEPARATOR = "+"  # joins the held-out runs of a fold in test_runs
+_AFFINE_TOLERANCE_MM = 1e-3
+
+
+def permutation_rng(seed, subject, analysis_name):
+    """The permutation generator of a subject x analysis: the same for every ROI (no ROI in its identity)."""
+    return np.random.default_rng(seed_from(seed, "permutation", subject, analysis_name))
+
+
+def _files_label(paths):
+    paths = [str(path) for path in paths]
+    return paths[0] if len(paths) == 1 else f"{paths[0]} (and {len(paths) - 1} more pattern tables)"
+
+
+def _plain_subject(value):
+    text = str(value)
+    return text[4:] if text.startswith("sub-") else text
+
+
+def _check_params(params):
+    for key in ("analysis", "subject", "roi", "seed"):
+        if key not in params:
+            raise InputError(None, f"params.{key}", "missing from the job's params", "pass analysis, subject, roi and seed")
+    analysis = params["analysis"]
+    required = ("name", "kind", "selection", "voxel_counts", "classifier", "svm_c", "logistic_c", "demean_patterns", "folds", "n_permutations")
+    missing = [key for key in required if key not in analysis]
+    if missing:
+        raise InputError(None, "analysis", f"the analysis entry lacks {', '.join(missing)}", "validate the config so defaults are filled in")
+    if analysis["kind"] not in ("within", "cross"):
+        raise InputError(None, f"analyses[{analysis['name']}].kind", f"unknown kind {analysis['kind']!r}", "use within or cross")
+    return analysis, str(params["subject"]), str(params["roi"]), int(params["seed"])
+
+
+def _read_mask(path):
+    image = load_nifti(path, what="ROI mask")
+    data = np.asarray(image.dataobj)
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"an ROI mask must be 3-D, got shape {data.shape}", "write the ROI mask as a 3-D image")
+    values = np.unique(data)
+    if not np.isin(values, (0, 1)).all():
+        raise InputError(path, "data", f"an ROI mask holds 0 and 1 only, found {values[:10].tolist()}", "binarise the mask (1 = in ROI)")
+    inside = data == 1
+    if not inside.any():
+        raise InputError(path, "data", "the ROI mask is empty", "check the ROI definition (labels, image or sphere) against the data")
+    return inside, image.affine
+
+
+def read_roi_patterns(pattern_paths, table_paths, mask_path, subject):
+    """The ROI's voxels of every pattern, in a canonical order.
+
+    Parameters
+    ----------
+    pattern_paths, table_paths : list of str
+        Per-run 4D pattern images and their tables, in the same order.
+    mask_path : str
+        The ROI mask (3D, 1 = in ROI) on the same grid.
+    subject : str
+        The subject the files must belong to.
+
+    Returns
+    -------
+    patterns : ndarray, shape (n_patterns, n_voxels)
+        Float64; voxels in C order of the mask; rows sorted by run, then volume.
+    table : pandas.DataFrame
+        The rows of the tables in the same order, with a ``run`` column
+        (``<session>_<run_id>`` when there are sessions) and ``source`` (the table path).
+    coordinates : ndarray of int, shape (n_voxels, 3)
+        Grid indices ``i, j, k`` of the ROI's voxels.
+    """
+    pattern_paths = [pattern_paths] if isinstance(pattern_paths, str) else list(pattern_paths)
+    table_paths = [table_paths] if isinstance(table_paths, str) else list(table_paths)
+    if not pattern_paths or len(pattern_paths) != len(table_paths):
+        raise InputError(None, "inputs", f"{len(pattern_paths)} pattern images but {len(table_paths)} tables",
+                         "pass one table per pattern image, in the same order")
+    inside, mask_affine = _read_mask(mask_path)
+    blocks, tables = [], []
+    for image_path, table_path in zip(pattern_paths, table_paths):
+        table = read_tsv(table_path, TABLE_COLUMNS, what="pattern table")
+        image = load_nifti(image_path, what="pattern image")
+        if image.shape[:3] != inside.shape or len(image.shape) not in (3, 4):
+            raise InputError(image_path, "dim", f"grid {image.shape} does not match the ROI mask's {inside.shape} ({mask_path})",
+                             "make the ROI mask on the subject's pattern grid")
+        if not np.allclose(image.affine, mask_affine, atol=_AFFINE_TOLERANCE_MM):
+            raise InputError(image_path, "affine", f"the image affine differs from the ROI mask's ({mask_path})",
+                             "make the ROI mask on the subject's pattern grid")
+        data = image.get_fdata(dtype=np.float64)
+        data = data[..., np.newaxis] if data.ndim == 3 else data
+        n_volumes = data.shape[3]
+        if len(table) != n_volumes:
+            raise InputError(table_path, "volume", f"{len(table)} rows but {image_path} has {n_volumes} volumes",
+                             "write one table row per pattern volume")
+        volumes = pd.to_numeric(table["volume"], errors="coerce").to_numpy()
+        if not np.array_equal(volumes, np.arange(n_volumes)):
+            raise InputError(table_path, "volume", f"expected 0 .. {n_volumes - 1} in order, got {table['volume'].tolist()[:8]}",
+                             "number the volumes from 0 in file order")
+        subjects = {_plain_subject(value) for value in table["subject"]}
+        if subjects != {_plain_subject(subject)}:
+            raise InputError(table_path, "subject", f"the table belongs to subject(s) {sorted(subjects)}, this job decodes {subject}",
+                             "pass this subject's pattern files only")
+        roi_data = data[inside].T  # (n_volumes, n_voxels), voxels in C order of the mask
+        if not np.all(np.isfinite(roi_data)):
+            raise InputError(image_path, "data", "the patterns hold NaN or infinite values inside the ROI", "re-estimate the patterns or shrink the ROI")
+        sessions = table["session"]
+        runs = [str(run) if pd.isna(session) or str(run).startswith(f"{session}_") else f"{session}_{run}"
+                for session, run in zip(sessions, table["run_id"])]
+        table = table.assign(run=runs, source=str(table_path), condition=table["condition"].astype(str))
+        blocks.append(roi_data)
+        tables.append(table)
+    table = pd.concat(tables, ignore_index=True)
+    patterns = np.vstack(blocks)
+    owners = table.groupby("run")["source"].nunique()
+    if (owners > 1).any():
+        run_id = owners.index[int(np.flatnonzero(owners.to_numpy() > 1)[0])]
+        raise InputError(_files_label(table_paths), "run_id", f"run {run_id} appears in more than one pattern table", "pass each run once")
+    # by run, then volume: the order of the input lists does not matter
+    order = table.assign(volume=pd.to_numeric(table["volume"])).sort_values(["run", "volume"], kind="stable").index.to_numpy()
+    return patterns[order], table.iloc[order].reset_index(drop=True), np.argwhere(inside)
+
+
+def analysis_labels(analysis, table, subject, tables_label):
+    """Class (and set) of every pattern of the analysis; the other patterns are dropped.
+
+    Parameters
+    ----------
+    analysis : dict
+        The analysis config entry (``classes`` for ``within``, ``sets`` for ``cross``).
+    table : pandas.DataFrame
+        From :func:`read_roi_patterns`.
+    subject : str
+    tables_label : str
+        Names the pattern tables in errors.
+
+    Returns
+    -------
+    keep : ndarray of bool, shape (n_rows,)
+    labels : ndarray of int
+        Class index of each kept pattern.
+    set_index : ndarray of int or None
+        0/1 for the two sets of a cross analysis (None for ``within``).
+    class_names : list of str
+    set_names : list of str or None
+    """
+    name = analysis["name"]
+    conditions = table["condition"].to_numpy()
+    present = set(conditions.tolist())
+    if analysis["kind"] == "within":
+        classes = analysis.get("classes") or {}
+        if len(classes) < 2:
+            raise InputError(None, f"analyses[{name}].classes", f"decoding needs at least two classes, got {list(classes)}", "define two or more classes")
+        class_of, set_of = {}, None
+        for index, (klass, members) in enumerate(classes.items()):
+            for condition in members:
+                if condition in class_of:
+                    raise InputError(None, f"analyses[{name}].classes", f"condition {condition!r} belongs to two classes",
+                                     "put each condition in one class")
+                class_of[condition] = index
+        class_names, set_names = list(classes), None
+    else:
+        sets = analysis.get("sets") or {}
+        if len(sets) != 2:
+            raise InputError(None, f"analyses[{name}].sets", f"cross-decoding needs exactly two sets, got {list(sets)}", "define two sets")
+        set_names = list(sets)
+        class_names = list(sets[set_names[0]])
+        if sorted(sets[set_names[1]]) != sorted(class_names) or len(class_names) < 2:
+            raise InputError(None, f"analyses[{name}].sets", f"the sets must map the same two or more classes, got {list(sets[set_names[0]])} "
+                             f"and {list(sets[set_names[1]])}", "give both sets the same class labels")
+        class_of, set_of = {}, {}
+        for set_number, set_name in enumerate(set_names):
+            for klass, condition in sets[set_name].items():
+                if condition in class_of:
+                    raise InputError(None, f"analyses[{name}].sets", f"condition {condition!r} appears twice", "use each condition once")
+                class_of[condition] = class_names.index(klass)
+                set_of[condition] = set_number
+    absent = [condition for condition in class_of if condition not in present]
+    if absent:
+        raise InputError(tables_label, "condition", f"subject {subject}: analysis {name!r} names condition(s) {absent} found in none of the "
+                         f"subject's pattern tables (found: {sorted(present)[:12]})", "fix the condition names in the analysis or model them in the GLM")
+    keep = np.array([condition in class_of for condition in conditions], dtype=bool)
+    labels = np.array([class_of[condition] for condition in conditions[keep]], dtype=np.int64)
+    set_index = None if set_of is None else np.array([set_of[condition] for condition in conditions[keep]], dtype=np.int64)
+    return keep, labels, set_index, class_names, set_names
+
+
+def _check_sets_in_runs(set_index, runs, set_names, subject, tables_label):
+    for set_number, set_name in enumerate(set_names):
+        missing = sorted(set(runs.tolist()) - set(runs[set_index == set_number].tolist()))
+        if missing:
+            raise InputError(tables_label, "condition", f"subject {subject}: set {set_name!r} has no pattern in run {missing[0]}",
+                             "model both sets' conditions in every run, or leave that run out of the dataset")
+
+
+def _count_labels(voxel_counts):
+    return [str(count) for count in voxel_counts]
+
+
+def _score_rows(result, subject, name, roi, voxel_counts):
+    counts = _count_labels(voxel_counts)
+    test_runs = [_RUN_SEPARATOR.join(map(str, runs)) for runs in result.test_runs]
+    n_folds = len(test_runs)
+    frames = []
+    for direction, scores in result.directions.items():
+        # rows: count-major, fold-minor (the contract's order within a direction)
+        frames.append(pd.DataFrame({
+            "subject": subject, "analysis": name, "roi": roi, "direction": direction,
+            "n_voxels": np.repeat(counts, n_folds), "n_used": np.repeat(result.n_used, n_folds),
+            "fold": np.tile(np.arange(1, n_folds + 1), len(counts)), "test_runs": np.tile(test_runs, len(counts)),
+            "n_train": np.tile(scores.n_train, len(counts)), "n_test": np.tile(scores.n_test, len(counts)),
+            "accuracy": scores.accuracy.T.ravel(), "balanced_accuracy": scores.balanced_accuracy.T.ravel()}))
+    return pd.concat(frames, ignore_index=True)[list(SCORE_COLUMNS)]
+
+
+def _null_rows(result, subject, name, roi, voxel_counts):
+    counts = _count_labels(voxel_counts)
+    n_permutations = result.permuted_labels.shape[0]
+    frames = []
+    for direction, scores in result.directions.items():
+        frames.append(pd.DataFrame({
+            "subject": subject, "analysis": name, "roi": roi, "direction": direction,
+            "n_voxels": np.repeat(counts, n_permutations), "permutation": np.tile(np.arange(1, n_permutations + 1), len(counts)),
+            "balanced_accuracy": scores.null_balanced_accuracy.T.ravel(), "accuracy": scores.null_accuracy.T.ravel()}))
+    return pd.concat(frames, ignore_index=True)[list(NULL_COLUMNS)]
+
+
+def _ranking_rows(result, coordinates, cross):
+    frames = []
+    for train_set, rankings in result.rankings.items():
+        scores = result.voxel_scores[train_set]
+        n_folds, n_voxels = rankings.shape
+        voxels = rankings.ravel()
+        frame = pd.DataFrame({
+            "fold": np.repeat(np.arange(1, n_folds + 1), n_voxels), "rank": np.tile(np.arange(1, n_voxels + 1), n_folds),
+            "voxel_index": voxels, "i": coordinates[voxels, 0], "j": coordinates[voxels, 1], "k": coordinates[voxels, 2],
+            "score": np.full(voxels.size, np.nan) if scores is None else np.take_along_axis(scores, rankings, axis=1).ravel()})
+        if cross:
+            frame.insert(0, "train_set", train_set)
+        frames.append(frame)
+    return pd.concat(frames, ignore_index=True)
+
+
+def _confusion_rows(result, class_names, voxel_counts):
+    counts = _count_labels(voxel_counts)
+    n_classes = len(class_names)
+    frames = []
+    for direction, scores in result.directions.items():
+        frames.append(pd.DataFrame({
+            "direction": direction, "n_voxels": np.repeat(counts, n_classes * n_classes),
+            "true_class": np.tile(np.repeat(class_names, n_classes), len(counts)),
+            "predicted_class": np.tile(class_names, n_classes * len(counts)), "count": scores.confusion.ravel()}))
+    return pd.concat(frames, ignore_index=True)[list(CONFUSION_COLUMNS)]
+
+
+def run(inputs, outputs, params, log):
+    """Decode one subject x analysis x ROI and write scores, null, rankings and confusion.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``patterns`` (list of per-run 4D NIfTI), ``tables`` (their TSVs, same
+        order), ``mask`` (the ROI mask).
+    outputs : dict
+        ``scores`` (TSV), ``null`` (TSV.gz), ``rankings`` (TSV.gz), ``confusion`` (TSV).
+    params : dict
+        ``analysis`` (the config entry, defaults filled), ``subject``, ``roi``, ``seed``.
+    log : logging.Logger
+        Receives warnings (counts beyond the ROI size, unconverged fits).
+
+    Raises
+    ------
+    InputError
+        Bad files, conditions absent from every table, fewer than two
+        classes, a class absent from a training fold, a set missing from a run.
+    """
+    analysis, subject, roi, seed = _check_params(params)
+    name = analysis["name"]
+    table_paths = [inputs["tables"]] if isinstance(inputs["tables"], str) else list(inputs["tables"])
+    tables_label = _files_label(table_paths)
+    patterns, table, coordinates = read_roi_patterns(inputs["patterns"], table_paths, inputs["mask"], subject)
+    keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, tables_label)
+    patterns, runs = patterns[keep], table["run"].to_numpy()[keep]
+    scheme, n_groups = analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2)
+    folds = make_folds(runs, scheme, n_groups)
+    if set_index is None:
+        check_training_classes(labels, runs, folds, class_names, subject, file=tables_label)
+    else:
+        _check_sets_in_runs(set_index, runs, set_names, subject, tables_label)
+        for set_number in (0, 1):
+            members = set_index == set_number
+            check_training_classes(labels[members], runs[members], make_folds(runs[members], scheme, n_groups), class_names, subject,
+                                   file=tables_label)
+    voxel_counts = list(analysis["voxel_counts"])
+    n_voxels = patterns.shape[1]
+    _, too_large = resolve_counts(voxel_counts, n_voxels)
+    if too_large:
+        log.warning("subject %s, ROI %s has %d voxels: voxel count(s) %s exceed it and use all %d (see n_used)",
+                    subject, roi, n_voxels, ", ".join(map(str, too_large)), n_voxels)
+    options = {"folds": folds, "n_classes": len(class_names), "classifier": analysis["classifier"], "selection": analysis["selection"],
+               "demean_patterns": analysis["demean_patterns"], "svm_c": analysis["svm_c"], "logistic_c": analysis["logistic_c"],
+               "n_permutations": int(analysis["n_permutations"]), "rng": permutation_rng(seed, subject, name),
+               "selection_rng": np.random.default_rng(seed_from(seed, "voxel_order", subject, name, roi))}
+    if set_index is None:
+        result = decode_curve(patterns, labels, runs, voxel_counts, **options)
+    else:
+        result = decode_cross(patterns, labels, set_index, runs, voxel_counts, set_names=tuple(set_names), **options)
+    if result.n_not_converged:
+        log.warning("subject %s, ROI %s: %d logistic-regression fit(s) stopped before converging (scikit-learn's default max_iter)",
+                    subject, roi, result.n_not_converged)
+    write_tsv(outputs["scores"], _score_rows(result, subject, name, roi, voxel_counts))
+    write_tsv(outputs["null"], _null_rows(result, subject, name, roi, voxel_counts))
+    write_tsv(outputs["rankings"], _ranking_rows(result, coordinates, set_index is not None))
+    write_tsv(outputs["confusion"], _confusion_rows(result, class_names, voxel_counts))

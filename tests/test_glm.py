@@ -9,6 +9,7 @@ noise of known coefficient, noise-free data of known amplitudes); the job
 end to end on a tiny invented run written to tmp_path, read back with nibabel.
 """
 
+import dataclasses
 import logging
 from pathlib import Path
 
@@ -24,7 +25,7 @@ from scipy.stats import gamma
 import foldwise.glm as glm_module
 from foldwise.design import build_design, frame_times
 from foldwise.errors import InputError
-from foldwise.glm import (ar1_coefficients, ar1_moment_table, bin_ar1, estimate_patterns, fit_ar1, fit_lss, fit_ols,
+from foldwise.glm import (AR1_STEP, ar1_coefficients, ar1_moment_table, bin_ar1, estimate_patterns, fit_ar1, fit_lss, fit_ols,
                           whiten_ar1)
 from foldwise.fileio import save_nifti, write_json, write_tsv
 from foldwise.hrf import HRF_DURATION_S
@@ -213,7 +214,11 @@ def test_corrected_ar1_estimates_are_nearly_unbiased_where_the_plain_ones_are_no
 
 
 def test_bin_ar1_clips_and_rounds():
-    np.testing.assert_allclose(bin_ar1([0.234, -0.97, 0.5049, 0.95, 0.006]), [0.23, -0.9, 0.5, 0.9, 0.01])
+    np.testing.assert_allclose(bin_ar1([0.234, -0.97, 0.5049, 0.95, 0.006], step=0.01), [0.23, -0.9, 0.5, 0.9, 0.01])
+    values = np.random.default_rng(26).uniform(-0.8, 0.8, 500)
+    binned = bin_ar1(values)  # default step: multiples of AR1_STEP within half a step
+    np.testing.assert_allclose(binned / AR1_STEP, np.round(binned / AR1_STEP), atol=1e-9)
+    assert np.max(np.abs(binned - values)) <= AR1_STEP / 2 + 1e-12
     with pytest.raises(InputError):
         bin_ar1([0.1], step=0.0)
     with pytest.raises(InputError):
@@ -289,6 +294,12 @@ def test_lss_equals_a_brute_force_loop_of_one_glm_per_trial(derivatives):
     # The residual variance is that of the model with every trial (LSA).
     lsa = fit_ols(design.matrix, bold, design.pattern_columns)
     np.testing.assert_allclose(fit.residual_variance, lsa.residual_variance, rtol=1e-9)
+    # Without an intercept the data cannot be centred first; the algebra still holds.
+    no_intercept = dataclasses.replace(design, matrix=design.matrix[:, :-1], names=design.names[:-1])
+    fit = fit_lss(no_intercept.matrix, bold, design.pattern_blocks, design.pattern_table["condition"])
+    betas, t_values = _brute_force_lss(no_intercept, bold)
+    np.testing.assert_allclose(fit.betas, betas, rtol=1e-8, atol=1e-9)
+    np.testing.assert_allclose(fit.t_values, t_values, rtol=1e-7, atol=1e-8)
 
 
 def test_lss_with_ar1_equals_the_brute_force_loop_on_whitened_data():

@@ -50,7 +50,7 @@ GLM_SETTING_KEYS = ("hrf_derivatives", "highpass_s", "noise_model", "pattern_mod
 AR1_LIMIT = 0.9
 #: ... and rounded to multiples of AR1_STEP, so voxels whose coefficients
 #: round alike share one whitened design (common practice, no source).
-AR1_STEP = 0.01
+AR1_STEP = 0.02
 #: Voxels per block of float64 work (8192 x 200 scans = 13 MB).
 CHUNK_VOXELS = 8192
 #: A residual root-sum-of-squares below this fraction of the data's is
@@ -58,6 +58,9 @@ CHUNK_VOXELS = 8192
 NOISE_FLOOR = 1e-10
 _FIRST_SCAN_CHOICES = ("keep", "drop")
 _ESTIMABLE_TOLERANCE = 1e-8
+# A trial whose part outside its model's condition sums is below this fraction
+# of its size adds no direction (e.g. the only trial of its condition).
+_OWN_PART_TOLERANCE = 1e-10
 
 
 @dataclass(frozen=True, eq=False)
@@ -151,6 +154,9 @@ def _check_bold(bold_2d, n_scans):
     if bold.ndim != 2 or not np.issubdtype(bold.dtype, np.number) or bold.shape[0] != n_scans:
         raise InputError(None, "bold_2d", f"need a numeric (scans x voxels) array with {n_scans} rows (got shape {bold.shape}, "
                          f"dtype {bold.dtype})", "pass the masked BOLD data with one row per volume")
+    if not np.all(np.isfinite(bold)):
+        raise InputError(None, "bold_2d", "the data contain NaN or infinite values inside the mask",
+                         "fix the preprocessed BOLD or exclude those voxels from the brain mask")
     return bold
 
 
@@ -169,11 +175,11 @@ def _check_first_scan(first_scan):
         raise InputError(None, "first_scan", f"unknown choice {first_scan!r}", "use 'keep' (Prais-Winsten) or 'drop'")
 
 
-def _float64_block(bold, columns):
-    block = np.asarray(bold[:, columns], dtype=np.float64)
-    if not np.all(np.isfinite(block)):
-        raise InputError(None, "bold_2d", "the data contain NaN or infinite values inside the mask",
-                         "fix the preprocessed BOLD or exclude those voxels from the brain mask")
+def _float64_block(bold, columns, centre=False):
+    """Columns of the (already checked) data as float64, optionally minus each column's mean."""
+    block = np.array(bold[:, columns], dtype=np.float64)
+    if centre:
+        block -= block.mean(axis=0)
     return block
 
 
@@ -385,7 +391,7 @@ def bin_ar1(rho, step=AR1_STEP, limit=AR1_LIMIT):
     rho : array_like
         Estimated coefficients.
     step : float, optional
-        Bin width (default ``AR1_STEP`` = 0.01).
+        Bin width (default ``AR1_STEP``).
     limit : float, optional
         Clip bound, ``0 < limit < 1`` (default ``AR1_LIMIT`` = 0.9).
 
@@ -403,7 +409,7 @@ def bin_ar1(rho, step=AR1_STEP, limit=AR1_LIMIT):
 
     Examples
     --------
-    >>> bin_ar1([0.234, -0.97, 0.5049]).tolist()
+    >>> bin_ar1([0.234, -0.97, 0.5049], step=0.01).tolist()
     [0.23, -0.9, 0.5]
     """
     if not (np.isscalar(step) and np.isfinite(step) and 0 < step < 1):
@@ -483,15 +489,44 @@ def _check_rho(rho, n_voxels):
     return values
 
 
-def _noise_groups(rho):
-    """Voxel indices grouped by equal coefficient, each split into blocks of at most CHUNK_VOXELS."""
-    levels, inverse = np.unique(rho, return_inverse=True)
-    order = np.argsort(inverse, kind="stable")
-    bounds = np.searchsorted(inverse[order], np.arange(levels.size + 1))
-    for level_index, level in enumerate(levels):
-        members = order[bounds[level_index]:bounds[level_index + 1]]
-        for start in range(0, members.size, CHUNK_VOXELS):
-            yield float(level), members[start:start + CHUNK_VOXELS]
+def _by_noise_level(bold, voxel_rho, solve, n_beta_rows, n_t_rows, with_t, first_scan="keep", centre=False):
+    """Run ``solve(level, data)`` on blocks of voxels that share one AR(1) coefficient.
+
+    ``voxel_rho`` None: plain blocks, no whitening (``level`` None). Else the
+    voxels are sorted by coefficient once, so each level is a contiguous run
+    of columns, whitened with its coefficient and solved in blocks of at most
+    ``CHUNK_VOXELS``; results are put back in the input order. ``solve``
+    returns (betas, residual variance, t or None) for its block. ``centre``
+    subtracts each voxel's mean first (only valid when the nuisance columns
+    span the constant, so no reported coefficient changes).
+    """
+    n_voxels = bold.shape[1]
+    betas = np.empty((n_beta_rows, n_voxels))
+    residual_variance = np.empty(n_voxels)
+    t_values = np.empty((n_t_rows, n_voxels)) if with_t else None
+    if voxel_rho is None:
+        source, runs = bold, [(None, 0, n_voxels)]
+    else:
+        order = np.argsort(voxel_rho, kind="stable")
+        levels = voxel_rho[order]
+        source = np.take(bold, order, axis=1)
+        starts = np.flatnonzero(np.r_[True, levels[1:] != levels[:-1]])
+        runs = [(float(levels[start]), start, end) for start, end in zip(starts, np.r_[starts[1:], n_voxels])]
+    for level, run_start, run_end in runs:
+        for start in range(run_start, run_end, CHUNK_VOXELS):
+            block = slice(start, min(start + CHUNK_VOXELS, run_end))
+            data = _float64_block(source, block, centre)
+            if level is not None:
+                data = whiten_ar1(data, level, first_scan)
+            betas[:, block], residual_variance[block], t = solve(level, data)
+            if with_t:
+                t_values[:, block] = t
+    if voxel_rho is not None:  # back to the input order
+        unsorted = np.empty_like(order)
+        unsorted[order] = np.arange(n_voxels)
+        betas, residual_variance = betas[:, unsorted], residual_variance[unsorted]
+        t_values = t_values[:, unsorted] if with_t else None
+    return betas, residual_variance, t_values
 
 
 def fit_ar1(design_matrix, bold_2d, pattern_columns=None, with_t=True, rho=None, rho_design=None, first_scan="keep",
@@ -548,20 +583,18 @@ def fit_ar1(design_matrix, bold_2d, pattern_columns=None, with_t=True, rho=None,
         voxel_rho = _estimate_rho(noise_design, bold)
     else:
         voxel_rho = _check_rho(rho, n_voxels)
-    _require_estimable(_Factor(design), columns, column_names)
-    betas = np.empty((design.shape[1], n_voxels))
-    residual_variance = np.empty(n_voxels)
-    t_values = np.empty((columns.size, n_voxels)) if with_t else None
-    dof = None
-    for level, members in _noise_groups(voxel_rho):
-        factor = _Factor(whiten_ar1(design, level, first_scan))
-        data = whiten_ar1(_float64_block(bold, members), level, first_scan)
-        betas[:, members], residual_variance[members], t = _ols_block(factor, data, columns, with_t)
-        if with_t:
-            t_values[:, members] = t
-        dof = factor.n_rows - factor.rank
-    if dof is None:  # no voxels
-        dof = design.shape[0] - (first_scan == "drop") - _Factor(design).rank
+    unwhitened = _Factor(design)
+    _require_estimable(unwhitened, columns, column_names)
+    whitened_factors = {}
+
+    def solve(level, data):
+        if level not in whitened_factors:  # one factorisation per coefficient
+            whitened_factors[level] = _Factor(whiten_ar1(design, level, first_scan))
+        return _ols_block(whitened_factors[level], data, columns, with_t)
+
+    betas, residual_variance, t_values = _by_noise_level(bold, voxel_rho, solve, design.shape[1], columns.size, with_t,
+                                                         first_scan=first_scan)
+    dof = design.shape[0] - (first_scan == "drop") - unwhitened.rank  # whitening keeps the rank
     return LinearFit(betas=betas, t_values=t_values, residual_variance=residual_variance,
                      dof=np.full(columns.size, dof, dtype=np.int64), rho=voxel_rho)
 
@@ -601,10 +634,17 @@ def _lss_selection(group_index, n_basis):
     return selection.reshape(n_trials, n_trials * n_basis, (n_groups + 1) * n_basis)
 
 
+def _condition_sums(group_index, n_basis):
+    """(n_trials * n_basis, n_conditions * n_basis) 0/1 matrix summing each condition's trials per basis function."""
+    n_groups = int(group_index.max()) + 1
+    membership = (group_index[:, None] == np.arange(n_groups)[None, :]).astype(np.float64)
+    return np.kron(membership, np.eye(n_basis))
+
+
 class _LSSOperator:
     """Label-free pieces of all LSS models of one (whitened) design."""
 
-    def __init__(self, design, blocks, selection, nuisance_columns, column_names):
+    def __init__(self, design, blocks, selection, condition_sums, nuisance_columns, column_names):
         self.nuisance = _Factor(design[:, nuisance_columns])
         trial_regressors = design[:, blocks.ravel()]
         residualised = trial_regressors - self.nuisance.u @ (self.nuisance.u.T @ trial_regressors)  # Frisch-Waugh-Lovell
@@ -625,27 +665,45 @@ class _LSSOperator:
             names = [_column_label(int(blocks[k, 0]), column_names) for k in bad]
             raise InputError(None, ", ".join(names), "trial regressor(s) not estimable in their LSS model",
                              "check the events for duplicated trials (same onset and condition)")
-        masked = u * valid[:, None, :]
-        self.n_model_columns = masked.shape[2]
-        self.projectors = np.ascontiguousarray(masked.transpose(0, 2, 1).reshape(-1, masked.shape[1]))
+        # Model k spans trial k's own columns and every condition's sum (the
+        # "other trials" regressor is its condition's sum minus trial k), so
+        # its explained sum of squares is that of the shared condition sums
+        # plus that of trial k's part orthogonal to them: n_conditions + 1
+        # directions per trial instead of n_conditions + 2, most shared.
+        n_trials, n_basis = blocks.shape
+        sums = _Factor(coordinates @ condition_sums)
+        own_columns = coordinates.reshape(-1, n_trials, n_basis).transpose(1, 0, 2)  # (n_trials, q, n_basis)
+        own_part = own_columns - np.matmul(sums.u, np.matmul(sums.u.T, own_columns))
+        own_u, own_s, _ = np.linalg.svd(own_part, full_matrices=False)
+        own_valid = own_s > _OWN_PART_TOLERANCE * np.linalg.norm(own_columns, axis=(1, 2))[:, None]
+        self.shared_projector = np.ascontiguousarray(sums.u.T)
+        self.n_basis = n_basis
+        self.own_projectors = np.ascontiguousarray((own_u * own_valid[:, None, :]).transpose(0, 2, 1).reshape(-1, own_u.shape[1]))
         n_rows = design.shape[0]
-        self.dof = n_rows - self.nuisance.rank - valid.sum(axis=1)
+        self.dof = n_rows - self.nuisance.rank - sums.rank - own_valid.sum(axis=1)
+        if not np.array_equal(self.dof, n_rows - self.nuisance.rank - valid.sum(axis=1)):
+            raise InputError(None, "design", "the LSS models are numerically rank-ambiguous (nearly collinear trials)",
+                             "check the events for trials that coincide or nearly coincide")
         self.dof_all_trials = n_rows - self.nuisance.rank - self.trials.rank
         if self.dof.min() < 1 or self.dof_all_trials < 1:
             raise InputError(None, "design", "the trial-wise model leaves no residual degrees of freedom",
                              "use fewer trials per run or per_condition patterns")
 
     def apply(self, data, with_t):
-        residualised = data - self.nuisance.u @ (self.nuisance.u.T @ data)
-        z = self.trials.u.T @ residualised
+        # U is orthogonal to the nuisance columns, so U' y = U' y_r, and
+        # ||y_r||^2 = ||y||^2 - ||N' y||^2 (data centred when the nuisance spans
+        # the constant, so the subtraction loses no precision to the baseline).
+        nuisance_part = self.nuisance.u.T @ data
+        z = self.trials.u.T @ data
         betas = self.weights @ z
-        total = np.einsum("ij,ij->j", residualised, residualised)
+        total = np.maximum(np.einsum("ij,ij->j", data, data) - np.einsum("ij,ij->j", nuisance_part, nuisance_part), 0.0)
         explained_all = np.einsum("ij,ij->j", z, z)
         residual_variance = _above_rounding(np.maximum(total - explained_all, 0.0), data) / self.dof_all_trials
         t = None
         if with_t:
-            projected = (self.projectors @ z).reshape(betas.shape[0], self.n_model_columns, -1)
-            explained = np.einsum("kpv,kpv->kv", projected, projected)
+            shared = self.shared_projector @ z
+            own = (self.own_projectors @ z).reshape(betas.shape[0], self.n_basis, -1)
+            explained = np.einsum("ij,ij->j", shared, shared)[None, :] + np.einsum("kbv,kbv->kv", own, own)
             trial_rss = np.maximum(total[None, :] - explained, 0.0)
             floor = NOISE_FLOOR ** 2 * np.einsum("ij,ij->j", data, data)
             trial_variance = np.where(trial_rss > floor[None, :], trial_rss, 0.0) / self.dof[:, None]
@@ -702,8 +760,13 @@ def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True,
     columns), so with ``z = U' y_r`` model ``k`` is a ``q x p`` problem:
     ``beta_k = w_k' z`` and ``RSS_k = ||y_r||^2 - ||Q_k' z||^2`` (``Q_k``
     an orthonormal basis of model k's regressors in those coordinates),
-    with ``T - rank(N) - rank(model k)`` degrees of freedom. The data meet
-    the models in three products per block of voxels.
+    with ``T - rank(N) - rank(model k)`` degrees of freedom. Because the
+    "other trials" regressor is the condition's sum minus trial k, model k
+    spans trial k plus every condition's sum; ``||Q_k' z||^2`` is then the
+    part explained by the condition sums (shared by all models) plus that of
+    trial k's component orthogonal to them. The data meet the models in a
+    few products per block of voxels: ``N' y``, ``U' y`` (``U`` is orthogonal
+    to ``N``, so ``U' y = U' y_r``), then ``q``-dimensional ones.
     """
     design = _check_design(design_matrix)
     bold = _check_bold(bold_2d, design.shape[0])
@@ -717,6 +780,7 @@ def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True,
     in_block[blocks.ravel()] = True
     nuisance_columns = np.flatnonzero(~in_block)
     selection = _lss_selection(group_index, blocks.shape[1])
+    condition_sums = _condition_sums(group_index, blocks.shape[1])
     voxel_rho = None
     if noise_model == "ar1":
         if rho is None:
@@ -727,28 +791,20 @@ def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True,
             voxel_rho = _estimate_rho(noise_design, bold)
         else:
             voxel_rho = _check_rho(rho, n_voxels)
-    base = _LSSOperator(design, blocks, selection, nuisance_columns, column_names)
-    n_trials = blocks.shape[0]
-    betas = np.empty((n_trials, n_voxels))
-    residual_variance = np.empty(n_voxels)
-    t_values = np.empty((n_trials, n_voxels)) if with_t else None
-    if voxel_rho is None:
-        groups = ((None, block) for block in _voxel_blocks(n_voxels))
-    else:
-        groups = _noise_groups(voxel_rho)
-    operators = {}
-    for level, members in groups:
-        data = _float64_block(bold, members)
-        if level is None:
-            operator = base
-        else:
-            if level not in operators:
-                operators[level] = _LSSOperator(whiten_ar1(design, level), blocks, selection, nuisance_columns, column_names)
-            operator = operators[level]
-            data = whiten_ar1(data, level)
-        betas[:, members], residual_variance[members], t = operator.apply(data, with_t)
-        if with_t:
-            t_values[:, members] = t
+    base = _LSSOperator(design, blocks, selection, condition_sums, nuisance_columns, column_names)
+    operators = {None: base}
+
+    def solve(level, data):
+        if level not in operators:  # one set of LSS models per coefficient
+            operators[level] = _LSSOperator(whiten_ar1(design, level), blocks, selection, condition_sums,
+                                            nuisance_columns, column_names)
+        return operators[level].apply(data, with_t)
+
+    constant = np.ones((design.shape[0], 1))
+    nuisance = base.nuisance.u
+    spans_constant = np.linalg.norm(constant - nuisance @ (nuisance.T @ constant)) < 1e-8 * np.sqrt(design.shape[0])
+    betas, residual_variance, t_values = _by_noise_level(bold, voxel_rho, solve, blocks.shape[0], blocks.shape[0], with_t,
+                                                         centre=bool(spans_constant))
     return LinearFit(betas=betas, t_values=t_values, residual_variance=residual_variance,
                      dof=base.dof.astype(np.int64), rho=voxel_rho)
 

@@ -682,19 +682,22 @@ def _lda_chunk(train, test, labels, n_classes, size, valid):
     decisions = np.empty((n_spheres, test.shape[1], n_classes))
     if regular.any():
         chosen = slice(None) if regular.all() else regular  # a view, not a copy, in the usual case
-        # Sigma = diag(ridge) + U'U with U the weighted residuals; by Woodbury
-        # Sigma^-1 = D^-1 - D^-1 U' (I + U D^-1 U')^-1 U D^-1 (an n x n solve).
+        # Sigma = D + U'U with D = diag(ridge) and U the weighted residuals; by Woodbury
+        # Sigma^-1 = D^-1 - D^-1 U' (I + U D^-1 U')^-1 U D^-1, so only an n x n system is solved.
+        # One product gives every inner product needed: rows [test; M; U] against D^-1 [M; U].
+        n_test = test.shape[1]
         inverse_ridge = 1.0 / ridge[chosen]
         weighted = residuals[chosen] * row_weight[chosen][:, :, np.newaxis]
-        scaled = weighted * inverse_ridge[:, np.newaxis, :]
-        system = np.matmul(scaled, weighted.transpose(0, 2, 1))
+        features = np.concatenate([means[chosen], weighted], axis=1)  # (b, K + n, P)
+        products = np.matmul(np.concatenate([test[chosen], features], axis=1),
+                             (features * inverse_ridge[:, np.newaxis, :]).transpose(0, 2, 1))  # (b, t + K + n, K + n)
+        system = products[:, n_test + n_classes:, n_classes:].copy()  # I + U D^-1 U'
         system[:, np.arange(n_train), np.arange(n_train)] += 1.0
-        scaled_means = means[chosen] * inverse_ridge[:, np.newaxis, :]  # D^-1 M'  as (b, K, P)
-        right = np.matmul(weighted, scaled_means.transpose(0, 2, 1))  # U D^-1 M'  (b, n, K)
-        solved = np.linalg.solve(system, right)
-        coef = scaled_means.transpose(0, 2, 1) - np.matmul(scaled.transpose(0, 2, 1), solved)  # Sigma^-1 M'  (b, P, K)
-        intercept = -0.5 * np.einsum("bkp,bpk->bk", means[chosen], coef)
-        decisions[chosen] = np.matmul(test[chosen], coef) + intercept[:, np.newaxis, :]
+        solved = np.linalg.solve(system, products[:, n_test + n_classes:, :n_classes])  # (I + U D^-1 U')^-1 U D^-1 M'
+        # x Sigma^-1 M' = x D^-1 M' - (x D^-1 U') solved, for the test rows x and for the class means (intercepts).
+        through = products[:, :n_test + n_classes, :n_classes] - np.matmul(products[:, :n_test + n_classes, n_classes:], solved)
+        intercept = -0.5 * np.einsum("bkk->bk", through[:, n_test:])
+        decisions[chosen] = through[:, :n_test] + intercept[:, np.newaxis, :]
     for sphere in np.flatnonzero(~regular):  # no shrinkage anywhere (degenerate data): sklearn's lstsq, explicitly
         columns = valid[sphere]
         scale_rows = row_weight[sphere][:, np.newaxis] * residuals[sphere][:, columns]

@@ -132,13 +132,12 @@ def run(inputs, outputs, params, log):
     if spheres.n_centres == 0:
         scores = np.zeros((1 + n_permutations, 0, n_directions))
     else:
-        scores, directions = searchlight_scores(
+        scores, _ = searchlight_scores(
             patterns[design["rows"]], design["labels"], design["runs"], spheres,
             set_index=design["sets"] if cross else None, set_names=design["set_names"], classifier=classifier,
             n_permutations=n_permutations, rng=rng, fold_scheme=folds.get("scheme", "leave_one_run_out"),
             n_groups=folds.get("n_groups", 2), svm_c=analysis.get("svm_c", 1.0), n_classes=len(design["class_names"]))
-        assert directions == design["directions"]
         log.info("mean balanced accuracy over the block's centres: %s (chance %.4g)",
-                 ", ".join(f"{name} {value:.4f}" for name, value in zip(directions, scores[0].mean(axis=0))), design["chance"])
+                 ", ".join(f"{name} {value:.4f}" for name, value in zip(design["directions"], scores[0].mean(axis=0))), design["chance"])
     save_npy(outputs["scores"], scores[0].astype(np.float32))
     save_npy(outputs["null"], scores[1:].astype(np.float32))

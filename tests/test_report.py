@@ -1,0 +1,650 @@
+"""Tests of the study report: foldwise.report (pure parts) and foldwise.jobs.report (the page).
+
+Every input is built here, in a temporary folder, following the data
+contract of DESIGN.md (a small invented lanterns study; nothing is read from
+results/). Outside references, named beside each check: the PNG
+specification (file signature and IHDR chunk, W3C PNG 2nd edition), XML
+parsing by the standard library (SVG root element), Python's html.parser,
+nibabel's apply_affine (voxel-to-mm coordinates), pandas' crosstab (trial
+counts), importlib.metadata (versions), docutils and Jinja2 (the captions as
+Snakemake renders them) and Debian's chromium (the page in a real browser).
+"""
+
+import base64
+import doctest
+import json
+import logging
+import math
+import re
+import shutil
+import struct
+import subprocess
+import xml.etree.ElementTree as ElementTree
+from html.parser import HTMLParser
+from importlib import metadata
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+
+from foldwise import report
+from foldwise.config import validate
+from foldwise.errors import InputError
+from foldwise.fileio import save_nifti, write_json, write_tsv
+from foldwise.hashing import hash_object
+from foldwise.jobs import report as report_job
+
+REPO = Path(__file__).resolve().parents[1]
+SUBJECTS = ["01", "02", "03"]
+RUN_IDS = ["run-01", "run-02"]
+ROI_NAMES = ["ember", "glow"]
+CONDITIONS = ["heard_round", "heard_square", "heard_star", "seen_round", "seen_square", "seen_star"]
+SHAPES = ["round", "square", "star"]
+GRID = (10, 12, 8)
+VOXEL_MM = 3.0
+TR_S = 2.0
+N_SCANS = 40
+COUNTS = ["5", "20", "all"]
+STUDY = validate({
+    "study": {"name": "lantern-test"},
+    "dataset": {"source": "demo"},
+    "rois": [{"name": "ember", "labels": ["ember_L", "ember_R"]}, {"name": "glow", "labels": ["glow_L", "glow_R"]}],
+    "analyses": [
+        {"name": "shape", "kind": "within", "voxel_counts": [5, 20, "all"], "n_permutations": 20,
+         "classes": {shape: [f"seen_{shape}"] for shape in SHAPES}},
+        {"name": "carry", "kind": "cross", "voxel_counts": [5, 20, "all"], "n_permutations": 20,
+         "sets": {"seen": {shape: f"seen_{shape}" for shape in SHAPES},
+                  "heard": {shape: f"heard_{shape}" for shape in SHAPES}}},
+    ],
+    "group": {"n_draws": 100},
+}, path="the test study")
+CROSS_DIRECTIONS = ["seen->heard", "heard->seen", "seen<->heard", "seen->seen", "heard->heard"]
+ALPHA = 0.05
+
+
+# -- a synthetic study on disk ----------------------------------------------------------
+
+def _affine():
+    affine = np.diag([VOXEL_MM] * 3 + [1.0])
+    affine[:3, 3] = -VOXEL_MM * (np.asarray(GRID) - 1) / 2
+    return affine
+
+
+def _subject_images(rng):
+    i, j, k = np.indices(GRID)
+    centre = (np.asarray(GRID) - 1) / 2
+    brain = ((i - centre[0]) / 4.6) ** 2 + ((j - centre[1]) / 5.6) ** 2 + ((k - centre[2]) / 3.6) ** 2 <= 1
+    mean = np.where(brain, 900 + 100 * rng.random(GRID), 40 * rng.random(GRID))
+    ember = brain & (k == 4) & (np.abs(j - 6) <= 1) & ((np.abs(i - 2) <= 1) | (np.abs(i - 7) <= 1))
+    ember &= rng.random(GRID) < 0.9
+    glow = brain & (j >= 9) & (k >= 3) & (k <= 5) & (np.abs(i - 4.5) <= 2)
+    return mean, brain, {"ember": ember, "glow": glow}
+
+
+def _design(rng):
+    columns = {condition: np.convolve((rng.random(N_SCANS) < 0.08).astype(float), np.hanning(6), mode="same")
+               for condition in CONDITIONS}
+    columns["drift_01"] = np.cos(np.pi * (np.arange(N_SCANS) + 0.5) / N_SCANS)
+    columns["intercept"] = np.ones(N_SCANS)
+    return pd.DataFrame(columns)
+
+
+def _events(rng, run_index):
+    trial_types = [condition for condition in CONDITIONS for _ in range(3)]
+    if run_index == 1:
+        trial_types.append("seen_star")  # an uneven run: 3 to 4 seen_star trials per run
+    onsets = np.sort(rng.uniform(4, (N_SCANS - 4) * TR_S, size=len(trial_types))).round(1)
+    return pd.DataFrame({"onset": onsets, "duration": 2.0, "trial_type": rng.permutation(trial_types)})
+
+
+def _directions(analysis):
+    return CROSS_DIRECTIONS if analysis["kind"] == "cross" else ["within"]
+
+
+def _summary(subject, analysis, roi_sizes, rng):
+    rows = []
+    for roi in ROI_NAMES:
+        for direction in _directions(analysis):
+            for count in COUNTS:
+                used = roi_sizes[roi] if count == "all" else min(int(count), roi_sizes[roi])
+                effect = 0.25 if roi == "ember" else 0.0
+                score = float(np.clip(1 / 3 + effect * (1 - 1 / (1 + used / 10)) + rng.normal(0, 0.04), 0, 1))
+                rows.append({"subject": subject, "analysis": analysis["name"], "roi": roi, "direction": direction,
+                             "n_voxels": count, "n_used": used, "n_folds": 2, "accuracy": score,
+                             "balanced_accuracy": score, "chance": 1 / 3})
+    return pd.DataFrame(rows)
+
+
+def _confusion(analysis, rng):
+    rows = []
+    for direction in _directions(analysis):
+        for count in COUNTS:
+            for true_class in SHAPES:
+                predicted = rng.multinomial(6, [0.5, 0.25, 0.25])
+                order = [true_class] + [shape for shape in SHAPES if shape != true_class]
+                rows += [{"direction": direction, "n_voxels": count, "true_class": true_class, "predicted_class": shape,
+                          "count": int(n)} for shape, n in zip(order, predicted)]
+    return pd.DataFrame(rows)
+
+
+def _group(analysis, summaries):
+    table = pd.concat(summaries, ignore_index=True)
+    rows = []
+    for roi in ROI_NAMES:
+        for direction in _directions(analysis):
+            for count in COUNTS:
+                scores = table[(table.roi == roi) & (table.direction == direction) & (table.n_voxels == count)]
+                values = scores["balanced_accuracy"].to_numpy()
+                mean, sem = values.mean(), values.std(ddof=1) / math.sqrt(len(values))
+                p_fwe = 0.01 if (roi == "ember" and count != "5") else 0.6
+                if roi == "ember" and count == "5":
+                    p_fwe = ALPHA  # exactly alpha: not marked (the marker rule is p_fwe < alpha)
+                rows.append({"analysis": analysis["name"], "roi": roi, "direction": direction, "n_voxels": count,
+                             "n_subjects": len(values), "chance": 1 / 3, "mean": mean, "sem": sem,
+                             "ci_low": mean - 4.3 * sem, "ci_high": mean + 4.3 * sem, "t": (mean - 1 / 3) / sem,
+                             "p_t": 0.02, "p_wilcoxon": 0.125, "p_perm": 0.03, "p_fwe": p_fwe,
+                             "prevalence_p_global": 0.04 if roi == "ember" else np.nan,
+                             "prevalence_gamma0": 0.2 if roi == "ember" else np.nan,
+                             "prevalence_p_majority": 0.3 if roi == "ember" else np.nan})
+    return pd.DataFrame(rows)
+
+
+def build_study(root, seed=5):
+    """Write a complete set of report inputs under ``root``; return (inputs, params, facts)."""
+    root = Path(root)
+    rng = np.random.default_rng(seed)
+    affine = _affine()
+    inputs = {key: [] for key in ("designs", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
+                                  "summaries", "confusions", "group_tables", "provenance")}
+    roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in STUDY["analyses"]}
+    for subject in SUBJECTS:
+        masks = root / "masks" / f"sub-{subject}"
+        mean, brain, rois = _subject_images(rng)
+        save_nifti(masks / f"sub-{subject}_mean.nii.gz", mean, affine)
+        save_nifti(masks / f"sub-{subject}_brainmask.nii.gz", brain, affine, dtype=np.uint8)
+        inputs["means"].append(str(masks / f"sub-{subject}_mean.nii.gz"))
+        inputs["brain_masks"].append(str(masks / f"sub-{subject}_brainmask.nii.gz"))
+        for roi, mask in rois.items():
+            save_nifti(masks / f"sub-{subject}_roi-{roi}_mask.nii.gz", mask, affine, dtype=np.uint8)
+            inputs["roi_masks"].append(str(masks / f"sub-{subject}_roi-{roi}_mask.nii.gz"))
+        roi_sizes[subject] = {roi: int(mask.sum()) for roi, mask in rois.items()}
+        write_tsv(masks / f"sub-{subject}_roi_counts.tsv", pd.DataFrame({
+            "subject": subject, "roi": ROI_NAMES, "n_voxels": [roi_sizes[subject][roi] for roi in ROI_NAMES],
+            "min_voxels": 10, "below_minimum": False}))
+        inputs["roi_counts"].append(str(masks / f"sub-{subject}_roi_counts.tsv"))
+        patterns = root / "patterns" / f"sub-{subject}"
+        write_tsv(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv", _design(rng))
+        inputs["designs"].append(str(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv"))
+        if subject == SUBJECTS[0]:
+            resvar = np.where(brain, rng.gamma(4.0, 25.0, GRID), 0.0)
+            save_nifti(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz", resvar, affine)
+            inputs["resvar"] = str(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz")
+        for run_index, run_id in enumerate(RUN_IDS):
+            func = root / "bids" / f"sub-{subject}" / "func"
+            write_tsv(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv", _events(rng, run_index))
+            write_json(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json", {"RepetitionTime": TR_S})
+            inputs["events"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv"))
+            inputs["sidecars"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json"))
+        for analysis in STUDY["analyses"]:
+            name = analysis["name"]
+            frame = _summary(subject, analysis, roi_sizes[subject], rng)
+            summaries[name].append(frame)
+            write_tsv(root / "decoding" / name / f"sub-{subject}_summary.tsv", frame)
+            inputs["summaries"].append(str(root / "decoding" / name / f"sub-{subject}_summary.tsv"))
+            for roi in ROI_NAMES:
+                path = root / "decoding" / name / f"sub-{subject}" / f"sub-{subject}_roi-{roi}_confusion.tsv"
+                write_tsv(path, _confusion(analysis, rng))
+                inputs["confusions"].append(str(path))
+    for analysis in STUDY["analyses"]:
+        path = root / "group" / analysis["name"] / f"{analysis['name']}_group.tsv"
+        write_tsv(path, _group(analysis, summaries[analysis["name"]]))
+        inputs["group_tables"].append(str(path))
+    n_outputs = {"brain_mask": 3, "glm": 5, "group": 3}
+    for step, n_jobs in (("brain_mask", 3), ("glm", 6), ("group", 2)):
+        for job in range(n_jobs):
+            path = root / "provenance" / step / f"job-{job}.json"
+            write_json(path, {"step": step, "outputs": [{"name": f"o{k}", "path": f"x/{k}", "sha256": "0" * 64}
+                                                        for k in range(n_outputs[step])],
+                              "restored_from_memo": bool(job % 2), "wall_time_s": 1.5 + job})
+            inputs["provenance"].append(str(path))
+    write_json(root / "demo" / "ground_truth.json", {"rois": {
+        "ember": {"decodes": {"shape_seen": True, "shape_heard": True, "modality": False}},
+        "glow": {"decodes": {"shape_seen": True, "shape_heard": False, "modality": True}}}})
+    inputs["ground_truth"] = str(root / "demo" / "ground_truth.json")
+    params = {"study": STUDY, "subjects": list(SUBJECTS), "runs": {subject: list(RUN_IDS) for subject in SUBJECTS},
+              "config_file": "config/config.yaml"}
+    facts = {"roi_sizes": roi_sizes, "n_jobs": 11, "n_outputs": 3 * 3 + 6 * 5 + 2 * 3}
+    return inputs, params, facts
+
+
+def outputs_for(folder):
+    figures_dir = str(Path(folder) / "figures")
+    return {"html": str(Path(folder) / "index.html"), "figures": report.figure_plan(STUDY, SUBJECTS, figures_dir)}
+
+
+def _quiet_log():
+    log = logging.getLogger("foldwise.test.report")
+    log.addHandler(logging.NullHandler())
+    log.propagate = False
+    return log
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    root = tmp_path_factory.mktemp("study")
+    inputs, params, facts = build_study(root / "inputs")
+    outputs = outputs_for(root / "report")
+    report_job.run(inputs, outputs, params, _quiet_log())
+    return {"root": root, "inputs": inputs, "params": params, "facts": facts, "outputs": outputs,
+            "html": Path(outputs["html"]).read_text(encoding="utf-8")}
+
+
+class _PageParser(HTMLParser):
+    """Collects tags, attributes, section ids and the visible text of a page."""
+
+    def __init__(self):
+        super().__init__()
+        self.elements, self.text, self.style = [], [], []
+        self._in_style = False
+
+    def handle_starttag(self, tag, attrs):
+        self.elements.append((tag, dict(attrs)))
+        self._in_style = tag == "style"
+
+    def handle_endtag(self, tag):
+        if tag == "style":
+            self._in_style = False
+
+    def handle_data(self, data):
+        (self.style if self._in_style else self.text).append(data)
+
+
+def _parse(page_html):
+    parser = _PageParser()
+    parser.feed(page_html)
+    parser.close()
+    return parser
+
+
+def _text(page_html):
+    return re.sub(r"\s+", " ", " ".join(_parse(page_html).text))
+
+
+# -- the figure plan ------------------------------------------------------------------------
+
+def test_figure_plan_lists_png_and_svg_of_every_figure_in_page_order():
+    plan = report.figure_plan(STUDY, SUBJECTS)
+    n_figures = 2 * len(SUBJECTS) + 1 + 2 * sum(len(report.analysis_rois(STUDY, a)) for a in STUDY["analyses"])
+    assert len(plan) == 2 * n_figures == len(set(plan))
+    assert plan == report.figure_plan(STUDY, list(SUBJECTS))  # deterministic
+    assert all(path.startswith("results/report/figures/") for path in plan)
+    assert [Path(path).suffix for path in plan[:4]] == [".png", ".svg", ".png", ".svg"]
+    assert plan[:6] == ["results/report/figures/sub-01_design.png", "results/report/figures/sub-01_design.svg",
+                        "results/report/figures/sub-01_masks.png", "results/report/figures/sub-01_masks.svg",
+                        "results/report/figures/sub-02_design.png", "results/report/figures/sub-02_design.svg"]
+    assert "results/report/figures/sub-01_resvar.png" in plan and "results/report/figures/sub-02_resvar.png" not in plan
+    assert plan[-2:] == ["results/report/figures/carry_roi-glow_confusion.png",
+                         "results/report/figures/carry_roi-glow_confusion.svg"]
+
+
+def test_figure_catalogue_names_existing_captions():
+    for entry in report.figure_catalogue(STUDY, SUBJECTS):
+        assert (REPO / entry["caption"]).is_file(), entry["caption"]
+    kinds = {entry["kind"]: entry["caption"] for entry in report.figure_catalogue(STUDY, SUBJECTS)}
+    assert set(kinds) == {"design", "masks", "resvar", "curve", "confusion"}
+
+
+def test_analysis_with_its_own_roi_list_plans_only_those():
+    study = dict(STUDY, analyses=[dict(STUDY["analyses"][0], rois=["glow"])])
+    stems = [entry["stem"] for entry in report.figure_catalogue(study, ["01"])]
+    assert stems[-2:] == ["shape_roi-glow_curve", "shape_roi-glow_confusion"] and not any("ember" in s for s in stems)
+
+
+def test_module_examples_hold():
+    # The docstring examples are part of the contract (run as doctests).
+    result = doctest.testmod(report, optionflags=doctest.NORMALIZE_WHITESPACE)
+    assert result.attempted >= 15 and result.failed == 0
+
+
+# -- pure parts --------------------------------------------------------------------------------
+
+def test_all_is_drawn_at_the_roi_mean_size_and_labelled():
+    positions, labels = report.voxel_count_positions(["10", "25", "all"], 136.4)
+    assert positions.tolist() == [10.0, 25.0, 136.4] and labels == ["10", "25", "all (136)"]
+    with pytest.raises(InputError, match="neither a whole number"):
+        report.voxel_count_positions(["ten"], 100.0)
+
+
+def test_curve_data_sorts_by_position_marks_strictly_below_alpha_and_flags_capped_counts():
+    group_rows = pd.DataFrame({"n_voxels": ["all", "5", "50"], "mean": [0.6, 0.4, 0.5], "ci_low": [0.5, 0.3, 0.4],
+                               "ci_high": [0.7, 0.5, 0.6], "chance": [1 / 3] * 3, "p_fwe": [0.01, 0.05, np.nan]})
+    subject_rows = pd.DataFrame({"subject": ["02", "01", "01", "01", "02", "02"],
+                                 "n_voxels": ["5", "5", "50", "all", "50", "all"],
+                                 "n_used": [5, 5, 40, 40, 50, 60], "balanced_accuracy": [0.41, 0.39, 0.5, 0.61, 0.52, 0.6]})
+    data = report.curve_data(group_rows, subject_rows, roi_mean_voxels=30.0, alpha=0.05)
+    assert data["counts"] == ["5", "all", "50"]  # 'all' (30 voxels on average) sits before 50
+    assert data["x"].tolist() == [5.0, 30.0, 50.0]
+    assert data["mean"].tolist() == [0.4, 0.6, 0.5]
+    assert data["significant"].tolist() == [False, True, False]  # p = alpha is not marked; NaN is not marked
+    assert data["capped"].tolist() == [False, False, True]  # subject 01's ROI held 40 < 50 voxels
+    assert data["subjects"] == ["01", "02"]
+    np.testing.assert_array_equal(data["scores"], [[0.39, 0.61, 0.5], [0.41, 0.6, 0.52]])
+
+
+def test_confusion_count_falls_back_to_the_nearest_on_the_log_scale():
+    assert report.choose_confusion_count(100, ["10", "100", "all"], 300.0) == ("100", True)
+    assert report.choose_confusion_count(100, ["10", "50", "400"], 300.0) == ("50", False)  # |log 0.5| < |log 4|
+    assert report.choose_confusion_count(100, ["50", "200"], 300.0) == ("50", False)  # a tie goes to the smaller count
+    assert report.choose_confusion_count("all", ["10", "200"], 180.0) == ("200", False)
+    with pytest.raises(InputError, match="no voxel count"):
+        report.choose_confusion_count(100, [], 10.0)
+
+
+def test_confusion_matrix_rejects_an_unknown_class():
+    rows = pd.DataFrame({"true_class": ["round"], "predicted_class": ["moon"], "count": [2]})
+    with pytest.raises(InputError, match="'moon' is not among"):
+        report.confusion_matrix(rows, SHAPES)
+
+
+def test_trials_per_condition_agree_with_pandas_crosstab():
+    rng = np.random.default_rng(3)
+    runs = [_events(rng, index) for index in range(3)]
+    summary = report.trials_per_condition(runs).set_index("condition")
+    # Source: pandas.crosstab of run x trial_type (an independent count).
+    stacked = pd.concat([run.assign(run=index) for index, run in enumerate(runs)])
+    table = pd.crosstab(stacked["run"], stacked["trial_type"])
+    assert summary["min_per_run"].to_dict() == table.min().to_dict()
+    assert summary["max_per_run"].to_dict() == table.max().to_dict()
+    assert summary.loc["seen_star", "max_per_run"] == 4 and summary.loc["seen_round", "max_per_run"] == 3
+
+
+def test_grid_axes_match_nibabel_apply_affine():
+    affine = np.array([[-2.0, 0, 0, 30], [0, 2.5, 0, -40], [0, 0, 3.0, -12], [0, 0, 0, 1]])
+    shape = (5, 4, 3)
+    coordinates, flips, names = report.grid_axes_mm(affine, shape)
+    assert names == ("x", "y", "z") and flips == (True, False, False)
+    for axis in range(3):
+        index = np.zeros((shape[axis], 3))
+        index[:, axis] = np.arange(shape[axis])
+        # Source: nibabel.affines.apply_affine (voxel indices to world mm).
+        world = nib.affines.apply_affine(affine, index)[:, axis]
+        np.testing.assert_allclose(coordinates[axis], np.sort(world))
+    rotated = affine.copy()
+    rotated[:3, :3] = np.array([[0.8, -0.6, 0], [0.6, 0.8, 0], [0, 0, 1]]) @ rotated[:3, :3]
+    coordinates, _, names = report.grid_axes_mm(rotated, shape)
+    assert names[0] == "distance along grid axis 1"
+    # Source: nibabel.affines.voxel_sizes (the spacing along each grid axis).
+    for axis, size in enumerate(nib.affines.voxel_sizes(rotated)):
+        np.testing.assert_allclose(coordinates[axis], size * np.arange(shape[axis]))
+
+
+def test_best_slices_pick_the_fullest_planes():
+    mask = np.zeros((6, 7, 5), dtype=bool)
+    mask[4, 1:6, 2] = True
+    mask[1, 3, 2] = True
+    assert report.best_slices(mask) == (4, 3, 2)
+    assert report.best_slices(np.zeros((6, 7, 5), dtype=bool)) == (3, 3, 2)
+
+
+def test_manifest_summary_counts_jobs_and_outputs_only():
+    records = [{"step": "glm", "outputs": [1, 2], "wall_time_s": 3.0, "restored_from_memo": True},
+               {"step": "demo_dataset", "outputs": [1]}, {"step": "glm", "outputs": [1, 2]}]
+    summary = report.manifest_summary(records)
+    assert summary.to_dict("list") == {"step": ["glm", "demo_dataset"], "jobs": [2, 1], "output_files": [4, 1]}
+
+
+def test_reproduce_commands_name_the_config_file():
+    commands = dict((command, what) for what, command in report.reproduce_commands("studies/mine.yaml", "bids"))
+    assert "make demo CONFIG=studies/mine.yaml" in commands
+    assert ".venv/bin/snakemake --profile config/profiles/local --cores 2 --config config_file=studies/mine.yaml" in commands
+    assert "make demo" in dict((c, w) for w, c in report.reproduce_commands("config/config.yaml", "demo"))
+
+
+def test_captions_render_as_snakemake_renders_them():
+    # Snakemake renders a caption with Jinja2 (given a `snakemake` object) and then docutils to HTML.
+    import jinja2  # installed with Snakemake, which renders captions with it
+    from docutils.core import publish_parts
+
+    class _Job:
+        config = STUDY
+        params = {}
+        wildcards = {}
+
+    for name in sorted(set(report.CAPTIONS.values())):
+        text = jinja2.Environment(undefined=jinja2.StrictUndefined).from_string(
+            (REPO / name).read_text(encoding="utf-8")).render(snakemake=_Job())
+        body = publish_parts(text, writer="html", settings_overrides={"halt_level": 2, "report_level": 5})["body"]
+        assert len(re.sub(r"<[^>]+>", "", body).split()) >= 25, name
+        assert "http" not in text
+
+
+# -- the job: files -------------------------------------------------------------------------------
+
+def test_job_writes_exactly_the_planned_figures_and_the_page(built):
+    written = sorted(str(path) for path in (built["root"] / "report").rglob("*") if path.is_file())
+    assert written == sorted(built["outputs"]["figures"] + [built["outputs"]["html"]])
+
+
+def test_figures_are_valid_non_empty_png_and_svg(built):
+    for path in built["outputs"]["figures"]:
+        data = Path(path).read_bytes()
+        if path.endswith(".png"):
+            # Source: PNG specification, 5.2 (signature), 11.2.2 (IHDR: width, height as 4-byte big-endian)
+            # and 11.3.6.1 (tIME, the last-modification time chunk, which must be absent).
+            assert data[:8] == b"\x89PNG\r\n\x1a\n" and data[12:16] == b"IHDR", path
+            width, height = struct.unpack(">II", data[16:24])
+            assert width >= 300 and height >= 250, (path, width, height)
+            assert b"tIME" not in data
+        else:
+            root = ElementTree.fromstring(data)
+            assert root.tag == "{http://www.w3.org/2000/svg}svg", path
+            assert len(list(root.iter())) > 50, path
+            assert b"<dc:date>" not in data
+
+
+def test_page_embeds_every_png_and_loads_nothing_else(built):
+    parsed = _parse(built["html"])
+    images = [attributes for tag, attributes in parsed.elements if tag == "img"]
+    pngs = [path for path in built["outputs"]["figures"] if path.endswith(".png")]
+    assert len(images) == len(pngs)
+    embedded = [base64.b64decode(image["src"].removeprefix("data:image/png;base64,"), validate=True) for image in images]
+    assert sorted(embedded) == sorted(Path(path).read_bytes() for path in pngs)  # each figure's own bytes
+    assert all(image["src"].startswith("data:image/png;base64,") and image.get("alt") for image in images)
+    for tag, attributes in parsed.elements:
+        assert tag not in ("script", "link", "iframe", "object", "embed", "base"), tag
+        for name, value in attributes.items():
+            if name in ("src", "href", "srcset", "poster", "data", "action", "background"):
+                assert value.startswith("data:") or value.startswith("#"), (tag, name, value[:60])
+            assert "http://" not in (value or "") and "https://" not in (value or ""), (tag, name)
+    assert "url(" not in "".join(parsed.style) and "@import" not in "".join(parsed.style)
+    assert "http://" not in built["html"] and "https://" not in built["html"]
+
+
+def test_rerun_gives_byte_identical_files(built, tmp_path):
+    outputs = outputs_for(tmp_path / "again")
+    report_job.run(built["inputs"], outputs, built["params"], _quiet_log())
+    for first, second in zip(built["outputs"]["figures"] + [built["outputs"]["html"]], outputs["figures"] + [outputs["html"]]):
+        assert Path(first).read_bytes() == Path(second).read_bytes(), Path(first).name
+
+
+# -- the job: what the page says ---------------------------------------------------------------------
+
+def test_page_has_the_sections_in_order(built):
+    ids = [attributes["id"] for tag, attributes in _parse(built["html"]).elements if tag == "section"]
+    assert ids == ["study", "cautions", "quality-checks", "results", "provenance"]
+    text = _text(built["html"])
+    for heading in ("Design matrices", "Brain and ROI masks", "ROI voxel counts", "GLM residual variance",
+                    "Analysis shape", "Analysis carry", "Confusion matrices of analysis carry"):
+        assert heading in text
+
+
+def test_study_facts_are_on_the_page(built):
+    text = _text(built["html"])
+    assert hash_object(STUDY) in text
+    assert "3: 01, 02, 03" in text and "2 per subject (run-01, run-02)" in text
+    assert "repetition time (s) 2" in text and "voxel size (mm) 3 x 3 x 3" in text
+    assert "seen_star 3 to 4 6" in text and "seen_round 3 6" in text  # trials per run, runs with trials (3 x 2)
+    for name in ("numpy", "scipy", "nibabel", "scikit-learn", "snakemake", "foldwise"):
+        assert f"{name} {metadata.version(name)}" in text  # Source: importlib.metadata
+    assert "byte-identical" in text and "results/provenance/" in text
+    assert not re.search(r"\b20\d\d-\d\d-\d\d\b|\d\d:\d\d:\d\d", text)  # no date or clock time
+
+
+def test_roi_counts_table_shows_every_subject_mean_and_minimum(built):
+    text = _text(built["html"])
+    sizes = built["facts"]["roi_sizes"]
+    for subject in SUBJECTS:
+        assert f"sub-{subject} {sizes[subject]['ember']} {sizes[subject]['glow']}" in text
+    means = [np.mean([sizes[s][roi] for s in SUBJECTS]) for roi in ROI_NAMES]
+    assert f"mean {means[0]:.1f} {means[1]:.1f}" in text and "minimum required 10 10" in text
+    assert f"{means[0]:.1f} voxels" in text  # the curve caption says where 'all' sits
+
+
+def test_results_show_group_tables_with_corrected_p_and_prevalence(built):
+    parsed = _parse(built["html"])
+    text = _text(built["html"])
+    assert "p (t-test, uncorrected)" in text and "p (family-wise corrected)" in text
+    assert "prevalence: lower bound" in text
+    bold_rows = [attributes for tag, attributes in parsed.elements if tag == "tr" and attributes.get("class") == "survives"]
+    # ember at 20 and all voxels (p_fwe 0.01) survive: 2 counts x (1 + 5 directions); p_fwe = alpha does not.
+    assert len(bold_rows) == 2 * (1 + len(CROSS_DIRECTIONS))
+    assert "train seen, test heard" in text and "within heard" in text and "mean of both transfers" in text
+    assert "Demo ground truth for ROI glow" in text
+
+
+def test_confusion_count_fallback_is_stated(built):
+    text = _text(built["html"])
+    assert STUDY["report"]["confusion_n_voxels"] == 100
+    assert "all voxels (the configured 100 is not among the counts tested)" in text
+
+
+def test_provenance_counts_jobs_and_outputs_without_times(built):
+    text = _text(built["html"])
+    facts = built["facts"]
+    assert f"all steps {facts['n_jobs']} {facts['n_outputs']}" in text
+    assert "glm 6 30" in text and "make demo" in text and "make verify" in text
+    assert "restored" not in text.lower() and "wall" not in text.lower()
+
+
+def test_cautions_are_in_plain_words(built):
+    section = built["html"].split('<section id="cautions">', 1)[1].split("</section>", 1)[0]
+    text = _text(section)
+    assert "Research use only" in text and "not for clinical" in text
+    assert "says nothing about how many people show the effect" in text and "prevalence" in text
+    assert "family-wise" in text and "maximum statistic" in text
+    assert "inside the training folds" in text
+
+
+# -- the job: failures ------------------------------------------------------------------------------
+
+def test_declared_figures_must_match_the_plan(built, tmp_path):
+    outputs = outputs_for(tmp_path)
+    outputs["figures"] = outputs["figures"][:-2]
+    with pytest.raises(InputError) as caught:
+        report_job.run(built["inputs"], outputs, built["params"], _quiet_log())
+    assert caught.value.field == "outputs.figures" and "figure_plan" in caught.value.fix
+
+
+def test_a_summary_without_a_column_names_file_and_column(built, tmp_path):
+    broken = tmp_path / "sub-01_summary.tsv"
+    pd.read_csv(built["inputs"]["summaries"][0], sep="\t", dtype=str).drop(columns="balanced_accuracy").to_csv(
+        broken, sep="\t", index=False)
+    inputs = dict(built["inputs"], summaries=[str(broken)] + built["inputs"]["summaries"][1:])
+    with pytest.raises(InputError) as caught:
+        report_job.run(inputs, outputs_for(tmp_path / "out"), built["params"], _quiet_log())
+    assert caught.value.file == str(broken) and caught.value.field == "balanced_accuracy"
+
+
+def test_a_missing_confusion_table_is_named(built, tmp_path):
+    inputs = dict(built["inputs"], confusions=built["inputs"]["confusions"][1:])
+    with pytest.raises(InputError, match="no confusion table of analysis shape, sub-01, ROI ember"):
+        report_job.run(inputs, outputs_for(tmp_path), built["params"], _quiet_log())
+
+
+def test_a_bad_repetition_time_is_named(built, tmp_path):
+    sidecar = tmp_path / "bold.json"
+    sidecar.write_text(json.dumps({"RepetitionTime": "two"}))
+    inputs = dict(built["inputs"], sidecars=[str(sidecar)])
+    with pytest.raises(InputError) as caught:
+        report_job.run(inputs, outputs_for(tmp_path / "out"), built["params"], _quiet_log())
+    assert caught.value.file == str(sidecar) and caught.value.field == "RepetitionTime"
+
+
+# -- the page in a real browser (Debian's chromium) ---------------------------------------------------
+
+_CHROMIUM_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                   "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                   "--hide-scrollbars", "--enable-logging=stderr", "--v=1")
+_REQUEST = re.compile(r"NotifyBeforeURLRequest: (\S+)")
+_CONSOLE = re.compile(r":CONSOLE[^\]]*\] (.*)")
+
+
+def _chromium():
+    path = shutil.which("chromium") or ("/usr/bin/chromium" if Path("/usr/bin/chromium").is_file() else None)
+    if path is None:
+        pytest.fail("chromium is not installed: run `apt-get update && apt-get install -y chromium` "
+                    "(CI's .ci/run installs it); the browser tests need it", pytrace=False)
+    return path
+
+
+def _open_in_chromium(page_path, folder, window=(1280, 2400)):
+    """Load a page headless; return (console messages, requested URLs, screenshot path)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    screenshot = folder / "screenshot.png"
+    command = [_chromium(), *_CHROMIUM_FLAGS, f"--user-data-dir={folder / 'profile'}",
+               f"--window-size={window[0]},{window[1]}", f"--screenshot={screenshot}", Path(page_path).resolve().as_uri()]
+    finished = subprocess.run(command, capture_output=True, text=True, timeout=120, check=False)
+    assert finished.returncode == 0, finished.stderr[-2000:]
+    log = finished.stderr
+    return _CONSOLE.findall(log), _REQUEST.findall(log), screenshot
+
+
+def _hosts(urls):
+    return {re.sub(r"^[a-z]+://([^/?#]*).*$", r"\1", url) for url in urls}
+
+
+@pytest.fixture(scope="module")
+def browser_runs(built, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("browser")
+    blank = folder / "blank.html"
+    blank.write_text("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>blank</title></head>"
+                     "<body><p>blank</p></body></html>\n", encoding="utf-8")
+    faulty = folder / "faulty.html"
+    faulty.write_text("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>faulty</title></head><body>"
+                      "<img src=\"http://lantern-test.invalid/round.png\" alt=\"x\">"
+                      "<script>console.error('deliberate lantern error');</script></body></html>\n", encoding="utf-8")
+    return {"blank": _open_in_chromium(blank, folder / "blank", (400, 300)),
+            "faulty": _open_in_chromium(faulty, folder / "faulty", (400, 300)),
+            "report": _open_in_chromium(built["outputs"]["html"], folder / "report")}
+
+
+@pytest.mark.browser
+def test_browser_checks_catch_console_errors_and_network_loads(browser_runs):
+    # The negative control: the same checks must see a console error and a network load.
+    console, requests, _ = browser_runs["faulty"]
+    assert any("deliberate lantern error" in message for message in console)
+    assert "lantern-test.invalid" in _hosts(requests) - _hosts(browser_runs["blank"][1])
+
+
+@pytest.mark.browser
+def test_report_opens_in_chromium_without_console_messages_or_network_loads(browser_runs):
+    console, requests, _ = browser_runs["report"]
+    assert console == []
+    # The browser's own background requests (also made for a blank page) are not the page's.
+    assert _hosts(requests) - _hosts(browser_runs["blank"][1]) == set()
+    assert not [url for url in requests if "lantern" in url or url.startswith("file:")]
+
+
+@pytest.mark.browser
+def test_report_screenshot_is_not_blank(browser_runs):
+    from matplotlib.image import imread
+
+    pixels = imread(browser_runs["report"][2])[..., :3]
+    assert pixels.shape[0] >= 2000 and pixels.shape[1] >= 1200
+    grey = pixels.mean(axis=2)
+    assert grey.std() > 0.1  # text, tables and figures, not a blank page
+    assert (grey < 0.5).mean() > 0.01 and (grey > 0.9).mean() > 0.3
+    blank = imread(browser_runs["blank"][2])[..., :3].mean(axis=2)
+    assert grey.std() > 3 * blank.std()

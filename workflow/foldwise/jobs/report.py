@@ -1,0 +1,610 @@
+"""Job: the study report, one self-contained HTML page plus its figures (file I/O at the edges).
+
+Reads the quality-check images and tables, the decoding summaries and
+confusion counts, the group tables and the other jobs' provenance records;
+draws every figure of ``foldwise.report.figure_plan`` (PNG and SVG) and writes
+``index.html`` with the PNGs embedded as data URIs, so the page opens from
+disk and loads nothing from the network. The page holds no clock time: the
+same inputs give byte-identical files.
+"""
+
+import functools
+import html
+import json
+import math
+import platform
+import re
+from importlib import metadata
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+# Absolute imports on purpose: the rule's code hash (foldwise.hashing.module_closure)
+# follows ``from foldwise.x`` imports.
+from foldwise import report as page
+from foldwise.errors import InputError
+from foldwise.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
+from foldwise.hashing import hash_object
+
+__all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
+
+VERSIONED_PACKAGES = ("foldwise", "numpy", "scipy", "nibabel", "scikit-learn", "pandas", "matplotlib", "snakemake")
+GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low", "ci_high",
+                 "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global", "prevalence_gamma0",
+                 "prevalence_p_majority")
+SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy",
+                   "balanced_accuracy", "chance")
+CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
+ROI_COUNT_COLUMNS = ("subject", "roi", "n_voxels", "min_voxels")
+EVENT_COLUMNS = ("onset", "duration", "trial_type")
+
+_RERUN = "rerun the workflow (snakemake rebuilds what is missing or stale)"
+_SUBJECT = r"sub-(?P<subject>[A-Za-z0-9]+)"
+_NIFTI = r"\.nii(\.gz)?"
+_NAME_PATTERNS = {
+    "designs": _SUBJECT + r"_(?P<run_id>.+)_design\.tsv",
+    "brain_masks": _SUBJECT + r"_brainmask" + _NIFTI,
+    "means": _SUBJECT + r"_mean" + _NIFTI,
+    "roi_masks": _SUBJECT + r"_roi-(?P<roi>[A-Za-z0-9]+)_mask" + _NIFTI,
+    "resvar": _SUBJECT + r"_(?P<run_id>.+)_resvar" + _NIFTI,
+    "confusions": _SUBJECT + r"_roi-(?P<roi>[A-Za-z0-9]+)_confusion\.tsv",
+}
+
+
+# -- reading -------------------------------------------------------------------------
+
+def _as_list(value):
+    if value is None:
+        return []
+    return [value] if isinstance(value, (str, Path)) else list(value)
+
+
+def _name_fields(path, input_name):
+    match = re.fullmatch(_NAME_PATTERNS[input_name], Path(path).name)
+    if match is None:
+        raise InputError(path, "file name", f"the {input_name} input does not follow the pattern {_NAME_PATTERNS[input_name]}",
+                         "pass the files the workflow writes (see the data contract in DESIGN.md)")
+    return match.groupdict()
+
+
+def _by_subject(paths, input_name, subjects):
+    found = {}
+    for path in _as_list(paths):
+        subject = _name_fields(path, input_name)["subject"]
+        if subject in found:
+            raise InputError(path, "subject", f"a second {input_name} file for subject {subject} (first: {found[subject]})",
+                             "pass one file per subject")
+        found[subject] = str(path)
+    missing = [subject for subject in subjects if subject not in found]
+    if missing:
+        raise InputError(None, input_name, f"no {input_name} file for subject(s) {', '.join(missing)}", _RERUN)
+    return found
+
+
+def _read_json(path, what):
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError(path, "file", f"the {what} does not exist", _RERUN) from None
+    except (OSError, ValueError) as error:
+        raise InputError(path, "content", f"the {what} is not readable JSON ({error})", _RERUN) from None
+
+
+def _volume(path, what, shape=None):
+    image = load_nifti(path, what=what)
+    data = np.asarray(image.get_fdata(caching="unchanged", dtype=np.float32), dtype=np.float64)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"expected a 3D {what}, got shape {data.shape}", _RERUN)
+    if shape is not None and data.shape != tuple(shape):
+        raise InputError(path, "dim", f"the {what} has shape {data.shape}, the subject's mean image {tuple(shape)}",
+                         "build every image of a subject on one grid (rerun the masks stage)")
+    return data, image
+
+
+def _repetition_times(sidecars):
+    values = []
+    for path in _as_list(sidecars):
+        record = _read_json(path, "BOLD sidecar")
+        value = record.get("RepetitionTime") if isinstance(record, dict) else None
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
+            raise InputError(path, "RepetitionTime", f"must be a positive number of seconds, got {value!r}",
+                             "write RepetitionTime (s) into the sidecar")
+        values.append(float(value))
+    if not values:
+        raise InputError(None, "sidecars", "no BOLD sidecar was given", "pass every run's sidecar JSON")
+    return sorted(set(values))
+
+
+def _numeric(frame, column, path, integer=False):
+    values = pd.to_numeric(frame[column], errors="coerce").to_numpy(dtype=np.float64)
+    bad = ~np.isfinite(values) if not integer else (~np.isfinite(values) | (values != np.round(values)))
+    if bad.any():
+        row = int(np.flatnonzero(bad)[0])
+        kind = "a whole number" if integer else "a number"
+        raise InputError(path, column, f"value {frame[column].iloc[row]!r} in data row {row + 1} is not {kind}", _RERUN)
+    return values
+
+
+def _read_summaries(paths, analyses, subjects):
+    frames = {}
+    for path in _as_list(paths):
+        frame = read_tsv(path, SUMMARY_COLUMNS, what="decoding summary")
+        names = sorted(set(frame["analysis"].astype(str)))
+        if len(names) != 1 or names[0] not in analyses:
+            raise InputError(path, "analysis", f"expected one analysis of {', '.join(analyses)}, found {names}", _RERUN)
+        for column in ("n_used", "balanced_accuracy"):
+            _numeric(frame, column, path, integer=column == "n_used")
+        frames.setdefault(names[0], []).append(frame)
+    combined = {}
+    for name in analyses:
+        if name not in frames:
+            raise InputError(None, "summaries", f"no decoding summary of analysis {name!r}", _RERUN)
+        table = pd.concat(frames[name], ignore_index=True)
+        missing = [subject for subject in subjects if subject not in set(table["subject"].astype(str))]
+        if missing:
+            raise InputError(None, "summaries", f"analysis {name!r} has no summary for subject(s) {', '.join(missing)}", _RERUN)
+        combined[name] = table
+    return combined
+
+
+def _read_group_tables(paths, analyses):
+    tables = {}
+    for path in _as_list(paths):
+        table = read_tsv(path, GROUP_COLUMNS, what="group table")
+        names = sorted(set(table["analysis"].astype(str)))
+        if len(names) != 1 or names[0] not in analyses:
+            raise InputError(path, "analysis", f"expected one analysis of {', '.join(analyses)}, found {names}", _RERUN)
+        if names[0] in tables:
+            raise InputError(path, "analysis", f"a second group table of analysis {names[0]!r}", "pass one table per analysis")
+        tables[names[0]] = (table, str(path))
+    missing = [name for name in analyses if name not in tables]
+    if missing:
+        raise InputError(None, "group_tables", f"no group table of analysis(es) {', '.join(missing)}", _RERUN)
+    return tables
+
+
+def _read_confusions(paths, analyses):
+    found = {}
+    for path in _as_list(paths):
+        fields = _name_fields(path, "confusions")
+        analysis = Path(path).parent.parent.name
+        if analysis not in analyses:
+            raise InputError(path, "folder", f"the file is not under results/decoding/<analysis>/sub-<subject>/ of a study "
+                             f"analysis ({', '.join(analyses)})", "pass the confusion files the decoding stage writes")
+        frame = read_tsv(path, CONFUSION_COLUMNS, what="confusion table")
+        _numeric(frame, "count", path, integer=True)
+        found[(analysis, fields["subject"], fields["roi"])] = (frame, str(path))
+    return found
+
+
+def _roi_counts(paths, subjects, rois):
+    frames = []
+    for path in _as_list(paths):
+        frame = read_tsv(path, ROI_COUNT_COLUMNS, what="ROI voxel-count table")
+        for column in ("n_voxels", "min_voxels"):
+            _numeric(frame, column, path, integer=True)
+        frames.append(frame)
+    if not frames:
+        raise InputError(None, "roi_counts", "no ROI voxel-count table was given", _RERUN)
+    table = pd.concat(frames, ignore_index=True)
+    table["subject"], table["roi"] = table["subject"].astype(str), table["roi"].astype(str)
+    table["n_voxels"] = pd.to_numeric(table["n_voxels"]).astype(np.int64)
+    table["min_voxels"] = pd.to_numeric(table["min_voxels"]).astype(np.int64)
+    missing = [f"sub-{s}/{r}" for s in subjects for r in rois
+               if not ((table["subject"] == s) & (table["roi"] == r)).any()]
+    if missing:
+        raise InputError(None, "roi_counts", f"no voxel count for {', '.join(missing[:6])}", _RERUN)
+    return table
+
+
+def _package_versions():
+    versions = [("python", platform.python_version())]
+    for name in VERSIONED_PACKAGES:
+        try:
+            versions.append((name, metadata.version(name)))
+        except metadata.PackageNotFoundError:
+            versions.append((name, "not installed"))
+    return versions
+
+
+def _check_params(params):
+    for key in ("study", "subjects", "runs"):
+        if key not in params:
+            raise InputError(None, f"params.{key}", "missing from the report job's params", "pass it from the report rule")
+    study = params["study"]
+    if not isinstance(study, dict) or not study.get("analyses") or not study.get("rois"):
+        raise InputError(None, "params.study", "not a validated study config (no analyses or rois)",
+                         "pass the validated study config")
+    subjects = [str(subject) for subject in params["subjects"]]
+    if not subjects or len(set(subjects)) != len(subjects):
+        raise InputError(None, "params.subjects", f"expected distinct subject ids, got {params['subjects']!r}",
+                         "pass the study's subjects")
+    runs = params["runs"]
+    if not isinstance(runs, dict) or any(subject not in runs or not runs[subject] for subject in subjects):
+        raise InputError(None, "params.runs", "expected subject -> list of run ids for every subject",
+                         "pass the run ids of every subject")
+    return study, subjects, {subject: [str(run) for run in runs[subject]] for subject in subjects}
+
+
+def _check_outputs(outputs, study, subjects):
+    figures = [str(path) for path in _as_list(outputs.get("figures"))]
+    if not figures or "html" not in outputs:
+        raise InputError(None, "outputs", "the report job needs the outputs html and figures", "declare both in the rule")
+    folder = str(Path(figures[0]).parent)
+    catalogue = page.figure_catalogue(study, subjects, figures_dir=folder)
+    planned = [path for entry in catalogue for path in entry["paths"]]
+    if [str(Path(path)) for path in figures] != [str(Path(path)) for path in planned]:
+        extra = sorted(set(map(str, figures)) - set(planned))
+        lacking = [path for path in planned if path not in set(map(str, figures))]
+        raise InputError(None, "outputs.figures", f"the declared figures differ from foldwise.report.figure_plan "
+                         f"(not planned: {extra[:3]}; not declared: {lacking[:3]}; or another order)",
+                         "declare exactly figure_plan(study config, subjects) as the rule's figures output")
+    return catalogue
+
+
+# -- drawing -------------------------------------------------------------------------
+
+def _save(figure, entry):
+    for path in entry["paths"]:
+        save_figure(figure, path)
+    return Path(entry["paths"][0]).read_bytes()
+
+
+def _classes(analysis):
+    if analysis["kind"] == "cross":
+        return list(next(iter(analysis["sets"].values())))
+    return list(analysis["classes"])
+
+
+def _text_list(items, limit=12):
+    items = [str(item) for item in items]
+    return ", ".join(items[:limit]) + (f" and {len(items) - limit} more" if len(items) > limit else "")
+
+
+# -- page sections --------------------------------------------------------------------
+
+def _paragraph(text):
+    return f"<p>{html.escape(text)}</p>"
+
+
+def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file, versions):
+    run_counts = sorted({len(runs[subject]) for subject in subjects})
+    first_runs = runs[subjects[0]]
+    if len(run_counts) == 1:
+        runs_text = f"{run_counts[0]} per subject ({_text_list(first_runs)})"
+    else:
+        runs_text = "; ".join(f"sub-{subject}: {len(runs[subject])}" for subject in subjects)
+    glm = study.get("glm", {})
+    source = study["dataset"]["source"]
+    rows = [
+        ("study name", study.get("study", {}).get("name", "study")),
+        ("dataset", "simulated demo (the invented lanterns study)" if source == "demo" else f"BIDS dataset at {study['dataset']['bids_root']}"),
+        ("subjects", f"{len(subjects)}: {_text_list(subjects, 30)}"),
+        ("runs", runs_text),
+        ("repetition time (s)", ", ".join(f"{value:g}" for value in repetition_times)),
+        ("voxel size (mm)", " x ".join(f"{value:g}" for value in voxel_size_mm)),
+        ("GLM", f"noise model {glm.get('noise_model')}, patterns {glm.get('pattern_mode')}, statistic "
+                f"{glm.get('statistic')}, high-pass cutoff {glm.get('highpass_s')} s, HRF derivatives {glm.get('hrf_derivatives')}"),
+        ("ROIs", _text_list(roi["name"] for roi in study["rois"])),
+        ("analyses", _text_list(f"{a['name']} ({a['kind']})" for a in study["analyses"])),
+        ("config file", config_file or "given with --configfile"),
+        ("config hash (sha256 of the validated config)", hash_object(study)),
+        ("versions", ", ".join(f"{name} {version}" for name, version in versions)),
+    ]
+    trial_rows = [(row.condition, row.min_per_run if row.min_per_run == row.max_per_run
+                   else f"{row.min_per_run} to {row.max_per_run}", row.runs_with_trials)
+                  for row in trials.itertuples(index=False)]
+    return (page.html_table(("item", "value"), rows, caption="The study at a glance")
+            + page.html_table(("condition", "trials per run", "runs with trials"), trial_rows,
+                              caption=f"Trials per condition per run (over all {sum(len(r) for r in runs.values())} runs)")
+            + _paragraph("This page holds no clock time: the same inputs, config and environment give a byte-identical "
+                         "page and figures. Job times and memory use are in results/provenance/ (one JSON record per job)."))
+
+
+def _cautions_section(alpha):
+    items = [
+        "Research use only. These results are not for clinical or diagnostic decisions about any person.",
+        "A group test on accuracies (the t-test, the Wilcoxon test and the permutation test of the group mean) asks "
+        "whether the average accuracy in the population is above chance. It says nothing about how many people show "
+        "the effect: a significant mean is compatible with an effect in only a few people. How widespread an effect is "
+        "is what prevalence inference addresses (Allefeld, Goergen & Haynes 2016, NeuroImage, from memory): the "
+        "prevalence bound is the share of the population that, at least, shows the effect.",
+        f"The voxel-count sweep tests many counts in many ROIs. The corrected p-value (family-wise, by the maximum "
+        f"statistic over all ROIs and voxel counts of one direction; Nichols & Holmes 2002) accounts for that; the "
+        f"uncorrected p-values do not. Stars in the curves mark corrected p below {alpha:g}. Do not pick the best "
+        f"count and report its uncorrected p.",
+        "Voxel selection was done inside the training folds: voxels were scored and ranked on the training runs "
+        "only, so the held-out run never influenced which voxels were used for testing it.",
+        "Confusion matrices are descriptive: they show which classes are mistaken for which, not a test.",
+    ]
+    return "<div class=\"caution\"><ul>" + "".join(f"<li>{html.escape(item)}</li>" for item in items) + "</ul></div>"
+
+
+def _roi_count_table(counts, subjects, rois):
+    rows = []
+    for subject in subjects:
+        own = counts[counts["subject"] == subject]
+        rows.append([f"sub-{subject}"] + [int(own.loc[own["roi"] == roi, "n_voxels"].iloc[0]) for roi in rois])
+    means = [counts.loc[counts["roi"] == roi, "n_voxels"].mean() for roi in rois]
+    rows.append(["mean"] + [f"{value:.1f}" for value in means])
+    rows.append(["minimum required"] + [int(counts.loc[counts["roi"] == roi, "min_voxels"].max()) for roi in rois])
+    return page.html_table(["subject"] + [f"ROI {roi} (voxels)" for roi in rois], rows,
+                           caption="ROI voxel counts per subject (inside the brain mask), with the configured minimum")
+
+
+def _group_table(table, alpha):
+    rows, classes = [], []
+    for row in table.itertuples(index=False):
+        survives = math.isfinite(float(row.p_fwe)) and float(row.p_fwe) < alpha
+        interval = (f"{page.format_number(row.ci_low)} to {page.format_number(row.ci_high)}"
+                    if math.isfinite(float(row.ci_low)) else "n/a")
+        rows.append([row.roi, page.direction_label(str(row.direction)), row.n_voxels, int(row.n_subjects),
+                     page.format_number(row.chance), page.format_number(row.mean), interval, page.format_number(row.t, 2),
+                     page.format_p(row.p_t), page.format_p(row.p_wilcoxon), page.format_p(row.p_perm),
+                     page.format_p(row.p_fwe), "yes" if survives else "no", page.format_p(row.prevalence_p_global),
+                     page.format_number(row.prevalence_gamma0, 2), page.format_p(row.prevalence_p_majority)])
+        classes.append("survives" if survives else "")
+    header = ["ROI", "direction", "voxels", "subjects", "chance", "mean balanced accuracy", "95% CI of the mean", "t",
+              "p (t-test, uncorrected)", "p (Wilcoxon, uncorrected)", "p (permutation, uncorrected)",
+              "p (family-wise corrected)", f"corrected p < {alpha:g}", "prevalence: p (global null)",
+              "prevalence: lower bound", "prevalence: p (majority)"]
+    return page.html_table(header, rows, caption="Group statistics (one-sided: above chance). Rows in bold survive "
+                           "the family-wise correction.", row_classes=classes, wide=True)
+
+
+def _analysis_text(analysis):
+    if analysis["kind"] == "cross":
+        sets = "; ".join(f"set {name}: " + ", ".join(f"{label} = {condition}" for label, condition in classes.items())
+                         for name, classes in analysis["sets"].items())
+        kind = f"cross-decoding between two sets ({sets})"
+    else:
+        kind = "decoding of the classes " + "; ".join(f"{label} = {' + '.join(conditions)}"
+                                                      for label, conditions in analysis["classes"].items())
+    folds = analysis.get("folds", {}).get("scheme", "leave_one_run_out").replace("_", "-")
+    return (f"{kind}. Classifier {analysis.get('classifier')}, voxel selection {analysis.get('selection')} (inside the "
+            f"training folds), voxel counts {_text_list(analysis.get('voxel_counts', []))}, folds {folds}, "
+            f"{analysis.get('n_permutations')} permutations per subject.")
+
+
+def _truth_text(truth, roi):
+    decodes = ((truth or {}).get("rois", {}).get(roi) or {}).get("decodes")
+    if not decodes:
+        return ""
+    yes = [key.replace("_", " ") for key, value in decodes.items() if value]
+    no = [key.replace("_", " ") for key, value in decodes.items() if not value]
+    return _paragraph(f"Demo ground truth for ROI {roi} (what the simulation built in): decodes "
+                      f"{_text_list(yes) if yes else 'nothing'}{'; does not decode ' + _text_list(no) if no else ''}.")
+
+
+def _provenance_section(study, config_file, versions, records):
+    commands = page.reproduce_commands(config_file, study["dataset"]["source"])
+    command_html = "".join(f"<p>{html.escape(what)}:</p><pre><code>{html.escape(command)}</code></pre>"
+                           for what, command in commands)
+    summary = page.manifest_summary(records)
+    rows = [list(row) for row in summary.itertuples(index=False)]
+    rows.append(["all steps", int(summary["jobs"].sum()), int(summary["output_files"].sum())])
+    return (command_html
+            + page.html_table(("package", "version"), versions, caption="Package versions of this run")
+            + page.html_table(("step", "jobs", "output files"), rows,
+                              caption="Jobs before this report, counted from their provenance records")
+            + _paragraph("results/manifest.tsv lists every output file with its sha256 and the job that made it; "
+                         "results/provenance/ holds one record per job (inputs and outputs with their sha256, settings, "
+                         "code hash, versions). `make bundle` packs the results for reviewers and `make verify` "
+                         "recomputes them and compares.")
+            + _paragraph(f"Config hash: {hash_object(study)}"))
+
+
+# -- the job ---------------------------------------------------------------------------
+
+def run(inputs, outputs, params, log):
+    """Write the study report: ``index.html`` and every figure of the figure plan.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``designs`` (first run's design TSV per subject), ``events`` and
+        ``sidecars`` (every run's), ``brain_masks``, ``means`` and
+        ``roi_counts`` (per subject), ``roi_masks`` (per subject x ROI),
+        ``resvar`` (the first subject's first run), ``summaries`` (per
+        analysis x subject), ``confusions`` (per analysis x subject x ROI),
+        ``group_tables`` (per analysis), ``provenance`` (every other job's
+        record) and, for the demo, ``ground_truth``.
+    outputs : dict
+        ``html`` and ``figures`` (exactly ``figure_plan(study, subjects)``).
+    params : dict
+        ``study`` (the validated config), ``subjects``, ``runs`` (subject ->
+        run ids) and ``config_file`` (str or None).
+    log : logging.Logger
+        Notes the confusion counts chosen when the configured one is absent.
+    """
+    study, subjects, runs = _check_params(params)
+    catalogue = _check_outputs(outputs, study, subjects)
+    analyses = {analysis["name"]: analysis for analysis in study["analyses"]}
+    roi_names = [roi["name"] for roi in study["rois"]]
+    alpha = float(study.get("group", {}).get("alpha", 0.05))
+    config_file = params.get("config_file")
+    versions = _package_versions()
+
+    repetition_times = _repetition_times(inputs.get("sidecars"))
+    tr_s = repetition_times[0] if len(repetition_times) == 1 else None
+    events = [read_tsv(path, EVENT_COLUMNS, what="events table") for path in _as_list(inputs.get("events"))]
+    if not events:
+        raise InputError(None, "events", "no events table was given", "pass every run's events TSV")
+    trials = page.trials_per_condition(events)
+    designs = _by_subject(inputs.get("designs"), "designs", subjects)
+    brain_masks = _by_subject(inputs.get("brain_masks"), "brain_masks", subjects)
+    means = _by_subject(inputs.get("means"), "means", subjects)
+    roi_mask_paths = {}
+    for path in _as_list(inputs.get("roi_masks")):
+        fields = _name_fields(path, "roi_masks")
+        roi_mask_paths[(fields["subject"], fields["roi"])] = str(path)
+    counts = _roi_counts(inputs.get("roi_counts"), subjects, roi_names)
+    roi_mean_voxels = {roi: float(counts.loc[counts["roi"] == roi, "n_voxels"].mean()) for roi in roi_names}
+    summaries = _read_summaries(inputs.get("summaries"), list(analyses), subjects)
+    group_tables = _read_group_tables(inputs.get("group_tables"), list(analyses))
+    confusions = _read_confusions(inputs.get("confusions"), list(analyses))
+    records = [_read_json(path, "provenance record") for path in _as_list(inputs.get("provenance"))]
+    for path, record in zip(_as_list(inputs.get("provenance")), records):
+        if not isinstance(record, dict) or "step" not in record or not isinstance(record.get("outputs"), list):
+            raise InputError(path, "step, outputs", "not a provenance record of a foldwise job", _RERUN)
+    truth = _read_json(inputs["ground_truth"], "demo ground truth") if inputs.get("ground_truth") else None
+
+    data = {"designs": designs, "brain_masks": brain_masks, "means": means, "roi_mask_paths": roi_mask_paths,
+            "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "tr_s": tr_s, "analyses": analyses,
+            "group_tables": group_tables, "summaries": summaries, "confusions": confusions, "subjects": subjects,
+            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study}
+    # Read and check everything first, draw afterwards: bad input stops the job before any drawing.
+    specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
+    blocks = {entry["stem"]: page.figure_block(_save(build(), entry), entry["stem"], alt, caption)
+              for entry, (build, alt, caption) in zip(catalogue, specifications)}
+    first_mean = load_nifti(means[subjects[0]], what="mean image")
+    voxel_size_mm = tuple(float(size) for size in first_mean.header.get_zooms()[:3])
+
+    quality = ("<h3>Design matrices (first run of each subject)</h3><div class=\"gallery\">"
+               + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "design") + "</div>"
+               + "<h3>Brain and ROI masks</h3>"
+               + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "masks")
+               + "<h3>ROI voxel counts</h3>" + _roi_count_table(counts, subjects, roi_names)
+               + "<h3>GLM residual variance</h3>" + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "resvar"))
+    results = []
+    for name, analysis in analyses.items():
+        table = group_tables[name][0]
+        parts = [f"<h3>Analysis {html.escape(name)}</h3>", _paragraph(_analysis_text(analysis))]
+        for roi in page.analysis_rois(study, analysis):
+            parts.append(f"<h4>ROI {html.escape(roi)}</h4>")
+            parts.append(_truth_text(truth, roi))
+            parts.append(blocks[f"{name}_roi-{roi}_curve"])
+        parts.append(_group_table(table, alpha))
+        parts.append(f"<h4>Confusion matrices of analysis {html.escape(name)}</h4>")
+        parts.extend(blocks[f"{name}_roi-{roi}_confusion"] for roi in page.analysis_rois(study, analysis))
+        results.append("".join(parts))
+    sections = [
+        ("study", "Study", _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file,
+                                          versions)),
+        ("cautions", "Cautions: how to read these results", _cautions_section(alpha)),
+        ("quality-checks", "Quality checks", quality),
+        ("results", "Results", "".join(results)),
+        ("provenance", "Provenance", _provenance_section(study, config_file, versions, records)),
+    ]
+    title = f"foldwise study report: {study.get('study', {}).get('name', 'study')}"
+    write_text_atomic(outputs["html"], page.render_page(title, sections))
+
+
+def _design_specification(entry, data, log):
+    subject = entry["subject"]
+    path = data["designs"][subject]
+    design = read_tsv(path, (), what="design matrix")
+    run_id = _name_fields(path, "designs")["run_id"]
+    values = design.apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64)
+    if values.size == 0 or not np.all(np.isfinite(values)):
+        raise InputError(path, "values", "the design matrix is empty or holds a non-number", _RERUN)
+    build = functools.partial(page.design_figure, values, [str(name) for name in design.columns], data["tr_s"],
+                              f"sub-{subject} {run_id}: design matrix")
+    return (build, f"Design matrix of sub-{subject}, {run_id}",
+            f"sub-{subject}, {run_id}: {values.shape[1]} regressors over {values.shape[0]} scans; each regressor "
+            "scaled to its largest magnitude.")
+
+
+def _masks_specification(entry, data, log):
+    subject = entry["subject"]
+    mean, image = _volume(data["means"][subject], "mean image")
+    brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+    rois = []
+    for roi in data["roi_names"]:
+        if (subject, roi) not in data["roi_mask_paths"]:
+            raise InputError(None, "roi_masks", f"no mask of ROI {roi} for subject {subject}", _RERUN)
+        rois.append((roi, _volume(data["roi_mask_paths"][(subject, roi)], "ROI mask", mean.shape)[0] > 0))
+    build = functools.partial(page.masks_figure, mean, brain, rois, image.affine,
+                              f"sub-{subject}: brain and ROI masks on the mean image")
+    return (build, f"Brain and ROI masks of sub-{subject}",
+            f"sub-{subject}: brain mask (outline) and ROIs over the mean BOLD image, slices through the planes with "
+            "the most ROI voxels.")
+
+
+def _resvar_specification(entry, data, log):
+    subject = entry["subject"]
+    if len(data["resvar"]) != 1:
+        raise InputError(None, "resvar", f"expected one residual variance image, got {len(data['resvar'])}",
+                         "pass the first subject's first run")
+    path = str(data["resvar"][0])
+    fields = _name_fields(path, "resvar")
+    if fields["subject"] != subject:
+        raise InputError(path, "subject", f"expected the residual variance of sub-{subject}, got sub-{fields['subject']}",
+                         "pass the first subject's first run")
+    mean, _ = _volume(data["means"][subject], "mean image")
+    values, image = _volume(path, "residual variance image", mean.shape)
+    brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+    build = functools.partial(page.resvar_figure, values, brain, image.affine,
+                              f"sub-{subject} {fields['run_id']}: GLM residual variance")
+    return (build, f"GLM residual variance of sub-{subject}",
+            f"sub-{subject}, {fields['run_id']}: residual variance of the GLM fit per voxel (colour range: 1st to 99th "
+            "percentile inside the brain).")
+
+
+def _curve_specification(entry, data, log):
+    name, roi = entry["analysis"], entry["roi"]
+    analysis, alpha, roi_mean = data["analyses"][name], data["alpha"], data["roi_mean_voxels"][roi]
+    table, path = data["group_tables"][name]
+    subject_table = data["summaries"][name]
+    panels = []
+    for direction in page.curve_directions(analysis):
+        rows = table[(table["roi"] == roi) & (table["direction"] == direction)]
+        if rows.empty:
+            raise InputError(path, "roi, direction", f"no row for ROI {roi}, direction {direction}", _RERUN)
+        own = subject_table[(subject_table["roi"] == roi) & (subject_table["direction"] == direction)]
+        try:
+            panel = page.curve_data(rows, own, roi_mean, alpha)
+        except InputError as error:
+            raise InputError(path, error.field, error.problem, error.fix) from None
+        panel["label"] = page.direction_label(direction)
+        panels.append(panel)
+    chance = page.format_number(panels[0]["chance"][0])
+    caption = (f"Balanced accuracy against the number of voxels (log axis) in ROI {roi}: group mean (thick line) with its "
+               f"95% confidence interval (band) over {len(panels[0]['subjects'])} subjects, single subjects (thin lines), "
+               f"chance {chance} (dashed). Stars: family-wise corrected p < {alpha:g}. 'all' sits at the ROI's mean size, "
+               f"{roi_mean:.1f} voxels. Open circles: the ROI held fewer voxels than requested for at least one "
+               "subject, so the point repeats a smaller selection.")
+    if len(panels) > 1:
+        caption += " Panels: " + "; ".join(panel["label"] for panel in panels) + "."
+    build = functools.partial(page.curve_figure, panels, f"analysis {name}, ROI {roi}", alpha)
+    return build, f"Decoding curves of analysis {name} in ROI {roi}", caption
+
+
+def _confusion_specification(entry, data, log):
+    name, roi = entry["analysis"], entry["roi"]
+    analysis = data["analyses"][name]
+    table = data["group_tables"][name][0]
+    available = list(dict.fromkeys(table.loc[table["roi"] == roi, "n_voxels"].astype(str)))
+    configured = data["study"].get("report", {}).get("confusion_n_voxels", 100)
+    chosen, exact = page.choose_confusion_count(configured, available, data["roi_mean_voxels"][roi])
+    if not exact:
+        log.info("analysis %s, ROI %s: no results at %s voxels; confusion matrices at %s", name, roi, configured, chosen)
+    classes = _classes(analysis)
+    directions = [(direction, page.direction_label(direction)) for direction in page.curve_directions(analysis)]
+    matrices = {}
+    for subject in data["subjects"]:
+        if (name, subject, roi) not in data["confusions"]:
+            raise InputError(None, "confusions", f"no confusion table of analysis {name}, sub-{subject}, ROI {roi}", _RERUN)
+        frame, path = data["confusions"][(name, subject, roi)]
+        for direction, _ in directions:
+            rows = frame[(frame["direction"] == direction) & (frame["n_voxels"] == chosen)]
+            if rows.empty:
+                raise InputError(path, "direction, n_voxels", f"no rows for direction {direction} at {chosen} voxels", _RERUN)
+            try:
+                matrices[(direction, subject)] = page.confusion_matrix(rows, classes)
+            except InputError as error:
+                raise InputError(path, error.field, error.problem, error.fix) from None
+    count_text = f"{chosen} voxels" if exact else f"{chosen} voxels (the configured {configured} is not among the counts tested)"
+    caption = (f"Confusion matrices per subject at {count_text}, summed over test folds: rows are the true classes, "
+               "columns the predicted ones; colour is the proportion of each true class's test samples, numbers are counts.")
+    build = functools.partial(page.confusion_figure, matrices, data["subjects"], directions, classes,
+                              f"analysis {name}, ROI {roi}: {count_text}")
+    return build, f"Confusion matrices of analysis {name} in ROI {roi}", caption
+
+
+_FIGURE_SPECIFICATIONS = {"design": _design_specification, "masks": _masks_specification,
+                          "resvar": _resvar_specification, "curve": _curve_specification,
+                          "confusion": _confusion_specification}

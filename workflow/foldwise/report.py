@@ -1,0 +1,1060 @@
+"""The study report: figure plan, figure builders and the HTML page (pure functions).
+
+Everything here takes arrays, tables and strings and returns figures or text;
+the report job (``foldwise.jobs.report``) reads the files and writes the page.
+Figures are built without pyplot (no global figure state) and use the
+colour-blind-safe palette of Okabe & Ito (2008, "Color Universal Design";
+hex values from memory), with labels in words and units on every axis.
+"""
+
+import base64
+import html
+import math
+import re
+
+import numpy as np
+import pandas as pd
+from matplotlib import colormaps
+from matplotlib.colors import to_rgba
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
+from matplotlib.ticker import NullLocator
+
+from foldwise.errors import InputError
+
+__all__ = [
+    "OKABE_ITO",
+    "FIGURE_FORMATS",
+    "FIGURES_DIR",
+    "CAPTIONS",
+    "figure_catalogue",
+    "figure_plan",
+    "analysis_rois",
+    "curve_directions",
+    "direction_label",
+    "voxel_count_positions",
+    "curve_data",
+    "choose_confusion_count",
+    "confusion_matrix",
+    "trials_per_condition",
+    "best_slices",
+    "grid_axes_mm",
+    "design_figure",
+    "masks_figure",
+    "resvar_figure",
+    "curve_figure",
+    "confusion_figure",
+    "reproduce_commands",
+    "manifest_summary",
+    "format_number",
+    "format_p",
+    "html_table",
+    "figure_block",
+    "render_page",
+]
+
+# Okabe & Ito (2008), "Color Universal Design" (hex values from memory).
+OKABE_ITO = {
+    "black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9", "bluish green": "#009E73",
+    "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish purple": "#CC79A7",
+}
+FIGURE_FORMATS = ("png", "svg")
+FIGURES_DIR = "results/report/figures"
+# Caption files for Snakemake's report(), relative to the repository root.
+CAPTIONS = {
+    "design": "workflow/report/design_matrix.rst",
+    "masks": "workflow/report/masks.rst",
+    "resvar": "workflow/report/residual_variance.rst",
+    "curve_within": "workflow/report/decoding_curve.rst",
+    "curve_cross": "workflow/report/cross_decoding_curve.rst",
+    "confusion": "workflow/report/confusion.rst",
+}
+_ROI_COLOURS = ("orange", "sky blue", "bluish green", "vermillion", "blue", "reddish purple")
+_PANEL_COLOURS = ("blue", "orange", "bluish green", "reddish purple")
+_BRAIN_OUTLINE = OKABE_ITO["yellow"]
+_SLICE_NAMES = ("sagittal", "coronal", "axial")
+_CONFUSION_COLUMNS_MAX = 6
+# Display window of grey images: 1st-99th percentile inside the brain (common practice, no source).
+_WINDOW_PERCENTILES = (1.0, 99.0)
+_FONT_SIZE = 9
+_OUTLINE_UPSAMPLING = 4  # mask outlines follow voxel edges to within 1/8 voxel
+
+
+# -- the figure plan -------------------------------------------------------------
+
+def analysis_rois(study_config, analysis):
+    """The ROIs of one analysis: its own list, or every ROI of the study.
+
+    Parameters
+    ----------
+    study_config : dict
+        The validated study config.
+    analysis : dict
+        One entry of ``study_config["analyses"]``.
+
+    Returns
+    -------
+    list of str
+    """
+    return list(analysis.get("rois") or []) or [roi["name"] for roi in study_config["rois"]]
+
+
+def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
+    """Every figure of the report, in page order, with its files and caption.
+
+    Parameters
+    ----------
+    study_config : dict
+        The validated study config (``rois`` and ``analyses`` are read).
+    subjects : sequence of str
+        The study's subjects (without ``sub-``), in study order.
+    figures_dir : str
+        Folder of the figure files.
+
+    Returns
+    -------
+    list of dict
+        Keys ``stem``, ``kind`` (design, masks, resvar, curve, confusion),
+        ``subject``, ``analysis``, ``roi`` (None where not applicable),
+        ``paths`` (one per format in ``FIGURE_FORMATS``), ``caption`` (a file
+        of ``CAPTIONS``) and ``category`` (for Snakemake's report()).
+
+    Notes
+    -----
+    Quality checks come first (design and masks per subject, then the
+    residual variance of the first subject), then per analysis and ROI the
+    decoding curve and the confusion matrices.
+
+    Examples
+    --------
+    >>> study = {"rois": [{"name": "ember"}], "analyses": [{"name": "shape", "kind": "within"}]}
+    >>> [entry["stem"] for entry in figure_catalogue(study, ["01"])]
+    ['sub-01_design', 'sub-01_masks', 'sub-01_resvar', 'shape_roi-ember_curve', 'shape_roi-ember_confusion']
+    """
+    subjects = [str(subject) for subject in subjects]
+    if not subjects:
+        raise InputError(None, "subjects", "the study has no subject", "list at least one subject")
+    entries = []
+
+    def add(stem, kind, caption, category, subject=None, analysis=None, roi=None):
+        paths = [f"{figures_dir}/{stem}.{suffix}" for suffix in FIGURE_FORMATS]
+        entries.append({"stem": stem, "kind": kind, "subject": subject, "analysis": analysis, "roi": roi,
+                        "paths": paths, "caption": CAPTIONS[caption], "category": category})
+
+    for subject in subjects:
+        add(f"sub-{subject}_design", "design", "design", "Quality checks", subject=subject)
+        add(f"sub-{subject}_masks", "masks", "masks", "Quality checks", subject=subject)
+    add(f"sub-{subjects[0]}_resvar", "resvar", "resvar", "Quality checks", subject=subjects[0])
+    for analysis in study_config["analyses"]:
+        name = analysis["name"]
+        curve_caption = "curve_cross" if analysis["kind"] == "cross" else "curve_within"
+        for roi in analysis_rois(study_config, analysis):
+            add(f"{name}_roi-{roi}_curve", "curve", curve_caption, "Decoding curves", analysis=name, roi=roi)
+            add(f"{name}_roi-{roi}_confusion", "confusion", "confusion", "Confusion matrices", analysis=name, roi=roi)
+    return entries
+
+
+def figure_plan(study_config, subjects, figures_dir=FIGURES_DIR):
+    """The figure files the report job writes (PNG and SVG of each figure), in a fixed order.
+
+    Parameters
+    ----------
+    study_config : dict
+        The validated study config.
+    subjects : sequence of str
+        The study's subjects, in study order.
+    figures_dir : str
+        Folder of the figure files (default ``results/report/figures``).
+
+    Returns
+    -------
+    list of str
+
+    Examples
+    --------
+    >>> study = {"rois": [{"name": "ember"}], "analyses": [{"name": "shape", "kind": "within"}]}
+    >>> figure_plan(study, ["01"])[:2]
+    ['results/report/figures/sub-01_design.png', 'results/report/figures/sub-01_design.svg']
+    """
+    return [path for entry in figure_catalogue(study_config, subjects, figures_dir) for path in entry["paths"]]
+
+
+# -- directions and curves -----------------------------------------------------------
+
+def curve_directions(analysis):
+    """The directions drawn side by side in an analysis's curve figure.
+
+    Parameters
+    ----------
+    analysis : dict
+        One analysis entry of the config.
+
+    Returns
+    -------
+    list of str
+        ``["within"]``, or for the sets A and B of a cross analysis
+        ``["A->A", "B->B", "A->B", "B->A"]`` (within A, within B, then both
+        transfers).
+
+    Examples
+    --------
+    >>> curve_directions({"kind": "cross", "sets": {"seen": {}, "heard": {}}})
+    ['seen->seen', 'heard->heard', 'seen->heard', 'heard->seen']
+    """
+    if analysis.get("kind") != "cross":
+        return ["within"]
+    sets = list(analysis.get("sets") or {})
+    if len(sets) != 2:
+        raise InputError(None, f"analyses[{analysis.get('name')}].sets", f"a cross analysis needs two sets, got {sets!r}",
+                         "give exactly two sets")
+    first, second = sets
+    return [f"{first}->{first}", f"{second}->{second}", f"{first}->{second}", f"{second}->{first}"]
+
+
+def direction_label(direction):
+    """A direction in words.
+
+    Examples
+    --------
+    >>> direction_label("seen->heard")
+    'train seen, test heard'
+    >>> direction_label("seen->seen")
+    'within seen'
+    >>> direction_label("seen<->heard")
+    'seen and heard, mean of both transfers'
+    """
+    if direction == "within":
+        return "within"
+    if "<->" in direction:
+        first, second = direction.split("<->", 1)
+        return f"{first} and {second}, mean of both transfers"
+    if "->" in direction:
+        train, test = direction.split("->", 1)
+        return f"within {train}" if train == test else f"train {train}, test {test}"
+    return direction
+
+
+def voxel_count_positions(counts, roi_mean_voxels):
+    """Where each voxel count sits on the log axis, and its tick label.
+
+    Parameters
+    ----------
+    counts : sequence of str or int
+        Requested voxel counts; ``"all"`` means the whole ROI.
+    roi_mean_voxels : float
+        The ROI's mean size over subjects (voxels); ``all`` is drawn there.
+
+    Returns
+    -------
+    positions : ndarray of float
+    labels : list of str
+        The count, or ``"all (N)"`` with N the rounded mean size.
+
+    Examples
+    --------
+    >>> positions, labels = voxel_count_positions(["10", "all"], 136.4)
+    >>> positions.tolist(), labels
+    ([10.0, 136.4], ['10', 'all (136)'])
+    """
+    if not math.isfinite(roi_mean_voxels) or roi_mean_voxels <= 0:
+        raise InputError(None, "roi_mean_voxels", f"the ROI's mean voxel count must be positive, got {roi_mean_voxels!r}",
+                         "check the ROI voxel-count tables")
+    positions, labels = [], []
+    for count in counts:
+        text = str(count)
+        if text == "all":
+            positions.append(float(roi_mean_voxels))
+            labels.append(f"all ({int(round(roi_mean_voxels))})")
+        else:
+            try:
+                value = int(text)
+            except ValueError:
+                raise InputError(None, "n_voxels", f"voxel count {text!r} is neither a whole number nor 'all'",
+                                 "rerun the decoding and group stages") from None
+            if value < 1:
+                raise InputError(None, "n_voxels", f"voxel count {value} is below 1", "rerun the decoding and group stages")
+            positions.append(float(value))
+            labels.append(text)
+    return np.asarray(positions, dtype=np.float64), labels
+
+
+def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
+    """The numbers behind one decoding-curve panel (one ROI, one direction).
+
+    Parameters
+    ----------
+    group_rows : pandas.DataFrame
+        Rows of the group table for this ROI and direction (``n_voxels``,
+        ``mean``, ``ci_low``, ``ci_high``, ``chance``, ``p_fwe``).
+    subject_rows : pandas.DataFrame
+        Rows of the subjects' summaries for this ROI and direction
+        (``subject``, ``n_voxels``, ``n_used``, ``balanced_accuracy``).
+    roi_mean_voxels : float
+        Where ``all`` is drawn.
+    alpha : float
+        Level for the markers: a cell is marked where ``p_fwe < alpha``.
+
+    Returns
+    -------
+    dict
+        ``counts`` (str), ``x``, ``labels``, ``mean``, ``ci_low``, ``ci_high``,
+        ``chance``, ``significant`` (bool), ``capped`` (bool: the ROI held fewer
+        voxels than requested for at least one subject), ``subjects`` and
+        ``scores`` (n_subjects x n_counts, NaN where missing); sorted by ``x``.
+    """
+    if group_rows.empty:
+        raise InputError(None, "roi, direction", "the group table has no row for this ROI and direction",
+                         "rerun the group stage")
+    counts = [str(value) for value in group_rows["n_voxels"]]
+    if len(set(counts)) != len(counts):
+        raise InputError(None, "n_voxels", f"duplicate voxel counts in the group table: {counts}", "rerun the group stage")
+    x, labels = voxel_count_positions(counts, roi_mean_voxels)
+    order = np.argsort(x, kind="stable")
+
+    def column(name):
+        return pd.to_numeric(group_rows[name], errors="coerce").to_numpy(dtype=np.float64)[order]
+
+    subjects = sorted({str(subject) for subject in subject_rows["subject"]})
+    position = {counts[index]: rank for rank, index in enumerate(order)}
+    scores = np.full((len(subjects), len(counts)), np.nan)
+    capped = np.zeros(len(counts), dtype=bool)
+    subject_index = {subject: row for row, subject in enumerate(subjects)}
+    for row in subject_rows.itertuples(index=False):
+        count = str(row.n_voxels)
+        if count not in position:
+            continue
+        scores[subject_index[str(row.subject)], position[count]] = float(row.balanced_accuracy)
+        if count != "all" and int(row.n_used) < int(count):
+            capped[position[count]] = True
+    p_fwe = column("p_fwe")
+    return {
+        "counts": [counts[index] for index in order], "x": x[order], "labels": [labels[index] for index in order],
+        "mean": column("mean"), "ci_low": column("ci_low"), "ci_high": column("ci_high"), "chance": column("chance"),
+        "significant": np.isfinite(p_fwe) & (p_fwe < alpha), "capped": capped, "subjects": subjects, "scores": scores,
+    }
+
+
+def choose_confusion_count(configured, available, roi_mean_voxels):
+    """The voxel count whose confusion matrices the report shows.
+
+    Parameters
+    ----------
+    configured : int or str
+        ``report.confusion_n_voxels``.
+    available : sequence of str
+        The counts with results.
+    roi_mean_voxels : float
+        The ROI's mean size (``all`` is compared as this many voxels).
+
+    Returns
+    -------
+    chosen : str
+    exact : bool
+        False when the configured count was not available and the nearest
+        one (on the log scale; ties go to the smaller count) was chosen.
+
+    Examples
+    --------
+    >>> choose_confusion_count(100, ["10", "50", "all"], 140.0)
+    ('all', False)
+    >>> choose_confusion_count("all", ["10", "all"], 140.0)
+    ('all', True)
+    """
+    available = [str(count) for count in available]
+    if not available:
+        raise InputError(None, "n_voxels", "no voxel count has confusion matrices", "rerun the decoding stage")
+    wanted = str(configured)
+    if wanted in available:
+        return wanted, True
+    positions, _ = voxel_count_positions(available, roi_mean_voxels)
+    target = voxel_count_positions([wanted], roi_mean_voxels)[0][0]
+    distance = np.abs(np.log(positions) - np.log(target))
+    ranking = sorted(range(len(available)), key=lambda index: (round(float(distance[index]), 12), positions[index]))
+    return available[ranking[0]], False
+
+
+def confusion_matrix(rows, classes):
+    """A confusion matrix (true class x predicted class) from long-format rows.
+
+    Parameters
+    ----------
+    rows : pandas.DataFrame
+        ``true_class``, ``predicted_class``, ``count`` of one direction and count.
+    classes : sequence of str
+        Class order of rows and columns.
+
+    Returns
+    -------
+    ndarray of int64, shape (n_classes, n_classes)
+
+    Examples
+    --------
+    >>> rows = pd.DataFrame({"true_class": ["a", "a", "b"], "predicted_class": ["a", "b", "b"], "count": [3, 1, 4]})
+    >>> confusion_matrix(rows, ["a", "b"]).tolist()
+    [[3, 1], [0, 4]]
+    """
+    index = {name: position for position, name in enumerate(classes)}
+    matrix = np.zeros((len(classes), len(classes)), dtype=np.int64)
+    for true_class, predicted, count in zip(rows["true_class"].astype(str), rows["predicted_class"].astype(str),
+                                            rows["count"]):
+        if true_class not in index or predicted not in index:
+            unknown = true_class if true_class not in index else predicted
+            raise InputError(None, "true_class, predicted_class", f"class {unknown!r} is not among the analysis's classes "
+                             f"({', '.join(classes)})", "rerun the decoding stage with the current config")
+        matrix[index[true_class], index[predicted]] += int(count)
+    return matrix
+
+
+def trials_per_condition(event_tables):
+    """Trials of each condition per run, summarised over runs.
+
+    Parameters
+    ----------
+    event_tables : sequence of pandas.DataFrame
+        One events table (with ``trial_type``) per run.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``condition``, ``min_per_run``, ``max_per_run``, ``runs_with_trials``,
+        sorted by condition; a run without a condition counts as 0.
+
+    Examples
+    --------
+    >>> runs = [pd.DataFrame({"trial_type": ["a", "a", "b"]}), pd.DataFrame({"trial_type": ["a", "b", "b"]})]
+    >>> trials_per_condition(runs).to_dict("list")
+    {'condition': ['a', 'b'], 'min_per_run': [1, 1], 'max_per_run': [2, 2], 'runs_with_trials': [2, 2]}
+    """
+    counts = [table["trial_type"].astype(str).value_counts() for table in event_tables]
+    conditions = sorted(set().union(*[set(count.index) for count in counts])) if counts else []
+    per_run = np.array([[int(count.get(condition, 0)) for condition in conditions] for count in counts],
+                       dtype=np.int64).reshape(len(counts), len(conditions))
+    return pd.DataFrame({
+        "condition": conditions,
+        "min_per_run": per_run.min(axis=0).tolist() if len(counts) else [],
+        "max_per_run": per_run.max(axis=0).tolist() if len(counts) else [],
+        "runs_with_trials": (per_run > 0).sum(axis=0).tolist() if len(counts) else [],
+    })
+
+
+# -- images --------------------------------------------------------------------------
+
+def best_slices(mask):
+    """Per axis, the slice index holding the most voxels of ``mask`` (ties: the lowest).
+
+    Parameters
+    ----------
+    mask : array_like of bool, 3D
+
+    Returns
+    -------
+    tuple of 3 int
+        The middle of the grid along axes where the mask is empty.
+
+    Examples
+    --------
+    >>> mask = np.zeros((4, 5, 6), dtype=bool); mask[1, 2:4, 3] = True
+    >>> best_slices(mask)
+    (1, 2, 3)
+    """
+    mask = np.asarray(mask, dtype=bool)
+    if mask.ndim != 3:
+        raise InputError(None, "mask", f"expected a 3D mask, got shape {mask.shape}", "pass one 3D volume")
+    chosen = []
+    for axis in range(3):
+        other = tuple(a for a in range(3) if a != axis)
+        per_slice = mask.sum(axis=other)
+        chosen.append(int(np.argmax(per_slice)) if per_slice.any() else mask.shape[axis] // 2)
+    return tuple(chosen)
+
+
+def grid_axes_mm(affine, shape):
+    """Millimetre coordinates of the voxel centres along each grid axis.
+
+    Parameters
+    ----------
+    affine : array_like, shape (4, 4)
+        Voxel-to-world affine.
+    shape : sequence of 3 int
+
+    Returns
+    -------
+    coordinates : list of 3 ndarray
+        Increasing coordinates (mm) per axis.
+    flips : tuple of 3 bool
+        Axes to reverse so that the data follow the increasing coordinates.
+    names : tuple of 3 str
+        ``("x", "y", "z")`` world axes when the affine is axis-aligned (no
+        rotation or shear), otherwise distances along the grid axes.
+
+    Examples
+    --------
+    >>> coordinates, flips, names = grid_axes_mm(np.diag([-2.0, 2.0, 3.0, 1.0]), (3, 2, 2))
+    >>> coordinates[0].tolist(), flips, names
+    ([-4.0, -2.0, 0.0], (True, False, False), ('x', 'y', 'z'))
+    """
+    affine = np.asarray(affine, dtype=np.float64)
+    linear = affine[:3, :3]
+    off_diagonal = linear - np.diag(np.diag(linear))
+    sizes = np.linalg.norm(linear, axis=0)
+    if np.all(np.abs(off_diagonal) <= 1e-6 * np.max(sizes)) and np.all(np.abs(np.diag(linear)) > 0):
+        coordinates, flips = [], []
+        for axis in range(3):
+            values = affine[axis, axis] * np.arange(shape[axis]) + affine[axis, 3]
+            flips.append(bool(affine[axis, axis] < 0))
+            coordinates.append(values[::-1] if flips[-1] else values)
+        return coordinates, tuple(flips), ("x", "y", "z")
+    coordinates = [sizes[axis] * np.arange(shape[axis]) for axis in range(3)]
+    return coordinates, (False, False, False), tuple(f"distance along grid axis {axis + 1}" for axis in range(3))
+
+
+def _oriented(volume, flips):
+    for axis, flip in enumerate(flips):
+        if flip:
+            volume = np.flip(volume, axis=axis)
+    return volume
+
+
+def _slice_geometry(coordinates, names, axis, index):
+    """(horizontal axis, vertical axis, extent, panel title) of the slice ``index`` across ``axis``."""
+    horizontal, vertical = [a for a in range(3) if a != axis]
+    h, v = coordinates[horizontal], coordinates[vertical]
+    dh = (h[1] - h[0]) if len(h) > 1 else 1.0
+    dv = (v[1] - v[0]) if len(v) > 1 else 1.0
+    extent = (h[0] - dh / 2, h[-1] + dh / 2, v[0] - dv / 2, v[-1] + dv / 2)
+    position = coordinates[axis][index]
+    title = f"{_SLICE_NAMES[axis]}, {names[axis]} = {position:g} mm"
+    return horizontal, vertical, extent, title
+
+
+def _take(volume, axis, index):
+    return np.take(volume, index, axis=axis).T  # rows: the vertical axis, for origin="lower"
+
+
+def _window(values):
+    finite = values[np.isfinite(values)]
+    if finite.size == 0:
+        return 0.0, 1.0
+    low, high = np.percentile(finite, _WINDOW_PERCENTILES)
+    return (float(low), float(high)) if high > low else (float(low), float(low) + 1.0)
+
+
+def _label_axes(axes, names, horizontal, vertical):
+    axes.set_xlabel(f"{names[horizontal]} (mm)", fontsize=_FONT_SIZE)
+    axes.set_ylabel(f"{names[vertical]} (mm)", fontsize=_FONT_SIZE)
+    axes.tick_params(labelsize=_FONT_SIZE - 1)
+
+
+def _fine_axis(centres, factor):
+    """Centres of a grid ``factor`` times finer than ``centres``, one fine cell beyond each end."""
+    step = (centres[1] - centres[0]) if len(centres) > 1 else 1.0
+    fine_step = step / factor
+    start = centres[0] - step / 2 - fine_step / 2
+    return start + fine_step * np.arange(len(centres) * factor + 2)
+
+
+def _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, width, factor=_OUTLINE_UPSAMPLING):
+    """Outline a mask along its voxel edges (the mask is upsampled and zero-padded before contouring)."""
+    if not mask_slice.any():
+        return
+    fine = np.pad(np.repeat(np.repeat(mask_slice, factor, axis=0), factor, axis=1), 1).astype(np.float64)
+    axes.contour(_fine_axis(coordinates[horizontal], factor), _fine_axis(coordinates[vertical], factor), fine,
+                 levels=[0.5], colors=[colour], linewidths=width)
+
+
+def design_figure(matrix, names, tr_s, title):
+    """The design matrix as a grey image, each regressor scaled to its largest magnitude.
+
+    Parameters
+    ----------
+    matrix : array_like, shape (n_scans, n_regressors)
+    names : sequence of str
+        Regressor names (every one is labelled).
+    tr_s : float or None
+        Repetition time (s); None draws the scan number instead of time.
+    title : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    values = np.asarray(matrix, dtype=np.float64)
+    if values.ndim != 2 or values.shape[1] != len(names):
+        raise InputError(None, "design", f"a design of shape {values.shape} does not match {len(names)} regressor names",
+                         "rerun the GLM stage")
+    scale = np.max(np.abs(values), axis=0) if values.size else np.zeros(values.shape[1])
+    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0)
+    n_scans = values.shape[0]
+    width = max(4.5, 1.6 + 0.2 * len(names))
+    figure = Figure(figsize=(width, 4.6), layout="constrained")
+    axes = figure.add_subplot()
+    if tr_s:
+        extent, ylabel = (-0.5, len(names) - 0.5, n_scans * tr_s, 0.0), "time from run start (s)"
+    else:
+        extent, ylabel = (-0.5, len(names) - 0.5, n_scans - 0.5, -0.5), "scan (volume number, from 0)"
+    image = axes.imshow(shown, aspect="auto", cmap="gray", interpolation="nearest", vmin=-1, vmax=1, extent=extent)
+    axes.set_xticks(np.arange(len(names)))
+    axes.set_xticklabels(list(names), rotation=90, fontsize=_FONT_SIZE - 1)
+    axes.set_xlabel("regressor", fontsize=_FONT_SIZE)
+    axes.set_ylabel(ylabel, fontsize=_FONT_SIZE)
+    axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
+    axes.set_title(title, fontsize=_FONT_SIZE + 1)
+    colourbar = figure.colorbar(image, ax=axes, shrink=0.8)
+    colourbar.set_label("value / largest magnitude of the regressor (unitless)", fontsize=_FONT_SIZE - 1)
+    colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
+    return figure
+
+
+def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
+    """Brain and ROI masks over the mean image in three orthogonal slices (mm axes).
+
+    Parameters
+    ----------
+    mean_image : array_like, 3D
+        The subject's mean BOLD image.
+    brain_mask : array_like of bool, 3D
+    roi_masks : sequence of (str, array_like of bool)
+        ROI name and mask, in config order.
+    affine : array_like, shape (4, 4)
+    title : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Notes
+    -----
+    Slices go through the planes with the most ROI voxels (or brain voxels
+    when there is no ROI); the brain mask is outlined, each ROI filled and
+    outlined in its own colour.
+    """
+    mean_image = np.asarray(mean_image, dtype=np.float64)
+    shape = mean_image.shape
+    coordinates, flips, names = grid_axes_mm(affine, shape)
+    mean_image = _oriented(mean_image, flips)
+    brain = _oriented(np.asarray(brain_mask, dtype=bool), flips)
+    rois = [(name, _oriented(np.asarray(mask, dtype=bool), flips)) for name, mask in roi_masks]
+    union = np.zeros(shape, dtype=bool)
+    for _, mask in rois:
+        union |= mask
+    slices = best_slices(union if union.any() else brain)
+    low, high = _window(mean_image[brain] if brain.any() else mean_image)
+    figure = Figure(figsize=(11, 4.2), layout="constrained")
+    panels = figure.subplots(1, 3)
+    colours = [OKABE_ITO[_ROI_COLOURS[index % len(_ROI_COLOURS)]] for index in range(len(rois))]
+    for axis, axes in enumerate(panels):
+        index = slices[axis]
+        horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
+        axes.imshow(_take(mean_image, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
+                    interpolation="nearest")
+        for (name, mask), colour in zip(rois, colours):
+            mask_slice = _take(mask, axis, index)
+            overlay = np.zeros(mask_slice.shape + (4,))
+            overlay[mask_slice] = to_rgba(colour, 0.55)
+            axes.imshow(overlay, origin="lower", extent=extent, interpolation="nearest")
+            _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, 1.0)
+        _outline(axes, coordinates, horizontal, vertical, _take(brain, axis, index), _BRAIN_OUTLINE, 1.2)
+        axes.set_title(panel_title, fontsize=_FONT_SIZE)
+        _label_axes(axes, names, horizontal, vertical)
+    handles = [Line2D([], [], color=_BRAIN_OUTLINE, linewidth=1.5, label="brain mask (outline)")]
+    handles += [Patch(facecolor=to_rgba(colour, 0.55), edgecolor=colour, label=f"ROI {name}")
+                for (name, _), colour in zip(rois, colours)]
+    figure.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), 6), fontsize=_FONT_SIZE,
+                  frameon=False)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
+    return figure
+
+
+def resvar_figure(residual_variance, brain_mask, affine, title):
+    """The GLM residual variance inside the brain in three orthogonal slices (mm axes).
+
+    Parameters
+    ----------
+    residual_variance : array_like, 3D
+    brain_mask : array_like of bool, 3D
+    affine : array_like, shape (4, 4)
+    title : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    values = np.asarray(residual_variance, dtype=np.float64)
+    coordinates, flips, names = grid_axes_mm(affine, values.shape)
+    values = _oriented(values, flips)
+    brain = _oriented(np.asarray(brain_mask, dtype=bool), flips)
+    shown = np.where(brain & np.isfinite(values), values, np.nan)
+    low, high = _window(shown)
+    slices = best_slices(brain)
+    colour_map = colormaps["viridis"].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
+    figure = Figure(figsize=(11, 3.9), layout="constrained")
+    panels = figure.subplots(1, 3)
+    image = None
+    for axis, axes in enumerate(panels):
+        index = slices[axis]
+        horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
+        axes.set_facecolor("0.85")
+        image = axes.imshow(_take(shown, axis, index), cmap=colour_map, vmin=low, vmax=high, origin="lower",
+                            extent=extent, interpolation="nearest")
+        axes.set_title(panel_title, fontsize=_FONT_SIZE)
+        _label_axes(axes, names, horizontal, vertical)
+    colourbar = figure.colorbar(image, ax=list(panels), shrink=0.85)
+    colourbar.set_label("residual variance (squared BOLD signal units)", fontsize=_FONT_SIZE)
+    colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
+    figure.suptitle(title + " (outside the brain mask: grey)", fontsize=_FONT_SIZE + 1)
+    return figure
+
+
+# -- results figures -------------------------------------------------------------------
+
+def _score_limits(panels):
+    values = [panel["scores"][np.isfinite(panel["scores"])] for panel in panels]
+    values += [panel[key][np.isfinite(panel[key])] for panel in panels for key in ("mean", "ci_low", "ci_high", "chance")]
+    values = np.concatenate(values) if values else np.array([])
+    if values.size == 0:
+        return 0.0, 1.0
+    low, high = max(0.0, float(values.min()) - 0.05), min(1.0, float(values.max()) + 0.05)
+    return (low, high) if high > low else (max(0.0, low - 0.05), min(1.0, high + 0.05))
+
+
+def curve_figure(panels, title, alpha):
+    """Decoding curves: balanced accuracy against the number of voxels, one panel per direction.
+
+    Parameters
+    ----------
+    panels : sequence of dict
+        ``curve_data`` output plus ``label`` (direction in words).
+    title : str
+    alpha : float
+        Shown in the legend of the significance markers.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Thin lines: single subjects; thick line and band: group mean and its
+        95% confidence interval; dashed: chance; stars: ``p_fwe < alpha``;
+        open circles: the ROI held fewer voxels than requested for at least
+        one subject.
+    """
+    if not panels:
+        raise InputError(None, "direction", "no direction to draw", "rerun the group stage")
+    width = 6.6 if len(panels) == 1 else 3.4 * len(panels)
+    figure = Figure(figsize=(width, 4.4), layout="constrained")
+    axes_list = np.atleast_1d(figure.subplots(1, len(panels), sharey=True, squeeze=False)[0])
+    low, high = _score_limits(panels)
+    for index, (axes, panel) in enumerate(zip(axes_list, panels)):
+        colour = OKABE_ITO[_PANEL_COLOURS[index % len(_PANEL_COLOURS)]]
+        x = panel["x"]
+        for scores in panel["scores"]:
+            axes.plot(x, scores, color=colour, alpha=0.35, linewidth=0.8)
+        band = np.isfinite(panel["ci_low"]) & np.isfinite(panel["ci_high"])
+        if band.any():
+            axes.fill_between(x, panel["ci_low"], panel["ci_high"], where=band, color=colour, alpha=0.2, linewidth=0)
+        axes.plot(x, panel["chance"], color="0.3", linestyle="--", linewidth=1.0)
+        axes.plot(x, panel["mean"], color=colour, linewidth=2.0)
+        full, capped = ~panel["capped"], panel["capped"]
+        axes.scatter(x[full], panel["mean"][full], s=28, color=colour, zorder=3)
+        axes.scatter(x[capped], panel["mean"][capped], s=28, facecolors="white", edgecolors=colour, zorder=3)
+        significant = panel["significant"]
+        if significant.any():
+            axes.scatter(x[significant], panel["mean"][significant], s=150, marker="*", color=OKABE_ITO["black"], zorder=4)
+        axes.set_xscale("log")
+        axes.set_xticks(x)
+        axes.set_xticklabels(panel["labels"], rotation=45, ha="right", fontsize=_FONT_SIZE - 1)
+        axes.xaxis.set_minor_locator(NullLocator())
+        axes.set_xlim(x.min() / 1.35, x.max() * 1.35)
+        axes.set_ylim(low, high)
+        axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
+        axes.set_title(panel["label"], fontsize=_FONT_SIZE + 1)
+        axes.set_xlabel("number of voxels (log scale)", fontsize=_FONT_SIZE)
+        axes.grid(True, axis="y", color="0.9", linewidth=0.6)
+    axes_list[0].set_ylabel("balanced accuracy (proportion)", fontsize=_FONT_SIZE)
+    grey = "0.35"
+    n_subjects = len(panels[0]["subjects"])
+    handles = [
+        Line2D([], [], color=grey, linewidth=2.0, marker="o", label=f"group mean ({n_subjects} subjects)"),
+        Patch(facecolor=grey, alpha=0.25, label="95% confidence interval of the mean"),
+        Line2D([], [], color=grey, alpha=0.5, linewidth=0.8, label="single subjects"),
+        Line2D([], [], color="0.3", linestyle="--", linewidth=1.0, label="chance level"),
+        Line2D([], [], color=OKABE_ITO["black"], marker="*", markersize=11, linestyle="none",
+               label=f"p (family-wise corrected) < {alpha:g}"),
+        Line2D([], [], color=grey, marker="o", markerfacecolor="white", linestyle="none",
+               label="ROI smaller than the count for some subjects"),
+    ]
+    figure.legend(handles=handles, loc="outside lower center", ncols=2 if len(panels) == 1 else 3,
+                  fontsize=_FONT_SIZE - 1, frameon=False)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 2)
+    return figure
+
+
+def confusion_figure(matrices, subjects, directions, classes, title):
+    """Per-subject confusion matrices (rows: true class, columns: predicted class).
+
+    Parameters
+    ----------
+    matrices : dict
+        ``(direction, subject) -> ndarray`` of counts.
+    subjects : sequence of str
+    directions : sequence of (str, str)
+        Direction and its label in words, one block of rows each.
+    classes : sequence of str
+    title : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Colour: the proportion of each true class's test samples given each
+        predicted class (rows sum to 1); numbers: the counts.
+    """
+    n_columns = min(len(subjects), _CONFUSION_COLUMNS_MAX)
+    rows_per_direction = int(math.ceil(len(subjects) / n_columns))
+    n_rows = rows_per_direction * len(directions)
+    # A fixed layout (inches): constrained layout costs seconds per figure at this many axes.
+    longest = max(len(str(name)) for name in classes)
+    side = 0.36 * len(classes) + 0.4
+    tick_width, tick_height = 0.07 * longest + 0.15, 0.05 * longest + 0.15
+    left, gap_x, right = 0.45 + tick_width, 0.2 + tick_width, 1.3
+    top, gap_y, bottom = 0.55, 0.65 + tick_height, 0.35 + tick_height
+    width = left + n_columns * side + (n_columns - 1) * gap_x + right
+    height = top + n_rows * side + (n_rows - 1) * gap_y + bottom
+    figure = Figure(figsize=(width, height))
+    colour_map = colormaps["cividis"]
+    image = None
+    for block, (direction, label) in enumerate(directions):
+        for position, subject in enumerate(subjects):
+            row_number, column_number = block * rows_per_direction + position // n_columns, position % n_columns
+            x0 = left + column_number * (side + gap_x)
+            y0 = height - top - (row_number + 1) * side - row_number * gap_y
+            axes = figure.add_axes((x0 / width, y0 / height, side / width, side / height))
+            counts = matrices[(direction, subject)]
+            totals = counts.sum(axis=1, keepdims=True)
+            proportions = np.divide(counts, totals, out=np.full(counts.shape, np.nan), where=totals > 0)
+            image = axes.imshow(proportions, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation="nearest")
+            for (row, column), count in np.ndenumerate(counts):
+                shade = proportions[row, column]
+                text_colour = "white" if not np.isfinite(shade) or shade < 0.55 else "black"
+                axes.text(column, row, str(int(count)), ha="center", va="center", fontsize=_FONT_SIZE - 1,
+                          color=text_colour)
+            axes.set_xticks(np.arange(len(classes)))
+            axes.set_xticklabels(classes, rotation=45, ha="right", fontsize=_FONT_SIZE - 2)
+            axes.set_yticks(np.arange(len(classes)))
+            axes.set_yticklabels(classes, fontsize=_FONT_SIZE - 2)
+            axes.set_title(f"sub-{subject}", fontsize=_FONT_SIZE - 1)
+            axes.set_xlabel("predicted class", fontsize=_FONT_SIZE - 2)
+            if column_number == 0:
+                axes.set_ylabel(f"{label}\ntrue class", fontsize=_FONT_SIZE - 1)
+    bar_height = min(height - top - bottom, 3.0)
+    bar = figure.add_axes(((width - right + 0.35) / width, (height - top - bar_height) / height, 0.15 / width,
+                           bar_height / height))
+    colourbar = figure.colorbar(image, cax=bar)
+    colourbar.set_label("proportion of the true class's test samples", fontsize=_FONT_SIZE - 1)
+    colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 1, y=1 - 0.15 / height, va="top")
+    return figure
+
+
+# -- provenance ------------------------------------------------------------------------
+
+def reproduce_commands(config_file, dataset_source):
+    """The commands that reproduce the study, as (description, command) pairs.
+
+    Parameters
+    ----------
+    config_file : str or None
+        The study config file (None: given to Snakemake with ``--configfile``).
+    dataset_source : str
+        ``demo`` or ``bids``.
+
+    Returns
+    -------
+    list of (str, str)
+
+    Examples
+    --------
+    >>> reproduce_commands("config/config.yaml", "demo")[0]
+    ('the demo study, with the pinned environment', 'make demo')
+    """
+    commands = []
+    if config_file in (None, "", "config/config.yaml"):
+        what = "the demo study" if dataset_source == "demo" else "the study"
+        commands.append((f"{what}, with the pinned environment", "make demo"))
+        config_part = "--config config_file=config/config.yaml" if config_file else "--configfile <the study config>"
+    else:
+        commands.append(("the study, with the pinned environment", f"make demo CONFIG={config_file}"))
+        config_part = f"--config config_file={config_file}"
+    commands.append(("the same with Snakemake directly",
+                     f".venv/bin/snakemake --profile config/profiles/local --cores 2 {config_part}"))
+    commands.append(("recompute everything with the memo off and compare with these results", "make verify"
+                     + ("" if config_file in (None, "", "config/config.yaml") else f" CONFIG={config_file}")))
+    return commands
+
+
+def manifest_summary(records):
+    """Jobs and output files per step, from the jobs' provenance records.
+
+    Parameters
+    ----------
+    records : sequence of dict
+        Provenance records (``step``, ``outputs``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``step``, ``jobs``, ``output_files``, steps in first-seen order.
+
+    Examples
+    --------
+    >>> manifest_summary([{"step": "glm", "outputs": [1, 2]}, {"step": "glm", "outputs": [3]}]).to_dict("list")
+    {'step': ['glm'], 'jobs': [2], 'output_files': [3]}
+    """
+    steps = {}
+    for record in records:
+        step = str(record["step"])
+        jobs, files = steps.get(step, (0, 0))
+        steps[step] = (jobs + 1, files + len(record["outputs"]))
+    return pd.DataFrame({"step": list(steps), "jobs": [value[0] for value in steps.values()],
+                         "output_files": [value[1] for value in steps.values()]})
+
+
+# -- HTML ------------------------------------------------------------------------------
+
+def format_number(value, digits=3):
+    """A proportion or statistic with fixed decimals; ``n/a`` for missing values.
+
+    Examples
+    --------
+    >>> format_number(0.41666), format_number(float("nan"))
+    ('0.417', 'n/a')
+    """
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "n/a"
+    return "n/a" if not math.isfinite(value) else f"{value:.{digits}f}"
+
+
+def format_p(value):
+    """A p-value with three significant digits; ``n/a`` for missing values.
+
+    Examples
+    --------
+    >>> format_p(0.0099009901), format_p(0.5), format_p(None)
+    ('0.0099', '0.5', 'n/a')
+    """
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return "n/a"
+    return "n/a" if not math.isfinite(value) else f"{value:.3g}"
+
+
+def html_table(header, rows, caption=None, row_classes=None, wide=False):
+    """An HTML table of text cells (escaped).
+
+    Parameters
+    ----------
+    header : sequence of str
+    rows : sequence of sequence
+        Cells (converted with ``str``).
+    caption : str, optional
+    row_classes : sequence of str, optional
+        A CSS class per row ("" for none).
+    wide : bool
+        Compact cells and a horizontal scroll bar when the table is wider
+        than the page.
+
+    Returns
+    -------
+    str
+    """
+    parts = ["<div class=\"wide\"><table class=\"compact\">" if wide else "<table>"]
+    if caption:
+        parts.append(f"<caption>{html.escape(caption)}</caption>")
+    parts.append("<thead><tr>" + "".join(f"<th scope=\"col\">{html.escape(str(cell))}</th>" for cell in header)
+                 + "</tr></thead><tbody>")
+    for number, row in enumerate(rows):
+        css = row_classes[number] if row_classes else ""
+        opening = f"<tr class=\"{html.escape(css)}\">" if css else "<tr>"
+        parts.append(opening + "".join(f"<td>{html.escape(str(cell))}</td>" for cell in row) + "</tr>")
+    parts.append("</tbody></table></div>" if wide else "</tbody></table>")
+    return "".join(parts)
+
+
+def figure_block(png_bytes, stem, alt, caption):
+    """One figure: the PNG embedded as a data URI, its caption and its file names.
+
+    Parameters
+    ----------
+    png_bytes : bytes
+    stem : str
+        File stem under ``figures/`` (PNG and SVG).
+    alt : str
+        Text alternative of the image.
+    caption : str
+
+    Returns
+    -------
+    str
+    """
+    if not png_bytes.startswith(b"\x89PNG\r\n\x1a\n"):
+        raise InputError(None, stem, "the figure is not a PNG image", "rerun the report job")
+    data = base64.b64encode(png_bytes).decode("ascii")
+    files = f"figures/{stem}.png, figures/{stem}.svg"
+    return (f"<figure id=\"fig-{html.escape(stem)}\"><img src=\"data:image/png;base64,{data}\" alt=\"{html.escape(alt)}\">"
+            f"<figcaption>{html.escape(caption)} <span class=\"files\">Files: {html.escape(files)}</span></figcaption>"
+            "</figure>")
+
+
+_STYLE = """
+body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, "DejaVu Sans", sans-serif; color: #1a1a1a;
+       background: #ffffff; margin: 0; line-height: 1.45; }
+main { max-width: 1320px; margin: 0 auto; padding: 1rem 1.5rem 3rem; }
+h1 { font-size: 1.7rem; margin-bottom: 0.2rem; }
+h2 { border-bottom: 2px solid #0072B2; padding-bottom: 0.2rem; margin-top: 2.2rem; }
+h3 { margin-top: 1.6rem; }
+nav ul { list-style: none; padding: 0; display: flex; flex-wrap: wrap; gap: 1rem; }
+table { border-collapse: collapse; margin: 0.6rem 0 1rem; font-size: 0.9rem; }
+caption { text-align: left; font-weight: 600; padding: 0.3rem 0; }
+th, td { border: 1px solid #c8c8c8; padding: 0.25rem 0.5rem; text-align: left; vertical-align: top; }
+th { background: #eef3f8; }
+tr.survives td { font-weight: 700; }
+.wide { overflow-x: auto; max-width: 100%; }
+table.compact { font-size: 0.78rem; }
+table.compact th, table.compact td { padding: 0.2rem 0.35rem; }
+figure { margin: 0.8rem 0 1.4rem; }
+figure img { max-width: 100%; height: auto; border: 1px solid #e0e0e0; }
+figcaption { font-size: 0.88rem; color: #333333; max-width: 70rem; }
+.files { color: #555555; font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: 0.8rem; }
+.gallery { display: flex; flex-wrap: wrap; gap: 1rem; align-items: flex-start; }
+.gallery figure { margin: 0; max-width: 46%; }
+.caution { border-left: 5px solid #D55E00; background: #fdf3ec; padding: 0.6rem 1rem; }
+code, pre { font-family: ui-monospace, "DejaVu Sans Mono", monospace; background: #f4f4f4; }
+pre { padding: 0.5rem 0.8rem; overflow-x: auto; }
+"""
+
+
+def render_page(title, sections):
+    """The whole page: a table of contents and the sections, no script, no external resource.
+
+    Parameters
+    ----------
+    title : str
+    sections : sequence of (str, str, str)
+        ``(id, heading, inner HTML)`` per section.
+
+    Returns
+    -------
+    str
+    """
+    for section_id, _, _ in sections:
+        if not re.fullmatch(r"[a-z][a-z0-9-]*", section_id):
+            raise InputError(None, "section id", f"{section_id!r} is not a lower-case identifier", "rename the section")
+    contents = "".join(f"<li><a href=\"#{section_id}\">{html.escape(heading)}</a></li>" for section_id, heading, _ in sections)
+    body = "".join(f"<section id=\"{section_id}\"><h2>{html.escape(heading)}</h2>{inner}</section>"
+                   for section_id, heading, inner in sections)
+    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+            f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body><main>"
+            f"<h1>{html.escape(title)}</h1><nav aria-label=\"sections\"><ul>{contents}</ul></nav>{body}"
+            "</main></body></html>\n")

@@ -152,6 +152,7 @@ def test_bad_radius_and_centres_are_refused():
 # -- classifiers against scikit-learn ----------------------------------------------------------
 @pytest.mark.parametrize("classifier", CLASSIFIERS)
 def test_accuracy_equals_a_scikit_learn_refit_on_sampled_spheres(classifier):
+    # Spheres of up to 19 voxels and 18 training patterns: shrinkage LDA takes its Woodbury (n x n) branch here.
     mask, patterns, labels, _, runs = _small_problem(seed=3)
     spheres = sl.sphere_neighbourhoods(mask, np.eye(4), 1.8)
     scores, directions = sl.searchlight_scores(patterns, labels, runs, spheres, classifier=classifier)
@@ -164,6 +165,7 @@ def test_accuracy_equals_a_scikit_learn_refit_on_sampled_spheres(classifier):
 
 @pytest.mark.parametrize("classifier", CLASSIFIERS)
 def test_permuted_rows_equal_a_scikit_learn_refit_on_the_permuted_labels(classifier):
+    # Spheres of up to 7 voxels and 18 training patterns: shrinkage LDA takes its p x p branch here.
     mask, patterns, labels, _, runs = _small_problem(seed=4)
     spheres = sl.sphere_neighbourhoods(mask, np.eye(4), 1.0)
     scores, _ = sl.searchlight_scores(patterns, labels, runs, spheres, classifier=classifier, n_permutations=2,

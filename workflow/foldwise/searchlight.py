@@ -680,7 +680,16 @@ def _lda_chunk(train, test, labels, n_classes, size, valid):
         row_weight[:, members] = np.sqrt(prior * (1.0 - shrinkage) / members.size)[:, np.newaxis]
     regular = np.all((ridge > 0) | ~valid, axis=1)
     decisions = np.empty((n_spheres, test.shape[1], n_classes))
-    if regular.any():
+    if regular.any() and n_train > n_pad:
+        # More patterns than voxels: the p x p system Sigma = D + U'U itself is the smaller one.
+        chosen = slice(None) if regular.all() else regular
+        weighted = residuals[chosen] * row_weight[chosen][:, :, np.newaxis]
+        covariance = np.matmul(weighted.transpose(0, 2, 1), weighted)
+        covariance[:, np.arange(n_pad), np.arange(n_pad)] += ridge[chosen]  # padding voxels: a positive ridge alone
+        coef = np.linalg.solve(covariance, means[chosen].transpose(0, 2, 1))  # Sigma^-1 M'  (b, P, K)
+        intercept = -0.5 * np.einsum("bkp,bpk->bk", means[chosen], coef)
+        decisions[chosen] = np.matmul(test[chosen], coef) + intercept[:, np.newaxis, :]
+    elif regular.any():
         chosen = slice(None) if regular.all() else regular  # a view, not a copy, in the usual case
         # Sigma = D + U'U with D = diag(ridge) and U the weighted residuals; by Woodbury
         # Sigma^-1 = D^-1 - D^-1 U' (I + U D^-1 U')^-1 U D^-1, so only an n x n system is solved.
@@ -733,7 +742,9 @@ def predict_shrinkage_lda(z_train, train_labels, z_test, spheres, n_classes):
     ``U'U`` with ``U`` the ``n_train x p`` weighted residuals, so the
     Woodbury identity (Woodbury 1950, Memorandum Report 42, Princeton) turns
     the ``p x p`` solve into one ``n_train x n_train`` solve per sphere, done
-    for a chunk of spheres by ``np.linalg.solve`` on stacks.
+    for a chunk of spheres by ``np.linalg.solve`` on stacks; with more
+    training patterns than sphere voxels the ``p x p`` system is solved
+    directly instead.
 
     This is scikit-learn's estimate, which differs from the pooled
     within-class estimate of :func:`foldwise.classifiers.shrinkage_lda_fit`

@@ -52,6 +52,18 @@ DECODE_STEM = "results/decoding/{analysis}/sub-{subject}/sub-{subject}_roi-{roi}
 SUBJECT_SCORES = "results/decoding/{analysis}/sub-{subject}_scores.tsv"
 SUBJECT_SUMMARY = "results/decoding/{analysis}/sub-{subject}_summary.tsv"
 GROUP_STEM = "results/group/{analysis}/{analysis}"
+PATTERNS_IMAGE = f"{PATTERN_STEM}_patterns.nii.gz"
+PATTERNS_TABLE = f"{PATTERN_STEM}_patterns.tsv"
+DESIGN_TABLE = f"{PATTERN_STEM}_design.tsv"
+DESIGN_FIGURE = f"{PATTERN_STEM}_design.png"
+RESIDUAL_VARIANCE = f"{PATTERN_STEM}_resvar.nii.gz"
+DECODE_SCORES = f"{DECODE_STEM}_scores.tsv"
+DECODE_NULL = f"{DECODE_STEM}_null.tsv.gz"
+DECODE_RANKINGS = f"{DECODE_STEM}_rankings.tsv.gz"
+DECODE_CONFUSION = f"{DECODE_STEM}_confusion.tsv"
+GROUP_TABLE = f"{GROUP_STEM}_group.tsv"
+GROUP_NULL = f"{GROUP_STEM}_group_null.tsv.gz"
+GROUP_SUMMARY = f"{GROUP_STEM}_summary.txt"
 MANIFEST = "results/manifest.tsv"
 
 
@@ -83,17 +95,17 @@ def subject_bold(wildcards):
 
 
 def subject_pattern_files(wildcards):
-    return [expand(PATTERN_STEM + "_patterns.nii.gz", subject=wildcards.subject, run_id=run["run_id"])[0]
+    return [expand(PATTERNS_IMAGE, subject=wildcards.subject, run_id=run["run_id"])[0]
             for run in subject_runs(wildcards.subject)]
 
 
 def subject_pattern_tables(wildcards):
-    return [expand(PATTERN_STEM + "_patterns.tsv", subject=wildcards.subject, run_id=run["run_id"])[0]
+    return [expand(PATTERNS_TABLE, subject=wildcards.subject, run_id=run["run_id"])[0]
             for run in subject_runs(wildcards.subject)]
 
 
 def all_pattern_files():
-    return [expand(PATTERN_STEM + "_patterns.nii.gz", subject=run["subject"], run_id=run["run_id"])[0] for run in PLAN.runs]
+    return [expand(PATTERNS_IMAGE, subject=run["subject"], run_id=run["run_id"])[0] for run in PLAN.runs]
 
 
 def analysis_rois(name):
@@ -102,7 +114,7 @@ def analysis_rois(name):
 
 def print_group_summaries():
     for name in ANALYSES:
-        path = expand(GROUP_STEM + "_summary.txt", analysis=name)[0]
+        path = expand(GROUP_SUMMARY, analysis=name)[0]
         if os.path.isfile(path):
             print(open(path, encoding="utf-8").read().rstrip())
 
@@ -191,7 +203,7 @@ def subject_roi_infos(wildcards):
 
 
 def subject_analysis_scores(wildcards):
-    return expand(DECODE_STEM + "_scores.tsv", analysis=wildcards.analysis, subject=wildcards.subject,
+    return expand(DECODE_SCORES, analysis=wildcards.analysis, subject=wildcards.subject,
                   roi=analysis_rois(wildcards.analysis))
 
 
@@ -200,7 +212,7 @@ def analysis_summaries(wildcards):
 
 
 def analysis_nulls(wildcards):
-    return expand(DECODE_STEM + "_null.tsv.gz", analysis=wildcards.analysis, subject=SUBJECTS,
+    return expand(DECODE_NULL, analysis=wildcards.analysis, subject=SUBJECTS,
                   roi=analysis_rois(wildcards.analysis))
 
 

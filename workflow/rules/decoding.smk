@@ -8,10 +8,10 @@ rule decode:
         tables=subject_pattern_tables,
         mask=ROI_MASK,
     output:
-        scores=DECODE_STEM + "_scores.tsv",
-        null=DECODE_STEM + "_null.tsv.gz",
-        rankings=DECODE_STEM + "_rankings.tsv.gz",
-        confusion=DECODE_STEM + "_confusion.tsv",
+        scores=DECODE_SCORES,
+        null=DECODE_NULL,
+        rankings=DECODE_RANKINGS,
+        confusion=DECODE_CONFUSION,
         provenance=provenance_path("decode", "{analysis}_sub-{subject}_roi-{roi}"),
     params:
         settings=decode_settings,
@@ -24,6 +24,8 @@ rule decode:
     resources:
         mem_mb=2000,
         runtime=30,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/decode.py"
 
@@ -44,5 +46,7 @@ rule decode_gather:
     resources:
         mem_mb=500,
         runtime=5,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/decode_gather.py"

@@ -23,5 +23,7 @@ if STUDY["dataset"]["source"] == "demo":
         resources:
             mem_mb=1000,
             runtime=10,
+        conda:
+            "../envs/foldwise.yaml"
         script:
             "../scripts/demo_dataset.py"

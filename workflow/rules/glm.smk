@@ -18,6 +18,8 @@ rule brain_mask:
     resources:
         mem_mb=2000,
         runtime=10,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/brain_mask.py"
 
@@ -26,11 +28,11 @@ rule glm:
     input:
         unpack(glm_inputs),
     output:
-        patterns=PATTERN_STEM + "_patterns.nii.gz",
-        table=PATTERN_STEM + "_patterns.tsv",
-        design=PATTERN_STEM + "_design.tsv",
-        design_png=PATTERN_STEM + "_design.png",
-        resvar=PATTERN_STEM + "_resvar.nii.gz",
+        patterns=PATTERNS_IMAGE,
+        table=PATTERNS_TABLE,
+        design=DESIGN_TABLE,
+        design_png=DESIGN_FIGURE,
+        resvar=RESIDUAL_VARIANCE,
         provenance=provenance_path("glm", "sub-{subject}_{run_id}"),
     params:
         settings=glm_settings,
@@ -43,5 +45,7 @@ rule glm:
     resources:
         mem_mb=3000,
         runtime=20,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/glm.py"

@@ -6,9 +6,9 @@ rule group:
         summaries=analysis_summaries,
         nulls=analysis_nulls,
     output:
-        table=GROUP_STEM + "_group.tsv",
-        null=GROUP_STEM + "_group_null.tsv.gz",
-        summary=GROUP_STEM + "_summary.txt",
+        table=GROUP_TABLE,
+        null=GROUP_NULL,
+        summary=GROUP_SUMMARY,
         provenance=provenance_path("group", "{analysis}"),
     params:
         settings=group_settings,
@@ -21,5 +21,7 @@ rule group:
     resources:
         mem_mb=2000,
         runtime=10,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/group.py"

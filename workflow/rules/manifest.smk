@@ -16,5 +16,7 @@ rule manifest:
     resources:
         mem_mb=500,
         runtime=5,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/manifest.py"

@@ -17,6 +17,8 @@ rule roi_mask:
     resources:
         mem_mb=1000,
         runtime=5,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/roi_mask.py"
 
@@ -36,5 +38,7 @@ rule roi_counts:
     resources:
         mem_mb=500,
         runtime=5,
+    conda:
+        "../envs/foldwise.yaml"
     script:
         "../scripts/roi_counts.py"

@@ -128,6 +128,10 @@ def run(inputs, outputs, params, log):
              subject, analysis["name"], block + 1, settings["n_blocks"], spheres.n_centres, spheres.n_voxels,
              int(spheres.sizes.min()) if spheres.n_centres else 0, int(spheres.sizes.max()) if spheres.n_centres else 0,
              settings["radius_mm"], design["rows"].size, classifier, n_permutations)
+    if classifier == "linear_svm" and n_permutations:
+        log.warning("the linear SVM fits libsvm once per sphere, fold and labeling: about %d fits in this block; "
+                    "correlation_centroid, gaussian_nb or shrinkage_lda are batched and far faster",
+                    spheres.n_centres * len(set(design["runs"].tolist())) * (1 + n_permutations) * (2 if cross else 1))
     n_directions = len(design["directions"])
     if spheres.n_centres == 0:
         scores = np.zeros((1 + n_permutations, 0, n_directions))

@@ -142,7 +142,10 @@ def run(inputs, outputs, params, log):
             observed_volume[group_mask] = mean[:, direction]
             step = max(float(observed_volume.max()), 0.0) / 100.0
             tfce_values[:, direction] = tfce(observed_volume, group_mask, step=step or None)[group_mask]
-            if not tested or step == 0:
+            if not tested:
+                continue
+            if step == 0:  # no voxel above chance: TFCE is 0 everywhere and nothing can be significant
+                p_tfce[:, direction] = 1.0
                 continue
             null_max = np.empty(n_draws)
             for start in range(0, n_draws, _TFCE_BATCH):

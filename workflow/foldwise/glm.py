@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+from numpy.polynomial.polynomial import polyval
 
 from .design import PATTERN_MODES, DesignMatrix, build_design
 from .errors import InputError
@@ -195,14 +196,14 @@ def _t_values(betas, variance):
     return t
 
 
-def _above_rounding(residual_sum_of_squares, data):
+def _above_rounding(residual_sum_of_squares, data_sum_of_squares):
     """Residual sums of squares, set to 0 where they are rounding error of the data.
 
     A voxel the model fits exactly (e.g. a constant voxel) leaves residuals of
     float64 rounding size; dividing by them would give meaningless t-values.
     Below ``(NOISE_FLOOR * ||y||)^2`` the residual counts as none.
     """
-    floor = NOISE_FLOOR ** 2 * np.einsum("ij,ij->j", data, data)
+    floor = NOISE_FLOOR ** 2 * data_sum_of_squares
     return np.where(residual_sum_of_squares > floor, residual_sum_of_squares, 0.0)
 
 
@@ -211,7 +212,8 @@ def _ols_block(factor, data, pattern_columns, with_t):
     z = factor.u.T @ data
     betas = factor.coefficients_from_z @ z
     residuals = data - factor.u @ z
-    residual_variance = _above_rounding(np.einsum("ij,ij->j", residuals, residuals), data) / (factor.n_rows - factor.rank)
+    residual_variance = (_above_rounding(np.einsum("ij,ij->j", residuals, residuals), np.einsum("ij,ij->j", data, data))
+                         / (factor.n_rows - factor.rank))
     t = None
     if with_t:
         t = _t_values(betas[pattern_columns], factor.variance_factors[pattern_columns][:, None] * residual_variance[None, :])
@@ -331,8 +333,8 @@ def ar1_moment_table(design_matrix, grid_step=0.001, grid_limit=0.99):
     diagonal_sums_m = np.bincount(lag, weights=residual_forming.ravel(), minlength=n_scans)
     diagonal_sums_n = np.bincount(lag, weights=lag_products.ravel(), minlength=n_scans)
     rho_grid = np.arange(-round(grid_limit / grid_step), round(grid_limit / grid_step) + 1) * grid_step
-    powers = rho_grid[:, None] ** np.arange(n_scans)[None, :]
-    expected_ratio = (powers @ diagonal_sums_n) / (powers @ diagonal_sums_m)
+    # Horner's rule: sum_k rho^k c_k for every grid value, one pass per lag
+    expected_ratio = polyval(rho_grid, diagonal_sums_n) / polyval(rho_grid, diagonal_sums_m)
     return rho_grid, np.maximum.accumulate(expected_ratio)
 
 
@@ -461,10 +463,13 @@ def whiten_ar1(values, rho, first_scan="keep"):
                          "pass one AR(1) coefficient per column")
     if not np.all(np.abs(coefficient) < 1):
         raise InputError(None, "rho", f"AR(1) coefficients must lie in (-1, 1) (got {coefficient!r})", "clip them with bin_ar1")
-    innovations = array[1:] - coefficient * array[:-1]
+    whitened = np.empty_like(array)
+    np.multiply(array[:-1], -coefficient, out=whitened[1:])
+    whitened[1:] += array[1:]
     if first_scan == "drop":
-        return innovations
-    return np.concatenate([np.sqrt(1.0 - coefficient ** 2) * array[:1], innovations], axis=0)
+        return whitened[1:]
+    np.multiply(array[:1], np.sqrt(1.0 - coefficient ** 2), out=whitened[:1])
+    return whitened
 
 
 def _estimate_rho(rho_design, bold):
@@ -505,7 +510,7 @@ def _by_noise_level(bold, voxel_rho, solve, n_beta_rows, n_t_rows, with_t, first
     residual_variance = np.empty(n_voxels)
     t_values = np.empty((n_t_rows, n_voxels)) if with_t else None
     if voxel_rho is None:
-        source, runs = bold, [(None, 0, n_voxels)]
+        source, order, runs = bold, None, [(None, 0, n_voxels)]
     else:
         order = np.argsort(voxel_rho, kind="stable")
         levels = voxel_rho[order]
@@ -518,14 +523,10 @@ def _by_noise_level(bold, voxel_rho, solve, n_beta_rows, n_t_rows, with_t, first
             data = _float64_block(source, block, centre)
             if level is not None:
                 data = whiten_ar1(data, level, first_scan)
-            betas[:, block], residual_variance[block], t = solve(level, data)
+            target = block if order is None else order[block]  # back to the input order
+            betas[:, target], residual_variance[target], t = solve(level, data)
             if with_t:
-                t_values[:, block] = t
-    if voxel_rho is not None:  # back to the input order
-        unsorted = np.empty_like(order)
-        unsorted[order] = np.arange(n_voxels)
-        betas, residual_variance = betas[:, unsorted], residual_variance[unsorted]
-        t_values = t_values[:, unsorted] if with_t else None
+                t_values[:, target] = t
     return betas, residual_variance, t_values
 
 
@@ -696,18 +697,17 @@ class _LSSOperator:
         nuisance_part = self.nuisance.u.T @ data
         z = self.trials.u.T @ data
         betas = self.weights @ z
-        total = np.maximum(np.einsum("ij,ij->j", data, data) - np.einsum("ij,ij->j", nuisance_part, nuisance_part), 0.0)
+        data_sum_of_squares = np.einsum("ij,ij->j", data, data)
+        total = np.maximum(data_sum_of_squares - np.einsum("ij,ij->j", nuisance_part, nuisance_part), 0.0)
         explained_all = np.einsum("ij,ij->j", z, z)
-        residual_variance = _above_rounding(np.maximum(total - explained_all, 0.0), data) / self.dof_all_trials
+        residual_variance = _above_rounding(np.maximum(total - explained_all, 0.0), data_sum_of_squares) / self.dof_all_trials
         t = None
         if with_t:
             shared = self.shared_projector @ z
             own = (self.own_projectors @ z).reshape(betas.shape[0], self.n_basis, -1)
             explained = np.einsum("ij,ij->j", shared, shared)[None, :] + np.einsum("kbv,kbv->kv", own, own)
-            trial_rss = np.maximum(total[None, :] - explained, 0.0)
-            floor = NOISE_FLOOR ** 2 * np.einsum("ij,ij->j", data, data)
-            trial_variance = np.where(trial_rss > floor[None, :], trial_rss, 0.0) / self.dof[:, None]
-            t = _t_values(betas, self.variance_factors[:, None] * trial_variance)
+            trial_rss = _above_rounding(np.maximum(total[None, :] - explained, 0.0), data_sum_of_squares[None, :])
+            t = _t_values(betas, self.variance_factors[:, None] * trial_rss / self.dof[:, None])
         return betas, residual_variance, t
 
 

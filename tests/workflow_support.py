@@ -51,7 +51,9 @@ def snakemake(workdir, *arguments, config="config/study.yaml", cores=2, check=Tr
     """Run Snakemake in ``workdir`` with the local profile; return the CompletedProcess."""
     command = [sys.executable, "-m", "snakemake", "--profile", "config/profiles/local", "--cores", str(cores),
                "--config", f"config_file={config}", *arguments]
-    environment = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
+    # The copy's own package comes first, so a copy runs (and hashes) its own code.
+    environment = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1",
+                       PYTHONPATH=os.pathsep.join([str(Path(workdir) / "workflow"), os.environ.get("PYTHONPATH", "")]))
     completed = subprocess.run(command, cwd=workdir, capture_output=True, text=True, env=environment)
     if check and completed.returncode != 0:
         raise AssertionError(f"snakemake {' '.join(arguments)} failed ({completed.returncode}):\n{completed.stdout[-4000:]}\n{completed.stderr[-6000:]}")

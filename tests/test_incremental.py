@@ -15,7 +15,8 @@ import time
 
 import pytest
 
-from workflow_support import TINY_STUDY, copy_repository, file_states, read_manifest, scheduled_jobs, snakemake, write_study
+from workflow_support import (TINY_STUDY, copy_repository, file_states, read_manifest, scheduled_jobs, snakemake,
+                              workflow_environment, write_study)
 
 pytestmark = [pytest.mark.e2e, pytest.mark.slow]
 
@@ -131,7 +132,7 @@ def test_one_or_two_cores_give_identical_manifests(base_run, tmp_path):
 
 def test_bundle_unpacks_and_verifies_and_names_a_corrupted_result(base_run, tmp_path):
     workdir = _copy_of(base_run, tmp_path)
-    environment = dict(os.environ, OPENBLAS_NUM_THREADS="1")
+    environment = workflow_environment(workdir)
     made = subprocess.run([sys.executable, "-m", "foldwise.bundle", "make", "--config", "config/study.yaml"], cwd=workdir,
                           capture_output=True, text=True, env=environment)
     assert made.returncode == 0, made.stderr
@@ -142,6 +143,7 @@ def test_bundle_unpacks_and_verifies_and_names_a_corrupted_result(base_run, tmp_
     assert not [name for name in names if name.endswith((".nii", ".nii.gz"))], "participant images must be left out"
     assert any(name.endswith("REVIEW/README.md") for name in names)
     unpacked = next((tmp_path / "unpacked").iterdir())
+    environment = workflow_environment(unpacked)
     verified = subprocess.run([sys.executable, "-m", "foldwise.bundle", "verify", "--cores", "2", "--config", "config/study.yaml"],
                               cwd=unpacked, capture_output=True, text=True, env=environment)
     assert verified.returncode == 0, verified.stdout[-3000:] + verified.stderr[-3000:]
@@ -150,6 +152,7 @@ def test_bundle_unpacks_and_verifies_and_names_a_corrupted_result(base_run, tmp_
     with tarfile.open(archive) as bundle:
         bundle.extractall(tmp_path / "again", filter="data")
     again = next((tmp_path / "again").iterdir())
+    environment = workflow_environment(again)
     table = next((again / "results" / "group").rglob("*_group.tsv"))
     table.write_text(table.read_text().replace("\t0.", "\t9.", 1))
     broken = subprocess.run([sys.executable, "-m", "foldwise.bundle", "verify", "--check-only", "--config", "config/study.yaml"],

@@ -47,14 +47,17 @@ def write_study(workdir, study, name="study.yaml"):
     return path
 
 
+def workflow_environment(workdir):
+    """Environment for a process in a copied repository: its own package first, one BLAS thread."""
+    return dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1",
+                PYTHONPATH=os.pathsep.join([str(Path(workdir) / "workflow"), os.environ.get("PYTHONPATH", "")]))
+
+
 def snakemake(workdir, *arguments, config="config/study.yaml", cores=2, check=True):
     """Run Snakemake in ``workdir`` with the local profile; return the CompletedProcess."""
     command = [sys.executable, "-m", "snakemake", "--profile", "config/profiles/local", "--cores", str(cores),
                "--config", f"config_file={config}", *arguments]
-    # The copy's own package comes first, so a copy runs (and hashes) its own code.
-    environment = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1",
-                       PYTHONPATH=os.pathsep.join([str(Path(workdir) / "workflow"), os.environ.get("PYTHONPATH", "")]))
-    completed = subprocess.run(command, cwd=workdir, capture_output=True, text=True, env=environment)
+    completed = subprocess.run(command, cwd=workdir, capture_output=True, text=True, env=workflow_environment(workdir))
     if check and completed.returncode != 0:
         raise AssertionError(f"snakemake {' '.join(arguments)} failed ({completed.returncode}):\n{completed.stdout[-4000:]}\n{completed.stderr[-6000:]}")
     return completed

@@ -571,3 +571,14 @@ def test_gather_sorts_by_roi_direction_count_order_and_fold_and_summarises(tmp_p
         decode_gather.run({"scores": [paths[0], paths[0]]}, outputs, {"analysis": analysis, "subject": "01"}, logging.getLogger("test"))
     with pytest.raises(InputError, match="analysis"):
         decode_gather.run({"scores": paths}, outputs, {"analysis": dict(analysis, name="other"), "subject": "01"}, logging.getLogger("test"))
+
+
+def test_decode_job_run_groups_and_sessions_name_the_held_out_runs(tmp_path):
+    images, tables, ember = _lantern_subject(tmp_path)
+    for path in tables:
+        table = read_tsv(path)
+        write_tsv(path, table.assign(session="ses-1"))
+    analysis = _analysis(folds={"scheme": "run_groups", "n_groups": 2}, n_permutations=5)
+    scores = read_tsv(_run_decode(tmp_path, analysis, region=ember, images=images, tables=tables)["scores"])
+    assert scores["test_runs"].tolist()[:2] == ["ses-1_run-01+ses-1_run-02", "ses-1_run-03+ses-1_run-04"]
+    assert (scores["n_train"] == 6).all() and (scores["n_test"] == 6).all()

@@ -24,7 +24,7 @@ labels are row 0 of the label stack, so observed and null scores come out of
 the same computation.
 """
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -125,7 +125,6 @@ class DecodeResult:
     permuted_labels: np.ndarray
     states: dict | None = None
     n_not_converged: int = 0
-    notes: list = field(default_factory=list)
 
 
 # -- preprocessing -------------------------------------------------------------------
@@ -516,8 +515,9 @@ def _decode_fold(train_patterns, train_rows, train_runs, test_patterns, counts, 
     """Predict the test patterns of one fold for every label row and voxel count.
 
     Only ``train_patterns``, ``train_rows`` and ``train_runs`` reach the
-    scaler, the selection and the fits; ``test_patterns`` are only scaled
-    with the training scaler and predicted. ``counts`` are sorted and unique.
+    scaler, the selection and the fits; ``test_patterns`` are only demeaned
+    (each by its own mean, if asked), scaled with the training scaler and
+    predicted. ``counts`` are sorted and unique.
 
     Returns
     -------

@@ -582,3 +582,10 @@ def test_decode_job_run_groups_and_sessions_name_the_held_out_runs(tmp_path):
     scores = read_tsv(_run_decode(tmp_path, analysis, region=ember, images=images, tables=tables)["scores"])
     assert scores["test_runs"].tolist()[:2] == ["ses-1_run-01+ses-1_run-02", "ses-1_run-03+ses-1_run-04"]
     assert (scores["n_train"] == 6).all() and (scores["n_test"] == 6).all()
+
+
+def test_decode_job_with_a_single_run_names_the_tables(tmp_path):
+    images, tables, ember = _lantern_subject(tmp_path, n_runs=1)
+    with pytest.raises(InputError) as error:
+        _run_decode(tmp_path, _analysis(), region=ember, images=images, tables=tables)
+    assert error.value.file == tables[0] and "at least two runs" in str(error.value) and "subject 01" in str(error.value)

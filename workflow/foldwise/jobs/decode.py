@@ -320,7 +320,10 @@ def run(inputs, outputs, params, log):
     keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, tables_label)
     patterns, runs = patterns[keep], table["run"].to_numpy()[keep]
     scheme, n_groups = analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2)
-    folds = make_folds(runs, scheme, n_groups)
+    try:
+        folds = make_folds(runs, scheme, n_groups)
+    except InputError as error:  # name the subject's tables, where the runs come from
+        raise InputError(tables_label, error.field, f"subject {subject}: {error.problem}", error.fix) from None
     if set_index is None:
         check_training_classes(labels, runs, folds, class_names, subject, file=tables_label)
     else:

@@ -229,7 +229,10 @@ def run_job(smk, step, job):
     log = _job_logger(smk.log[0] if len(smk.log) else None)
     inputs = _named(smk.input)
     outputs = _named(smk.output, exclude=("provenance",))
-    settings = json.loads(canonical_json(dict(smk.params.settings)))
+    # Plain JSON values in the configured order (sets and classes keep their order);
+    # the memo key uses the canonical, key-sorted form.
+    settings = json.loads(json.dumps(dict(smk.params.settings)))
+    canonical_json(settings)  # refuses values that have no canonical form (NaN) before any work
     code = smk.params.code
     store = MemoStore(smk.config["study"]["store_dir"])
     try:

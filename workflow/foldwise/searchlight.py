@@ -630,27 +630,44 @@ def _is_constant(variance, mean, n_samples):
     return variance <= n_samples * eps * variance + (n_samples * mean * eps) ** 2
 
 
-def _lda_class_terms(train, members, size):
-    """Ledoit-Wolf pieces of one class in a chunk of spheres.
+def _lda_voxel_terms(z_train, labels, z_test, n_classes):
+    """Label-dependent per-voxel pieces of the LDA of one labeling, rows in class order, as gather tables.
 
-    ``train`` (b, n_k, P) holds the class's training patterns (zero padding);
-    returns the class mean (b, P), the residuals (b, n_k, P), the class
-    scale (b, P), the shrinkage (b,) and the target scale mu (b,), exactly as
-    ``sklearn.discriminant_analysis._cov(X, "auto")``: the class's patterns
-    standardised by their own mean and SD, ``ledoit_wolf`` on them, rescaled.
+    Returns the class slices and three (n_voxels + 1, rows) tables (the extra
+    row is the padding voxel): ``[test; class means; residuals]``, the
+    residuals standardised by their class SD (``sklearn``'s per-class
+    ``StandardScaler`` inside ``_cov(X, "auto")``), and the class variances
+    (1 on padding: a positive, inert diagonal).
     """
-    n_k = members
-    mean = train.mean(axis=1)
-    residuals = train - mean[:, np.newaxis]
-    variance = (residuals**2).mean(axis=1)
-    scale = np.sqrt(variance)
-    scale = np.where(_is_constant(variance, mean, n_k), 1.0, scale)
-    standard = residuals / scale[:, np.newaxis]
-    if n_k <= standard.shape[2]:
-        small = np.matmul(standard, standard.transpose(0, 2, 1))  # (b, n_k, n_k): ||X'X||_F = ||XX'||_F
-    else:
-        small = np.matmul(standard.transpose(0, 2, 1), standard)
-    row_norms = np.einsum("bnp,bnp->bn", standard, standard)
+    order = np.argsort(labels, kind="stable")
+    ordered = labels[order]
+    counts = np.bincount(ordered, minlength=n_classes)
+    bounds = np.concatenate([[0], np.cumsum(counts)])
+    slices = [slice(int(bounds[k]), int(bounds[k + 1])) for k in range(n_classes)]
+    train = z_train[order]
+    means = np.stack([train[part].mean(axis=0) for part in slices])  # (K, V)
+    residuals = train - means[ordered]
+    variance = np.stack([(residuals[part] ** 2).mean(axis=0) for part in slices])
+    scale = np.where(_is_constant(variance, means, counts[:, np.newaxis]), 1.0, np.sqrt(variance))
+    standard = residuals / scale[ordered]
+    n_voxels = z_train.shape[1]
+    rows = np.zeros((n_voxels + 1, z_test.shape[0] + n_classes + train.shape[0]))
+    rows[:n_voxels] = np.vstack([z_test, means, residuals]).T
+    standard_rows = np.zeros((n_voxels + 1, train.shape[0]))
+    standard_rows[:n_voxels] = standard.T
+    scale_rows = np.ones((n_voxels + 1, n_classes))
+    scale_rows[:n_voxels] = (scale**2).T
+    return slices, counts, rows, standard_rows, scale_rows
+
+
+def _ledoit_wolf_sphere(small, n_k, size):
+    """Ledoit-Wolf shrinkage and target scale per sphere from the Gram matrices of standardised class data.
+
+    ``small`` (b, n_k, n_k) is ``Y Y'`` of one class's standardised patterns
+    over each sphere; the formula of ``sklearn.covariance.ledoit_wolf_shrinkage``
+    (``||Y'Y||_F = ||YY'||_F`` and the row norms are its diagonal).
+    """
+    row_norms = np.einsum("bnn->bn", small)
     trace_sum = row_norms.sum(axis=1)  # n * tr(S)
     mu = trace_sum / (n_k * size)
     delta_ = np.einsum("bij,bij->b", small, small) / n_k**2
@@ -659,61 +676,67 @@ def _lda_class_terms(train, members, size):
     beta = np.minimum(beta, delta)
     with np.errstate(divide="ignore", invalid="ignore"):
         shrinkage = np.where(beta == 0, 0.0, beta / delta)
-    shrinkage = np.where(size == 1, 0.0, shrinkage)  # one feature: sklearn skips the shrinkage
-    return mean, residuals, scale, shrinkage, mu
+    return np.where(size == 1, 0.0, shrinkage), mu  # one feature: sklearn skips the shrinkage
 
 
-def _lda_chunk(train, test, labels, n_classes, size, valid):
-    """Shrinkage-LDA predictions (b, n_test) for one labeling and a chunk of gathered spheres."""
-    n_spheres, n_train, n_pad = train.shape
-    means = np.empty((n_spheres, n_classes, n_pad))
-    residuals = np.empty_like(train)
-    ridge = np.zeros((n_spheres, n_pad))  # the diagonal part: sum_k pi_k alpha_k mu_k s_k^2
-    row_weight = np.empty((n_spheres, n_train))
+def _lda_chunk(gathered, standard, variances, slices, counts, n_test, size, valid):
+    """Shrinkage-LDA predictions (b, n_test) of one labeling for a chunk of spheres.
+
+    ``gathered`` (b, P, t + K + n) holds each sphere's test patterns, class
+    means and residuals (voxels along axis 1, padding zeros); ``standard``
+    (b, P, n) the standardised residuals; ``variances`` (b, P, K) the class
+    variances.
+    """
+    n_spheres, n_pad = gathered.shape[:2]
+    n_classes, n_train = len(slices), int(counts.sum())
     prior = 1.0 / n_classes
-    for klass in range(n_classes):
-        members = np.flatnonzero(labels == klass)
-        mean, class_residuals, scale, shrinkage, mu = _lda_class_terms(train[:, members], members.size, size)
-        means[:, klass] = mean
-        residuals[:, members] = class_residuals
-        ridge += (prior * shrinkage * mu)[:, np.newaxis] * scale**2
-        row_weight[:, members] = np.sqrt(prior * (1.0 - shrinkage) / members.size)[:, np.newaxis]
+    shrink_weight = np.empty((n_spheres, n_classes))  # prior * alpha_k * mu_k: the weight of s_k^2 on the diagonal
+    row_weight = np.empty((n_spheres, n_train))  # sqrt(prior (1 - alpha_k) / n_k) for the rows of class k
+    for klass, part in enumerate(slices):
+        block = standard[:, :, part]
+        shrinkage, mu = _ledoit_wolf_sphere(np.matmul(block.transpose(0, 2, 1), block), counts[klass], size)
+        shrink_weight[:, klass] = prior * shrinkage * mu
+        row_weight[:, part] = np.sqrt(prior * (1.0 - shrinkage) / counts[klass])[:, np.newaxis]
+    ridge = np.matmul(variances, shrink_weight[:, :, np.newaxis])[:, :, 0]  # D = sum_k prior alpha_k mu_k s_k^2  (b, P)
     regular = np.all((ridge > 0) | ~valid, axis=1)
-    decisions = np.empty((n_spheres, test.shape[1], n_classes))
+    decisions = np.empty((n_spheres, n_test, n_classes))
+    means_at, residuals_at = slice(n_test, n_test + n_classes), slice(n_test + n_classes, None)
+    chosen = slice(None) if regular.all() else regular  # a view, not a copy, in the usual case
     if regular.any() and n_train > n_pad:
         # More patterns than voxels: the p x p system Sigma = D + U'U itself is the smaller one.
-        chosen = slice(None) if regular.all() else regular
-        weighted = residuals[chosen] * row_weight[chosen][:, :, np.newaxis]
-        covariance = np.matmul(weighted.transpose(0, 2, 1), weighted)
-        covariance[:, np.arange(n_pad), np.arange(n_pad)] += ridge[chosen]  # padding voxels: a positive ridge alone
-        coef = np.linalg.solve(covariance, means[chosen].transpose(0, 2, 1))  # Sigma^-1 M'  (b, P, K)
-        intercept = -0.5 * np.einsum("bkp,bpk->bk", means[chosen], coef)
-        decisions[chosen] = np.matmul(test[chosen], coef) + intercept[:, np.newaxis, :]
+        weighted = gathered[chosen][:, :, residuals_at] * row_weight[chosen][:, np.newaxis, :]  # U'  (b, P, n)
+        covariance = np.matmul(weighted, weighted.transpose(0, 2, 1))
+        covariance[:, np.arange(n_pad), np.arange(n_pad)] += ridge[chosen]  # padding voxels: an inert positive ridge
+        class_means = gathered[chosen][:, :, means_at]
+        coef = np.linalg.solve(covariance, class_means)  # Sigma^-1 M'  (b, P, K)
+        intercept = -0.5 * np.einsum("bpk,bpk->bk", class_means, coef)
+        decisions[chosen] = np.matmul(gathered[chosen][:, :, :n_test].transpose(0, 2, 1), coef) + intercept[:, np.newaxis, :]
     elif regular.any():
-        chosen = slice(None) if regular.all() else regular  # a view, not a copy, in the usual case
         # Sigma = D + U'U with D = diag(ridge) and U the weighted residuals; by Woodbury
         # Sigma^-1 = D^-1 - D^-1 U' (I + U D^-1 U')^-1 U D^-1, so only an n x n system is solved.
-        # One product gives every inner product needed: rows [test; M; U] against D^-1 [M; U].
-        n_test = test.shape[1]
-        inverse_ridge = 1.0 / ridge[chosen]
-        weighted = residuals[chosen] * row_weight[chosen][:, :, np.newaxis]
-        features = np.concatenate([means[chosen], weighted], axis=1)  # (b, K + n, P)
-        products = np.matmul(np.concatenate([test[chosen], features], axis=1),
-                             (features * inverse_ridge[:, np.newaxis, :]).transpose(0, 2, 1))  # (b, t + K + n, K + n)
-        system = products[:, n_test + n_classes:, n_classes:].copy()  # I + U D^-1 U'
-        system[:, np.arange(n_train), np.arange(n_train)] += 1.0
-        solved = np.linalg.solve(system, products[:, n_test + n_classes:, :n_classes])  # (I + U D^-1 U')^-1 U D^-1 M'
-        # x Sigma^-1 M' = x D^-1 M' - (x D^-1 U') solved, for the test rows x and for the class means (intercepts).
-        through = products[:, :n_test + n_classes, :n_classes] - np.matmul(products[:, :n_test + n_classes, n_classes:], solved)
+        # One product gives every inner product needed: [test; M; R] against D^-1 [M; R]; the row
+        # weights of U are applied to the small result.
+        inner = gathered[chosen]
+        scaled = inner[:, :, n_test:] / ridge[chosen][:, :, np.newaxis]
+        products = np.matmul(inner.transpose(0, 2, 1), scaled)  # (b, t + K + n, K + n)
+        weights = row_weight[chosen]
+        system = products[:, residuals_at, n_classes:] * weights[:, :, np.newaxis] * weights[:, np.newaxis, :]
+        system[:, np.arange(n_train), np.arange(n_train)] += 1.0  # I + U D^-1 U'
+        right = products[:, residuals_at, :n_classes] * weights[:, :, np.newaxis]  # U D^-1 M'
+        solved = np.linalg.solve(system, right)
+        # x Sigma^-1 M' = x D^-1 M' - (x D^-1 U') solved, for the test rows and the class means (intercepts).
+        head = slice(0, n_test + n_classes)
+        through = products[:, head, :n_classes] - np.matmul(products[:, head, n_classes:] * weights[:, np.newaxis, :], solved)
         intercept = -0.5 * np.einsum("bkk->bk", through[:, n_test:])
         decisions[chosen] = through[:, :n_test] + intercept[:, np.newaxis, :]
     for sphere in np.flatnonzero(~regular):  # no shrinkage anywhere (degenerate data): sklearn's lstsq, explicitly
         columns = valid[sphere]
-        scale_rows = row_weight[sphere][:, np.newaxis] * residuals[sphere][:, columns]
-        covariance = scale_rows.T @ scale_rows + np.diag(ridge[sphere][columns])
-        coef = np.linalg.lstsq(covariance, means[sphere][:, columns].T, rcond=None)[0]
-        intercept = -0.5 * np.einsum("kp,pk->k", means[sphere][:, columns], coef)
-        decisions[sphere] = test[sphere][:, columns] @ coef + intercept
+        weighted = gathered[sphere][columns][:, residuals_at] * row_weight[sphere][np.newaxis, :]
+        covariance = weighted @ weighted.T + np.diag(ridge[sphere][columns])
+        class_means = gathered[sphere][columns][:, means_at]
+        coef = np.linalg.lstsq(covariance, class_means, rcond=None)[0]
+        intercept = -0.5 * np.einsum("pk,pk->k", class_means, coef)
+        decisions[sphere] = gathered[sphere][columns][:, :n_test].T @ coef + intercept
     return np.argmax(decisions, axis=2)
 
 
@@ -737,7 +760,10 @@ def predict_shrinkage_lda(z_train, train_labels, z_test, spheres, n_classes):
     Multivariate Analysis 88:365-411) of its standardised patterns,
     rescaled, and the class covariances are averaged with the (equal)
     priors; ``w_k = Sigma^-1 m_k``, ``b_k = -m_k' w_k / 2`` (Duda, Hart &
-    Stork 2001, Pattern Classification, 2nd ed., section 2.6). With
+    Stork 2001, Pattern Classification, 2nd ed., section 2.6).
+
+    Class means, residuals and class SDs are per-voxel quantities, computed
+    once per labeling for the whole brain and gathered per sphere. With
     ``n_train`` patterns and ``p`` voxels, ``Sigma`` is a diagonal plus
     ``U'U`` with ``U`` the ``n_train x p`` weighted residuals, so the
     Woodbury identity (Woodbury 1950, Memorandum Report 42, Princeton) turns
@@ -752,15 +778,16 @@ def predict_shrinkage_lda(z_train, train_labels, z_test, spheres, n_classes):
     """
     z_train, labels, z_test, n_classes, _ = _check_fold_arrays(z_train, train_labels, z_test, spheres, n_classes)
     n_train, n_test = z_train.shape[0], z_test.shape[0]
-    train_padded, test_padded = _with_zero_column(z_train), _with_zero_column(z_test)
     width = spheres.indices.shape[1]
     predictions = np.empty((labels.shape[0], spheres.n_centres, n_test), dtype=np.int64)
-    valid = spheres.valid
-    for chunk in _centre_chunks(spheres.n_centres, (n_train + n_test) * width * 4):
-        train, test = _gather(train_padded, spheres, chunk), _gather(test_padded, spheres, chunk)
-        size = spheres.sizes[chunk].astype(np.float64)
-        for row in range(labels.shape[0]):
-            predictions[row, chunk] = _lda_chunk(train, test, labels[row], n_classes, size, valid[chunk])
+    valid, padded = spheres.valid, spheres.padded
+    chunks = _centre_chunks(spheres.n_centres, (n_test + 2 * n_classes + 2 * n_train) * width * 3)
+    for row in range(labels.shape[0]):
+        slices, counts, rows, standard_rows, variance_rows = _lda_voxel_terms(z_train, labels[row], z_test, n_classes)
+        for chunk in chunks:
+            where = padded[chunk]
+            predictions[row, chunk] = _lda_chunk(rows[where], standard_rows[where], variance_rows[where], slices, counts, n_test,
+                                                 spheres.sizes[chunk].astype(np.float64), valid[chunk])
     return predictions
 
 

@@ -584,3 +584,17 @@ def test_job_names_the_events_file_when_no_condition_occurs(tmp_path):
     with pytest.raises(InputError) as excinfo:
         glm_job.run(inputs, _outputs(tmp_path / "out"), _params(noise_model="ar3"), logging.getLogger("test_glm_job"))
     assert excinfo.value.field == "glm.noise_model"
+
+
+def test_design_labels_name_condition_blocks_of_trial_wise_designs():
+    rng = np.random.default_rng(66)
+    events = _lantern_events(rng, n_per_condition=15, n_scans=200)
+    trial_wise = _design(events, mode="lss", n_scans=200)
+    labels = glm_job.design_labels(trial_wise)
+    texts = [text for _, text in labels]
+    assert texts[:3] == [f"{condition}: 15 trials" for condition in CONDITIONS]
+    assert "intercept" in texts and "button" in texts and len(labels) <= 24
+    positions = [position for position, _ in labels]
+    assert positions == sorted(positions) and positions[-1] == trial_wise.matrix.shape[1] - 1
+    per_condition = _design(events, n_scans=200)
+    assert [text for _, text in glm_job.design_labels(per_condition)] == list(per_condition.names)

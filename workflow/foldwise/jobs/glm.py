@@ -10,13 +10,13 @@ from ..fileio import load_nifti, save_figure, save_nifti, write_tsv
 from ..glm import estimate_patterns
 from ..masks import same_grid
 
-__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_figure"]
+__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_labels", "design_figure"]
 
 # Voxel centres of the BOLD and the mask may differ by float rounding of the
 # affine only (common practice, no source; the brain-mask job uses the same).
 GRID_TOLERANCE_MM = 0.01
 TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
-_MAX_LABELLED_COLUMNS = 24
+_MAX_LABELS = 24
 
 
 def _load_mask(path, shape, affine):
@@ -71,16 +71,38 @@ def _file_at_fault(field, inputs, confound_names):
     return inputs["events"]
 
 
-def design_figure(matrix, names, title):
+def design_labels(design):
+    """Tick labels of a design image: ``(column position, text)`` pairs.
+
+    Per-condition designs label every column. Trial-wise designs label each
+    condition's block of trial columns once, at its centre ("seen_round:
+    15 trials"), and every other column by name. Beyond 24 labels every k-th
+    is kept: more would be unreadable at this size.
+    """
+    labels = []
+    nuisance = set(design.nuisance_columns.tolist())
+    if design.pattern_mode == "per_condition":
+        labels += [(float(j), design.names[j]) for j in design.pattern_blocks.ravel()]
+    else:
+        conditions = design.pattern_table["condition"].to_numpy(dtype=object)
+        for condition in dict.fromkeys(conditions):  # table order
+            columns = design.pattern_blocks[conditions == condition].ravel()
+            labels.append((float(columns.mean()), f"{condition}: {int((conditions == condition).sum())} trials"))
+    labels += [(float(j), design.names[j]) for j in sorted(nuisance)]
+    labels.sort()
+    step = max(1, int(np.ceil(len(labels) / _MAX_LABELS)))
+    return labels[::step]
+
+
+def design_figure(matrix, labels, title):
     """A small grey image of the design, each column scaled to its largest magnitude.
 
     Parameters
     ----------
     matrix : array_like
         ``(n_scans, n_regressors)``.
-    names : sequence of str
-        Column labels (every column labelled up to 24 columns, else every k-th:
-        more labels would be unreadable at this size and slow to draw).
+    labels : sequence of (float, str)
+        Column positions and their labels (see :func:`design_labels`).
     title : str
         Figure title.
 
@@ -96,10 +118,8 @@ def design_figure(matrix, names, title):
     figure = Figure(figsize=(4, 3))
     axes = figure.add_axes((0.12, 0.32, 0.85, 0.58))
     axes.imshow(shown, aspect="auto", cmap="gray", interpolation="nearest", vmin=-1, vmax=1)
-    step = max(1, int(np.ceil(len(names) / _MAX_LABELLED_COLUMNS)))
-    ticks = np.arange(0, len(names), step)
-    axes.set_xticks(ticks)
-    axes.set_xticklabels([names[index] for index in ticks], rotation=90, fontsize=4)
+    axes.set_xticks([position for position, _ in labels])
+    axes.set_xticklabels([text for _, text in labels], rotation=90, fontsize=4)
     axes.tick_params(axis="y", labelsize=5)
     axes.set_ylabel("scan", fontsize=6)
     axes.set_title(title, fontsize=7)
@@ -163,4 +183,4 @@ def run(inputs, outputs, params, log):
     write_tsv(outputs["table"], table)
     write_tsv(outputs["design"], pd.DataFrame(estimate.design.matrix, columns=list(estimate.design.names)))
     title = f"sub-{subject} {run_id}: {glm_settings['pattern_mode']} design"
-    save_figure(design_figure(estimate.design.matrix, estimate.design.names, title), outputs["design_png"])
+    save_figure(design_figure(estimate.design.matrix, design_labels(estimate.design), title), outputs["design_png"])

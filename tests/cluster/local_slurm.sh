@@ -176,4 +176,14 @@ stop_local_slurm() {
         kill -TERM "$pid" 2>/dev/null && wait "$pid" 2>/dev/null
     done
     STARTED_PIDS=()
+    remove_own_slurm_conf
+}
+
+remove_own_slurm_conf() {
+    # The slurm executor plugin runs `scontrol show config` whenever snakemake
+    # starts; with a slurm.conf naming a stopped controller, scontrol retries
+    # for about 10 s (measured), so every later snakemake run would wait that long.
+    if [ -f "$SLURM_CONF" ] && grep -qF "$SLURM_CONF_MARKER" "$SLURM_CONF"; then
+        rm -f "$SLURM_CONF"
+    fi
 }

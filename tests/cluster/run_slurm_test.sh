@@ -106,6 +106,11 @@ check_jobs_ran_on_slurm() {
     summary=$("$REPO/.venv/bin/python" "$REPO/tests/cluster/slurm_job_record.py" "$record" "$submitted") \
         || fail "Slurm's job record disagrees with the run (message above)"
     log_step "$summary"
+    # The plugin switches to sacct by itself when MinJobAge looks too short;
+    # with no accounting database that run would hang, so insist on squeue.
+    if grep -q "Falling back to 'sacct'" "$out"; then
+        fail "the executor plugin fell back to sacct for job status ($out); check MinJobAge in $SLURM_CONF"
+    fi
 }
 
 compare_manifests() {

@@ -103,9 +103,9 @@ def _directions(analysis):
     return CROSS_DIRECTIONS if analysis["kind"] == "cross" else ["within"]
 
 
-def _summary(subject, analysis, roi_sizes, rng):
+def _summary(subject, analysis, roi_sizes, rois, rng):
     rows = []
-    for roi in ROI_NAMES:
+    for roi in rois:
         for direction in _directions(analysis):
             for count in COUNTS:
                 used = roi_sizes[roi] if count == "all" else min(int(count), roi_sizes[roi])
@@ -129,10 +129,10 @@ def _confusion(analysis, rng):
     return pd.DataFrame(rows)
 
 
-def _group(analysis, summaries):
+def _group(analysis, summaries, rois):
     table = pd.concat(summaries, ignore_index=True)
     rows = []
-    for roi in ROI_NAMES:
+    for roi in rois:
         for direction in _directions(analysis):
             for count in COUNTS:
                 scores = table[(table.roi == roi) & (table.direction == direction) & (table.n_voxels == count)]
@@ -151,15 +151,16 @@ def _group(analysis, summaries):
     return pd.DataFrame(rows)
 
 
-def build_study(root, seed=5):
+def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
     """Write a complete set of report inputs under ``root``; return (inputs, params, facts)."""
     root = Path(root)
+    rois = [roi["name"] for roi in study["rois"]]
     rng = np.random.default_rng(seed)
     affine = _affine()
     inputs = {key: [] for key in ("designs", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
                                   "summaries", "confusions", "group_tables", "provenance")}
-    roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in STUDY["analyses"]}
-    for subject in SUBJECTS:
+    roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in study["analyses"]}
+    for subject in subjects:
         masks = root / "masks" / f"sub-{subject}"
         mean, brain, rois = _subject_images(rng)
         save_nifti(masks / f"sub-{subject}_mean.nii.gz", mean, affine)
@@ -177,7 +178,7 @@ def build_study(root, seed=5):
         patterns = root / "patterns" / f"sub-{subject}"
         write_tsv(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv", _design(rng))
         inputs["designs"].append(str(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv"))
-        if subject == SUBJECTS[0]:
+        if subject == subjects[0]:
             resvar = np.where(brain, rng.gamma(4.0, 25.0, GRID), 0.0)
             save_nifti(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz", resvar, affine)
             inputs["resvar"] = str(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz")
@@ -187,19 +188,19 @@ def build_study(root, seed=5):
             write_json(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json", {"RepetitionTime": TR_S})
             inputs["events"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv"))
             inputs["sidecars"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json"))
-        for analysis in STUDY["analyses"]:
+        for analysis in study["analyses"]:
             name = analysis["name"]
-            frame = _summary(subject, analysis, roi_sizes[subject], rng)
+            frame = _summary(subject, analysis, roi_sizes[subject], rois, rng)
             summaries[name].append(frame)
             write_tsv(root / "decoding" / name / f"sub-{subject}_summary.tsv", frame)
             inputs["summaries"].append(str(root / "decoding" / name / f"sub-{subject}_summary.tsv"))
-            for roi in ROI_NAMES:
+            for roi in rois:
                 path = root / "decoding" / name / f"sub-{subject}" / f"sub-{subject}_roi-{roi}_confusion.tsv"
                 write_tsv(path, _confusion(analysis, rng))
                 inputs["confusions"].append(str(path))
-    for analysis in STUDY["analyses"]:
+    for analysis in study["analyses"]:
         path = root / "group" / analysis["name"] / f"{analysis['name']}_group.tsv"
-        write_tsv(path, _group(analysis, summaries[analysis["name"]]))
+        write_tsv(path, _group(analysis, summaries[analysis["name"]], rois))
         inputs["group_tables"].append(str(path))
     n_outputs = {"brain_mask": 3, "glm": 5, "group": 3}
     for step, n_jobs in (("brain_mask", 3), ("glm", 6), ("group", 2)):
@@ -213,15 +214,15 @@ def build_study(root, seed=5):
         "ember": {"decodes": {"shape_seen": True, "shape_heard": True, "modality": False}},
         "glow": {"decodes": {"shape_seen": True, "shape_heard": False, "modality": True}}}})
     inputs["ground_truth"] = str(root / "demo" / "ground_truth.json")
-    params = {"study": STUDY, "subjects": list(SUBJECTS), "runs": {subject: list(RUN_IDS) for subject in SUBJECTS},
+    params = {"study": study, "subjects": list(subjects), "runs": {subject: list(RUN_IDS) for subject in subjects},
               "config_file": "config/config.yaml"}
     facts = {"roi_sizes": roi_sizes, "n_jobs": 11, "n_outputs": 3 * 3 + 6 * 5 + 2 * 3}
     return inputs, params, facts
 
 
-def outputs_for(folder):
+def outputs_for(folder, study=STUDY, subjects=SUBJECTS):
     figures_dir = str(Path(folder) / "figures")
-    return {"html": str(Path(folder) / "index.html"), "figures": report.figure_plan(STUDY, SUBJECTS, figures_dir)}
+    return {"html": str(Path(folder) / "index.html"), "figures": report.figure_plan(study, subjects, figures_dir)}
 
 
 def _quiet_log():
@@ -402,6 +403,14 @@ def test_reproduce_commands_name_the_config_file():
     assert "make demo" in dict((c, w) for w, c in report.reproduce_commands("config/config.yaml", "demo"))
 
 
+def test_the_rule_code_hash_covers_the_report_modules():
+    # The report rule's params carry step_code("report.py"): it must follow the job into foldwise.report.
+    from foldwise.hashing import module_closure
+
+    closure = {path.relative_to(REPO).as_posix() for path in module_closure(REPO / "workflow" / "scripts" / "report.py")}
+    assert {"workflow/foldwise/report.py", "workflow/foldwise/jobs/report.py", "workflow/foldwise/fileio.py"} <= closure
+
+
 def test_captions_render_as_snakemake_renders_them():
     # Snakemake renders a caption with Jinja2 (given a `snakemake` object) and then docutils to HTML.
     import jinja2  # installed with Snakemake, which renders captions with it
@@ -462,11 +471,16 @@ def test_page_embeds_every_png_and_loads_nothing_else(built):
     assert "http://" not in built["html"] and "https://" not in built["html"]
 
 
-def test_rerun_gives_byte_identical_files(built, tmp_path):
-    outputs = outputs_for(tmp_path / "again")
-    report_job.run(built["inputs"], outputs, built["params"], _quiet_log())
-    for first, second in zip(built["outputs"]["figures"] + [built["outputs"]["html"]], outputs["figures"] + [outputs["html"]]):
-        assert Path(first).read_bytes() == Path(second).read_bytes(), Path(first).name
+def test_rerun_gives_byte_identical_files(tmp_path):
+    # A smaller study (one ROI, the cross analysis, two subjects) keeps the test fast; inputs are built once.
+    study = dict(STUDY, rois=STUDY["rois"][:1], analyses=STUDY["analyses"][1:])
+    inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=SUBJECTS[:2])
+    first, second = outputs_for(tmp_path / "first", study, SUBJECTS[:2]), outputs_for(tmp_path / "second", study, SUBJECTS[:2])
+    report_job.run(inputs, first, params, _quiet_log())
+    report_job.run(inputs, second, params, _quiet_log())
+    assert len(first["figures"]) == 2 * 7  # design and masks of 2 subjects, 1 residual variance, 1 curve, 1 confusion
+    for one, other in zip(first["figures"] + [first["html"]], second["figures"] + [second["html"]]):
+        assert Path(one).read_bytes() == Path(other).read_bytes(), Path(one).name
 
 
 # -- the job: what the page says ---------------------------------------------------------------------
@@ -535,6 +549,7 @@ def test_cautions_are_in_plain_words(built):
     assert "says nothing about how many people show the effect" in text and "prevalence" in text
     assert "family-wise" in text and "maximum statistic" in text
     assert "inside the training folds" in text
+    assert "simulated" in text  # the test study says dataset.source: demo
 
 
 # -- the job: failures ------------------------------------------------------------------------------

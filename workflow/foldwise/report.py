@@ -78,6 +78,7 @@ _CONFUSION_COLUMNS_MAX = 6
 # Display window of grey images: 1st-99th percentile inside the brain (common practice, no source).
 _WINDOW_PERCENTILES = (1.0, 99.0)
 _FONT_SIZE = 9
+_STAR_ROW, _STAR_HEADROOM = 0.96, 0.06  # axes fraction of the significance row; room for it (proportion)
 _OUTLINE_UPSAMPLING = 4  # mask outlines follow voxel edges to within 1/8 voxel
 
 
@@ -733,7 +734,8 @@ def curve_figure(panels, title, alpha):
     -------
     matplotlib.figure.Figure
         Thin lines: single subjects; thick line and band: group mean and its
-        95% confidence interval; dashed: chance; stars: ``p_fwe < alpha``;
+        95% confidence interval; dashed: chance; a row of stars along the top:
+        ``p_fwe < alpha``;
         open circles: the ROI held fewer voxels than requested for at least
         one subject.
     """
@@ -757,14 +759,16 @@ def curve_figure(panels, title, alpha):
         axes.scatter(x[full], panel["mean"][full], s=28, color=colour, zorder=3)
         axes.scatter(x[capped], panel["mean"][capped], s=28, facecolors="white", edgecolors=colour, zorder=3)
         significant = panel["significant"]
-        if significant.any():
-            axes.scatter(x[significant], panel["mean"][significant], s=150, marker="*", color=OKABE_ITO["black"], zorder=4)
+        if significant.any():  # a row of stars along the top, so they hide no point of the curve
+            axes.scatter(x[significant], np.full(int(significant.sum()), _STAR_ROW), s=90, marker="*",
+                         color=OKABE_ITO["black"], transform=axes.get_xaxis_transform(), zorder=4)
         axes.set_xscale("log")
         axes.set_xticks(x)
         axes.set_xticklabels(panel["labels"], rotation=45, ha="right", fontsize=_FONT_SIZE - 1)
         axes.xaxis.set_minor_locator(NullLocator())
         axes.set_xlim(x.min() / 1.35, x.max() * 1.35)
-        axes.set_ylim(low, high)
+        axes.set_ylim(low, high + _STAR_HEADROOM)
+        axes.set_yticks([tick for tick in np.round(np.arange(0.0, 1.0001, 0.1), 1) if low <= tick <= high])
         axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
         axes.set_title(panel["label"], fontsize=_FONT_SIZE + 1)
         axes.set_xlabel("number of voxels (log scale)", fontsize=_FONT_SIZE)
@@ -778,7 +782,7 @@ def curve_figure(panels, title, alpha):
         Line2D([], [], color=grey, alpha=0.5, linewidth=0.8, label="single subjects"),
         Line2D([], [], color="0.3", linestyle="--", linewidth=1.0, label="chance level"),
         Line2D([], [], color=OKABE_ITO["black"], marker="*", markersize=11, linestyle="none",
-               label=f"p (family-wise corrected) < {alpha:g}"),
+               label=f"p (family-wise corrected) < {alpha:g} (row at the top)"),
         Line2D([], [], color=grey, marker="o", markerfacecolor="white", linestyle="none",
                label="ROI smaller than the count for some subjects"),
     ]

@@ -273,8 +273,10 @@ def _paragraph(text):
 def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file, versions):
     run_counts = sorted({len(runs[subject]) for subject in subjects})
     first_runs = runs[subjects[0]]
-    if len(run_counts) == 1:
-        runs_text = f"{run_counts[0]} per subject ({_text_list(first_runs)})"
+    if all(runs[subject] == first_runs for subject in subjects):
+        runs_text = f"{len(first_runs)} per subject ({_text_list(first_runs)})"
+    elif len(run_counts) == 1:
+        runs_text = f"{run_counts[0]} per subject (run ids differ between subjects)"
     else:
         runs_text = "; ".join(f"sub-{subject}: {len(runs[subject])}" for subject in subjects)
     glm = study.get("glm", {})
@@ -304,13 +306,13 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
                          "page and figures. Job times and memory use are in results/provenance/ (one JSON record per job)."))
 
 
-def _cautions_section(alpha):
+def _cautions_section(alpha, dataset_source):
     items = [
         "Research use only. These results are not for clinical or diagnostic decisions about any person.",
         "A group test on accuracies (the t-test, the Wilcoxon test and the permutation test of the group mean) asks "
         "whether the average accuracy in the population is above chance. It says nothing about how many people show "
         "the effect: a significant mean is compatible with an effect in only a few people. How widespread an effect is "
-        "is what prevalence inference addresses (Allefeld, Goergen & Haynes 2016, NeuroImage, from memory): the "
+        "is what prevalence inference addresses (Allefeld, Görgen & Haynes 2016, NeuroImage, from memory): the "
         "prevalence bound is the share of the population that, at least, shows the effect.",
         f"The voxel-count sweep tests many counts in many ROIs. The corrected p-value (family-wise, by the maximum "
         f"statistic over all ROIs and voxel counts of one direction; Nichols & Holmes 2002) accounts for that; the "
@@ -320,6 +322,9 @@ def _cautions_section(alpha):
         "only, so the held-out run never influenced which voxels were used for testing it.",
         "Confusion matrices are descriptive: they show which classes are mistaken for which, not a test.",
     ]
+    if dataset_source == "demo":
+        items.append("These data are simulated (the invented lanterns study): the results show whether the workflow "
+                     "recovers the codes the simulation built in, nothing about real brains.")
     return "<div class=\"caution\"><ul>" + "".join(f"<li>{html.escape(item)}</li>" for item in items) + "</ul></div>"
 
 
@@ -392,7 +397,7 @@ def _provenance_section(study, config_file, versions, records):
                               caption="Jobs before this report, counted from their provenance records")
             + _paragraph("results/manifest.tsv lists every output file with its sha256 and the job that made it; "
                          "results/provenance/ holds one record per job (inputs and outputs with their sha256, settings, "
-                         "code hash, versions). `make bundle` packs the results for reviewers and `make verify` "
+                         "code hash, versions). make bundle packs the results for reviewers and make verify "
                          "recomputes them and compares.")
             + _paragraph(f"Config hash: {hash_object(study)}"))
 
@@ -484,7 +489,7 @@ def run(inputs, outputs, params, log):
     sections = [
         ("study", "Study", _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file,
                                           versions)),
-        ("cautions", "Cautions: how to read these results", _cautions_section(alpha)),
+        ("cautions", "Cautions: how to read these results", _cautions_section(alpha, study["dataset"]["source"])),
         ("quality-checks", "Quality checks", quality),
         ("results", "Results", "".join(results)),
         ("provenance", "Provenance", _provenance_section(study, config_file, versions, records)),
@@ -564,7 +569,7 @@ def _curve_specification(entry, data, log):
     chance = page.format_number(panels[0]["chance"][0])
     caption = (f"Balanced accuracy against the number of voxels (log axis) in ROI {roi}: group mean (thick line) with its "
                f"95% confidence interval (band) over {len(panels[0]['subjects'])} subjects, single subjects (thin lines), "
-               f"chance {chance} (dashed). Stars: family-wise corrected p < {alpha:g}. 'all' sits at the ROI's mean size, "
+               f"chance {chance} (dashed). Stars along the top: family-wise corrected p < {alpha:g}. 'all' sits at the ROI's mean size, "
                f"{roi_mean:.1f} voxels. Open circles: the ROI held fewer voxels than requested for at least one "
                "subject, so the point repeats a smaller selection.")
     if len(panels) > 1:

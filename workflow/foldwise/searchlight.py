@@ -1119,16 +1119,22 @@ def tfce(maps, mask, extent_exponent=TFCE_EXTENT_EXPONENT, height_exponent=TFCE_
     enhanced = np.zeros_like(values)
     if top <= 0 or step == 0:
         return enhanced[0] if single else enhanced
+    # Voxels outside the mask are 0 and never join a cluster: work inside the mask's bounding box.
+    inside = np.argwhere(mask)
+    box = (slice(None),) + tuple(slice(low, high + 1) for low, high in zip(inside.min(axis=0), inside.max(axis=0)))
+    cropped = values[box]
+    total = np.zeros_like(cropped)
     structure = np.zeros((3, 3, 3, 3), dtype=bool)  # no links across maps (the first axis)
     structure[1] = scipy.ndimage.generate_binary_structure(3, 3 if connectivity == 26 else 1)
     n_steps = int(np.floor(top / step + 1e-9))
     for level in range(1, n_steps + 1):
         height = level * step
-        above = values >= height
-        labelled, n_clusters = scipy.ndimage.label(above, structure=structure)
+        labelled, n_clusters = scipy.ndimage.label(cropped >= height, structure=structure)
         if n_clusters == 0:
             break
         extents = np.bincount(labelled.ravel(), minlength=n_clusters + 1).astype(np.float64)
-        extents[0] = 0.0
-        enhanced += extents[labelled] ** extent_exponent * height**height_exponent * step
+        gain = extents**extent_exponent * (height**height_exponent * step)  # one value per cluster
+        gain[0] = 0.0  # label 0: below the height
+        total += gain[labelled]
+    enhanced[box] = total
     return enhanced[0] if single else enhanced

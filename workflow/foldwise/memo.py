@@ -22,6 +22,7 @@ damaged entry is discarded and the job recomputes.
 """
 
 import contextlib
+import errno
 import hashlib
 import json
 import logging
@@ -39,7 +40,7 @@ from .errors import InputError
 from .fileio import write_json
 from .hashing import canonical_json, hash_file, hash_object
 
-__all__ = ["MemoStore", "memo_key", "run_job", "package_versions", "relative_path"]
+__all__ = ["MemoStore", "memo_key", "run_job", "file_system_error", "package_versions", "relative_path"]
 
 _VERSIONED_PACKAGES = ("numpy", "scipy", "nibabel", "scikit-learn", "pandas", "PyYAML", "matplotlib", "snakemake", "isal", "foldwise")
 
@@ -210,8 +211,69 @@ def _named(namedlist, exclude=()):
     return result
 
 
+# File-system errors a user can fix (permissions, a full disk, a file where a
+# folder belongs): stated as one message instead of a traceback.
+_FILE_SYSTEM_FIXES = {
+    errno.EACCES: ("permissions", "permission denied",
+                   "make results/ and study.store_dir writable for this user (or remove results left by another user), then rerun"),
+    errno.EPERM: ("permissions", "operation not permitted",
+                  "make results/ and study.store_dir writable for this user (or remove results left by another user), then rerun"),
+    errno.EROFS: ("permissions", "the file system is read-only",
+                  "put results/ and study.store_dir on a writable file system, then rerun"),
+    errno.ENOSPC: ("disk space", "no space left on the device", "free disk space (or move study.store_dir), then rerun"),
+    errno.EDQUOT: ("disk space", "the disk quota is exceeded", "free disk space (or move study.store_dir), then rerun"),
+    errno.ENOTDIR: ("folder", "a file stands where a folder is needed", "move or remove that file, then rerun"),
+    errno.EEXIST: ("folder", "a file stands where a folder is needed", "move or remove that file, then rerun"),
+}
+
+
+def file_system_error(error, step):
+    """The InputError a user sees for a fixable file-system ``OSError``, or None for any other error.
+
+    Parameters
+    ----------
+    error : OSError
+        Raised while a job read its inputs or wrote its outputs, log, store
+        entry or provenance record.
+    step : str
+        The step's name, for the message.
+
+    Returns
+    -------
+    InputError or None
+
+    Example
+    -------
+    >>> file_system_error(OSError(errno.EIO, "Input/output error"), "glm") is None
+    True
+    >>> stated = file_system_error(PermissionError(errno.EACCES, "Permission denied", "/"), "glm")
+    >>> stated.file, stated.field, stated.problem
+    ('/', 'permissions', 'step glm could not write or read this path (permission denied)')
+    """
+    if error.errno not in _FILE_SYSTEM_FIXES:
+        return None
+    field, problem, fix = _FILE_SYSTEM_FIXES[error.errno]
+    return InputError(_shown_path(error.filename), field, f"step {step} could not write or read this path ({problem})", fix)
+
+
+def _shown_path(path):
+    """The nearest existing path (a temporary file never created is named by its folder), relative inside the working directory."""
+    if path is None:
+        return None
+    path = os.fsdecode(path)
+    while path and not os.path.lexists(path):
+        parent = os.path.dirname(path)
+        path = "" if parent == path else parent
+    path = path or "."
+    relative = os.path.relpath(os.path.abspath(path))
+    return path if relative.startswith(os.pardir) else relative
+
+
 def run_job(smk, step, job):
     """Run one Snakemake job through the memo, and write its provenance record.
+
+    A fixable file-system error (see :func:`file_system_error`) stops the job
+    like an InputError: one ``foldwise:`` message on stderr, exit status 1.
 
     Parameters
     ----------
@@ -225,6 +287,20 @@ def run_job(smk, step, job):
     job : callable
         ``job(inputs, outputs, settings, log)``: the job function.
     """
+    try:
+        _run_job(smk, step, job)
+    except OSError as error:
+        stated = file_system_error(error, step)
+        if stated is None:
+            raise
+        log = logging.getLogger(f"foldwise.job.{os.getpid()}")
+        log.error("%s", stated)
+        _close(log)
+        print(f"foldwise: {stated}", file=sys.stderr)
+        sys.exit(1)
+
+
+def _run_job(smk, step, job):
     started = time.perf_counter()
     log = _job_logger(smk.log[0] if len(smk.log) else None)
     inputs = _named(smk.input)

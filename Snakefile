@@ -11,6 +11,7 @@ include: "workflow/rules/glm.smk"
 include: "workflow/rules/rois.smk"
 include: "workflow/rules/decoding.smk"
 include: "workflow/rules/group.smk"
+include: "workflow/rules/searchlight.smk"
 include: "workflow/rules/report.smk"
 include: "workflow/rules/manifest.smk"
 

@@ -37,6 +37,7 @@ wildcard_constraints:
     run_id="(ses-[A-Za-z0-9]+_)?run-[A-Za-z0-9]+",
     roi="[A-Za-z0-9]+",
     analysis="[A-Za-z0-9][A-Za-z0-9_]*",
+    block="[0-9]+",
 
 # -- output path templates (the data contract of DESIGN.md) ------------------
 DEMO_DESCRIPTION = os.path.join(STUDY["dataset"]["bids_root"], "dataset_description.json")
@@ -64,6 +65,9 @@ DECODE_CONFUSION = f"{DECODE_STEM}_confusion.tsv"
 GROUP_TABLE = f"{GROUP_STEM}_group.tsv"
 GROUP_NULL = f"{GROUP_STEM}_group_null.tsv.gz"
 GROUP_SUMMARY = f"{GROUP_STEM}_summary.txt"
+SEARCHLIGHT_BLOCK = "results/searchlight/{analysis}/sub-{subject}/sub-{subject}_block-{block}"
+SEARCHLIGHT_SUBJECT = "results/searchlight/{analysis}/sub-{subject}_searchlight"
+SEARCHLIGHT_GROUP = "results/searchlight/{analysis}/{analysis}_searchlight"
 MANIFEST = "results/manifest.tsv"
 
 
@@ -228,5 +232,69 @@ def all_provenance_records():
                           roi=analysis_rois(name))
         records += expand(provenance_path("decode_gather", "{analysis}_sub-{subject}"), analysis=name, subject=SUBJECTS)
         records += expand(provenance_path("group", "{analysis}"), analysis=name)
+    records += searchlight_provenance_records()
     records += REPORT_PROVENANCE
+    return records
+
+
+# -- searchlight ---------------------------------------------------------------
+SEARCHLIGHT = STUDY["searchlight"]
+SEARCHLIGHT_ANALYSES = SEARCHLIGHT["analyses"] if SEARCHLIGHT["enabled"] else []
+SEARCHLIGHT_BLOCKS = list(range(SEARCHLIGHT["n_blocks"]))
+
+
+def searchlight_method():
+    """The searchlight settings a job reads (not the list of analyses nor the switch)."""
+    return {key: value for key, value in SEARCHLIGHT.items() if key not in ("enabled", "analyses")}
+
+
+def searchlight_block_settings(wildcards):
+    return {"searchlight": searchlight_method(), "analysis": analysis_without_roi_list(wildcards.analysis),
+            "subject": wildcards.subject, "block": int(wildcards.block), "seed": STUDY["study"]["seed"]}
+
+
+def searchlight_merge_settings(wildcards):
+    return {"searchlight": searchlight_method(), "analysis": analysis_without_roi_list(wildcards.analysis),
+            "subject": wildcards.subject}
+
+
+def searchlight_group_settings(wildcards):
+    return {"searchlight": searchlight_method(), "analysis": analysis_without_roi_list(wildcards.analysis),
+            "subjects": list(SUBJECTS), "group": STUDY["group"], "seed": STUDY["study"]["seed"]}
+
+
+def searchlight_block_scores(wildcards):
+    return expand(f"{SEARCHLIGHT_BLOCK}_scores.npy", analysis=wildcards.analysis, subject=wildcards.subject, block=SEARCHLIGHT_BLOCKS)
+
+
+def searchlight_block_nulls(wildcards):
+    return expand(f"{SEARCHLIGHT_BLOCK}_null.npy", analysis=wildcards.analysis, subject=wildcards.subject, block=SEARCHLIGHT_BLOCKS)
+
+
+def searchlight_subject_maps(wildcards):
+    return expand(f"{SEARCHLIGHT_SUBJECT}_map.nii.gz", analysis=wildcards.analysis, subject=SUBJECTS)
+
+
+def searchlight_subject_nulls(wildcards):
+    return expand(f"{SEARCHLIGHT_SUBJECT}_null.npy", analysis=wildcards.analysis, subject=SUBJECTS)
+
+
+def all_brain_masks(wildcards):
+    return expand(BRAIN_MASK, subject=SUBJECTS)
+
+
+def searchlight_group_outputs():
+    names = ["mean_map", "p_map", "p_fwe_map"] + (["tfce_map", "p_tfce_map"] if SEARCHLIGHT["tfce"] else [])
+    outputs = {name: f"{SEARCHLIGHT_GROUP}_{name.replace('_map', '')}.nii.gz" for name in names}
+    outputs["table"] = f"{SEARCHLIGHT_GROUP}_group.tsv"
+    return outputs
+
+
+def searchlight_provenance_records():
+    records = []
+    for name in SEARCHLIGHT_ANALYSES:
+        records += expand(provenance_path("searchlight_block", "{analysis}_sub-{subject}_block-{block}"), analysis=name,
+                          subject=SUBJECTS, block=SEARCHLIGHT_BLOCKS)
+        records += expand(provenance_path("searchlight_merge", "{analysis}_sub-{subject}"), analysis=name, subject=SUBJECTS)
+        records += expand(provenance_path("searchlight_group", "{analysis}"), analysis=name)
     return records

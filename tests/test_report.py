@@ -389,6 +389,20 @@ def test_best_slices_pick_the_fullest_planes():
     assert report.best_slices(np.zeros((6, 7, 5), dtype=bool)) == (3, 3, 2)
 
 
+def test_design_figure_labels_every_regressor_or_every_kth_of_a_trialwise_design():
+    rng = np.random.default_rng(4)
+    small = report.design_figure(rng.random((30, 8)), [f"r{i}" for i in range(8)], TR_S, "small")
+    assert [label.get_text() for label in small.axes[0].get_xticklabels()] == [f"r{i}" for i in range(8)]
+    assert small.axes[0].get_ylim() == (30 * TR_S, 0.0)  # time (s) runs downwards
+    names = [f"trial_{i:03d}" for i in range(150)]
+    large = report.design_figure(rng.random((200, 150)), names, None, "trial-wise")
+    labels = [label.get_text() for label in large.axes[0].get_xticklabels()]
+    assert labels == names[::3] and "one label every 3 regressors" in large.axes[0].get_xlabel()
+    assert large.get_size_inches()[0] <= 14.0 and "scan" in large.axes[0].get_ylabel()
+    with pytest.raises(InputError, match="does not match 2 regressor names"):
+        report.design_figure(np.zeros((5, 3)), ["a", "b"], TR_S, "bad")
+
+
 def test_manifest_summary_counts_jobs_and_outputs_only():
     records = [{"step": "glm", "outputs": [1, 2], "wall_time_s": 3.0, "restored_from_memo": True},
                {"step": "demo_dataset", "outputs": [1]}, {"step": "glm", "outputs": [1, 2]}]
@@ -521,6 +535,7 @@ def test_results_show_group_tables_with_corrected_p_and_prevalence(built):
     text = _text(built["html"])
     assert "p (t-test, uncorrected)" in text and "p (family-wise corrected)" in text
     assert "prevalence: lower bound" in text
+    assert "Group statistics (one-sided: above chance), 3 subjects, chance 0.333." in text  # constant columns
     bold_rows = [attributes for tag, attributes in parsed.elements if tag == "tr" and attributes.get("class") == "survives"]
     # ember at 20 and all voxels (p_fwe 0.01) survive: 2 counts x (1 + 5 directions); p_fwe = alpha does not.
     assert len(bold_rows) == 2 * (1 + len(CROSS_DIRECTIONS))

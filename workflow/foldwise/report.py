@@ -78,6 +78,7 @@ _CONFUSION_COLUMNS_MAX = 6
 # Display window of grey images: 1st-99th percentile inside the brain (common practice, no source).
 _WINDOW_PERCENTILES = (1.0, 99.0)
 _FONT_SIZE = 9
+_DESIGN_MAX_LABELS, _DESIGN_MAX_WIDTH_IN = 60, 14.0  # trial-wise designs can have hundreds of regressors
 _STAR_ROW, _STAR_HEADROOM = 0.96, 0.06  # axes fraction of the significance row; room for it (proportion)
 _OUTLINE_UPSAMPLING = 4  # mask outlines follow voxel edges to within 1/8 voxel
 
@@ -571,7 +572,7 @@ def design_figure(matrix, names, tr_s, title):
     ----------
     matrix : array_like, shape (n_scans, n_regressors)
     names : sequence of str
-        Regressor names (every one is labelled).
+        Regressor names (every one is labelled up to 60 regressors, else every k-th).
     tr_s : float or None
         Repetition time (s); None draws the scan number instead of time.
     title : str
@@ -587,7 +588,8 @@ def design_figure(matrix, names, tr_s, title):
     scale = np.max(np.abs(values), axis=0) if values.size else np.zeros(values.shape[1])
     shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0)
     n_scans = values.shape[0]
-    width = max(4.5, 1.6 + 0.2 * len(names))
+    width = min(_DESIGN_MAX_WIDTH_IN, max(4.5, 1.6 + 0.2 * len(names)))
+    label_step = max(1, int(math.ceil(len(names) / _DESIGN_MAX_LABELS)))
     figure = Figure(figsize=(width, 4.6), layout="constrained")
     axes = figure.add_subplot()
     if tr_s:
@@ -595,9 +597,10 @@ def design_figure(matrix, names, tr_s, title):
     else:
         extent, ylabel = (-0.5, len(names) - 0.5, n_scans - 0.5, -0.5), "scan (volume number, from 0)"
     image = axes.imshow(shown, aspect="auto", cmap="gray", interpolation="nearest", vmin=-1, vmax=1, extent=extent)
-    axes.set_xticks(np.arange(len(names)))
-    axes.set_xticklabels(list(names), rotation=90, fontsize=_FONT_SIZE - 1)
-    axes.set_xlabel("regressor", fontsize=_FONT_SIZE)
+    ticks = np.arange(0, len(names), label_step)
+    axes.set_xticks(ticks)
+    axes.set_xticklabels([names[index] for index in ticks], rotation=90, fontsize=_FONT_SIZE - 1)
+    axes.set_xlabel("regressor" if label_step == 1 else f"regressor (one label every {label_step} regressors)", fontsize=_FONT_SIZE)
     axes.set_ylabel(ylabel, fontsize=_FONT_SIZE)
     axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
     axes.set_title(title, fontsize=_FONT_SIZE + 1)

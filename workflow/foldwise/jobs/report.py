@@ -341,23 +341,36 @@ def _roi_count_table(counts, subjects, rois):
 
 
 def _group_table(table, alpha):
+    """The group table in words; columns that are constant (subjects, chance) move into the caption."""
+    constant = {column: table[column].nunique(dropna=False) == 1 for column in ("n_subjects", "chance")}
     rows, classes = [], []
     for row in table.itertuples(index=False):
         survives = math.isfinite(float(row.p_fwe)) and float(row.p_fwe) < alpha
-        interval = (f"{page.format_number(row.ci_low)} to {page.format_number(row.ci_high)}"
+        interval = (f"[{page.format_number(row.ci_low)},\u00a0{page.format_number(row.ci_high)}]"
                     if math.isfinite(float(row.ci_low)) else "n/a")
-        rows.append([row.roi, page.direction_label(str(row.direction)), row.n_voxels, int(row.n_subjects),
-                     page.format_number(row.chance), page.format_number(row.mean), interval, page.format_number(row.t, 2),
-                     page.format_p(row.p_t), page.format_p(row.p_wilcoxon), page.format_p(row.p_perm),
-                     page.format_p(row.p_fwe), "yes" if survives else "no", page.format_p(row.prevalence_p_global),
-                     page.format_number(row.prevalence_gamma0, 2), page.format_p(row.prevalence_p_majority)])
+        cells = [row.roi, page.direction_label(str(row.direction)), row.n_voxels]
+        cells += [] if constant["n_subjects"] else [int(row.n_subjects)]
+        cells += [] if constant["chance"] else [page.format_number(row.chance)]
+        cells += [page.format_number(row.mean), interval, page.format_number(row.t, 2), page.format_p(row.p_t),
+                  page.format_p(row.p_wilcoxon), page.format_p(row.p_perm), page.format_p(row.p_fwe),
+                  "yes" if survives else "no", page.format_p(row.prevalence_p_global),
+                  page.format_number(row.prevalence_gamma0, 2), page.format_p(row.prevalence_p_majority)]
+        rows.append(cells)
         classes.append("survives" if survives else "")
-    header = ["ROI", "direction", "voxels", "subjects", "chance", "mean balanced accuracy", "95% CI of the mean", "t",
-              "p (t-test, uncorrected)", "p (Wilcoxon, uncorrected)", "p (permutation, uncorrected)",
-              "p (family-wise corrected)", f"corrected p < {alpha:g}", "prevalence: p (global null)",
-              "prevalence: lower bound", "prevalence: p (majority)"]
-    return page.html_table(header, rows, caption="Group statistics (one-sided: above chance). Rows in bold survive "
-                           "the family-wise correction.", row_classes=classes, wide=True)
+    header = ["ROI", "direction", "voxels"]
+    header += [] if constant["n_subjects"] else ["subjects"]
+    header += [] if constant["chance"] else ["chance"]
+    header += ["mean balanced accuracy", "95% CI of the mean", "t", "p (t-test, uncorrected)",
+               "p (Wilcoxon, uncorrected)", "p (permutation, uncorrected)", "p (family-wise corrected)",
+               f"corrected p < {alpha:g}", "prevalence: p (global null)", "prevalence: lower bound",
+               "prevalence: p (majority)"]
+    caption = "Group statistics (one-sided: above chance)"
+    if constant["n_subjects"]:
+        caption += f", {int(table['n_subjects'].iloc[0])} subjects"
+    if constant["chance"]:
+        caption += f", chance {page.format_number(table['chance'].iloc[0])}"
+    caption += ". Rows in bold survive the family-wise correction."
+    return page.html_table(header, rows, caption=caption, row_classes=classes, wide=True)
 
 
 def _analysis_text(analysis):

@@ -598,3 +598,22 @@ def test_design_labels_name_condition_blocks_of_trial_wise_designs():
     assert positions == sorted(positions) and positions[-1] == trial_wise.matrix.shape[1] - 1
     per_condition = _design(events, n_scans=200)
     assert [text for _, text in glm_job.design_labels(per_condition)] == list(per_condition.names)
+
+
+def test_lss_trial_identical_to_its_only_sibling_is_not_estimable():
+    # Two identical "seen_moon" trials: in trial 1's model its sibling regressor is a copy of it.
+    # (A duplicate inside a larger condition stays estimable: the sibling regressor also holds other trials.)
+    rng = np.random.default_rng(67)
+    events = _lantern_events(rng, extra=False)
+    moons = pd.DataFrame([(101.0, 2.0, "seen_moon"), (101.0, 2.0, "seen_moon")], columns=events.columns)
+    design = _design(pd.concat([events, moons], ignore_index=True), mode="lss", conditions=CONDITIONS + ["seen_moon"])
+    bold = 100.0 + rng.normal(size=(N_SCANS, 3))
+    with pytest.raises(InputError) as excinfo:
+        fit_lss(design.matrix, bold, design.pattern_blocks, design.pattern_table["condition"], column_names=design.names)
+    assert "seen_moon_trial000" in excinfo.value.field and "seen_moon_trial001" in excinfo.value.field
+    assert "duplicated" in excinfo.value.fix
+    # One duplicate among five trials of a condition: estimable, and equal to the brute-force loop.
+    design = _design(pd.concat([events, events.iloc[[0]]], ignore_index=True), mode="lss")
+    fit = fit_lss(design.matrix, bold, design.pattern_blocks, design.pattern_table["condition"])
+    betas, _ = _brute_force_lss(design, bold)
+    np.testing.assert_allclose(fit.betas, betas, rtol=1e-7, atol=1e-8)

@@ -541,6 +541,7 @@ def test_results_show_group_tables_with_corrected_p_and_prevalence(built):
     assert len(bold_rows) == 2 * (1 + len(CROSS_DIRECTIONS))
     assert "train seen, test heard" in text and "within heard" in text and "mean of both transfers" in text
     assert "Demo ground truth for ROI glow" in text
+    assert "Okabe & Ito" in text and "balanced accuracy (the mean of the per-class hit rates" in text
 
 
 def test_confusion_count_fallback_is_stated(built):

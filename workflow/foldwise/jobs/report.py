@@ -487,7 +487,10 @@ def run(inputs, outputs, params, log):
                + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "masks")
                + "<h3>ROI voxel counts</h3>" + _roi_count_table(counts, subjects, roi_names)
                + "<h3>GLM residual variance</h3>" + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "resvar"))
-    results = []
+    results = [_paragraph("Score: balanced accuracy (the mean of the per-class hit rates, a proportion), averaged over "
+                          "the test folds of each subject. Colours follow the colour-blind-safe palette of Okabe & Ito "
+                          "(2008); images use the cividis and viridis colour maps; every mark is also told apart by "
+                          "shape or position.")]
     for name, analysis in analyses.items():
         table = group_tables[name][0]
         parts = [f"<h3>Analysis {html.escape(name)}</h3>", _paragraph(_analysis_text(analysis))]

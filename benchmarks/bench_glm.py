@@ -13,7 +13,9 @@ instead). The run is written as .nii.gz into a temporary folder
   reference every ratio divides by;
 * ``foldwise load``: ``foldwise.bids.load_bold`` (the fast gzip decoder);
 * one whole job per GLM mode (``foldwise.jobs.glm.run``: load, mask, fit,
-  write all five outputs), statistic t.
+  write all five outputs), statistic t;
+* ``fit only``: ``foldwise.glm.estimate_patterns`` of each mode on data
+  already loaded and masked (the science alone, for the breakdown).
 
 Peak memory of each job is measured twice: tracemalloc's peak (NumPy arrays
 and Python buffers register with it; BLAS work space does not) in this
@@ -41,8 +43,9 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
-from foldwise.bids import load_bold
+from foldwise.bids import load_bold, read_confounds, read_events
 from foldwise.fileio import save_nifti, write_json, write_tsv
+from foldwise.glm import estimate_patterns
 from foldwise.hashing import seed_from
 from foldwise.jobs import glm as glm_job
 
@@ -124,6 +127,16 @@ def _outputs(folder):
                                                       ("resvar", "resvar.nii.gz"))}
 
 
+def _fit_inputs(inputs):
+    """The masked data, events and confounds, as the job passes them to estimate_patterns."""
+    bold, _, _ = load_bold(inputs["bold"])
+    mask = np.asarray(nib.load(inputs["mask"]).dataobj) > 0
+    bold_2d = np.ascontiguousarray(bold[mask].T)
+    events = read_events(inputs["events"], N_SCANS, TR_S)
+    confounds = read_confounds(inputs["confounds"], CONFOUNDS, N_SCANS)
+    return bold_2d, events, confounds
+
+
 def _run_job(inputs, folder, mode):
     glm_job.run(inputs, _outputs(folder / mode.replace(" ", "_").replace(",", "").replace("(", "").replace(")", "")),
                 _params(mode), _LOG)
@@ -182,9 +195,13 @@ def main():
     with tempfile.TemporaryDirectory(prefix="bench_glm_") as temporary:
         folder = Path(temporary)
         inputs, n_voxels, data_bytes = write_run(folder, rng, arguments.zero_background)
+        bold_2d, events, confounds = _fit_inputs(inputs)
         steps = {"nibabel load": lambda: nib.load(inputs["bold"]).get_fdata(),
                  "foldwise load": lambda: load_bold(inputs["bold"])}
         steps.update({mode: (lambda mode=mode: _run_job(inputs, folder, mode)) for mode in MODES})
+        steps.update({f"  fit only: {mode}": (lambda mode=mode: estimate_patterns(bold_2d, events, TR_S, _params(mode)["glm"],
+                                                                                  confounds, CONFOUNDS))
+                      for mode in MODES})
         for step in steps.values():  # warm-up: imports, page cache, first figure
             step()
         times = {name: [] for name in steps}
@@ -195,7 +212,7 @@ def main():
                 step()
                 times[name].append(time.perf_counter() - start)
                 cpu_times[name].append(time.process_time() - cpu_start)
-        traced = {name: _traced_peak_bytes(steps[name]) for name in steps}
+        traced = {name: _traced_peak_bytes(steps[name]) for name in steps if not name.startswith("  fit only")}
         rss = {mode: _rss_growth_bytes(inputs, folder, mode) for mode in MODES}
 
         reference = statistics.median(times["nibabel load"])
@@ -207,17 +224,17 @@ def main():
               f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; {platform.processor() or platform.machine()}; "
               f"median of {arguments.repeats}")
         print()
-        header = (f"{'step':<24}{'median s':>9}{'min s':>8}{'ratio':>7}{'cpu ratio':>10}{'target':>8}{'traced peak':>13}"
+        header = (f"{'step':<34}{'median s':>9}{'min s':>8}{'ratio':>7}{'cpu ratio':>10}{'target':>8}{'traced peak':>13}"
                   f"{'RSS growth':>12}")
         print(header)
         print("-" * len(header))
         for name in steps:
             median = statistics.median(times[name])
             target = f"<={TARGETS[name]:.1f}" if name in TARGETS else ""
-            traced_text = f"{traced[name] / data_bytes:.2f}x"
+            traced_text = f"{traced[name] / data_bytes:.2f}x" if name in traced else ""
             rss_text = f"{rss[name] / data_bytes:.2f}x" if name in rss else ""
             cpu_ratio = statistics.median(cpu_times[name]) / cpu_reference
-            print(f"{name:<24}{median:>9.3f}{min(times[name]):>8.3f}{median / reference:>7.2f}{cpu_ratio:>10.2f}{target:>8}"
+            print(f"{name:<34}{median:>9.3f}{min(times[name]):>8.3f}{median / reference:>7.2f}{cpu_ratio:>10.2f}{target:>8}"
                   f"{traced_text:>13}{rss_text:>12}")
         print()
         print("ratio = median wall time / median wall time of nibabel.load(path).get_fdata() in the same process; cpu ratio: the same")

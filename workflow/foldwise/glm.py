@@ -132,8 +132,9 @@ def _cholesky_qr2(matrix):
     Two Cholesky factorisations of small Gram matrices (Fukaya et al. 2014,
     IEEE ScalA workshop, from memory): several times faster than an SVD for
     tall matrices, and orthogonal to rounding after the second pass when the
-    condition number is well below 1e8. Used when the first factor's diagonal
-    spans less than ``_CHOLESKY_DIAGONAL_RATIO``.
+    condition number is well below 1e8. Used only when the smallest diagonal
+    entry of the first factor exceeds ``_CHOLESKY_DIAGONAL_RATIO`` times the
+    largest.
     """
     if matrix.shape[1] == 0 or matrix.shape[1] > matrix.shape[0]:
         return None
@@ -301,13 +302,16 @@ def fit_ols(design_matrix, bold_2d, pattern_columns=None, with_t=True, column_na
 
     Notes
     -----
-    With the thin SVD ``X = U S V'`` (rank ``r``, small singular values
-    dropped by numpy's ``matrix_rank`` tolerance) the minimum-norm solution is
-    ``beta = V S^-1 U' y``; the residual variance is ``||y - U U' y||^2 /
-    (T - r)`` and ``t_j = beta_j / sqrt(sigma^2 [(X'X)^+]_jj)`` with
-    ``[(X'X)^+]_jj = sum_k V_jk^2 / s_k^2`` (e.g. Seber & Lee 2003, Linear
-    Regression Analysis, ch. 3 and 4). A pattern column outside the row space
-    of ``X`` (not estimable) is an error.
+    A full-rank, well-conditioned design is factorised ``X = Q R``
+    (CholeskyQR2): ``beta = R^-1 Q' y`` and ``[(X'X)^-1]_jj`` is the squared
+    norm of row j of ``R^-1``. Otherwise the thin SVD ``X = U S V'`` (rank
+    ``r``, small singular values dropped by numpy's ``matrix_rank``
+    tolerance) gives the minimum-norm ``beta = V S^-1 U' y`` and
+    ``[(X'X)^+]_jj = sum_k V_jk^2 / s_k^2``. Either way the residual variance
+    is ``||y - U U' y||^2 / (T - r)`` and ``t_j = beta_j / sqrt(sigma^2
+    [(X'X)^+]_jj)`` (e.g. Seber & Lee 2003, Linear Regression Analysis, ch. 3
+    and 4). A pattern column outside the row space of ``X`` (not estimable)
+    is an error.
     """
     design = _check_design(design_matrix)
     bold = _check_bold(bold_2d, design.shape[0])

@@ -19,10 +19,12 @@ the batched classifiers:
    per-voxel log-likelihoods). Each term is computed once per voxel for the
    whole brain and summed over every sphere at once by one sparse matrix
    product: a voxel's term is shared by the ~100 spheres that contain it.
-4. Shrinkage LDA needs a covariance per sphere. It gathers the sphere's
-   patterns for a chunk of centres and solves, per sphere, an
-   ``n_train x n_train`` system (Woodbury identity) instead of the
-   ``p x p`` one, batched with ``np.linalg.solve`` on stacks.
+4. Shrinkage LDA needs a covariance per sphere. Class means, residuals and
+   class SDs are per-voxel quantities, computed once per labeling; a chunk
+   of centres gathers them and solves, per sphere, an ``n_train x n_train``
+   system (Woodbury identity) instead of the ``p x p`` one (or the
+   ``p x p`` one when it is the smaller), batched with ``np.linalg.solve``
+   on stacks.
 5. The linear SVM (libsvm, exactly as ``sklearn.svm.SVC(kernel="linear")``)
    is the slow exact option: batched Gram matrices, one fit per sphere.
 

@@ -69,6 +69,7 @@ SEARCHLIGHT_BLOCK = "results/searchlight/{analysis}/sub-{subject}/sub-{subject}_
 SEARCHLIGHT_SUBJECT = "results/searchlight/{analysis}/sub-{subject}_searchlight"
 SEARCHLIGHT_GROUP = "results/searchlight/{analysis}/{analysis}_searchlight"
 MANIFEST = "results/manifest.tsv"
+REPORT_PROVENANCE = ["results/provenance/report/study.json"]
 
 
 def provenance_path(rule_name, pattern):

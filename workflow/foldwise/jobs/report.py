@@ -465,6 +465,11 @@ def run(inputs, outputs, params, log):
     group_tables = _read_group_tables(inputs.get("group_tables"), list(analyses))
     confusions = _read_confusions(inputs.get("confusions"), list(analyses))
     records = [_read_json(path, "provenance record") for path in _as_list(inputs.get("provenance"))]
+    if not records and params.get("planned_jobs"):
+        # The workflow passes the planned jobs instead of their records: records carry run times, and
+        # reading them would make the page recompute whenever any job was merely restored.
+        records = [{"step": step, "outputs": [None] * int(n_outputs)}
+                   for step, jobs in params["planned_jobs"].items() for n_outputs in jobs]
     for path, record in zip(_as_list(inputs.get("provenance")), records):
         if not isinstance(record, dict) or "step" not in record or not isinstance(record.get("outputs"), list):
             raise InputError(path, "step, outputs", "not a provenance record of a foldwise job", _RERUN)

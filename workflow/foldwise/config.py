@@ -117,6 +117,11 @@ def validate(config, path="config/config.yaml", schema_path=SCHEMA_PATH):
         On the first problem, naming the key path and the fix.
     """
     schema = yaml.safe_load(Path(schema_path).read_text(encoding="utf-8"))
+    where, key = _first_non_text_key(config)
+    if where is not None:
+        written = "null" if key is None else str(key).lower() if isinstance(key, bool) else str(key)
+        raise InputError(path, where, f"the key {written} is not text (YAML reads unquoted numbers, true/false and null as values)",
+                         f"quote the key ('{written}':) or rename it")
     filled = copy.deepcopy(config)
     errors = sorted(_Validator(schema).iter_errors(filled), key=lambda e: (len(e.absolute_path), key_path(e.absolute_path)))
     if errors:
@@ -125,6 +130,23 @@ def validate(config, path="config/config.yaml", schema_path=SCHEMA_PATH):
         raise InputError(path, field, problem, fix)
     _check_references(filled, path)
     return filled
+
+
+def _first_non_text_key(node, parts=()):
+    """(key path, key) of the first mapping key that is not a string, or (None, None)."""
+    if isinstance(node, dict):
+        for key, value in node.items():
+            if not isinstance(key, str):
+                return key_path(parts), key
+            found = _first_non_text_key(value, parts + (key,))
+            if found[0] is not None:
+                return found
+    elif isinstance(node, list):
+        for index, value in enumerate(node):
+            found = _first_non_text_key(value, parts + (index,))
+            if found[0] is not None:
+                return found
+    return None, None
 
 
 def _duplicates(names):

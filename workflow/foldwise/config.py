@@ -42,6 +42,9 @@ def load_yaml(path, what="config file"):
         mark = getattr(error, "problem_mark", None)
         where = f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None else "YAML syntax"
         problem = getattr(error, "problem", None) or str(error).splitlines()[0]
+        if isinstance(error, yaml.constructor.ConstructorError):  # a tag such as !!python/object
+            raise InputError(path, where, f"malformed YAML: tag refused ({problem}); a config holds plain values only, never objects",
+                             "remove the tag (the word starting with '!') and write a plain value") from None
         raise InputError(path, where, f"malformed YAML ({problem})", "fix the indentation or quoting at that line") from None
     if data is None:
         data = {}
@@ -91,6 +94,14 @@ def _describe(error, schema_root):
             return path, "an ROI needs exactly one of 'labels', 'image' or 'sphere'", "keep one of the three definitions"
         if path.startswith("analyses") and len(error.absolute_path) == 2:
             return path, "a 'within' analysis needs 'classes', a 'cross' analysis needs 'sets'", "add the key that matches 'kind'"
+    if error.validator == "minProperties" and path.endswith(".classes"):
+        found = ", ".join(map(str, error.instance)) or "none"
+        return path, f"decoding needs at least {error.validator_value} classes, found {len(error.instance)} ({found})", \
+            "define two or more classes, each a list of conditions"
+    if error.validator in ("minProperties", "minItems", "maxProperties", "maxItems"):
+        bound = "at least" if error.validator.startswith("min") else "at most"
+        entries = f"{bound} {error.validator_value} {'entry' if error.validator_value == 1 else 'entries'}"
+        return path, f"needs {entries}, found {len(error.instance)}", f"give {path} {entries}"
     if error.validator in ("minimum", "exclusiveMinimum", "maximum", "exclusiveMaximum"):
         return path, f"{error.instance!r} is out of range ({error.validator} {error.validator_value})", f"give {path} a value within the range"
     return path, error.message, f"correct {path} (see the README's config reference)"

@@ -136,6 +136,10 @@ def read_tsv(path, required_columns=(), what="table", text_columns=TEXT_COLUMNS)
         raise InputError(path, "header", f"the {what} is empty", "write a header line and at least one row") from None
     except (pd.errors.ParserError, UnicodeDecodeError) as error:
         raise InputError(path, "format", f"the {what} is not a readable TSV ({error})", "save it as tab-separated UTF-8 text") from None
+    if not isinstance(frame.index, pd.RangeIndex):  # pandas takes a first column as the index when rows have one cell too many
+        raise InputError(path, "format", f"the data rows of the {what} have more cells than its header has columns "
+                                         f"({len(frame.columns)}: {', '.join(map(str, frame.columns))})",
+                         "remove the extra tab-separated cells (a trailing tab?) or name the extra column in the header")
     missing = [column for column in required_columns if column not in frame.columns]
     if missing:
         raise InputError(path, ", ".join(missing), f"required column(s) missing from the {what} (found: {', '.join(map(str, frame.columns))})",

@@ -280,8 +280,9 @@ def discover_runs(bids_root, patterns, task, subjects=()):
             run_key = int(labels["run"]) if labels["run"].isdigit() else labels["run"]
             key = (labels["subject"], session, run_key)
             if key in matches:
+                session_text = "" if session is None else f", session {session}"
                 raise InputError(root / relative, "dataset.patterns.bold",
-                                 f"two files for subject {labels['subject']}, session {session}, run {labels['run']}: "
+                                 f"two files for subject {labels['subject']}{session_text}, run {labels['run']}: "
                                  f"{matches[key][0]} and {relative}",
                                  "remove or rename the duplicate so each run has one BOLD file")
             matches[key] = (relative, labels["subject"], session, labels["run"])
@@ -301,7 +302,7 @@ def discover_runs(bids_root, patterns, task, subjects=()):
         if subject in found_subjects:
             continue
         if subject in subject_folders:
-            raise InputError(root / template.replace("{subject}", subject), "dataset.subjects",
+            raise InputError(root / template.replace("{subject}", subject).replace("{task}", task), "dataset.subjects",
                              f"subject {subject} has no run of task {task!r}",
                              f"add its BOLD runs or remove {subject} from dataset.subjects")
         raise InputError(root, "dataset.subjects",

@@ -1,0 +1,697 @@
+"""The bad-input table: every case a user can get wrong, with the exact message they read.
+
+Each case builds its bad input in a temporary folder, calls the reader, job
+function or validator that catches it, and checks the exact text. A message
+reaches the user prefixed ``foldwise: `` (a config error as Snakemake's
+WorkflowError from workflow/rules/common.smk, a job error from
+``foldwise.memo.run_job``, exit status 1); warnings go to the job's log and to
+stderr as ``foldwise WARNING: ``.
+
+docs/bad-input-table.md is this table: ``test_the_documented_table_is_this_table``
+compares the two, and ``python tests/test_bad_input.py`` prints the table.
+In the messages, ``<folder>`` stands for the folder that holds the user's files.
+"""
+
+import contextlib
+import copy
+import io
+import json
+import logging
+import multiprocessing
+import os
+import shutil
+import sys
+import tempfile
+import traceback
+from dataclasses import dataclass
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from foldwise import bids
+from foldwise.config import load_yaml, validate
+from foldwise.errors import InputError
+from foldwise.fileio import save_nifti, write_text_atomic, write_tsv
+from foldwise.jobs import brain_mask as brain_mask_job
+from foldwise.jobs import decode as decode_job
+from foldwise.jobs import group as group_job
+from foldwise.jobs import roi_mask as roi_mask_job
+from foldwise.memo import run_job
+from foldwise.workflow_plan import plan_study
+
+REPO = Path(__file__).resolve().parents[1]
+TABLE_PATH = REPO / "docs" / "bad-input-table.md"
+FOLDER = "<folder>"
+LOG = logging.getLogger("test_bad_input")
+
+# A small invented lanterns study, written out here so the messages do not depend on the demo config.
+LANTERNS = {
+    "study": {"name": "lanterns", "seed": 3},
+    "dataset": {"source": "demo"},
+    "demo": {"n_subjects": 3, "n_runs": 2},
+    "rois": [{"name": "ember", "labels": ["ember_L", "ember_R"]}, {"name": "glow", "labels": ["glow_L", "glow_R"]},
+             {"name": "hush", "labels": ["hush_L", "hush_R"]}],
+    "analyses": [{"name": "shape", "kind": "within",
+                  "classes": {"round": ["seen_round"], "square": ["seen_square"], "star": ["seen_star"]}}],
+}
+AFFINE = np.diag([3.0, 3.0, 3.0, 1.0])
+GRID = (6, 5, 4)
+
+
+@dataclass(frozen=True)
+class Case:
+    """One row of the table: what goes wrong, where it is caught, and how the check is built."""
+
+    name: str
+    where: str
+    build: object  # folder -> Expectation
+
+
+@dataclass(frozen=True)
+class Expectation:
+    """``call()`` and the message it must give (``<folder>`` for the case's folder).
+
+    kind: ``error`` (raises InputError), ``warning`` (logs one warning to the
+    logger passed in), ``exit`` (``call()`` returns the exit code and stderr of
+    a job run through ``run_job``).
+    """
+
+    call: object
+    message: str
+    kind: str = "error"
+
+
+CASES = []
+
+
+def case(name, where):
+    def register(build):
+        CASES.append(Case(name, where, build))
+        return build
+    return register
+
+
+def _study(**changes):
+    """A deep copy of LANTERNS with ``path -> value`` changes (``"analyses.0.classes"``)."""
+    study = copy.deepcopy(LANTERNS)
+    for dotted, value in changes.items():
+        *parents, last = dotted.split(".")
+        node = study
+        for part in parents:
+            node = node[int(part)] if isinstance(node, list) else node[part]
+        if isinstance(node, list):
+            node[int(last)] = value
+        else:
+            node[last] = value
+    return study
+
+
+def _validating(study):
+    return lambda: validate(study, path="config/study.yaml")
+
+
+def _planning(study):
+    return lambda: plan_study(validate(study, path="config/study.yaml"))
+
+
+def _bold_file_names(dataset, subjects=("01", "02"), runs=("1", "2")):
+    """Empty files named like BOLD runs (discovery reads names only)."""
+    for subject in subjects:
+        for run in runs:
+            path = dataset / f"sub-{subject}" / "func" / f"sub-{subject}_task-lanterns_run-{run}_desc-preproc_bold.nii.gz"
+            path.parent.mkdir(parents=True, exist_ok=True)
+            path.write_bytes(b"")
+
+
+def _bids_study(folder):
+    return _study(**{"dataset": {"source": "bids", "bids_root": str(folder / "bids")}})
+
+
+def _events(folder, text):
+    path = folder / "sub-01_task-lanterns_run-1_events.tsv"
+    path.write_text(text, encoding="utf-8")
+    return lambda: bids.read_events(path, 100, 2.0)
+
+
+def _noise_bold(path, shape=GRID + (12,), seed=0):
+    data = 100.0 + np.random.default_rng(seed).standard_normal(shape)
+    save_nifti(path, data, AFFINE)
+    return data
+
+
+# -- config files and the config ------------------------------------------------------------
+@case("malformed YAML (bad indentation)", "config.load_yaml, before any job")
+def _malformed_yaml(folder):
+    path = folder / "study.yaml"
+    path.write_text("study:\n  name: lanterns\n   seed: 3\n", encoding="utf-8")
+    return Expectation(lambda: load_yaml(path), f"{FOLDER}/study.yaml: line 3, column 8: malformed YAML (mapping values are not "
+                                                "allowed here). Fix: fix the indentation or quoting at that line")
+
+
+@case("config file missing", "config.load_yaml, before any job")
+def _missing_config(folder):
+    return Expectation(lambda: load_yaml(folder / "study.yaml"), f"{FOLDER}/study.yaml: file: the config file does not exist. "
+                                                                "Fix: create it or pass the right path (make demo CONFIG=path)")
+
+
+@case("config is a list, not a mapping", "config.load_yaml, before any job")
+def _list_config(folder):
+    path = folder / "study.yaml"
+    path.write_text("- dataset\n- rois\n", encoding="utf-8")
+    return Expectation(lambda: load_yaml(path), f"{FOLDER}/study.yaml: (top level): expected a mapping of keys, found list. "
+                                                "Fix: start the file with keys such as 'dataset:'")
+
+
+@case("YAML tag that builds an object (!!python/object)", "config.load_yaml (yaml.safe_load), before any job")
+def _yaml_object_tag(folder):
+    path = folder / "study.yaml"
+    path.write_text("study: !!python/object/apply:os.system ['echo hello']\n", encoding="utf-8")
+    return Expectation(lambda: load_yaml(path), f"{FOLDER}/study.yaml: line 1, column 8: malformed YAML: tag refused (could not "
+                                                "determine a constructor for the tag 'tag:yaml.org,2002:python/object/apply:os.system'); "
+                                                "a config holds plain values only, never objects. Fix: remove the tag (the word "
+                                                "starting with '!') and write a plain value")
+
+
+@case("unknown config key (misspelt)", "config.validate (schema), before any job")
+def _unknown_key(folder):
+    study = _study()
+    study["analyses"][0]["clasifier"] = "linear_svm"
+    return Expectation(_validating(study), "config/study.yaml: analyses[0]: unknown key 'clasifier' (did you mean 'classifier'?). "
+                                           "Fix: remove or rename it; allowed keys here: classes, classifier, demean_patterns, folds, "
+                                           "kind, logistic_c, n_permutations, name, rois, selection, sets, svm_c, voxel_counts")
+
+
+@case("key that is not text (unquoted 1:)", "config.validate, before any job")
+def _number_key(folder):
+    study = _study(**{"analyses.0.classes": {1: ["seen_round"], 2: ["seen_square"]}})
+    return Expectation(_validating(study), "config/study.yaml: analyses[0].classes: the key 1 is not text (YAML reads unquoted "
+                                           "numbers, true/false and null as values). Fix: quote the key ('1':) or rename it")
+
+
+@case("wrong type", "config.validate (schema), before any job")
+def _wrong_type(folder):
+    return Expectation(_validating(_study(**{"demo.n_subjects": "five"})),
+                       "config/study.yaml: demo.n_subjects: expected integer, found 'five'. "
+                       "Fix: give demo.n_subjects a value of type integer")
+
+
+@case("analysis with one class", "config.validate (schema), before any job")
+def _one_class(folder):
+    return Expectation(_validating(_study(**{"analyses.0.classes": {"round": ["seen_round"]}})),
+                       "config/study.yaml: analyses[0].classes: decoding needs at least 2 classes, found 1 (round). "
+                       "Fix: define two or more classes, each a list of conditions")
+
+
+@case("non-positive voxel count", "config.validate (schema), before any job")
+def _zero_voxels(folder):
+    study = _study()
+    study["analyses"][0]["voxel_counts"] = [0, 50, "all"]
+    return Expectation(_validating(study), "config/study.yaml: analyses[0].voxel_counts[0]: 0 is not a voxel count. "
+                                           "Fix: use a whole number of at least 1, or 'all'")
+
+
+@case("voxel counts out of order", "config.validate, before any job")
+def _counts_out_of_order(folder):
+    study = _study()
+    study["analyses"][0]["voxel_counts"] = [50, 10, "all"]
+    return Expectation(_validating(study), "config/study.yaml: analyses[0].voxel_counts: counts [50, 10] are not increasing. "
+                                           "Fix: list the counts from small to large ('all' last)")
+
+
+@case("negative permutation count", "config.validate (schema), before any job")
+def _negative_permutations(folder):
+    study = _study()
+    study["analyses"][0]["n_permutations"] = -1
+    return Expectation(_validating(study), "config/study.yaml: analyses[0].n_permutations: -1 is out of range (minimum 0). "
+                                           "Fix: give analyses[0].n_permutations a value within the range")
+
+
+@case("unknown classifier", "config.validate (schema), before any job")
+def _unknown_classifier(folder):
+    study = _study()
+    study["analyses"][0]["classifier"] = "random_forest"
+    return Expectation(_validating(study), "config/study.yaml: analyses[0].classifier: 'random_forest' is not one of "
+                                           "['linear_svm', 'logistic_l2', 'shrinkage_lda', 'correlation_centroid', 'gaussian_nb']. "
+                                           "Fix: choose one of linear_svm, logistic_l2, shrinkage_lda, correlation_centroid, gaussian_nb")
+
+
+@case("analysis names an ROI that is not defined", "config.validate (references), before any job")
+def _unknown_roi_reference(folder):
+    study = _study()
+    study["analyses"][0]["rois"] = ["embr"]
+    return Expectation(_validating(study), "config/study.yaml: analyses[0].rois: unknown ROI 'embr' (did you mean 'ember'?). "
+                                           "Fix: use one of ember, glow, hush or define it under rois")
+
+
+@case("two ROIs with one name", "config.validate (references), before any job")
+def _duplicate_roi(folder):
+    study = _study()
+    study["rois"].append({"name": "ember", "labels": ["hush_L"]})
+    return Expectation(_validating(study), "config/study.yaml: rois[].name: the ROI name 'ember' is used twice. "
+                                           "Fix: give each ROI a unique name")
+
+
+@case("file-name pattern with a placeholder other than subject/session/task/run", "bids.run_files, before any job")
+def _bad_placeholder(folder):
+    study = _study(**{"dataset.patterns": {"bold": "sub-{subject.__class__}/func/run-{run}_bold.nii.gz"}})
+    return Expectation(_planning(study), "the study config: dataset.patterns.bold: the placeholder {subject.__class__} in "
+                                         "'sub-{subject.__class__}/func/run-{run}_bold.nii.gz' is not allowed. "
+                                         "Fix: use only {subject} {session} {task} {run}, without format specs")
+
+
+# -- the dataset: finding subjects and runs (workflow_plan.plan_study, before any job) ---------
+@case("dataset path missing", "bids.discover_runs via workflow_plan.plan_study, before any job")
+def _missing_dataset(folder):
+    return Expectation(_planning(_bids_study(folder)), f"{FOLDER}/bids: dataset.bids_root: the dataset folder does not exist. "
+                                                       "Fix: correct dataset.bids_root or create the dataset there")
+
+
+@case("a listed subject absent from the dataset", "bids.discover_runs via workflow_plan.plan_study, before any job")
+def _absent_subject(folder):
+    _bold_file_names(folder / "bids")
+    study = _bids_study(folder)
+    study["dataset"]["subjects"] = ["01", "05"]
+    return Expectation(_planning(study), f"{FOLDER}/bids: dataset.subjects: subject 05 is not in the dataset (found: 01, 02). "
+                                         "Fix: correct dataset.subjects or add the subject's files")
+
+
+@case("a listed subject absent from the demo", "workflow_plan.plan_study, before any job")
+def _absent_demo_subject(folder):
+    study = _study(**{"dataset.subjects": ["09"]})
+    return Expectation(_planning(study), "config: dataset.subjects: subject(s) 09 are not in the demo (it has 01, 02, 03). "
+                                         "Fix: list demo subjects only, or raise demo.n_subjects")
+
+
+@case("a subject with no usable run (folder without runs of the task)", "bids.discover_runs via workflow_plan.plan_study, before any job")
+def _subject_without_runs(folder):
+    _bold_file_names(folder / "bids")
+    (folder / "bids" / "sub-03" / "anat").mkdir(parents=True)
+    study = _bids_study(folder)
+    study["dataset"]["subjects"] = ["01", "02", "03"]
+    return Expectation(_planning(study), f"{FOLDER}/bids/sub-03/func/sub-03_task-lanterns_run-{{run}}_desc-preproc_bold.nii.gz: "
+                                         "dataset.subjects: subject 03 has no run of task 'lanterns'. "
+                                         "Fix: add its BOLD runs or remove 03 from dataset.subjects")
+
+
+@case("two files for the same run (run-1 and run-01)", "bids.discover_runs via workflow_plan.plan_study, before any job")
+def _two_files_one_run(folder):
+    _bold_file_names(folder / "bids")
+    _bold_file_names(folder / "bids", subjects=("01",), runs=("01",))
+    return Expectation(_planning(_bids_study(folder)),
+                       f"{FOLDER}/bids/sub-01/func/sub-01_task-lanterns_run-1_desc-preproc_bold.nii.gz: dataset.patterns.bold: "
+                       "two files for subject 01, run 1: sub-01/func/sub-01_task-lanterns_run-01_desc-preproc_bold.nii.gz and "
+                       "sub-01/func/sub-01_task-lanterns_run-1_desc-preproc_bold.nii.gz. "
+                       "Fix: remove or rename the duplicate so each run has one BOLD file")
+
+
+# -- per-run files (read by the brain-mask and GLM jobs) ---------------------------------------
+@case("empty events file (0 bytes)", "bids.read_events (GLM job)")
+def _empty_events(folder):
+    return Expectation(_events(folder, ""), f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: header: the events file is empty. "
+                                            "Fix: write a header line and at least one row")
+
+
+@case("events file with a header but no events", "bids.read_events (GLM job)")
+def _header_only_events(folder):
+    return Expectation(_events(folder, "onset\tduration\ttrial_type\n"),
+                       f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: rows: the events file has a header but no events. "
+                       "Fix: add one row per event")
+
+
+@case("events missing a required column", "bids.read_events (GLM job)")
+def _events_without_duration(folder):
+    return Expectation(_events(folder, "onset\ttrial_type\n4\tseen_round\n"),
+                       f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: duration: required column(s) missing from the events "
+                       "file (found: onset, trial_type). Fix: add the column(s) duration")
+
+
+@case("events rows with an extra cell (a trailing tab)", "fileio.read_tsv via bids.read_events (GLM job)")
+def _events_trailing_tab(folder):
+    return Expectation(_events(folder, "onset\tduration\ttrial_type\n4\t2\tseen_round\t\n"),
+                       f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: format: the data rows of the events file have more "
+                       "cells than its header has columns (3: onset, duration, trial_type). Fix: remove the extra tab-separated "
+                       "cells (a trailing tab?) or name the extra column in the header")
+
+
+@case("negative duration", "bids.read_events (GLM job)")
+def _negative_duration(folder):
+    return Expectation(_events(folder, "onset\tduration\ttrial_type\n4\t2\tseen_round\n12\t-1\tseen_star\n"),
+                       f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: duration: row 2 (line 3) has a negative duration -1 s. "
+                       "Fix: give durations of 0 s or more")
+
+
+@case("non-numeric onset", "bids.read_events (GLM job)")
+def _text_onset(folder):
+    return Expectation(_events(folder, "onset\tduration\ttrial_type\nsoon\t2\tseen_round\n"),
+                       f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: onset: row 1 (line 2) holds 'soon', not a finite number. "
+                       "Fix: write onset as a number (n/a for a missing value)")
+
+
+@case("onset after the end of the scan", "bids.read_events (GLM job)")
+def _late_onset(folder):
+    return Expectation(_events(folder, "onset\tduration\ttrial_type\n250\t2\tseen_round\n"),
+                       f"{FOLDER}/sub-01_task-lanterns_run-1_events.tsv: onset: row 1 (line 2) starts at 250 s, at or after the "
+                       "end of the scan (100 volumes x 2 s = 200 s). Fix: check the onsets are in seconds from the first volume "
+                       "and that events and BOLD belong to the same run")
+
+
+@case("sidecar without RepetitionTime", "bids.read_tr_s (GLM job)")
+def _sidecar_without_tr(folder):
+    _noise_bold(folder / "bold.nii.gz")
+    sidecar = folder / "bold.json"
+    sidecar.write_text(json.dumps({"TaskName": "lanterns"}), encoding="utf-8")
+    header = bids.load_bold(folder / "bold.nii.gz")[2]
+    return Expectation(lambda: bids.read_tr_s(sidecar, header, folder / "bold.nii.gz"),
+                       f"{FOLDER}/bold.json: RepetitionTime: the sidecar has no RepetitionTime. "
+                       "Fix: add \"RepetitionTime\": <seconds> to the sidecar")
+
+
+@case("TR mismatch between sidecar and header", "bids.read_tr_s (GLM job)")
+def _tr_mismatch(folder):
+    _noise_bold(folder / "bold.nii.gz")  # save_nifti writes pixdim[4] = 1 with units mm, sec: a TR of 1 s
+    sidecar = folder / "bold.json"
+    sidecar.write_text(json.dumps({"RepetitionTime": 2.0}), encoding="utf-8")
+    header = bids.load_bold(folder / "bold.nii.gz")[2]
+    return Expectation(lambda: bids.read_tr_s(sidecar, header, folder / "bold.nii.gz"),
+                       f"{FOLDER}/bold.json: RepetitionTime: the sidecar says 2 s but the header of {FOLDER}/bold.nii.gz "
+                       "(pixdim[4]) says 1 s. Fix: correct whichever is wrong (RepetitionTime in the sidecar or "
+                       "pixdim[4]/xyzt_units in the image)")
+
+
+@case("3D image where a 4D BOLD series is expected", "bids.load_bold (brain-mask and GLM jobs)")
+def _three_d_bold(folder):
+    save_nifti(folder / "bold.nii.gz", np.ones(GRID), AFFINE)
+    return Expectation(lambda: bids.load_bold(folder / "bold.nii.gz"),
+                       f"{FOLDER}/bold.nii.gz: dim: expected a 4D BOLD time series, got an image of shape (6, 5, 4). "
+                       "Fix: point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
+
+
+@case("truncated .nii.gz", "fileio.load_nifti via bids.load_bold (brain-mask and GLM jobs)")
+def _truncated_bold(folder):
+    _noise_bold(folder / "whole.nii.gz")
+    data = (folder / "whole.nii.gz").read_bytes()
+    (folder / "bold.nii.gz").write_bytes(data[: len(data) // 2])
+    return Expectation(lambda: bids.load_bold(folder / "bold.nii.gz"),
+                       f"{FOLDER}/bold.nii.gz: content: the BOLD image is truncated or not a NIfTI file (EOFError: Compressed "
+                       "file ended before the end-of-stream marker was reached). Fix: re-export or re-copy the file")
+
+
+@case("corrupt .nii.gz (not gzip at all)", "fileio.load_nifti via bids.load_bold (brain-mask and GLM jobs)")
+def _corrupt_bold(folder):
+    (folder / "bold.nii.gz").write_bytes(b"<html>a download error page</html>")
+    return Expectation(lambda: bids.load_bold(folder / "bold.nii.gz"),
+                       f"{FOLDER}/bold.nii.gz: content: the BOLD image is truncated or not a NIfTI file (BadGzipFile: Not a "
+                       "gzipped file (b'<h')). Fix: re-export or re-copy the file")
+
+
+@case("confound column absent", "bids.read_confounds (GLM job)")
+def _absent_confound(folder):
+    path = folder / "confounds.tsv"
+    path.write_text("trans_x\ttrans_y\n0.1\t0.2\n", encoding="utf-8")
+    return Expectation(lambda: bids.read_confounds(path, ["trans_x", "rot_x"], 1),
+                       f"{FOLDER}/confounds.tsv: rot_x: the confound column is absent (close names: trans_x). "
+                       "Fix: correct dataset.confounds to name columns of the confounds table")
+
+
+@case("BOLD with NaN voxels (excluded from the mask, with a warning)", "brain-mask job (jobs/brain_mask.py)")
+def _nan_voxels(folder):
+    data = _noise_bold(folder / "clean.nii.gz")
+    data[0, 0, 0, 3] = np.nan
+    data[2, 2, 2, :] = np.nan
+    save_nifti(folder / "bold.nii.gz", data, AFFINE)
+    outputs = {name: str(folder / "out" / f"{name}.{suffix}") for name, suffix in
+               (("mask", "nii.gz"), ("mean", "nii.gz"), ("summary", "json"))}
+    return Expectation(lambda: brain_mask_job.run({"bold": [str(folder / "bold.nii.gz")]}, outputs,
+                                                  {"brain_mask": {"mean_fraction": 0.2}, "subject": "01"}, LOG),
+                       "subject 01: excluded 2 voxel(s) whose BOLD holds NaN or Inf in some run", kind="warning")
+
+
+# -- ROI masks (roi_mask job) ----------------------------------------------------------------
+def _roi_inputs(folder, atlas_affine=AFFINE):
+    brain = np.zeros(GRID, dtype=np.uint8)
+    brain[1:5, 1:4, 1:3] = 1
+    atlas = np.zeros(GRID, dtype=np.int16)
+    atlas[1:3, 1:4, 1:3], atlas[3:5, 1:4, 1:3], atlas[5, :, :] = 1, 2, 3  # label 3 lies outside the brain mask
+    save_nifti(folder / "brainmask.nii.gz", brain, AFFINE, dtype=np.uint8)
+    save_nifti(folder / "atlas.nii.gz", atlas, atlas_affine, dtype=np.int16)
+    write_tsv(folder / "atlas_labels.tsv", pd.DataFrame({"index": [1, 2, 3], "name": ["ember_L", "ember_R", "hush_L"]}))
+    return {"brain_mask": str(folder / "brainmask.nii.gz"), "atlas": str(folder / "atlas.nii.gz"),
+            "atlas_labels": str(folder / "atlas_labels.tsv")}
+
+
+def _roi_job(folder, labels, inputs=None, min_voxels=10, name="ember"):
+    inputs = inputs or _roi_inputs(folder)
+    outputs = {"mask": str(folder / "out" / "roi.nii.gz"), "info": str(folder / "out" / "roi.json")}
+    params = {"roi": {"name": name, "labels": labels, "min_voxels": min_voxels}, "subject": "01"}
+    return lambda: roi_mask_job.run(inputs, outputs, params, LOG)
+
+
+@case("atlas in another space (its grid does not overlap the data)", "masks.resample_nearest (ROI job)")
+def _atlas_elsewhere(folder):
+    shifted = AFFINE.copy()
+    shifted[:3, 3] = 500.0
+    inputs = _roi_inputs(folder, atlas_affine=shifted)
+    return Expectation(_roi_job(folder, ["ember_L"], inputs),
+                       f"{FOLDER}/atlas.nii.gz: affine: atlas on a different grid or space: its bounding box shares 0% of the "
+                       "smaller grid (atlas [498.5, 498.5, 498.5]..[516.5, 513.5, 510.5] mm, data [-1.5, -1.5, -1.5]..[16.5, "
+                       "13.5, 10.5] mm). Fix: give an atlas in the same space as the BOLD data (check both images' sform/qform)")
+
+
+@case("unknown ROI label", "masks.roi_from_labels (ROI job)")
+def _unknown_label(folder):
+    return Expectation(_roi_job(folder, ["embr_L"]), f"{FOLDER}/atlas_labels.tsv: labels: unknown label 'embr_L' (closest: "
+                                                     "ember_L, ember_R). Fix: use names from the atlas label table's name column")
+
+
+@case("ROI empty after the brain mask", "masks.restrict_to_brain (ROI job)")
+def _roi_outside_brain(folder):
+    return Expectation(_roi_job(folder, ["hush_L"], name="hush"),
+                       f"{FOLDER}/atlas.nii.gz: rois[hush].min_voxels: subject 01, ROI hush: 0 voxels inside the brain mask "
+                       "(20 before masking), fewer than min_voxels = 10. Fix: check that the ROI and the data share one space, "
+                       "enlarge the ROI, lower min_voxels, or exclude the subject")
+
+
+# -- decoding (decode job) ------------------------------------------------------------------
+def _pattern_runs(folder, conditions_per_run):
+    rng = np.random.default_rng(1)
+    images, tables = [], []
+    for number, conditions in enumerate(conditions_per_run, start=1):
+        image = folder / f"sub-01_run-{number:02d}_patterns.nii.gz"
+        table = folder / f"sub-01_run-{number:02d}_patterns.tsv"
+        save_nifti(image, rng.standard_normal(GRID + (len(conditions),)), AFFINE)
+        write_tsv(table, pd.DataFrame({"volume": range(len(conditions)), "subject": "01", "session": "n/a",
+                                       "run_id": f"run-{number:02d}", "condition": conditions, "trial_index": "n/a",
+                                       "onset_s": "n/a"}))
+        images.append(str(image))
+        tables.append(str(table))
+    return images, tables
+
+
+def _decode_job(folder, conditions_per_run, classes):
+    images, tables = _pattern_runs(folder, conditions_per_run)
+    mask = folder / "roi-ember_mask.nii.gz"
+    save_nifti(mask, np.ones(GRID, dtype=np.uint8), AFFINE, dtype=np.uint8)
+    analysis = {"name": "shape", "kind": "within", "classes": classes, "selection": "signal", "voxel_counts": [5, "all"],
+                "classifier": "correlation_centroid", "svm_c": 1.0, "logistic_c": 1.0, "demean_patterns": False,
+                "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "n_permutations": 5}
+    outputs = {name: str(folder / "out" / f"{name}.tsv") for name in ("scores", "null", "rankings", "confusion")}
+    return lambda: decode_job.run({"patterns": images, "tables": tables, "mask": str(mask)}, outputs,
+                                  {"analysis": analysis, "subject": "01", "roi": "ember", "seed": 3}, LOG)
+
+
+@case("a class absent from a training fold (only in one run)", "folds.check_training_classes (decode job)")
+def _class_in_one_run(folder):
+    call = _decode_job(folder, [["seen_round", "seen_square"], ["seen_square"], ["seen_square"]],
+                       {"round": ["seen_round"], "square": ["seen_square"]})
+    return Expectation(call, f"{FOLDER}/sub-01_run-01_patterns.tsv (and 2 more pattern tables): condition: subject 01: with run "
+                             "run-01 held out, the training runs hold no pattern of class 'round'. Fix: model that class's "
+                             "conditions in more runs, drop the class from the analysis, or use folds.scheme run_groups")
+
+
+@case("a condition of the analysis in none of the runs", "jobs/decode.analysis_labels (decode job)")
+def _condition_nowhere(folder):
+    call = _decode_job(folder, [["seen_round", "seen_star"], ["seen_round", "seen_star"]],
+                       {"round": ["seen_round"], "square": ["seen_square"]})
+    return Expectation(call, f"{FOLDER}/sub-01_run-01_patterns.tsv (and 1 more pattern tables): condition: subject 01: analysis "
+                             "'shape' names condition(s) ['seen_square'] found in none of the subject's pattern tables (found: "
+                             "['seen_round', 'seen_star']). Fix: fix the condition names in the analysis or model them in the GLM")
+
+
+# -- group (group job) ---------------------------------------------------------------------
+@case("a group of one subject (descriptive only, with a warning)", "group job (jobs/group.py)")
+def _group_of_one(folder):
+    counts = ("10", "all")
+    write_tsv(folder / "sub-01_summary.tsv", pd.DataFrame(
+        [{"subject": "01", "analysis": "shape", "roi": "ember", "direction": "within", "n_voxels": count, "n_used": 10,
+          "n_folds": 2, "accuracy": 0.5, "balanced_accuracy": 0.5, "chance": 1 / 3} for count in counts]))
+    write_tsv(folder / "sub-01_roi-ember_null.tsv.gz", pd.DataFrame(
+        [{"subject": "01", "analysis": "shape", "roi": "ember", "direction": "within", "n_voxels": count, "permutation": number,
+          "balanced_accuracy": 0.3, "accuracy": 0.3} for count in counts for number in (1, 2)]))
+    inputs = {"summaries": [str(folder / "sub-01_summary.tsv")], "nulls": [str(folder / "sub-01_roi-ember_null.tsv.gz")]}
+    outputs = {"table": str(folder / "out" / "group.tsv"), "null": str(folder / "out" / "null.tsv.gz"),
+               "summary": str(folder / "out" / "summary.txt")}
+    params = {"group": {"n_draws": 20, "alpha": 0.05, "prevalence": True}, "seed": 3, "subjects": ["01"],
+              "analysis": {"name": "shape", "kind": "within", "rois": [], "voxel_counts": [10, "all"]}}
+    return Expectation(lambda: group_job.run(inputs, outputs, params, LOG),
+                       "only 1 subject(s): descriptive statistics only, inferential columns are n/a (at least 3 are needed)",
+                       kind="warning")
+
+
+# -- where results go (run_job) ---------------------------------------------------------------
+class _Named(dict):
+    """Stands in for Snakemake's Namedlist: items() plus attribute access."""
+
+    def __getattr__(self, name):
+        return self[name]
+
+
+def _copy_job(inputs, outputs, settings, log):
+    write_text_atomic(outputs["copy"], Path(inputs["source"]).read_text(encoding="utf-8"))
+
+
+def _fake_job(store_dir="results/.store", output="results/masks/sub-01/copy.txt"):
+    Path("in.txt").write_text("lanterns", encoding="utf-8")
+    return SimpleNamespace(input=_Named(source="in.txt"), output=_Named(copy=output, provenance="results/provenance/copy.json"),
+                           params=_Named(settings={}, code="v1"), log=[], wildcards=_Named(subject="01"),
+                           config={"study": {"store_dir": store_dir}})
+
+
+def _run_copy_job(smk):
+    """(exit code, stderr) of the copy job run through run_job."""
+    stderr = io.StringIO()
+    with contextlib.redirect_stderr(stderr):
+        try:
+            run_job(smk, "copy", _copy_job)
+            code = 0
+        except SystemExit as stop:
+            code = stop.code
+    return code, stderr.getvalue()
+
+
+def _as_unprivileged_user(folder, arrange):
+    """Run the copy job in ``folder`` as a user the file permissions apply to; return (exit code, stderr).
+
+    Root ignores permission bits, so as root the job runs in a forked child
+    that first drops to uid/gid 65534; otherwise it runs here.
+    """
+    if os.geteuid() != 0:
+        with contextlib.chdir(folder):
+            return _run_copy_job(arrange())
+    context = multiprocessing.get_context("fork")
+    answers = context.Queue()
+
+    def child():
+        try:
+            os.setgid(65534)
+            os.setuid(65534)
+            with contextlib.chdir(folder):
+                answers.put(_run_copy_job(arrange()))
+        except BaseException:  # the parent reports it
+            answers.put((None, traceback.format_exc()))
+
+    process = context.Process(target=child)
+    process.start()
+    answer = answers.get(timeout=120)
+    process.join()
+    return answer
+
+
+@case("results folder left read-only (e.g. written by another user)", "memo.run_job (every job)")
+def _read_only_results(folder):
+    def call():
+        # A world-traversable workspace of its own: as root, the job runs as an unprivileged user.
+        workspace = Path(tempfile.mkdtemp(prefix="foldwise-read-only-"))
+        try:
+            os.chmod(workspace, 0o777)
+            locked = workspace / "results" / "masks" / "sub-01"
+            locked.mkdir(parents=True)
+            os.chmod(workspace / "results", 0o777)
+            os.chmod(locked, 0o555)
+            return _as_unprivileged_user(workspace, _fake_job)
+        finally:
+            os.chmod(locked, 0o755)
+            shutil.rmtree(workspace)
+
+    return Expectation(call, "results/masks/sub-01: permissions: step copy could not write or read this path (permission denied). "
+                             "Fix: make results/ and study.store_dir writable for this user (or remove results left by another "
+                             "user), then rerun", kind="exit")
+
+
+@case("study.store_dir points into a file", "memo.run_job (every job)")
+def _store_in_a_file(folder):
+    def call():
+        with contextlib.chdir(folder):
+            Path("store.txt").write_text("not a folder", encoding="utf-8")
+            return _run_copy_job(_fake_job(store_dir="store.txt/memo"))
+
+    return Expectation(call, "store.txt: folder: step copy could not write or read this path (a file stands where a folder is "
+                             "needed). Fix: move or remove that file, then rerun", kind="exit")
+
+
+# -- the tests -----------------------------------------------------------------------------------
+def _numbered():
+    return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in
+            enumerate(CASES, start=1)]
+
+
+@pytest.mark.parametrize("number, entry", _numbered())
+def test_bad_input_gives_the_documented_message(number, entry, tmp_path, caplog):
+    folder = tmp_path / "study"
+    folder.mkdir()
+    expected = entry.build(folder)
+    message = expected.message.replace(FOLDER, str(folder))
+    if expected.kind == "error":
+        with pytest.raises(InputError) as raised:
+            expected.call()
+        assert str(raised.value) == message
+    elif expected.kind == "warning":
+        with caplog.at_level(logging.WARNING, logger=LOG.name):
+            expected.call()
+        warnings = [record.getMessage() for record in caplog.records if record.levelno >= logging.WARNING]
+        assert warnings == [message]
+    else:
+        code, stderr = expected.call()
+        assert code == 1, stderr
+        assert stderr.splitlines()[-1] == f"foldwise: {message}"
+
+
+def test_every_case_is_numbered_once_and_has_a_message():
+    names = [entry.name for entry in CASES]
+    assert len(names) == len(set(names)) >= 25
+
+
+def _cell(text):
+    return text.replace("|", "\\|")
+
+
+def table_markdown():
+    """The Markdown table of docs/bad-input-table.md, built from CASES."""
+    lines = ["| # | case | where it is caught | exact message |", "|---|---|---|---|"]
+    for number, entry in enumerate(CASES, start=1):
+        lines.append(f"| {number} | {_cell(entry.name)} | {_cell(entry.where)} | `{_cell(_message_of(entry))}` |")
+    return "\n".join(lines) + "\n"
+
+
+def _message_of(entry):
+    """The case's message with ``<folder>`` kept (the case is built in a throwaway folder)."""
+    with tempfile.TemporaryDirectory() as scratch:
+        folder = Path(scratch) / "study"
+        folder.mkdir()
+        with contextlib.chdir(scratch):
+            expected = entry.build(folder)
+    text = expected.message
+    return {"warning": "WARNING " + text, "exit": text}.get(expected.kind, text)
+
+
+def test_the_documented_table_is_this_table():
+    text = TABLE_PATH.read_text(encoding="utf-8")
+    start = text.index("| # | case |")
+    end = text.index("\n\n", start) + 1 if "\n\n" in text[start:] else len(text)
+    assert text[start:end] == table_markdown(), "regenerate with: python tests/test_bad_input.py"
+
+
+if __name__ == "__main__":
+    sys.stdout.write(table_markdown())

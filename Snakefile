@@ -20,6 +20,7 @@ rule all:
     default_target: True
     input:
         manifest=MANIFEST,
+        outputs=all_job_outputs(),  # every file, so a deleted one is made again
 
 
 onsuccess:

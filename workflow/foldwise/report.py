@@ -69,6 +69,7 @@ CAPTIONS = {
     "curve_within": "workflow/report/decoding_curve.rst",
     "curve_cross": "workflow/report/cross_decoding_curve.rst",
     "confusion": "workflow/report/confusion.rst",
+    "searchlight": "workflow/report/searchlight.rst",
 }
 _ROI_COLOURS = ("orange", "sky blue", "bluish green", "vermillion", "blue", "reddish purple")
 _PANEL_COLOURS = ("blue", "orange", "bluish green", "reddish purple")
@@ -118,7 +119,8 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
     -------
     list of dict
         Keys ``stem``, ``kind`` (design, masks, resvar, curve, confusion),
-        ``subject``, ``analysis``, ``roi`` (None where not applicable),
+        ``subject``, ``analysis``, ``roi`` (None where not applicable; kind
+        ``searchlight`` when the config maps analyses with a searchlight),
         ``paths`` (one per format in ``FIGURE_FORMATS``), ``caption`` (a file
         of ``CAPTIONS``) and ``category`` (for Snakemake's report()).
 
@@ -154,6 +156,9 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
         for roi in analysis_rois(study_config, analysis):
             add(f"{name}_roi-{roi}_curve", "curve", curve_caption, "Decoding curves", analysis=name, roi=roi)
             add(f"{name}_roi-{roi}_confusion", "confusion", "confusion", "Confusion matrices", analysis=name, roi=roi)
+    searchlight = study_config.get("searchlight") or {}
+    for name in (searchlight.get("analyses", []) if searchlight.get("enabled") else []):
+        add(f"{name}_searchlight", "searchlight", "searchlight", "Searchlight maps", analysis=name)
     return entries
 
 
@@ -666,6 +671,70 @@ def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
                 for (name, _), colour in zip(rois, colours)]
     figure.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), 6), fontsize=_FONT_SIZE,
                   frameon=False)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
+    return figure
+
+
+def searchlight_figure(mean_maps, p_fwe_maps, directions, background, brain_mask, affine, alpha, title):
+    """Group searchlight maps: accuracy minus chance per direction, FWE-significant voxels outlined.
+
+    Parameters
+    ----------
+    mean_maps, p_fwe_maps : array_like, 4D (x, y, z, direction)
+        Group mean of balanced accuracy minus chance, and its family-wise corrected p.
+    directions : sequence of str
+        One name per volume.
+    background : array_like, 3D
+        An anatomical reference (the first subject's mean image).
+    brain_mask : array_like of bool, 3D
+    affine : array_like, shape (4, 4)
+    alpha : float
+    title : str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Notes
+    -----
+    One row per direction, three orthogonal slices through the planes with
+    the most significant voxels of that direction (or of the brain when none
+    survives). The colour scale is symmetric around zero (chance).
+    """
+    means = np.asarray(mean_maps, dtype=np.float64)
+    p_fwe = np.asarray(p_fwe_maps, dtype=np.float64)
+    if means.ndim != 4 or means.shape != p_fwe.shape or means.shape[3] != len(directions):
+        raise InputError(None, "searchlight maps", f"shapes {means.shape} and {p_fwe.shape} do not fit {len(directions)} directions",
+                         "rerun the searchlight_group job")
+    coordinates, flips, names = grid_axes_mm(affine, means.shape[:3])
+    anatomy = _oriented(np.asarray(background, dtype=np.float64), flips)
+    brain = _oriented(np.asarray(brain_mask, dtype=bool), flips)
+    low, high = _window(anatomy[brain] if brain.any() else anatomy)
+    limit = float(np.nanmax(np.abs(means))) if np.isfinite(means).any() and np.nanmax(np.abs(means)) > 0 else 0.1
+    colour_map = colormaps["PuOr_r"].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
+    figure = Figure(figsize=(11, 3.2 * len(directions) + 0.6), layout="constrained")
+    panels = np.atleast_2d(figure.subplots(len(directions), 3))
+    image = None
+    for row, direction in enumerate(directions):
+        values = _oriented(means[..., row], flips)
+        significant = _oriented(p_fwe[..., row] < alpha, flips) & brain
+        slices = best_slices(significant if significant.any() else brain)
+        for axis, axes in enumerate(panels[row]):
+            index = slices[axis]
+            horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
+            axes.imshow(_take(anatomy, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
+                        interpolation="nearest")
+            shown = np.where(_take(brain, axis, index), _take(values, axis, index), np.nan)
+            image = axes.imshow(shown, cmap=colour_map, vmin=-limit, vmax=limit, origin="lower", extent=extent,
+                                interpolation="nearest", alpha=0.85)
+            _outline(axes, coordinates, horizontal, vertical, _take(significant, axis, index), "black", 1.4)
+            axes.set_title(f"{direction}: {panel_title}", fontsize=_FONT_SIZE)
+            _label_axes(axes, names, horizontal, vertical)
+    if image is not None:
+        bar = figure.colorbar(image, ax=panels, shrink=0.6)
+        bar.set_label("balanced accuracy minus chance (proportion)", fontsize=_FONT_SIZE)
+    handles = [Line2D([], [], color="black", linewidth=1.5, label=f"p (family-wise corrected, voxel-wise maximum) < {alpha:g}")]
+    figure.legend(handles=handles, loc="outside lower center", fontsize=_FONT_SIZE, frameon=False)
     figure.suptitle(title, fontsize=_FONT_SIZE + 1)
     return figure
 

@@ -1,6 +1,7 @@
 # Shared wiring: the validated study config, the runs of every subject, path
 # templates, named input functions and the narrow-key helper.
 import os
+import re
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # one BLAS thread per job: same bits whatever --cores
 os.environ.setdefault("OMP_NUM_THREADS", "1")
@@ -221,21 +222,43 @@ def analysis_nulls(wildcards):
                   roi=analysis_rois(wildcards.analysis))
 
 
+def planned_jobs_list():
+    """Every job of the study as (rule name, wildcards): the manifest and the default target are built from it."""
+    jobs = [("demo_dataset", {})] if STUDY["dataset"]["source"] == "demo" else []
+    jobs += [("brain_mask", {"subject": subject}) for subject in SUBJECTS]
+    jobs += [("glm", {"subject": run["subject"], "run_id": run["run_id"]}) for run in PLAN.runs]
+    jobs += [("roi_mask", {"subject": subject, "roi": roi}) for subject in SUBJECTS for roi in ROI_NAMES]
+    jobs += [("roi_counts", {"subject": subject}) for subject in SUBJECTS]
+    for name in ANALYSES:
+        jobs += [("decode", {"analysis": name, "subject": subject, "roi": roi}) for subject in SUBJECTS for roi in analysis_rois(name)]
+        jobs += [("decode_gather", {"analysis": name, "subject": subject}) for subject in SUBJECTS]
+        jobs += [("group", {"analysis": name})]
+    for name in SEARCHLIGHT_ANALYSES:
+        jobs += [("searchlight_block", {"analysis": name, "subject": subject, "block": str(block)})
+                 for subject in SUBJECTS for block in SEARCHLIGHT_BLOCKS]
+        jobs += [("searchlight_merge", {"analysis": name, "subject": subject}) for subject in SUBJECTS]
+        jobs += [("searchlight_group", {"analysis": name})]
+    jobs += [("report", {})]
+    return jobs
+
+
+def job_outputs(rule_name, wildcards):
+    """The output files of one planned job, from its rule's templates."""
+    templates = getattr(rules, rule_name).rule.output
+    # Snakemake writes the global wildcard constraints into the templates: drop them before filling in.
+    plain = [re.sub(r"\{(\w+),[^{}]*\}", r"{\1}", str(template)) for template in templates]
+    return [expand(template, **{key: [value] for key, value in wildcards.items()})[0] for template in plain]
+
+
 def all_provenance_records():
     """Every job's provenance record: the manifest is built from them."""
-    records = [provenance_path("demo_dataset", "study")] if STUDY["dataset"]["source"] == "demo" else []
-    records += expand(provenance_path("brain_mask", "sub-{subject}"), subject=SUBJECTS)
-    records += [provenance_path("glm", f"sub-{run['subject']}_{run['run_id']}") for run in PLAN.runs]
-    records += expand(provenance_path("roi_mask", "sub-{subject}_roi-{roi}"), subject=SUBJECTS, roi=ROI_NAMES)
-    records += expand(provenance_path("roi_counts", "sub-{subject}"), subject=SUBJECTS)
-    for name in ANALYSES:
-        records += expand(provenance_path("decode", "{analysis}_sub-{subject}_roi-{roi}"), analysis=name, subject=SUBJECTS,
-                          roi=analysis_rois(name))
-        records += expand(provenance_path("decode_gather", "{analysis}_sub-{subject}"), analysis=name, subject=SUBJECTS)
-        records += expand(provenance_path("group", "{analysis}"), analysis=name)
-    records += searchlight_provenance_records()
-    records += REPORT_PROVENANCE
-    return records
+    return [path for rule_name, wildcards in planned_jobs_list() for path in job_outputs(rule_name, wildcards)
+            if path.startswith("results/provenance/")]
+
+
+def all_job_outputs():
+    """Every output file of every planned job: the default target, so a deleted file is made again."""
+    return [path for rule_name, wildcards in planned_jobs_list() for path in job_outputs(rule_name, wildcards)]
 
 
 # -- searchlight ---------------------------------------------------------------
@@ -289,13 +312,3 @@ def searchlight_group_outputs():
     outputs = {name: f"{SEARCHLIGHT_GROUP}_{name.replace('_map', '')}.nii.gz" for name in names}
     outputs["table"] = f"{SEARCHLIGHT_GROUP}_group.tsv"
     return outputs
-
-
-def searchlight_provenance_records():
-    records = []
-    for name in SEARCHLIGHT_ANALYSES:
-        records += expand(provenance_path("searchlight_block", "{analysis}_sub-{subject}_block-{block}"), analysis=name,
-                          subject=SUBJECTS, block=SEARCHLIGHT_BLOCKS)
-        records += expand(provenance_path("searchlight_merge", "{analysis}_sub-{subject}"), analysis=name, subject=SUBJECTS)
-        records += expand(provenance_path("searchlight_group", "{analysis}"), analysis=name)
-    return records

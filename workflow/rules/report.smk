@@ -25,6 +25,11 @@ def report_inputs(wildcards):
                                                                     subject=SUBJECTS, roi=analysis_rois(name))],
         "group_tables": expand(GROUP_TABLE, analysis=list(ANALYSES)),
     }
+    if SEARCHLIGHT_ANALYSES:
+        inputs["searchlight_means"] = expand(f"{SEARCHLIGHT_GROUP}_mean.nii.gz", analysis=SEARCHLIGHT_ANALYSES)
+        inputs["searchlight_p_fwe"] = expand(f"{SEARCHLIGHT_GROUP}_p_fwe.nii.gz", analysis=SEARCHLIGHT_ANALYSES)
+        inputs["searchlight_directions"] = expand(f"{SEARCHLIGHT_SUBJECT}_directions.tsv", analysis=SEARCHLIGHT_ANALYSES,
+                                                  subject=SUBJECTS[0])
     if STUDY["dataset"]["source"] == "demo":
         inputs["ground_truth"] = DEMO_TRUTH
     return inputs
@@ -37,12 +42,10 @@ def planned_jobs():
     times, so reading them would recompute the page after every restore.
     """
     jobs = {}
-    for record in all_provenance_records():
-        step = record.split("/")[2]
-        if record in REPORT_PROVENANCE:
-            continue
-        n_outputs = len(getattr(rules, step).rule.output) - 1  # minus the provenance record itself
-        jobs.setdefault(step, []).append(n_outputs)
+    for rule_name, wildcards in planned_jobs_list():
+        if rule_name != "report":
+            n_outputs = len(job_outputs(rule_name, wildcards)) - 1  # minus the provenance record itself
+            jobs.setdefault(rule_name, []).append(n_outputs)
     return jobs
 
 

@@ -478,7 +478,8 @@ def run(inputs, outputs, params, log):
     data = {"designs": designs, "brain_masks": brain_masks, "means": means, "roi_mask_paths": roi_mask_paths,
             "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "tr_s": tr_s, "analyses": analyses,
             "group_tables": group_tables, "summaries": summaries, "confusions": confusions, "subjects": subjects,
-            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study}
+            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study,
+            "searchlight": _searchlight_inputs(inputs, study)}
     # Read and check everything first, draw afterwards: bad input stops the job before any drawing.
     specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
     blocks = {entry["stem"]: page.figure_block(_save(build(), entry), entry["stem"], alt, caption)
@@ -507,6 +508,13 @@ def run(inputs, outputs, params, log):
         parts.append(f"<h4>Confusion matrices of analysis {html.escape(name)}</h4>")
         parts.extend(blocks[f"{name}_roi-{roi}_confusion"] for roi in page.analysis_rois(study, analysis))
         results.append("".join(parts))
+    searchlight_blocks = [blocks[e["stem"]] for e in catalogue if e["kind"] == "searchlight"]
+    if searchlight_blocks:
+        results.append("<h3>Searchlight maps</h3>" + _paragraph(
+            "Each brain voxel's score is the cross-validated balanced accuracy in a sphere around it; the group map is the "
+            "mean over subjects minus chance, tested by the permutation group test with voxel-wise maximum-statistic "
+            "family-wise correction. A significant voxel means its sphere carries information, not that the voxel "
+            "itself does.") + "".join(searchlight_blocks))
     sections = [
         ("study", "Study", _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file,
                                           versions)),
@@ -517,6 +525,35 @@ def run(inputs, outputs, params, log):
     ]
     title = f"foldwise study report: {study.get('study', {}).get('name', 'study')}"
     write_text_atomic(outputs["html"], page.render_page(title, sections))
+
+
+def _searchlight_inputs(inputs, study):
+    """analysis name -> (mean map, FWE p map, directions table) paths, in the config's searchlight order."""
+    searchlight = study.get("searchlight") or {}
+    names = searchlight.get("analyses", []) if searchlight.get("enabled") else []
+    lists = [_as_list(inputs.get(key)) for key in ("searchlight_means", "searchlight_p_fwe", "searchlight_directions")]
+    if any(len(paths) != len(names) for paths in lists):
+        raise InputError(None, "searchlight_means, searchlight_p_fwe, searchlight_directions",
+                         f"expected one file of each per searchlight analysis ({len(names)})", "pass them from the report rule")
+    return {name: tuple(paths[index] for paths in lists) for index, name in enumerate(names)}
+
+
+def _searchlight_specification(entry, data, log):
+    name = entry["analysis"]
+    mean_path, p_fwe_path, directions_path = data["searchlight"][name]
+    subject = data["subjects"][0]
+    background, _ = _volume(data["means"][subject], "mean image")
+    brain = _volume(data["brain_masks"][subject], "brain mask", background.shape)[0] > 0
+    means = load_nifti(mean_path, what="searchlight mean map")
+    p_fwe = load_nifti(p_fwe_path, what="searchlight FWE p map")
+    directions = read_tsv(directions_path, ("volume", "direction"), what="searchlight directions")["direction"].tolist()
+    mean_values = np.asarray(means.dataobj, dtype=np.float64).reshape(background.shape + (-1,))
+    p_values = np.asarray(p_fwe.dataobj, dtype=np.float64).reshape(background.shape + (-1,))
+    build = functools.partial(page.searchlight_figure, mean_values, p_values, directions, background, brain, means.affine,
+                              data["alpha"], f"analysis {name}: group searchlight maps")
+    return (build, f"group searchlight maps of analysis {name}",
+            f"Analysis {name}: group mean balanced accuracy minus chance per searchlight sphere centre, over sub-{subject}'s "
+            f"mean image; outlined voxels survive voxel-wise family-wise correction at alpha {data['alpha']:g}.")
 
 
 def _design_specification(entry, data, log):
@@ -633,4 +670,4 @@ def _confusion_specification(entry, data, log):
 
 _FIGURE_SPECIFICATIONS = {"design": _design_specification, "masks": _masks_specification,
                           "resvar": _resvar_specification, "curve": _curve_specification,
-                          "confusion": _confusion_specification}
+                          "confusion": _confusion_specification, "searchlight": _searchlight_specification}

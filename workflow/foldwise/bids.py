@@ -426,8 +426,10 @@ def read_tr_s(sidecar_path, header, bold_path):
 
 def _read_text_columns(path, required, what):
     """Read a TSV with every cell as text (checked by read_tsv first)."""
-    read_tsv(path, required_columns=required, what=what)
-    return pd.read_csv(path, sep="\t", dtype=str, na_values=["n/a"], keep_default_na=False)
+    header = read_tsv(path, required_columns=required, what=what).columns
+    # The same reading as read_tsv's (index_col=False, dtype per column), only with every column as text.
+    return pd.read_csv(path, sep="\t", dtype={column: str for column in header}, na_values=["n/a"], keep_default_na=False,
+                       index_col=False)
 
 
 def _numeric_column(frame, column, path):

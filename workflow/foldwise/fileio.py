@@ -7,6 +7,7 @@ name, figures carry no date, tables use one float format.
 """
 
 import contextlib
+import csv
 import gzip
 import io
 import json
@@ -115,6 +116,22 @@ TEXT_COLUMNS = ("subject", "session", "run", "run_id", "roi", "analysis", "direc
                 "trial_type", "name", "true_class", "predicted_class", "train_set", "test_runs")
 
 
+def _first_overlong_row(path):
+    """(line number, cell count, header) of the first row with a non-empty cell beyond the header's columns, or None.
+
+    pandas would silently take the first column as the index (or, with
+    ``index_col=False``, drop a missing-value last cell), shifting the columns.
+    """
+    opener = gzip.open if str(path).endswith(".gz") else open
+    with opener(path, "rt", encoding="utf-8", newline="") as handle:
+        rows = csv.reader(handle, delimiter="\t")
+        header = next(rows, [])
+        for cells in rows:
+            if len(cells) > len(header) and any(cells[len(header):]):
+                return rows.line_num, len(cells), [cell.lstrip("\ufeff") for cell in header]
+    return None
+
+
 def read_tsv(path, required_columns=(), what="table", text_columns=TEXT_COLUMNS):
     """Read a TSV (``n/a`` as missing) and check its required columns.
 
@@ -130,16 +147,21 @@ def read_tsv(path, required_columns=(), what="table", text_columns=TEXT_COLUMNS)
     if not path.is_file():
         raise InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
     try:
-        frame = pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False,
+        overlong = _first_overlong_row(path)
+        if overlong is not None:
+            line, n_cells, header = overlong
+            raise InputError(path, "format", f"line {line} has {n_cells} cells but the header names {len(header)} columns "
+                                             f"({', '.join(header)})",
+                             "remove the extra tab-separated cells or name the extra column in the header")
+        # index_col=False: a row with one cell more than the header must not turn the first column into the
+        # index (shifting every column); an empty trailing cell (a trailing tab) is dropped.
+        frame = pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False, index_col=False,
                             dtype={column: str for column in text_columns})
     except pd.errors.EmptyDataError:
         raise InputError(path, "header", f"the {what} is empty", "write a header line and at least one row") from None
-    except (pd.errors.ParserError, UnicodeDecodeError) as error:
-        raise InputError(path, "format", f"the {what} is not a readable TSV ({error})", "save it as tab-separated UTF-8 text") from None
-    if not isinstance(frame.index, pd.RangeIndex):  # pandas takes a first column as the index when rows have one cell too many
-        raise InputError(path, "format", f"the data rows of the {what} have more cells than its header has columns "
-                                         f"({len(frame.columns)}: {', '.join(map(str, frame.columns))})",
-                         "remove the extra tab-separated cells (a trailing tab?) or name the extra column in the header")
+    except (pd.errors.ParserError, csv.Error, UnicodeDecodeError, gzip.BadGzipFile, EOFError, zlib.error) as error:
+        raise InputError(path, "format", f"the {what} is not a readable TSV ({str(error).strip()})",
+                         "save it as tab-separated UTF-8 text") from None
     missing = [column for column in required_columns if column not in frame.columns]
     if missing:
         raise InputError(path, ", ".join(missing), f"required column(s) missing from the {what} (found: {', '.join(map(str, frame.columns))})",

@@ -59,6 +59,17 @@ def relative_path(path, root=None):
         return f"<outside>/{absolute.name}"
 
 
+def _without_absolute_paths(value):
+    """``value`` with every absolute-path string made relative as :func:`relative_path` does (for the record only)."""
+    if isinstance(value, dict):
+        return {key: _without_absolute_paths(item) for key, item in value.items()}
+    if isinstance(value, list):
+        return [_without_absolute_paths(item) for item in value]
+    if isinstance(value, str) and os.path.isabs(value):
+        return relative_path(value)
+    return value
+
+
 def _flatten(named):
     """[(name, index, path)] for a dict of name -> path or list of paths, in order."""
     items = []
@@ -341,7 +352,7 @@ def _run_job(smk, step, job):
         "key": key,
         "restored_from_memo": restored,
         "code_hash": code,
-        "settings": settings,
+        "settings": _without_absolute_paths(settings),
         "inputs": [{"name": name, "path": relative_path(path), "sha256": digest}
                    for name, paths in sorted(inputs.items())
                    for path, digest in zip([paths] if isinstance(paths, str) else paths, input_hashes[name])],

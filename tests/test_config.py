@@ -22,7 +22,7 @@ def test_demo_config_validates_and_fills_nested_defaults(demo):
     assert study["analyses"][0]["voxel_counts"] == [10, 25, 50, 100, 200, 400, "all"]
     assert study["analyses"][0]["folds"] == {"scheme": "leave_one_run_out", "n_groups": 2}
     assert study["rois"][0]["min_voxels"] == 10
-    assert study["searchlight"]["enabled"] is False
+    assert study["searchlight"]["tfce"] is False and study["searchlight"]["classifier"] == "correlation_centroid"
     assert "folds" not in demo["analyses"][0], "validation must not modify its argument"
 
 

@@ -54,7 +54,7 @@ def test_changing_one_roi_reruns_only_that_roi(base_run, tmp_path):
     jobs = scheduled_jobs(workdir)
     rois = {wildcards.get("roi") for rule, wildcards in jobs if "roi" in wildcards}
     assert rois == {"glow"}, jobs
-    assert set(_rules(jobs)) <= {"roi_mask", "roi_counts", "decode", "decode_gather", "group", "report", "manifest"}
+    assert set(_rules(jobs)) <= {"roi_mask", "roi_counts", "decode", "decode_gather", "group", "report", "manifest", "all"}
     assert "glm" not in _rules(jobs) and "brain_mask" not in _rules(jobs)
     snakemake(workdir)
     after = file_states(workdir, read_manifest(workdir))
@@ -72,7 +72,7 @@ def test_changing_one_analysis_classifier_reruns_only_that_analysis(base_run, tm
     jobs = scheduled_jobs(workdir)
     analyses = {wildcards.get("analysis") for rule, wildcards in jobs if "analysis" in wildcards}
     assert analyses == {"carry"}, jobs
-    assert set(_rules(jobs)) <= {"decode", "decode_gather", "group", "report", "manifest"}
+    assert set(_rules(jobs)) <= {"decode", "decode_gather", "group", "report", "manifest", "all"}
 
 
 def test_touching_every_input_restores_or_skips_every_job(base_run, tmp_path):

@@ -208,7 +208,7 @@ def load_nifti(path, what="image"):
             data = gunzip_bytes(data)
         image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
         image = image_class.from_bytes(data)
-        image.get_fdata(caching="unchanged", dtype=np.float32)  # force a full read: truncation shows here
+        image.get_fdata(caching="fill", dtype=np.float32)  # force a full read (truncation shows here); kept for the caller
     except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
         raise InputError(path, "content", f"the {what} is truncated or not a NIfTI file ({type(error).__name__}: {error})",
                          "re-export or re-copy the file") from None

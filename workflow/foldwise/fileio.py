@@ -28,6 +28,7 @@ except ImportError:  # pragma: no cover - exercised only where isal is absent
     _fast_gzip = None
 
 __all__ = [
+    "check_output_folder",
     "atomic_path",
     "write_bytes_atomic",
     "write_text_atomic",
@@ -45,6 +46,38 @@ __all__ = [
 
 # Seven significant digits: float32 round-trips through text at this width.
 FLOAT_FORMAT = "%.7g"
+
+
+def check_output_folder(path, field="results folder"):
+    """Raise unless this user can write ``path``, or create it in its nearest existing parent.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A folder the workflow writes (``results``, ``study.store_dir``).
+    field : str
+        What the folder is, for the message.
+
+    Raises
+    ------
+    InputError
+        If a file stands where the folder (or one of its parents) belongs, or
+        the folder that would hold it is not writable for this user.
+
+    Notes
+    -----
+    Called before any job runs, so the user reads one message instead of
+    Snakemake's traceback (a file named ``results``) or a failure in the first
+    job. Permissions are checked with ``os.access`` (real user and group).
+    """
+    existing = Path(path)
+    while not os.path.lexists(existing) and existing != existing.parent:
+        existing = existing.parent
+    if not existing.is_dir():
+        raise InputError(existing, field, "a file stands where a folder is needed", "move or remove that file, then rerun")
+    if not os.access(existing, os.W_OK | os.X_OK):
+        raise InputError(existing, field, "this user cannot write here (permission denied)",
+                         "make it writable for this user (or remove results left by another user), then rerun")
 
 
 @contextlib.contextmanager

@@ -34,7 +34,7 @@ import pytest
 from foldwise import bids
 from foldwise.config import load_yaml, validate
 from foldwise.errors import InputError
-from foldwise.fileio import save_nifti, write_text_atomic, write_tsv
+from foldwise.fileio import check_output_folder, save_nifti, write_text_atomic, write_tsv
 from foldwise.jobs import brain_mask as brain_mask_job
 from foldwise.jobs import decode as decode_job
 from foldwise.jobs import group as group_job
@@ -572,15 +572,15 @@ def _run_copy_job(smk):
     return code, stderr.getvalue()
 
 
-def _as_unprivileged_user(folder, arrange):
-    """Run the copy job in ``folder`` as a user the file permissions apply to; return (exit code, stderr).
+def _as_unprivileged_user(folder, function):
+    """``function()`` run in ``folder`` as a user the file permissions apply to; its result, or its InputError raised here.
 
-    Root ignores permission bits, so as root the job runs in a forked child
+    Root ignores permission bits, so as root the call runs in a forked child
     that first drops to uid/gid 65534; otherwise it runs here.
     """
     if os.geteuid() != 0:
         with contextlib.chdir(folder):
-            return _run_copy_job(arrange())
+            return function()
     context = multiprocessing.get_context("fork")
     answers = context.Queue()
 
@@ -589,36 +589,45 @@ def _as_unprivileged_user(folder, arrange):
             os.setgid(65534)
             os.setuid(65534)
             with contextlib.chdir(folder):
-                answers.put(_run_copy_job(arrange()))
+                answers.put(("result", function()))
+        except InputError as error:
+            answers.put(("input error", (error.file, error.field, error.problem, error.fix)))
         except BaseException:  # the parent reports it
-            answers.put((None, traceback.format_exc()))
+            answers.put(("failure", traceback.format_exc()))
 
     process = context.Process(target=child)
     process.start()
-    answer = answers.get(timeout=120)
+    kind, answer = answers.get(timeout=120)
     process.join()
+    if kind == "input error":
+        raise InputError(*answer)
+    assert kind == "result", answer
     return answer
 
 
-@case("results folder left read-only (e.g. written by another user)", "memo.run_job (every job)")
-def _read_only_results(folder):
-    def call():
-        # A world-traversable workspace of its own: as root, the job runs as an unprivileged user.
-        workspace = Path(tempfile.mkdtemp(prefix="foldwise-read-only-"))
-        try:
-            os.chmod(workspace, 0o777)
-            locked = workspace / "results" / "masks" / "sub-01"
-            locked.mkdir(parents=True)
-            os.chmod(workspace / "results", 0o777)
-            os.chmod(locked, 0o555)
-            return _as_unprivileged_user(workspace, _fake_job)
-        finally:
-            os.chmod(locked, 0o755)
-            shutil.rmtree(workspace)
+def _in_read_only_workspace(locked_folders, function):
+    """``function()`` as an unprivileged user in a fresh world-writable folder whose ``locked_folders`` are read-only."""
+    workspace = Path(tempfile.mkdtemp(prefix="foldwise-read-only-"))
+    try:
+        os.chmod(workspace, 0o777)
+        for name in locked_folders:
+            (workspace / name).mkdir(parents=True, exist_ok=True)
+            for parent in Path(name).parents:  # the folders above it stay writable for the user
+                os.chmod(workspace / parent, 0o777)
+            os.chmod(workspace / name, 0o555)
+        return _as_unprivileged_user(workspace, function)
+    finally:
+        for name in locked_folders:
+            os.chmod(workspace / name, 0o755)
+        shutil.rmtree(workspace)
 
-    return Expectation(call, "results/masks/sub-01: permissions: step copy could not write or read this path (permission denied). "
-                             "Fix: make results/ and study.store_dir writable for this user (or remove results left by another "
-                             "user), then rerun", kind="exit")
+
+@case("results sub-folder left read-only (e.g. written by another user)", "memo.run_job (every job)")
+def _read_only_results(folder):
+    return Expectation(lambda: _in_read_only_workspace(["results/masks/sub-01"], lambda: _run_copy_job(_fake_job())),
+                       "results/masks/sub-01: permissions: step copy could not write or read this path (permission denied). "
+                       "Fix: make results/ and study.store_dir writable for this user (or remove results left by another "
+                       "user), then rerun", kind="exit")
 
 
 @case("study.store_dir points into a file", "memo.run_job (every job)")
@@ -630,6 +639,21 @@ def _store_in_a_file(folder):
 
     return Expectation(call, "store.txt: folder: step copy could not write or read this path (a file stands where a folder is "
                              "needed). Fix: move or remove that file, then rerun", kind="exit")
+
+
+@case("results folder not writable at all", "fileio.check_output_folder (for workflow/rules/common.smk, before any job)")
+def _unwritable_results(folder):
+    return Expectation(lambda: _in_read_only_workspace(["results"], lambda: check_output_folder("results")),
+                       "results: results folder: this user cannot write here (permission denied). Fix: make it writable "
+                       "for this user (or remove results left by another user), then rerun")
+
+
+@case("results is a file, not a folder", "fileio.check_output_folder (for workflow/rules/common.smk, before any job)")
+def _results_is_a_file(folder):
+    (folder / "results").write_text("a stray file", encoding="utf-8")
+    return Expectation(lambda: check_output_folder(folder / "results" / ".store", "study.store_dir"),
+                       f"{FOLDER}/results: study.store_dir: a file stands where a folder is needed. "
+                       "Fix: move or remove that file, then rerun")
 
 
 # -- the tests -----------------------------------------------------------------------------------

@@ -114,7 +114,7 @@ def _validating(study):
 
 
 def _planning(study):
-    return lambda: plan_study(validate(study, path="config/study.yaml"))
+    return lambda: plan_study(validate(study, path="config/study.yaml"), path="config/study.yaml")
 
 
 def _bold_file_names(dataset, subjects=("01", "02"), runs=("1", "2")):
@@ -281,7 +281,7 @@ def _absent_subject(folder):
 @case("a listed subject absent from the demo", "workflow_plan.plan_study, before any job")
 def _absent_demo_subject(folder):
     study = _study(**{"dataset.subjects": ["09"]})
-    return Expectation(_planning(study), "config: dataset.subjects: subject(s) 09 are not in the demo (it has 01, 02, 03). "
+    return Expectation(_planning(study), "config/study.yaml: dataset.subjects: subject(s) 09 are not in the demo (it has 01, 02, 03). "
                                          "Fix: list demo subjects only, or raise demo.n_subjects")
 
 

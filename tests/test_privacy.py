@@ -259,8 +259,6 @@ def test_the_bundle_takes_the_listed_images_when_asked(cloned_repository):
          "results/report/sub-01_mean.nii"])
 
 
-@pytest.mark.xfail(strict=True, reason="foldwise.bundle outside git (an unpacked bundle) takes every file but results/, "
-                                       "so a dataset kept inside the repository is bundled; see the reliability report")
 def test_a_bundle_made_outside_git_leaves_a_dataset_inside_the_repository_out(tmp_path):
     repository = _repository_with_results(tmp_path / "unpacked", git=False)
     names = _bundle_names(repository)

@@ -78,11 +78,12 @@ def bundle_members(root, include_images=False):
     members.add("results/manifest.tsv")
     for folder in _RESULT_FOLDERS:
         members.update(p.relative_to(root).as_posix() for p in (root / folder).rglob("*") if p.is_file())
+    # Images only from config/ (e.g. an ROI mask that is part of the study's definition): a dataset kept
+    # inside the repository is participant data, and an unpacked bundle has no git to tell them apart.
+    members = {m for m in members if not m.endswith(".part") and (not m.endswith(_IMAGE_SUFFIXES) or m.startswith("config/"))}
     if include_images:
         manifest = pd.read_csv(root / "results/manifest.tsv", sep="\t")
         members.update(path for path in manifest["path"] if path.endswith(_IMAGE_SUFFIXES))
-    else:
-        members = {m for m in members if not (m.startswith("results/") and m.endswith(_IMAGE_SUFFIXES))}
     return sorted(members)
 
 

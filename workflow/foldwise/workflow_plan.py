@@ -30,8 +30,8 @@ class StudyPlan:
         raise KeyError(f"no run {run_id} for subject {subject}")
 
 
-def plan_study(study):
-    """Build the StudyPlan of a validated study config."""
+def plan_study(study, path="the study config"):
+    """Build the StudyPlan of a validated study config (``path`` names it in messages)."""
     dataset = study["dataset"]
     if dataset["source"] == "demo":
         runs = []
@@ -42,7 +42,7 @@ def plan_study(study):
             known = sorted({run["subject"] for run in runs})
             absent = [subject for subject in dataset["subjects"] if subject not in known]
             if absent:
-                raise InputError("config", "dataset.subjects", f"subject(s) {', '.join(absent)} are not in the demo (it has {', '.join(known)})",
+                raise InputError(path, "dataset.subjects", f"subject(s) {', '.join(absent)} are not in the demo (it has {', '.join(known)})",
                                  "list demo subjects only, or raise demo.n_subjects")
     else:
         runs = bids.discover_runs(dataset["bids_root"], dataset["patterns"], dataset["task"], dataset["subjects"])

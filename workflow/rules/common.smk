@@ -8,22 +8,26 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 from foldwise.config import load_yaml, validate
 from foldwise.errors import InputError
+from foldwise.fileio import check_output_folder
 from foldwise.hashing import code_hash, hash_object
 from foldwise.report import figure_catalogue
 from foldwise.workflow_plan import plan_study
 
 
-# The study config: `--configfile path` or `--config config_file=path` names it;
+# The study config: `--config config_file=path` names it;
 # the default is the demo study. Our own loader reads YAML safely and reports
 # a malformed file by line.
 CONFIG_FILE = config.pop("config_file", None)
 try:
     if config and CONFIG_FILE is None:
-        STUDY = validate(dict(config), path="the --configfile given to snakemake")
-    else:
-        CONFIG_FILE = CONFIG_FILE or "config/config.yaml"
-        STUDY = validate(load_yaml(CONFIG_FILE), path=CONFIG_FILE)
-    PLAN = plan_study(STUDY)
+        # Snakemake's own --configfile loader evaluates YAML templates (yte); ours never evaluates anything.
+        raise InputError("--configfile", "config_file", "the study config was passed with --configfile",
+                         "pass it as --config config_file=PATH (read safely by foldwise)")
+    CONFIG_FILE = CONFIG_FILE or "config/config.yaml"
+    STUDY = validate(load_yaml(CONFIG_FILE), path=CONFIG_FILE)
+    check_output_folder("results", "results folder")
+    check_output_folder(STUDY["study"]["store_dir"], "study.store_dir")
+    PLAN = plan_study(STUDY, path=CONFIG_FILE)
 except InputError as error:
     raise WorkflowError(f"foldwise: {error}") from None
 config.clear()

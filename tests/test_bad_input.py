@@ -720,3 +720,11 @@ def test_the_documented_table_is_this_table():
 
 if __name__ == "__main__":
     sys.stdout.write(table_markdown())
+
+
+def test_the_readme_carries_the_same_table():
+    # The README's "When the input is wrong" section is a copy of docs/bad-input-table.md.
+    readme = (REPO / "README.md").read_text(encoding="utf-8")
+    rows = [line for line in TABLE_PATH.read_text(encoding="utf-8").splitlines() if line.startswith("| ")]
+    missing = [row.split("|")[1].strip() for row in rows if row not in readme]
+    assert missing == [], f"README rows out of date: {missing}"

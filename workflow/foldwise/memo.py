@@ -326,7 +326,8 @@ def _run_job(smk, step, job):
         input_hashes = {name: [store.content_hash(path) for path in ([paths] if isinstance(paths, str) else paths)]
                         for name, paths in sorted(inputs.items())}
         output_counts = {name: (1 if isinstance(paths, str) else len(paths)) for name, paths in outputs.items()}
-        key = memo_key(step, code, settings, input_hashes, output_counts)
+        # The packages that shape the numbers are part of the code: an upgrade recomputes.
+        key = memo_key(step, {"code": code, "versions": package_versions()}, settings, input_hashes, output_counts)
         # FOLDWISE_MEMO=off (set by `make verify`) recomputes everything for real.
         use_memo = os.environ.get("FOLDWISE_MEMO", "on") != "off"
         restored = use_memo and store.restore(key, outputs, log)

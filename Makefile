@@ -12,7 +12,7 @@ export OPENBLAS_NUM_THREADS := 1
 export OMP_NUM_THREADS := 1
 export MKL_NUM_THREADS := 1
 
-.PHONY: demo test env bundle verify benchmark lint clean
+.PHONY: demo test env bundle verify benchmark lint cluster-test clean
 
 $(STAMP): requirements/lock.txt pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -40,6 +40,10 @@ verify: $(STAMP)
 
 benchmark: $(STAMP)
 	for script in benchmarks/bench_*.py; do $(BIN)/python $$script || exit 1; done
+
+# A real one-node SLURM cluster on localhost (root: installs slurm-wlm and munge).
+cluster-test: $(STAMP)
+	bash tests/cluster/run_slurm_test.sh
 
 clean:
 	rm -rf results .snakemake

@@ -44,7 +44,6 @@ import time
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SNAKEMAKE = os.path.join(REPO, ".venv", "bin", "snakemake")
-LOCAL_PROFILE = os.path.join(REPO, "config", "profiles", "local")
 
 CONFOUNDS = "[trans_x, trans_y, trans_z, rot_x, rot_y, rot_z]"
 ANALYSIS = """\
@@ -110,16 +109,34 @@ def lay_out_study(demo_root, folder, n_subjects):
     return write_file(os.path.join(folder, "scale_study.yaml"), text)
 
 
+# The workflow measured: a snapshot of the working tree taken at start (see
+# snapshot_tree), so edits made while the benchmark runs do not change it midway.
+WORKFLOW_ROOT = REPO
+
+
+def snapshot_tree(scratch_root):
+    """Copy what git sees of the working tree (tracked + untracked, not ignored) into scratch_root."""
+    listing = subprocess.run(["git", "-C", REPO, "ls-files", "-z", "--cached", "--others", "--exclude-standard"],
+                             capture_output=True, check=True).stdout.decode()
+    destination = os.path.join(scratch_root, "workflow-snapshot")
+    for relative in filter(None, listing.split("\0")):
+        source = os.path.join(REPO, relative)
+        if os.path.isfile(source):  # tracked files deleted in the working tree are skipped
+            os.makedirs(os.path.dirname(os.path.join(destination, relative)), exist_ok=True)
+            shutil.copy2(source, os.path.join(destination, relative))
+    return destination
+
+
 def snakemake_command(folder, study_path, *extra):
-    # The repository's Snakefile run in a scratch folder: results/ and .snakemake/ land there.
-    return [SNAKEMAKE, "--snakefile", os.path.join(REPO, "Snakefile"), "--directory", folder,
-            "--profile", LOCAL_PROFILE, "--config", f"config_file={study_path}", *extra]
+    # The snapshot's Snakefile run in a scratch folder: results/ and .snakemake/ land there.
+    return [SNAKEMAKE, "--snakefile", os.path.join(WORKFLOW_ROOT, "Snakefile"), "--directory", folder,
+            "--profile", os.path.join(WORKFLOW_ROOT, "config", "profiles", "local"), "--config", f"config_file={study_path}", *extra]
 
 
 def job_environment():
     environment = dict(os.environ)
-    # This tree's package, whatever the venv's editable install points at.
-    environment["PYTHONPATH"] = os.path.join(REPO, "workflow")
+    # The snapshot's package, whatever the venv's editable install points at.
+    environment["PYTHONPATH"] = os.path.join(WORKFLOW_ROOT, "workflow")
     for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
         environment[name] = "1"
     return environment
@@ -161,13 +178,17 @@ PLANNING_COMMANDS = [("parse", ["--list-rules"]), ("dag", ["--dag"]), ("dry_run"
 PLANNING_LABELS = {"parse": "parse", "dag": "dag", "dry_run": "dry run (-n)", "dry_run_quiet": "dry run, quiet"}
 
 
-def measure_planning(n_subjects, demo_root, scratch_root):
+def measure_planning(n_subjects, demo_root, scratch_root, repeats):
     folder = tempfile.mkdtemp(prefix=f"scale-{n_subjects}-", dir=scratch_root)
     study_path = lay_out_study(demo_root, folder, n_subjects)
-    row = {"n_subjects": n_subjects}
+    row = {"n_subjects": n_subjects, "repeats": repeats}
     for key, extra in PLANNING_COMMANDS:
-        row[f"{key}_wall_s"], row[f"{key}_cpu_s"], output = timed_run(snakemake_command(folder, study_path, *extra))
-    row["n_jobs"] = job_count(output)  # the last command is the quiet dry run
+        # The fastest of a few repeats: the slower ones measure other processes
+        # (the advice of Python's timeit documentation).
+        timings = [timed_run(snakemake_command(folder, study_path, *extra)) for _ in range(repeats)]
+        row[f"{key}_wall_s"] = min(wall_s for wall_s, _, _ in timings)
+        row[f"{key}_cpu_s"] = min(cpu_s for _, cpu_s, _ in timings)
+    row["n_jobs"] = job_count(timings[-1][2])  # the last command is the quiet dry run
     shutil.rmtree(folder)
     return row
 
@@ -234,7 +255,7 @@ def linear_fit(sizes, values):
     return mean_y - slope * mean_x, slope
 
 
-def print_planning_table(rows, target, unit):
+def print_planning_table(rows, target, unit, check=None):
     keys = [f"{name}_{unit}_s" for name, _ in PLANNING_COMMANDS]
     print(f"\nPlanning cost, {unit} seconds of one snakemake process")
     print(f"{'subjects':>15} {'jobs':>6} " + " ".join(f"{PLANNING_LABELS[name]:>15}" for name, _ in PLANNING_COMMANDS))
@@ -254,6 +275,9 @@ def print_planning_table(rows, target, unit):
           + "   (slope of a straight-line fit, seconds per subject)")
     print(f"{'line at ' + str(target):>15} {'':>6} " + " ".join(f"{intercept + slope * target:>15.1f}" for intercept, slope in fits)
           + "   (straight line extrapolated, not measured)")
+    if check:
+        print(f"{'measured ' + str(target):>15} {check['n_jobs']:>6} " + " ".join(f"{check[key]:>15.1f}" for key in keys)
+              + "   (one run, to check the line)")
 
 
 def print_run_table(result):
@@ -273,6 +297,9 @@ def parse_arguments(argv):
     parser.add_argument("--run-size", type=int, default=25, help="subjects of the real run (0: no real run)")
     parser.add_argument("--cores", type=int, default=1, help="cores of the real run (1 keeps the overhead arithmetic exact)")
     parser.add_argument("--target", type=int, default=1000, help="number of subjects to extrapolate to")
+    parser.add_argument("--repeats", type=int, default=3, help="runs of each planning command; the fastest counts")
+    parser.add_argument("--measure-target", action=argparse.BooleanOptionalAction, default=True,
+                        help="also plan the --target study once, to check the extrapolation (default: on)")
     parser.add_argument("--json", help="also write the measurements to this JSON file")
     return parser.parse_args(argv)
 
@@ -285,11 +312,16 @@ def main(argv):
     print(f"bench_scale: {os.cpu_count()} CPUs, load average {load_1min:.1f} at start "
           "(other processes on the machine inflate every time below)")
     scratch_root = tempfile.mkdtemp(prefix="foldwise-bench-scale-")
+    global WORKFLOW_ROOT
     try:
+        WORKFLOW_ROOT = snapshot_tree(scratch_root)
         demo_root = simulate_template_subject(scratch_root)
-        planning = [measure_planning(n_subjects, demo_root, scratch_root) for n_subjects in sorted(arguments.sizes)]
-        print_planning_table(planning, arguments.target, "wall")
-        print_planning_table(planning, arguments.target, "cpu")
+        planning = [measure_planning(n_subjects, demo_root, scratch_root, arguments.repeats)
+                    for n_subjects in sorted(arguments.sizes)]
+        check = measure_planning(arguments.target, demo_root, scratch_root, 1) if arguments.measure_target else None
+        print(f"(each time: the fastest of {arguments.repeats} runs)")
+        print_planning_table(planning, arguments.target, "wall", check)
+        print_planning_table(planning, arguments.target, "cpu", check)
         run = measure_real_run(arguments.run_size, arguments.cores, demo_root, scratch_root) if arguments.run_size > 0 else None
         if run:
             print_run_table(run)
@@ -297,7 +329,8 @@ def main(argv):
         shutil.rmtree(scratch_root, ignore_errors=True)
     if arguments.json:
         with open(arguments.json, "w", encoding="utf-8") as handle:
-            json.dump({"load_average_1min": load_1min, "planning": planning, "run": run}, handle, indent=1)
+            json.dump({"load_average_1min": load_1min, "planning": planning, "target_check": check, "run": run},
+                      handle, indent=1)
     return 0
 
 

@@ -170,6 +170,8 @@ start_local_slurm() {
 
 stop_local_slurm() {
     local pid
+    # Jobs left by a failed run would outlive slurmd; the cluster is ours alone.
+    [ "${#STARTED_PIDS[@]}" -gt 0 ] && scancel --quiet --user="$(id -un)" 2>/dev/null || true
     # Newest first: slurmd, slurmctld, then munged they authenticate with.
     for ((i = ${#STARTED_PIDS[@]} - 1; i >= 0; i--)); do
         pid=${STARTED_PIDS[i]}

@@ -12,6 +12,8 @@
 # daemons already run. The daemons it starts are stopped by PID on exit.
 # Exit status: 0 when the manifests match, non-zero on any failure.
 # FOLDWISE_KEEP_WORK=1 keeps the temp folder for inspection.
+# FOLDWISE_CLUSTER_GROUPING=per_subject submits each subject's jobs as one
+# Slurm job (Snakemake job grouping); the default, none, submits every job.
 set -euo pipefail
 
 REPO=$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)
@@ -20,6 +22,7 @@ source "$REPO/tests/cluster/local_slurm.sh"
 
 WORKFLOW_TIMEOUT_S=1200        # per run; the measured slurm run takes a few minutes
 STATUS_INTERVAL_S=2            # fast status checks: the test cluster answers in milliseconds
+GROUPING=${FOLDWISE_CLUSTER_GROUPING:-none}
 TEST_STARTED_S=$SECONDS
 WORK=$(mktemp -d /tmp/foldwise-cluster-test.XXXXXX)
 
@@ -96,6 +99,20 @@ run_workflow() {
     log_step "$label run finished in $((SECONDS - started_s)) s"
 }
 
+grouping_arguments() {
+    # Per-subject rules in one group: their jobs for a subject are connected,
+    # so each subject becomes one group job. --cores caps a group's parallel
+    # layers at the node's cores (without it, a group asks for the sum of its
+    # parallel jobs' threads and can wait forever for a node that large: measured).
+    case $GROUPING in
+        none) GROUP_ARGS=() ;;
+        per_subject)
+            GROUP_ARGS=(--groups brain_mask=subject glm=subject roi_mask=subject roi_counts=subject
+                        decode=subject decode_gather=subject --cores "$(nproc)") ;;
+        *) fail "FOLDWISE_CLUSTER_GROUPING must be none or per_subject, got '$GROUPING'" ;;
+    esac
+}
+
 check_jobs_ran_on_slurm() {
     # Every job the slurm run submitted must be in Slurm's own record of
     # finished jobs as COMPLETED; a run that quietly executed locally would
@@ -136,15 +153,17 @@ main() {
     install_slurm_packages
     start_local_slurm "$WORK/slurm-state"
 
-    copy_working_tree "$WORK/on-slurm"
-    write_small_study "$WORK/on-slurm"
-    run_workflow "$WORK/on-slurm" slurm --profile config/profiles/slurm \
+    # One snapshot for both runs: others may edit the tree while the test runs.
+    copy_working_tree "$WORK/snapshot"
+    write_small_study "$WORK/snapshot"
+    cp -a "$WORK/snapshot" "$WORK/on-slurm"
+    cp -a "$WORK/snapshot" "$WORK/on-local"
+    grouping_arguments
+    run_workflow "$WORK/on-slurm" "slurm (grouping: $GROUPING)" --profile config/profiles/slurm \
         --seconds-between-status-checks "$STATUS_INTERVAL_S" \
-        --slurm-init-seconds-before-status-checks "$STATUS_INTERVAL_S"
+        --slurm-init-seconds-before-status-checks "$STATUS_INTERVAL_S" "${GROUP_ARGS[@]}"
     check_jobs_ran_on_slurm "$WORK/on-slurm/snakemake.out" "$WORK/slurm-state/jobs_completed.txt"
 
-    copy_working_tree "$WORK/on-local"
-    write_small_study "$WORK/on-local"
     run_workflow "$WORK/on-local" local --profile config/profiles/local --cores 2
 
     compare_manifests "$WORK/on-slurm" "$WORK/on-local"

@@ -33,10 +33,10 @@ lint: $(STAMP)
 	$(BIN)/snakemake --lint --config config_file=$(CONFIG)
 
 bundle: $(STAMP)
-	$(BIN)/python -m foldwise.bundle make --config $(CONFIG) $(if $(INCLUDE_IMAGES),--include-images)
+	$(BIN)/python -m foldwise.provenance.bundle make --config $(CONFIG) $(if $(INCLUDE_IMAGES),--include-images)
 
 verify: $(STAMP)
-	$(BIN)/python -m foldwise.bundle verify --cores $(CORES) --config $(CONFIG)
+	$(BIN)/python -m foldwise.provenance.bundle verify --cores $(CORES) --config $(CONFIG)
 
 benchmark: $(STAMP)
 	for script in benchmarks/bench_*.py; do $(BIN)/python $$script || exit 1; done

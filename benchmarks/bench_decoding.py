@@ -32,8 +32,8 @@ from sklearn.pipeline import Pipeline  # noqa: E402
 from sklearn.preprocessing import StandardScaler  # noqa: E402
 from sklearn.svm import SVC  # noqa: E402
 
-from foldwise.decoding import decode_curve  # noqa: E402
-from foldwise.folds import make_folds  # noqa: E402
+from foldwise.decoding.curves import decode_curve  # noqa: E402
+from foldwise.decoding.folds import make_folds  # noqa: E402
 
 N_RUNS, N_CLASSES, PER_CLASS, N_VOXELS = 8, 4, 2, 2000
 COUNTS = [10, 25, 50, 100, 200, 400, "all"]

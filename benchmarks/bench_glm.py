@@ -11,10 +11,10 @@ instead). The run is written as .nii.gz into a temporary folder
 
 * ``nibabel load``: ``nibabel.load(path).get_fdata()`` of the BOLD file, the
   reference every ratio divides by;
-* ``foldwise load``: ``foldwise.bids.load_bold`` (the fast gzip decoder);
+* ``foldwise load``: ``foldwise.data.bids.load_bold`` (the fast gzip decoder);
 * one whole job per GLM mode (``foldwise.jobs.glm.run``: load, mask, fit,
   write all five outputs), statistic t;
-* ``fit only``: ``foldwise.glm.estimate_patterns`` of each mode on data
+* ``fit only``: ``foldwise.glm.estimate.estimate_patterns`` of each mode on data
   already loaded and masked (the science alone, for the breakdown).
 
 Peak memory of each job is measured twice: tracemalloc's peak (NumPy arrays
@@ -43,10 +43,10 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
-from foldwise.bids import load_bold, read_confounds, read_events
-from foldwise.fileio import save_nifti, write_json, write_tsv
-from foldwise.glm import estimate_patterns
-from foldwise.hashing import seed_from
+from foldwise.data.bids import load_bold, read_confounds, read_events
+from foldwise.data.fileio import save_nifti, write_json, write_tsv
+from foldwise.glm.estimate import estimate_patterns
+from foldwise.provenance.hashing import seed_from
 from foldwise.jobs import glm as glm_job
 
 GRID_SHAPE = (64, 64, 40)

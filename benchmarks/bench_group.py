@@ -21,9 +21,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from foldwise import group
-from foldwise.fileio import write_tsv
-from foldwise.hashing import seed_from
+from foldwise.stats import group
+from foldwise.data.fileio import write_tsv
+from foldwise.provenance.hashing import seed_from
 from foldwise.jobs import group as group_job
 
 ANALYSIS = "shape_seen_heard"

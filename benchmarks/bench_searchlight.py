@@ -80,7 +80,7 @@ def _reference_predict(classifier, train, train_labels, test):
 
 def _child(task, queue):
     """One measurement in a fresh process: returns ((wall s, CPU s), peak MB, extra)."""
-    from foldwise import searchlight as sl
+    from foldwise.searchlight import engine as sl
 
     mask, patterns, labels, runs = _data()
     kind, classifier, arguments = task

@@ -4,7 +4,7 @@ Each case builds its bad input in a temporary folder, calls the reader, job
 function or validator that catches it, and checks the exact text. A message
 reaches the user prefixed ``foldwise: `` (a config error as Snakemake's
 WorkflowError from workflow/rules/common.smk, a job error from
-``foldwise.memo.run_job``, exit status 1); warnings go to the job's log and to
+``foldwise.provenance.memo.run_job``, exit status 1); warnings go to the job's log and to
 stderr as ``foldwise WARNING: ``.
 
 docs/bad-input-table.md is this table: ``test_the_documented_table_is_this_table``
@@ -31,16 +31,16 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from foldwise import bids
+from foldwise.data import bids
 from foldwise.config import load_yaml, validate
 from foldwise.errors import InputError
-from foldwise.fileio import check_output_folder, save_nifti, write_text_atomic, write_tsv
+from foldwise.data.fileio import check_output_folder, save_nifti, write_text_atomic, write_tsv
 from foldwise.jobs import brain_mask as brain_mask_job
 from foldwise.jobs import decode as decode_job
 from foldwise.jobs import group as group_job
 from foldwise.jobs import roi_mask as roi_mask_job
-from foldwise.memo import run_job
-from foldwise.workflow_plan import plan_study
+from foldwise.provenance.memo import run_job
+from foldwise.plan import plan_study
 
 REPO = Path(__file__).resolve().parents[1]
 TABLE_PATH = REPO / "docs" / "bad-input-table.md"

@@ -1,4 +1,4 @@
-"""Tests of foldwise.bids: file templates, discovery, BOLD, sidecars, events, confounds.
+"""Tests of foldwise.data.bids: file templates, discovery, BOLD, sidecars, events, confounds.
 
 Outside references: real NIfTI files shipped with nibabel's own test data
 (nibabel.testing.data_path) read by nibabel itself; the BIDS specification's
@@ -17,7 +17,7 @@ import pandas as pd
 import pytest
 from nibabel.testing import data_path as nibabel_data_path
 
-from foldwise import bids
+from foldwise.data import bids
 from foldwise.errors import InputError
 
 PATTERNS = {

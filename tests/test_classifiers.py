@@ -1,4 +1,4 @@
-"""Tests of foldwise.classifiers against scikit-learn, numpy brute force and the Bayes rate."""
+"""Tests of foldwise.decoding.classifiers against scikit-learn, numpy brute force and the Bayes rate."""
 
 import numpy as np
 import pytest
@@ -9,7 +9,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.naive_bayes import GaussianNB
 from sklearn.svm import SVC
 
-from foldwise import classifiers as clf
+from foldwise.decoding import classifiers as clf
 from foldwise.errors import InputError
 
 N_CLASSES = 3

@@ -1,4 +1,4 @@
-"""Tests of foldwise.decoding and its job functions (jobs/decode.py, jobs/decode_gather.py).
+"""Tests of foldwise.decoding.curves and its job functions (jobs/decode.py, jobs/decode_gather.py).
 
 Data are invented (the "lanterns" study: round, square and star lanterns, seen or
 heard; ROIs ember, glow, hush) or simulated with known ground truth.
@@ -22,9 +22,9 @@ from sklearn.pipeline import Pipeline
 from sklearn.preprocessing import FunctionTransformer, StandardScaler
 from sklearn.svm import SVC
 
-from foldwise import decoding
+from foldwise.decoding import curves as decoding
 from foldwise.errors import InputError
-from foldwise.fileio import read_tsv, save_nifti, write_tsv
+from foldwise.data.fileio import read_tsv, save_nifti, write_tsv
 from foldwise.jobs import decode as decode_job
 from foldwise.jobs import decode_gather
 

@@ -1,4 +1,4 @@
-"""Tests of foldwise.demo (the invented lanterns study) and its job function.
+"""Tests of foldwise.data.demo (the invented lanterns study) and its job function.
 
 The demo is a simulation with known ground truth; the checks here compare it
 with an independent analysis written in the test (an HRF from
@@ -15,10 +15,12 @@ import pandas as pd
 import pytest
 import scipy.stats
 
-from foldwise import bids, demo, masks
+from foldwise.data import bids
+from foldwise.data import demo
+from foldwise.masks import build as masks
 from foldwise.errors import InputError
-from foldwise.fileio import load_nifti, read_tsv
-from foldwise.hashing import seed_from
+from foldwise.data.fileio import load_nifti, read_tsv
+from foldwise.provenance.hashing import seed_from
 from foldwise.jobs import demo as demo_job
 
 LOG = logging.getLogger("test_demo")

@@ -1,4 +1,4 @@
-"""Tests of foldwise.design: drift cosines, event regressors, the design of one run.
+"""Tests of foldwise.glm.design: drift cosines, event regressors, the design of one run.
 
 Outside references: scipy.fft's orthonormal DCT-II (Ahmed, Natarajan & Rao
 1974) for the drift basis, scipy.linalg.subspace_angles and orth for spans,
@@ -14,9 +14,9 @@ from scipy.fft import dct
 from scipy.linalg import subspace_angles
 from scipy.stats import gamma
 
-from foldwise.design import DERIVATIVE_SUFFIXES, build_design, cosine_drift_basis, event_regressors, frame_times
+from foldwise.glm.design import DERIVATIVE_SUFFIXES, build_design, cosine_drift_basis, event_regressors, frame_times
 from foldwise.errors import InputError
-from foldwise.hrf import HRF_DURATION_S
+from foldwise.glm.hrf import HRF_DURATION_S
 
 
 def _exact_response(times_s, onset_s, duration_s):

@@ -1,4 +1,4 @@
-"""Atomic, reproducible writers and careful readers (foldwise.fileio)."""
+"""Atomic, reproducible writers and careful readers (foldwise.data.fileio)."""
 
 import gzip
 import os
@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 from foldwise.errors import InputError
-from foldwise.fileio import atomic_path, gzip_bytes, load_nifti, read_tsv, save_nifti, write_tsv
+from foldwise.data.fileio import atomic_path, gzip_bytes, load_nifti, read_tsv, save_nifti, write_tsv
 
 
 def test_identifier_columns_keep_leading_zeros(tmp_path):

@@ -1,11 +1,11 @@
-"""Tests of foldwise.folds: run-wise folds and the training-class check."""
+"""Tests of foldwise.decoding.folds: run-wise folds and the training-class check."""
 
 import numpy as np
 import pytest
 from sklearn.model_selection import LeaveOneGroupOut
 
 from foldwise.errors import InputError
-from foldwise.folds import check_training_classes, held_out_runs, make_folds
+from foldwise.decoding.folds import check_training_classes, held_out_runs, make_folds
 
 
 def _runs(n_runs=4, per_run=3):

@@ -19,10 +19,10 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from foldwise.bids import read_events
+from foldwise.data.bids import read_events
 from foldwise.config import validate
 from foldwise.errors import InputError
-from foldwise.workflow_plan import plan_study
+from foldwise.plan import plan_study
 from workflow_support import REPO
 
 DEMO_CONFIG = yaml.safe_load((REPO / "config" / "config.yaml").read_text(encoding="utf-8"))

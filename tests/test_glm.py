@@ -1,4 +1,4 @@
-"""Tests of foldwise.glm (OLS, AR(1) prewhitening, LSS, LSA, estimate_patterns) and its job.
+"""Tests of foldwise.glm.estimate (OLS, AR(1) prewhitening, LSS, LSA, estimate_patterns) and its job.
 
 Outside references: statsmodels OLS, GLS and GLSAR (the reference
 least-squares implementations from the package registry); a brute-force LSS
@@ -22,13 +22,13 @@ import statsmodels.api as sm
 from scipy.linalg import toeplitz
 from scipy.stats import gamma
 
-import foldwise.glm as glm_module
-from foldwise.design import build_design, frame_times
+import foldwise.glm.estimate as glm_module
+from foldwise.glm.design import build_design, frame_times
 from foldwise.errors import InputError
-from foldwise.glm import (AR1_STEP, ar1_coefficients, ar1_moment_table, bin_ar1, estimate_patterns, fit_ar1, fit_lss, fit_ols,
+from foldwise.glm.estimate import (AR1_STEP, ar1_coefficients, ar1_moment_table, bin_ar1, estimate_patterns, fit_ar1, fit_lss, fit_ols,
                           whiten_ar1)
-from foldwise.fileio import save_nifti, write_json, write_tsv
-from foldwise.hrf import HRF_DURATION_S
+from foldwise.data.fileio import save_nifti, write_json, write_tsv
+from foldwise.glm.hrf import HRF_DURATION_S
 from foldwise.jobs import glm as glm_job
 
 N_SCANS, TR_S = 120, 2.0

@@ -1,4 +1,4 @@
-"""Tests of foldwise.group (group statistics) and its job, foldwise.jobs.group.
+"""Tests of foldwise.stats.group (group statistics) and its job, foldwise.jobs.group.
 
 Outside references, named beside each check: scipy.stats (ttest_1samp,
 wilcoxon, sem, binom), the worked example of scipy's own wilcoxon
@@ -19,10 +19,10 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from foldwise import group
+from foldwise.stats import group
 from foldwise.errors import InputError
-from foldwise.fileio import write_tsv
-from foldwise.hashing import seed_from
+from foldwise.data.fileio import write_tsv
+from foldwise.provenance.hashing import seed_from
 from foldwise.jobs import group as group_job
 
 
@@ -476,7 +476,7 @@ def test_job_accepts_bids_style_subject_labels(tmp_path):
 
 
 def test_job_code_hash_covers_the_science_module():
-    # The group rule's code key (foldwise.hashing.code_hash) must change when group.py does.
-    from foldwise.hashing import module_closure
+    # The group rule's code key (foldwise.provenance.hashing.code_hash) must change when group.py does.
+    from foldwise.provenance.hashing import module_closure
 
     assert Path(group.__file__).resolve() in module_closure("foldwise.jobs.group")

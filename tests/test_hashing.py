@@ -1,10 +1,10 @@
-"""Narrow keys: canonical hashes of settings, code closures and seeds (foldwise.hashing)."""
+"""Narrow keys: canonical hashes of settings, code closures and seeds (foldwise.provenance.hashing)."""
 
 import hashlib
 
 import pytest
 
-from foldwise.hashing import canonical_json, code_hash, hash_file, hash_object, module_closure, seed_from
+from foldwise.provenance.hashing import canonical_json, code_hash, hash_file, hash_object, module_closure, seed_from
 
 
 def test_canonical_json_ignores_key_order_but_not_values():
@@ -27,13 +27,13 @@ def test_hash_file_equals_hashlib(tmp_path):
 
 
 def test_module_closure_follows_imports_transitively():
-    names = {path.name for path in module_closure("foldwise.memo")}
+    names = {path.name for path in module_closure("foldwise.provenance.memo")}
     assert {"memo.py", "errors.py", "fileio.py", "hashing.py"} <= names
     assert "config.py" not in names
 
 
 def test_code_hash_changes_with_an_imported_module(tmp_path, monkeypatch):
-    import foldwise.hashing as hashing
+    import foldwise.provenance.hashing as hashing
 
     package = tmp_path / "foldwise"
     package.mkdir()

@@ -1,4 +1,4 @@
-"""Tests of foldwise.hrf: the canonical double-gamma HRF and its derivative kernels.
+"""Tests of foldwise.glm.hrf: the canonical double-gamma HRF and its derivative kernels.
 
 Outside references: scipy.stats.gamma (the gamma density, computed
 independently of our closed form), the published double-gamma form
@@ -13,7 +13,7 @@ from scipy.linalg import subspace_angles
 from scipy.stats import gamma
 
 from foldwise.errors import InputError
-from foldwise.hrf import (DISPERSION_STEP, HRF_DURATION_S, double_gamma, double_gamma_time_derivative,
+from foldwise.glm.hrf import (DISPERSION_STEP, HRF_DURATION_S, double_gamma, double_gamma_time_derivative,
                           hrf_basis)
 
 # A table of time points (s): the rise, the peak, the undershoot, the tail, and t <= 0.

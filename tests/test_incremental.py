@@ -135,7 +135,7 @@ def test_one_or_two_cores_give_identical_manifests(base_run, tmp_path):
 def test_bundle_unpacks_and_verifies_and_names_a_corrupted_result(base_run, tmp_path):
     workdir = _copy_of(base_run, tmp_path)
     environment = workflow_environment(workdir)
-    made = subprocess.run([sys.executable, "-m", "foldwise.bundle", "make", "--config", "config/study.yaml"], cwd=workdir,
+    made = subprocess.run([sys.executable, "-m", "foldwise.provenance.bundle", "make", "--config", "config/study.yaml"], cwd=workdir,
                           capture_output=True, text=True, env=environment)
     assert made.returncode == 0, made.stderr
     archive = next((workdir / "results" / "bundle").glob("*.tar.gz"))
@@ -146,7 +146,7 @@ def test_bundle_unpacks_and_verifies_and_names_a_corrupted_result(base_run, tmp_
     assert any(name.endswith("REVIEW/README.md") for name in names)
     unpacked = next((tmp_path / "unpacked").iterdir())
     environment = workflow_environment(unpacked)
-    verified = subprocess.run([sys.executable, "-m", "foldwise.bundle", "verify", "--cores", "2", "--config", "config/study.yaml"],
+    verified = subprocess.run([sys.executable, "-m", "foldwise.provenance.bundle", "verify", "--cores", "2", "--config", "config/study.yaml"],
                               cwd=unpacked, capture_output=True, text=True, env=environment)
     assert verified.returncode == 0, verified.stdout[-3000:] + verified.stderr[-3000:]
     assert "every output reproduces" in verified.stdout
@@ -157,7 +157,7 @@ def test_bundle_unpacks_and_verifies_and_names_a_corrupted_result(base_run, tmp_
     environment = workflow_environment(again)
     table = next((again / "results" / "group").rglob("*_group.tsv"))
     table.write_text(table.read_text().replace("\t0.", "\t9.", 1))
-    broken = subprocess.run([sys.executable, "-m", "foldwise.bundle", "verify", "--check-only", "--config", "config/study.yaml"],
+    broken = subprocess.run([sys.executable, "-m", "foldwise.provenance.bundle", "verify", "--check-only", "--config", "config/study.yaml"],
                             cwd=again, capture_output=True, text=True, env=environment)
     assert broken.returncode == 1
     assert f"MISMATCH: {table.relative_to(again).as_posix()}" in broken.stdout

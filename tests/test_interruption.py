@@ -31,8 +31,8 @@ from types import SimpleNamespace
 import pandas as pd
 import pytest
 
-from foldwise.hashing import hash_file
-from foldwise.memo import MemoStore, run_job
+from foldwise.provenance.hashing import hash_file
+from foldwise.provenance.memo import MemoStore, run_job
 from test_privacy import private_record_problems
 from workflow_support import TINY_STUDY, copy_repository, read_manifest, snakemake, workflow_environment, write_study
 

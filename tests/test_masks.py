@@ -1,4 +1,4 @@
-"""Tests of foldwise.masks and the brain-mask and ROI-mask job functions.
+"""Tests of foldwise.masks.build and the brain-mask and ROI-mask job functions.
 
 Outside references: OEIS A000605 (lattice points in a ball), scipy.ndimage's
 affine_transform (order 0) for nearest-neighbour resampling.
@@ -16,9 +16,9 @@ import scipy.ndimage
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from foldwise import masks
+from foldwise.masks import build as masks
 from foldwise.errors import InputError
-from foldwise.fileio import load_nifti, save_nifti, write_tsv
+from foldwise.data.fileio import load_nifti, save_nifti, write_tsv
 from foldwise.jobs import brain_mask as brain_mask_job
 from foldwise.jobs import roi_mask as roi_mask_job
 

@@ -1,4 +1,4 @@
-"""The content memo and provenance records (foldwise.memo), without Snakemake."""
+"""The content memo and provenance records (foldwise.provenance.memo), without Snakemake."""
 
 import json
 import multiprocessing
@@ -9,8 +9,8 @@ from types import SimpleNamespace
 import pytest
 
 from foldwise.errors import InputError
-from foldwise.hashing import hash_file
-from foldwise.memo import MemoStore, memo_key, relative_path, run_job
+from foldwise.provenance.hashing import hash_file
+from foldwise.provenance.memo import MemoStore, memo_key, relative_path, run_job
 
 
 class _Named(dict):

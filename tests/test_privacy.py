@@ -30,9 +30,9 @@ import pytest
 
 from foldwise.config import load_yaml, validate
 from foldwise.errors import InputError
-from foldwise.fileio import save_nifti, write_tsv
+from foldwise.data.fileio import save_nifti, write_tsv
 from foldwise.jobs import roi_mask as roi_mask_job
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 from workflow_support import REPO, TINY_STUDY, copy_repository, workflow_environment, write_study
 
 # -- YAML --------------------------------------------------------------------------------------
@@ -233,7 +233,7 @@ def _repository_with_results(destination, git):
 
 
 def _bundle_names(repository, *options):
-    completed = subprocess.run([sys.executable, "-m", "foldwise.bundle", "make", "--config", "config/study.yaml", *options],
+    completed = subprocess.run([sys.executable, "-m", "foldwise.provenance.bundle", "make", "--config", "config/study.yaml", *options],
                                cwd=repository, capture_output=True, text=True, env=workflow_environment(repository))
     assert completed.returncode == 0, completed.stderr
     with tarfile.open(repository / "results" / "bundle" / "tiny-bundle.tar.gz") as archive:

@@ -1,4 +1,4 @@
-"""Tests of the study report: foldwise.report (pure parts) and foldwise.jobs.report (the page).
+"""Tests of the study report: foldwise.report.figures (pure parts) and foldwise.jobs.report (the page).
 
 Every input is built here, in a temporary folder, following the data
 contract of DESIGN.md (a small invented lanterns study; nothing is read from
@@ -29,11 +29,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from foldwise import report
+from foldwise.report import figures as report
 from foldwise.config import validate
 from foldwise.errors import InputError
-from foldwise.fileio import save_nifti, write_json, write_tsv
-from foldwise.hashing import hash_object
+from foldwise.data.fileio import save_nifti, write_json, write_tsv
+from foldwise.provenance.hashing import hash_object
 from foldwise.jobs import report as report_job
 
 REPO = Path(__file__).resolve().parents[1]
@@ -418,11 +418,11 @@ def test_reproduce_commands_name_the_config_file():
 
 
 def test_the_rule_code_hash_covers_the_report_modules():
-    # The report rule's params carry step_code("report.py"): it must follow the job into foldwise.report.
-    from foldwise.hashing import module_closure
+    # The report rule's params carry step_code("report.py"): it must follow the job into foldwise.report.figures.
+    from foldwise.provenance.hashing import module_closure
 
     closure = {path.relative_to(REPO).as_posix() for path in module_closure(REPO / "workflow" / "scripts" / "report.py")}
-    assert {"workflow/foldwise/report.py", "workflow/foldwise/jobs/report.py", "workflow/foldwise/fileio.py"} <= closure
+    assert {"workflow/foldwise/report/figures.py", "workflow/foldwise/jobs/report.py", "workflow/foldwise/data/fileio.py"} <= closure
 
 
 def test_captions_render_as_snakemake_renders_them():

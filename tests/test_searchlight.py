@@ -1,11 +1,11 @@
-"""Tests of foldwise.searchlight and the searchlight jobs (block, merge, group).
+"""Tests of foldwise.searchlight.engine and the searchlight jobs (block, merge, group).
 
 Outside references, named beside each check:
 - sphere voxel counts: OEIS A000605 (lattice points in a ball of radius r: 7, 33, 123, 257, 515 for r = 1..5);
 - per-sphere accuracies: a scikit-learn refit on that sphere's voxels (StandardScaler + the counterpart
   classifier, LeaveOneGroupOut, balanced_accuracy_score);
 - group p-values: the Phipson & Smyth (2010) and Nichols & Holmes (2002) formulas written out directly, and
-  foldwise.group's ROI implementation of them;
+  foldwise.stats.group's ROI implementation of them;
 - TFCE: hand-computed sums of the Smith & Nichols (2009) definition.
 Invented data (the "lanterns" study) is for simulations with known ground truth.
 """
@@ -26,13 +26,13 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC
 
-from foldwise import searchlight as sl
-from foldwise.decoding import apply_scaler, fit_scaler, permute_within_runs
+from foldwise.searchlight import engine as sl
+from foldwise.decoding.curves import apply_scaler, fit_scaler, permute_within_runs
 from foldwise.errors import InputError
-from foldwise.fileio import load_nifti, save_nifti, write_tsv
-from foldwise.group import max_statistic_p, permutation_p
+from foldwise.data.fileio import load_nifti, save_nifti, write_tsv
+from foldwise.stats.group import max_statistic_p, permutation_p
 from foldwise.jobs import searchlight_block, searchlight_group, searchlight_merge
-from foldwise.masks import sphere_mask
+from foldwise.masks.build import sphere_mask
 
 LOG = logging.getLogger("test_searchlight")
 CLASSIFIERS = ("correlation_centroid", "gaussian_nb", "shrinkage_lda", "linear_svm")
@@ -106,7 +106,7 @@ def test_sphere_counts_match_oeis_a000605(voxel_mm):
 
 
 def test_sphere_offsets_agree_with_the_roi_sphere_on_an_anisotropic_oblique_grid():
-    # Cross-check against foldwise.masks.sphere_mask (the ROI stage's sphere in mm), which tests each voxel centre directly.
+    # Cross-check against foldwise.masks.build.sphere_mask (the ROI stage's sphere in mm), which tests each voxel centre directly.
     rotation = np.array([[np.cos(0.3), -np.sin(0.3), 0.0], [np.sin(0.3), np.cos(0.3), 0.0], [0.0, 0.0, 1.0]])
     affine = np.eye(4)
     affine[:3, :3] = rotation @ np.diag([2.0, 2.5, 3.5])

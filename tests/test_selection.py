@@ -1,4 +1,4 @@
-"""Tests of foldwise.selection: voxel scores from training data and deterministic rankings."""
+"""Tests of foldwise.decoding.selection: voxel scores from training data and deterministic rankings."""
 
 import itertools
 
@@ -9,9 +9,9 @@ from hypothesis import strategies as st
 from scipy import stats
 from sklearn.feature_selection import f_classif
 
-from foldwise.classifiers import class_means
+from foldwise.decoding.classifiers import class_means
 from foldwise.errors import InputError
-from foldwise.selection import f_scores, random_order, rank_voxels, signal_scores, stability_scores, top_ranked
+from foldwise.decoding.selection import f_scores, random_order, rank_voxels, signal_scores, stability_scores, top_ranked
 
 
 @pytest.fixture

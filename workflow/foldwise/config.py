@@ -16,7 +16,7 @@ from pathlib import Path
 import jsonschema
 import yaml
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 __all__ = ["SCHEMA_PATH", "load_yaml", "validate", "load_study_config", "key_path"]
 

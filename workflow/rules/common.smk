@@ -8,10 +8,10 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 from foldwise.config import load_yaml, validate
 from foldwise.errors import InputError
-from foldwise.fileio import check_output_folder
-from foldwise.hashing import code_hash, hash_object
-from foldwise.report import figure_catalogue
-from foldwise.workflow_plan import plan_study
+from foldwise.data.fileio import check_output_folder
+from foldwise.provenance.hashing import code_hash, hash_object
+from foldwise.report.figures import figure_catalogue
+from foldwise.plan import plan_study
 
 
 # The study config: `--config config_file=path` names it;

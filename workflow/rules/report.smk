@@ -1,5 +1,5 @@
 # The study report: one self-contained HTML page (figures embedded) plus every
-# figure as PNG and SVG; the figure list comes from foldwise.report.figure_catalogue.
+# figure as PNG and SVG; the figure list comes from foldwise.report.figures.figure_catalogue.
 REPORT_HTML = "results/report/index.html"
 REPORT_FIGURES = figure_catalogue(STUDY, SUBJECTS)  # figures_dir defaults to results/report/figures
 

@@ -1,5 +1,5 @@
 """Snakemake script of rule `decode`: runs foldwise.jobs.decode through the content memo."""
 from foldwise.jobs import decode
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="decode", job=decode.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -1,5 +1,5 @@
 """Snakemake script of rule `decode_gather`: runs foldwise.jobs.decode_gather through the content memo."""
 from foldwise.jobs import decode_gather
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="decode_gather", job=decode_gather.run)  # noqa: F821 (snakemake is injected by Snakemake)

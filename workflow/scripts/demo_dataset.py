@@ -1,5 +1,5 @@
 """Snakemake script of rule `demo_dataset`: runs foldwise.jobs.demo through the content memo."""
 from foldwise.jobs import demo
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="demo_dataset", job=demo.run)  # noqa: F821 (snakemake is injected by Snakemake)

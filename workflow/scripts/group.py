@@ -1,5 +1,5 @@
 """Snakemake script of rule `group`: runs foldwise.jobs.group through the content memo."""
 from foldwise.jobs import group
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="group", job=group.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -1,5 +1,5 @@
 """Snakemake script of rule `manifest`: runs foldwise.jobs.manifest through the content memo."""
 from foldwise.jobs import manifest
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="manifest", job=manifest.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -1,5 +1,5 @@
 """Snakemake script of rule `report`: runs foldwise.jobs.report through the content memo."""
 from foldwise.jobs import report
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="report", job=report.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -1,5 +1,5 @@
 """Snakemake script of rule `roi_mask`: runs foldwise.jobs.roi_mask through the content memo."""
 from foldwise.jobs import roi_mask
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="roi_mask", job=roi_mask.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -1,5 +1,5 @@
 """Snakemake script of rule `searchlight_block`: runs foldwise.jobs.searchlight_block through the content memo."""
 from foldwise.jobs import searchlight_block
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="searchlight_block", job=searchlight_block.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -1,5 +1,5 @@
 """Snakemake script of rule `searchlight_merge`: runs foldwise.jobs.searchlight_merge through the content memo."""
 from foldwise.jobs import searchlight_merge
-from foldwise.memo import run_job
+from foldwise.provenance.memo import run_job
 
 run_job(snakemake, step="searchlight_merge", job=searchlight_merge.run)  # noqa: F821 (snakemake is injected by Snakemake)

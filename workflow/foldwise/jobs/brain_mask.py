@@ -2,10 +2,10 @@
 
 import numpy as np
 
-from ..bids import load_bold
-from ..errors import InputError
-from ..fileio import load_nifti, save_nifti, write_json
-from ..masks import combine_run_statistics, run_statistics, same_grid, threshold_mean_image
+from foldwise.data.bids import load_bold
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, save_nifti, write_json
+from foldwise.masks.build import combine_run_statistics, run_statistics, same_grid, threshold_mean_image
 
 __all__ = ["GRID_TOLERANCE_MM", "run"]
 
@@ -35,7 +35,7 @@ def run(inputs, outputs, params, log):
     """Write ``mask`` (uint8), ``mean`` (float32) and ``summary`` (JSON) for one subject.
 
     The mean image is the mean over runs of each run's time mean. Without a
-    given mask, the mask is derived by :func:`foldwise.masks.threshold_mean_image`
+    given mask, the mask is derived by :func:`foldwise.masks.build.threshold_mean_image`
     (``brain_mask.mean_fraction``); a given mask is kept as it is except for
     voxels whose data hold NaN or Inf, which are left out with a warning.
     """

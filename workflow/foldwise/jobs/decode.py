@@ -16,11 +16,11 @@ null); the random voxel orders of selection ``none`` come from
 import numpy as np
 import pandas as pd
 
-from ..decoding import decode_cross, decode_curve, resolve_counts
-from ..errors import InputError
-from ..fileio import load_nifti, read_tsv, write_tsv
-from ..folds import check_training_classes, make_folds
-from ..hashing import seed_from
+from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, read_tsv, write_tsv
+from foldwise.decoding.folds import check_training_classes, make_folds
+from foldwise.provenance.hashing import seed_from
 
 __all__ = [
     "TABLE_COLUMNS",

@@ -10,10 +10,10 @@ number of folds, and chance = 1 / number of classes.
 import numpy as np
 import pandas as pd
 
-from ..decoding import cross_directions
-from ..errors import InputError
-from ..fileio import read_tsv, write_tsv
-from .decode import SCORE_COLUMNS
+from foldwise.decoding.curves import cross_directions
+from foldwise.errors import InputError
+from foldwise.data.fileio import read_tsv, write_tsv
+from foldwise.jobs.decode import SCORE_COLUMNS
 
 __all__ = ["SUMMARY_COLUMNS", "gather_scores", "summarise_scores", "run"]
 

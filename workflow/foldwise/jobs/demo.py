@@ -1,8 +1,8 @@
 """Job: simulate the invented lanterns demo study (a BIDS dataset, atlas and ground truth)."""
 
-from ..bids import run_files
-from ..demo import planned_runs, write_demo_study
-from ..errors import InputError
+from foldwise.data.bids import run_files
+from foldwise.data.demo import planned_runs, write_demo_study
+from foldwise.errors import InputError
 
 __all__ = ["run"]
 
@@ -19,8 +19,8 @@ def run(inputs, outputs, params, log):
     """Write the demo dataset to exactly the declared outputs.
 
     The run outputs (``bold``, ``events``, ``sidecars``, ``confounds``) must
-    list, in :func:`foldwise.demo.planned_runs` order, the paths that
-    :func:`foldwise.bids.run_files` gives for each planned run; anything else
+    list, in :func:`foldwise.data.demo.planned_runs` order, the paths that
+    :func:`foldwise.data.bids.run_files` gives for each planned run; anything else
     is a wiring error and nothing is written.
     """
     planned = planned_runs(params["demo"])

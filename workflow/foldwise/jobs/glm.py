@@ -4,11 +4,11 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
-from ..bids import load_bold, read_confounds, read_events, read_tr_s
-from ..errors import InputError
-from ..fileio import load_nifti, save_figure, save_nifti, write_tsv
-from ..glm import estimate_patterns
-from ..masks import same_grid
+from foldwise.data.bids import load_bold, read_confounds, read_events, read_tr_s
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_tsv
+from foldwise.glm.estimate import estimate_patterns
+from foldwise.masks.build import same_grid
 
 __all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_labels", "design_figure"]
 

@@ -2,7 +2,7 @@
 
 Reads each subject's decoding summary and per-ROI permutation nulls, checks
 that all subjects share the same cells and permutations, runs
-``foldwise.group.group_statistics`` and writes the group table, the group-mean
+``foldwise.stats.group.group_statistics`` and writes the group table, the group-mean
 null and a short plain-text summary.
 """
 
@@ -12,12 +12,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-# Absolute imports on purpose: foldwise.hashing.module_closure (the rule's code
+# Absolute imports on purpose: foldwise.provenance.hashing.module_closure (the rule's code
 # hash) follows ``from .x`` and ``from foldwise.x`` but not ``from ..x``.
-from foldwise import group as group_stats
+from foldwise.stats import group as group_stats
 from foldwise.errors import InputError
-from foldwise.fileio import gunzip_bytes, write_text_atomic, write_tsv
-from foldwise.hashing import seed_from
+from foldwise.data.fileio import gunzip_bytes, write_text_atomic, write_tsv
+from foldwise.provenance.hashing import seed_from
 
 __all__ = ["run", "SUMMARY_COLUMNS", "SUBJECT_NULL_COLUMNS", "TABLE_COLUMNS", "NULL_COLUMNS"]
 

@@ -10,7 +10,7 @@ import json
 
 import pandas as pd
 
-from ..fileio import write_tsv
+from foldwise.data.fileio import write_tsv
 
 __all__ = ["run", "job_label"]
 

@@ -2,7 +2,7 @@
 
 Reads the quality-check images and tables, the decoding summaries and
 confusion counts, the group tables and the other jobs' provenance records;
-draws every figure of ``foldwise.report.figure_plan`` (PNG and SVG) and writes
+draws every figure of ``foldwise.report.figures.figure_plan`` (PNG and SVG) and writes
 ``index.html`` with the PNGs embedded as data URIs, so the page opens from
 disk and loads nothing from the network. The page holds no clock time: the
 same inputs give byte-identical files.
@@ -20,12 +20,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-# Absolute imports on purpose: the rule's code hash (foldwise.hashing.module_closure)
+# Absolute imports on purpose: the rule's code hash (foldwise.provenance.hashing.module_closure)
 # follows ``from foldwise.x`` imports.
-from foldwise import report as page
+from foldwise.report import figures as page
 from foldwise.errors import InputError
-from foldwise.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
-from foldwise.hashing import hash_object
+from foldwise.data.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
+from foldwise.provenance.hashing import hash_object
 
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
@@ -239,7 +239,7 @@ def _check_outputs(outputs, study, subjects):
     if [str(Path(path)) for path in figures] != [str(Path(path)) for path in planned]:
         extra = sorted(set(map(str, figures)) - set(planned))
         lacking = [path for path in planned if path not in set(map(str, figures))]
-        raise InputError(None, "outputs.figures", f"the declared figures differ from foldwise.report.figure_plan "
+        raise InputError(None, "outputs.figures", f"the declared figures differ from foldwise.report.figures.figure_plan "
                          f"(not planned: {extra[:3]}; not declared: {lacking[:3]}; or another order)",
                          "declare exactly figure_plan(study config, subjects) as the rule's figures output")
     return catalogue

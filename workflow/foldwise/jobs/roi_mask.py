@@ -2,10 +2,10 @@
 
 import numpy as np
 
-from ..errors import InputError
-from ..fileio import load_nifti, read_tsv, save_nifti, write_json
-from ..masks import resample_nearest, restrict_to_brain, roi_from_image, roi_from_labels, sphere_mask
-from .brain_mask import GRID_TOLERANCE_MM
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, read_tsv, save_nifti, write_json
+from foldwise.masks.build import resample_nearest, restrict_to_brain, roi_from_image, roi_from_labels, sphere_mask
+from foldwise.jobs.brain_mask import GRID_TOLERANCE_MM
 
 __all__ = ["run"]
 

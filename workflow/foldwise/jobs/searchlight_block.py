@@ -24,11 +24,11 @@ import io
 
 import numpy as np
 
-from ..errors import InputError
-from ..fileio import load_nifti, read_tsv, write_bytes_atomic
-from ..hashing import seed_from
-from ..masks import same_grid
-from ..searchlight import SEARCHLIGHT_CLASSIFIERS, block_centres, sample_design, searchlight_scores, sphere_neighbourhoods
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, read_tsv, write_bytes_atomic
+from foldwise.provenance.hashing import seed_from
+from foldwise.masks.build import same_grid
+from foldwise.searchlight.engine import SEARCHLIGHT_CLASSIFIERS, block_centres, sample_design, searchlight_scores, sphere_neighbourhoods
 
 __all__ = ["run", "GRID_TOLERANCE_MM", "load_brain_mask", "load_subject_patterns", "save_npy"]
 

@@ -28,13 +28,13 @@ warning, and the mean map only (p maps NaN inside the mask).
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError
-from ..fileio import load_nifti, save_nifti, write_tsv
-from ..group import MIN_SUBJECTS, TIE_TOLERANCE, draw_indices
-from ..hashing import seed_from
-from ..searchlight import analysis_outline, group_permutation_maps, tfce
-from ..masks import same_grid
-from .searchlight_block import GRID_TOLERANCE_MM, load_brain_mask
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, save_nifti, write_tsv
+from foldwise.stats.group import MIN_SUBJECTS, TIE_TOLERANCE, draw_indices
+from foldwise.provenance.hashing import seed_from
+from foldwise.searchlight.engine import analysis_outline, group_permutation_maps, tfce
+from foldwise.masks.build import same_grid
+from foldwise.jobs.searchlight_block import GRID_TOLERANCE_MM, load_brain_mask
 
 __all__ = ["run", "TABLE_COLUMNS"]
 

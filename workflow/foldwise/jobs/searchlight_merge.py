@@ -18,10 +18,10 @@ Outputs
 import numpy as np
 import pandas as pd
 
-from ..errors import InputError
-from ..fileio import save_nifti, write_tsv
-from ..searchlight import analysis_outline, block_centres
-from .searchlight_block import load_brain_mask, save_npy
+from foldwise.errors import InputError
+from foldwise.data.fileio import save_nifti, write_tsv
+from foldwise.searchlight.engine import analysis_outline, block_centres
+from foldwise.jobs.searchlight_block import load_brain_mask, save_npy
 
 __all__ = ["run"]
 

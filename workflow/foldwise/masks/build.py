@@ -9,7 +9,7 @@ import difflib
 
 import numpy as np
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 __all__ = [
     "ROBUST_MAX_PERCENTILE",

@@ -7,8 +7,9 @@ disk with the configured file-name templates.
 
 from dataclasses import dataclass
 
-from . import bids, demo
-from .errors import InputError
+from foldwise.data import bids
+from foldwise.data import demo
+from foldwise.errors import InputError
 
 __all__ = ["StudyPlan", "plan_study"]
 

@@ -26,8 +26,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
-from .fileio import load_nifti, read_tsv
+from foldwise.errors import InputError
+from foldwise.data.fileio import load_nifti, read_tsv
 
 __all__ = [
     "PLACEHOLDERS",

@@ -1,12 +1,12 @@
 """The reviewer bundle: one archive that reproduces and proves every number.
 
-``python -m foldwise.bundle make`` (``make bundle``) writes
+``python -m foldwise.provenance.bundle make`` (``make bundle``) writes
 ``results/bundle/<study>-bundle.tar.gz`` with the repository's tracked code
 and config, the exact lock, the manifest, every provenance record, the group
 tables, the report and a README for reviewers. Participant images (NIfTI
 files) are left out unless ``--include-images`` is given.
 
-``python -m foldwise.bundle verify`` (``make verify``), run in an unpacked
+``python -m foldwise.provenance.bundle verify`` (``make verify``), run in an unpacked
 bundle with the dataset in place, first checks every bundled result against
 the manifest, then recomputes the study with the content memo switched off
 and compares each output with the manifest: ``match`` (byte-identical),
@@ -26,8 +26,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .config import load_study_config
-from .hashing import hash_file
+from foldwise.config import load_study_config
+from foldwise.provenance.hashing import hash_file
 
 __all__ = ["bundle_members", "make_bundle", "compare_outputs", "verify", "main", "NUMERIC_RTOL", "NUMERIC_ATOL"]
 
@@ -223,7 +223,7 @@ def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
 
 
 def main(argv=None):
-    parser = argparse.ArgumentParser(prog="python -m foldwise.bundle", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="python -m foldwise.provenance.bundle", description=__doc__.splitlines()[0])
     commands = parser.add_subparsers(dest="command", required=True)
     making = commands.add_parser("make", help="write the reviewer bundle")
     making.add_argument("--include-images", action="store_true", help="also bundle participant images (NIfTI)")

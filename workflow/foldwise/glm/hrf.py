@@ -9,7 +9,7 @@ basis functions that let each regressor absorb small shifts in latency
 import numpy as np
 from scipy.special import gammaln
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 __all__ = [
     "HRF_DURATION_S",

@@ -8,7 +8,7 @@ labels, so the same runs always give the same folds.
 
 import numpy as np
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 __all__ = ["FOLD_SCHEMES", "make_folds", "held_out_runs", "check_training_classes"]
 

@@ -14,8 +14,8 @@ voxel index, so the same scores always give the same ranking.
 
 import numpy as np
 
-from .classifiers import one_hot
-from .errors import InputError
+from foldwise.decoding.classifiers import one_hot
+from foldwise.errors import InputError
 
 __all__ = [
     "SELECTION_METHODS",

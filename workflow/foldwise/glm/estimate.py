@@ -17,9 +17,9 @@ import pandas as pd
 from numpy.polynomial.polynomial import polyval
 from scipy.linalg import solve_triangular
 
-from .design import PATTERN_MODES, DesignMatrix, build_design
-from .errors import InputError
-from .hrf import DERIVATIVE_CHOICES
+from foldwise.glm.design import PATTERN_MODES, DesignMatrix, build_design
+from foldwise.errors import InputError
+from foldwise.glm.hrf import DERIVATIVE_CHOICES
 
 __all__ = [
     "NOISE_MODELS",
@@ -108,7 +108,7 @@ class PatternEstimate:
         ``(n_patterns, n_voxels)`` float64 betas or t-values.
     table : pandas.DataFrame
         One row per pattern: ``condition``, ``trial_index``, ``onset_s``.
-    design : foldwise.design.DesignMatrix
+    design : foldwise.glm.design.DesignMatrix
         The design the patterns come from (trial-wise for LSS).
     residual_variance : numpy.ndarray
         ``(n_voxels,)`` float64.
@@ -194,7 +194,7 @@ def _check_design(design_matrix):
     design = np.asarray(design_matrix, dtype=np.float64)
     if design.ndim != 2 or design.shape[1] < 1 or not np.all(np.isfinite(design)):
         raise InputError(None, "design_matrix", f"need a finite 2-D (scans x regressors) array (got shape {design.shape})",
-                         "build it with foldwise.design.build_design")
+                         "build it with foldwise.glm.design.build_design")
     return design
 
 

@@ -36,9 +36,9 @@ import time
 from importlib import metadata
 from pathlib import Path
 
-from .errors import InputError
-from .fileio import write_json
-from .hashing import canonical_json, hash_file, hash_object
+from foldwise.errors import InputError
+from foldwise.data.fileio import write_json
+from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
 __all__ = ["MemoStore", "memo_key", "run_job", "file_system_error", "package_versions", "relative_path"]
 

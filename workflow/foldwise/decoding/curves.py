@@ -28,10 +28,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import classifiers as clf
-from .errors import InputError
-from .folds import held_out_runs, make_folds
-from .selection import (LABEL_FREE_METHODS, SELECTION_METHODS, f_scores, random_order, rank_voxels, signal_scores, stability_scores,
+from foldwise.decoding import classifiers as clf
+from foldwise.errors import InputError
+from foldwise.decoding.folds import held_out_runs, make_folds
+from foldwise.decoding.selection import (LABEL_FREE_METHODS, SELECTION_METHODS, f_scores, random_order, rank_voxels, signal_scores, stability_scores,
                         top_ranked)
 
 __all__ = [
@@ -617,7 +617,7 @@ def decode_curve(patterns, labels, run_labels, voxel_counts, *, folds=None, n_cl
     voxel_counts : sequence of int or "all"
         Requested counts; each is capped at the ROI size.
     folds : list of (train_idx, test_idx), optional
-        Default: leave one run out (:func:`foldwise.folds.make_folds`).
+        Default: leave one run out (:func:`foldwise.decoding.folds.make_folds`).
     n_classes : int, optional
         Default: the largest label + 1.
     classifier : {"linear_svm", "logistic_l2", "shrinkage_lda", "correlation_centroid", "gaussian_nb"}

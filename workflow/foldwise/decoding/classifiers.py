@@ -29,7 +29,7 @@ try:  # scikit-learn's own libsvm binding: the very routines SVC.fit/predict cal
 except ImportError:  # pragma: no cover - a scikit-learn without the private module falls back to SVC
     _libsvm = None
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 __all__ = [
     "CLASSIFIERS",

@@ -24,7 +24,7 @@ Public functions, in the order a group analysis uses them:
 import numpy as np
 from scipy import stats
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 __all__ = [
     "TIE_TOLERANCE",

@@ -20,7 +20,7 @@ import nibabel as nib
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from foldwise.errors import InputError
 
 try:  # a faster gzip decoder/encoder from PyPI; the standard one is the fallback
     from isal import igzip as _fast_gzip

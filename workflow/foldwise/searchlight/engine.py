@@ -12,7 +12,7 @@ the batched classifiers:
    indices into the brain voxels, ``-1`` padding) built once, and the same
    neighbourhoods as a sparse ``n_centres x n_voxels`` indicator matrix.
 2. Per fold, the z-scoring (mean and SD of every voxel over the training
-   patterns, as :func:`foldwise.decoding.fit_scaler`) is computed once for
+   patterns, as :func:`foldwise.decoding.curves.fit_scaler`) is computed once for
    all voxels; it is label-free, so every permutation reuses it.
 3. Correlation to class centroids and Gaussian naive Bayes are sums over the
    sphere of per-voxel terms (products of a test pattern and a centroid,
@@ -28,7 +28,7 @@ the batched classifiers:
 5. The linear SVM (libsvm, exactly as ``sklearn.svm.SVC(kernel="linear")``)
    is the slow exact option: batched Gram matrices, one fit per sphere.
 
-Permutations relabel within runs (:func:`foldwise.decoding.permute_within_runs`)
+Permutations relabel within runs (:func:`foldwise.decoding.curves.permute_within_runs`)
 and rerun the whole fold loop; for the batched classifiers all relabelings of
 a chunk go through the same array operations.
 
@@ -56,11 +56,11 @@ import numpy as np
 import scipy.ndimage
 import scipy.sparse
 
-from .classifiers import linear_svm_fit_predict
-from .decoding import apply_scaler, balanced_accuracy, cross_directions, fit_scaler, permute_within_runs
-from .errors import InputError
-from .folds import FOLD_SCHEMES, make_folds
-from .group import TIE_TOLERANCE, group_mean_null
+from foldwise.decoding.classifiers import linear_svm_fit_predict
+from foldwise.decoding.curves import apply_scaler, balanced_accuracy, cross_directions, fit_scaler, permute_within_runs
+from foldwise.errors import InputError
+from foldwise.decoding.folds import FOLD_SCHEMES, make_folds
+from foldwise.stats.group import TIE_TOLERANCE, group_mean_null
 
 __all__ = [
     "SEARCHLIGHT_CLASSIFIERS",
@@ -100,7 +100,7 @@ TFCE_HEIGHT_EXPONENT = 2.0
 TFCE_N_STEPS = 100
 
 # A voxel at exactly the radius is inside; this absorbs float rounding of
-# voxel-centre distances (the same tolerance as foldwise.masks.sphere_mask).
+# voxel-centre distances (the same tolerance as foldwise.masks.build.sphere_mask).
 _RADIUS_TOLERANCE_MM = 1e-6
 # Largest work array, in float64 elements (32 MB). Chunk sizes depend only on
 # array shapes, never on timing, so chunking is deterministic.
@@ -335,7 +335,7 @@ def analysis_outline(analysis, file=None):
     dict
         ``class_names`` (entry order), ``set_names`` (``None`` for plain
         decoding), ``directions`` (``["within"]`` or the five cross-decoding
-        directions of :func:`foldwise.decoding.cross_directions`, the order of
+        directions of :func:`foldwise.decoding.curves.cross_directions`, the order of
         the map volumes) and ``chance`` (1 / number of classes).
 
     Examples
@@ -387,7 +387,7 @@ def sample_design(conditions, run_labels, analysis, file=None):
         plain decoding; 0/1 for the two sets), ``runs`` (all shape
         (n_used,)), ``class_names``, ``set_names`` (``None`` for plain
         decoding), ``directions`` (``["within"]``, or the five cross-decoding
-        directions of :func:`foldwise.decoding.cross_directions`) and
+        directions of :func:`foldwise.decoding.curves.cross_directions`) and
         ``chance`` (1 / number of classes).
 
     Raises
@@ -534,7 +534,7 @@ def predict_correlation_centroid(z_train, train_labels, z_test, spheres, n_class
     with ``S_tc = sum_v t_v c_v`` etc., so each term is computed once per
     voxel and summed over all spheres by one sparse product. An undefined
     correlation (a constant pattern over the sphere) counts as 0; ties go to
-    the lower class index, as in :func:`foldwise.classifiers.correlation_centroid_predict`.
+    the lower class index, as in :func:`foldwise.decoding.classifiers.correlation_centroid_predict`.
     """
     z_train, labels, z_test, n_classes, _ = _check_fold_arrays(z_train, train_labels, z_test, spheres, n_classes)
     n_test, n_voxels = z_test.shape
@@ -775,7 +775,7 @@ def predict_shrinkage_lda(z_train, train_labels, z_test, spheres, n_classes):
     directly instead.
 
     This is scikit-learn's estimate, which differs from the pooled
-    within-class estimate of :func:`foldwise.classifiers.shrinkage_lda_fit`
+    within-class estimate of :func:`foldwise.decoding.classifiers.shrinkage_lda_fit`
     (one Ledoit-Wolf intensity for the pooled residuals).
     """
     z_train, labels, z_test, n_classes, _ = _check_fold_arrays(z_train, train_labels, z_test, spheres, n_classes)
@@ -811,7 +811,7 @@ def predict_linear_svm(z_train, train_labels, z_test, spheres, n_classes, C=1.0)
     Notes
     -----
     The slow exact option: ``sklearn.svm.SVC(kernel="linear", C=C)`` on the
-    sphere's voxels, through :func:`foldwise.classifiers.linear_svm_fit_predict`
+    sphere's voxels, through :func:`foldwise.decoding.classifiers.linear_svm_fit_predict`
     on Gram matrices that are computed for a chunk of spheres at once
     (padding voxels are zeros and add nothing to a linear kernel). Cortes &
     Vapnik (1995), Machine Learning 20:273-297.
@@ -879,17 +879,17 @@ def searchlight_scores(patterns, labels, run_labels, spheres, *, set_index=None,
     scores : ndarray of float64, shape (1 + n_permutations, n_centres, n_directions)
         Row 0 the real labels; row ``k`` permutation ``k``. The fold mean of
         the per-fold balanced accuracy (mean recall over the classes in the
-        held-out patterns, as :func:`foldwise.decoding.balanced_accuracy`).
+        held-out patterns, as :func:`foldwise.decoding.curves.balanced_accuracy`).
     directions : list of str
         ``["within"]``, or ``A->B, B->A, A<->B, A->A, B->B``.
 
     Notes
     -----
     Each fold z-scores every voxel with the mean and SD of the training
-    patterns (:func:`foldwise.decoding.fit_scaler`, StandardScaler's
+    patterns (:func:`foldwise.decoding.curves.fit_scaler`, StandardScaler's
     arithmetic) once, for all spheres and permutations, and the classifier
     sees nothing else of the held-out run. The null follows the ROI decoding
-    of :mod:`foldwise.decoding`: plain decoding relabels all patterns within
+    of :mod:`foldwise.decoding.curves`: plain decoding relabels all patterns within
     runs (training and held-out labels both permuted; Nichols & Holmes 2002,
     Human Brain Mapping 15:1-25); cross-decoding permutes the training labels
     within run-by-set blocks and keeps the test labels true (Kaplan, Man &
@@ -991,7 +991,7 @@ def group_permutation_maps(subject_scores, subject_nulls, indices, chance, voxel
         voxels, so every draw below is a joint null over the brain.
     indices : array_like of int, shape (n_draws, n_subjects)
         Which permutation of each subject enters each draw
-        (:func:`foldwise.group.draw_indices`).
+        (:func:`foldwise.stats.group.draw_indices`).
     chance : float
         Chance accuracy (1 / number of classes).
     voxel_maps : sequence of array_like of int, optional
@@ -1013,14 +1013,14 @@ def group_permutation_maps(subject_scores, subject_nulls, indices, chance, voxel
     -----
     The group-level null of Stelzer, Chen & Turner (2013), NeuroImage
     65:69-82: one permutation map per subject, drawn with replacement, is
-    averaged, many times (:func:`foldwise.group.group_mean_null`, run here on
+    averaged, many times (:func:`foldwise.stats.group.group_mean_null`, run here on
     chunks of voxels so that only ``n_draws x chunk`` values are held at
     once). The family-wise correction is the maximum statistic of Nichols &
     Holmes (2002), Human Brain Mapping 15:1-25, over the voxels of each
     direction's map, with the same draws for every voxel; p-values count the
     observed labeling as one draw (Phipson & Smyth 2010, Stat. Appl. Genet.
-    Mol. Biol. 9:39), as :func:`foldwise.group.permutation_p` and
-    :func:`foldwise.group.max_statistic_p` do.
+    Mol. Biol. 9:39), as :func:`foldwise.stats.group.permutation_p` and
+    :func:`foldwise.stats.group.max_statistic_p` do.
     """
     scores = np.asarray(subject_scores, dtype=np.float64)
     if scores.ndim != 3 or scores.shape[0] < 1:
@@ -1030,7 +1030,7 @@ def group_permutation_maps(subject_scores, subject_nulls, indices, chance, voxel
         _fail("nulls", f"expected {n_subjects} subject nulls, got {len(subject_nulls)}", "give one null per subject")
     indices = np.asarray(indices)
     if indices.ndim != 2 or indices.shape[1] != n_subjects or not np.issubdtype(indices.dtype, np.integer):
-        _fail("indices", f"expected integer indices of shape (n_draws, {n_subjects}), got {indices.dtype} {indices.shape}", "use foldwise.group.draw_indices")
+        _fail("indices", f"expected integer indices of shape (n_draws, {n_subjects}), got {indices.dtype} {indices.shape}", "use foldwise.stats.group.draw_indices")
     n_permutations = {int(np.shape(null)[0]) for null in subject_nulls}
     if len(n_permutations) != 1 or any(np.ndim(null) != 3 or np.shape(null)[2] != n_directions for null in subject_nulls):
         _fail("nulls", f"subject nulls must share (n_permutations, *, {n_directions}); got shapes {[np.shape(null) for null in subject_nulls]}",

@@ -21,7 +21,7 @@ __all__ = [
     "seed_from",
 ]
 
-_PACKAGE_DIR = Path(__file__).resolve().parent
+_PACKAGE_DIR = Path(__file__).resolve().parents[1]  # the foldwise package folder
 _CHUNK_BYTES = 1 << 20
 
 
@@ -120,7 +120,7 @@ def module_closure(*entry_points):
     Parameters
     ----------
     *entry_points : str
-        Module names (``"foldwise.glm"``) or paths to script files.
+        Module names (``"foldwise.glm.estimate"``) or paths to script files.
 
     Returns
     -------

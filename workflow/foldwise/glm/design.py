@@ -8,7 +8,7 @@ Conventions (stated once, used throughout):
   TR) accepted.
 * Events are boxcars of unit height on a fine grid of step
   ``dt = tr_s / oversampling``, convolved with the HRF basis of
-  :mod:`foldwise.hrf` and sampled at the acquisition times. An event with
+  :mod:`foldwise.glm.hrf` and sampled at the acquisition times. An event with
   duration 0 is an impulse of unit area (the response to 1 s of unit
   activity compressed into an instant), the usual convention for brief events.
 * Column order: pattern regressors, other event regressors, drift cosines,
@@ -21,8 +21,8 @@ import numpy as np
 import pandas as pd
 from scipy.signal import fftconvolve
 
-from .errors import InputError
-from .hrf import DERIVATIVE_CHOICES, hrf_basis
+from foldwise.errors import InputError
+from foldwise.glm.hrf import DERIVATIVE_CHOICES, hrf_basis
 
 __all__ = [
     "PATTERN_MODES",
@@ -190,7 +190,7 @@ def event_regressors(onsets_s, durations_s, regressor_index, n_regressors, n_sca
     oversampling : int
         Fine samples per TR.
     hrf_derivatives : {"none", "temporal", "temporal_dispersion"}
-        HRF basis (see :func:`foldwise.hrf.hrf_basis`).
+        HRF basis (see :func:`foldwise.glm.hrf.hrf_basis`).
 
     Returns
     -------
@@ -263,7 +263,7 @@ def event_regressors(onsets_s, durations_s, regressor_index, n_regressors, n_sca
 def _check_events(events, n_scans, tr_s):
     if not isinstance(events, pd.DataFrame):
         raise InputError(None, "events", f"expected a pandas DataFrame (got {type(events).__name__})",
-                         "read the events TSV with foldwise.bids.read_events")
+                         "read the events TSV with foldwise.data.bids.read_events")
     missing = [column for column in _EVENT_COLUMNS if column not in events.columns]
     if missing:
         raise InputError(None, ", ".join(missing), "column(s) missing from the events table", "add onset, duration and trial_type")
@@ -326,7 +326,7 @@ def build_design(events, n_scans, tr_s, conditions, pattern_mode, hrf_derivative
     pattern_mode : {"per_condition", "lss", "lsa"}
         ``per_condition``: one regressor per condition (the patterns);
         ``lsa`` and ``lss``: one regressor per trial (``lss`` designs are
-        this trial-wise design; :func:`foldwise.glm.fit_lss` derives the
+        this trial-wise design; :func:`foldwise.glm.estimate.fit_lss` derives the
         per-trial models from it).
     hrf_derivatives : {"none", "temporal", "temporal_dispersion"}
         HRF basis per event regressor.

@@ -19,7 +19,7 @@ voxels carry the code, so voxel selection matters. Every brain voxel also
 responds to every condition alike. Nothing here is a real experiment.
 
 All randomness comes from generators seeded by
-``foldwise.hashing.seed_from(seed, "demo_dataset", <part>, ...)``, so each
+``foldwise.provenance.hashing.seed_from(seed, "demo_dataset", <part>, ...)``, so each
 subject and run has its own stream: adding a subject leaves the others
 unchanged.
 """
@@ -29,12 +29,12 @@ import numpy as np
 import pandas as pd
 from scipy.signal import fftconvolve, lfilter
 
-from . import __version__
-from .bids import make_run_id, run_files
-from .errors import InputError
-from .fileio import save_nifti, write_json, write_tsv
-from .hashing import seed_from
-from .hrf import double_gamma
+from foldwise import __version__
+from foldwise.data.bids import make_run_id, run_files
+from foldwise.errors import InputError
+from foldwise.data.fileio import save_nifti, write_json, write_tsv
+from foldwise.provenance.hashing import seed_from
+from foldwise.glm.hrf import double_gamma
 
 __all__ = [
     "STEP",
@@ -504,7 +504,7 @@ def write_demo_study(bids_root, patterns, demo_settings, seed, task, confound_na
     bids_root : str
         Where the dataset goes; run files follow ``patterns``.
     patterns : dict
-        The ``dataset.patterns`` templates (see :func:`foldwise.bids.run_files`).
+        The ``dataset.patterns`` templates (see :func:`foldwise.data.bids.run_files`).
     demo_settings : dict
         The ``demo`` config block.
     seed : int

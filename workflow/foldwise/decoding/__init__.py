@@ -1,0 +1,1 @@
+"""Fold-aware decoding: folds, voxel selection, classifiers, curves and cross-decoding."""

@@ -1,0 +1,1 @@
+"""Brain masks and ROI masks."""

@@ -1,0 +1,1 @@
+"""Hashing, the content memo, provenance records and the reviewer bundle."""

@@ -1,0 +1,1 @@
+"""The study report: figures and the page."""

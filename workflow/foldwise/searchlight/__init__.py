@@ -1,0 +1,1 @@
+"""Searchlight: spheres and the batched per-sphere engines."""

@@ -1,0 +1,1 @@
+"""Group statistics: tests, permutation group test, family-wise correction, prevalence."""

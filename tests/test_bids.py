@@ -366,3 +366,107 @@ def test_bids_round_trip_on_a_copied_shipped_file(tmp_path):
     frame = pd.DataFrame({"onset": [0.0], "duration": [1.0], "trial_type": ["seen_round"]})
     frame.to_csv(run["events"], sep="\t", index=False)
     assert bids.read_events(run["events"], data.shape[3], 2.0)["trial_type"].tolist() == ["seen_round"]
+
+
+# ------------------------------------------------ derivatives layouts (raw + derivatives roots, space/res)
+
+DERIVATIVE_PATTERNS = {
+    "bold": "sub-{subject}/func/sub-{subject}_task-{task}_run-{run}_space-{space}_res-{res}_desc-preproc_bold.nii.gz",
+    "events": "sub-{subject}/func/sub-{subject}_task-{task}_run-{run}_events.tsv",
+    "sidecar": "task-{task}_bold.json",
+    "confounds": "sub-{subject}/func/sub-{subject}_task-{task}_run-{run}_desc-confounds_timeseries.tsv",
+    "brain_mask": "sub-{subject}/func/sub-{subject}_task-{task}_run-{run}_space-{space}_res-{res}_desc-brain_mask.nii.gz",
+}
+
+
+def test_run_files_reads_derived_files_from_the_derivatives_root(tmp_path):
+    files = bids.run_files(tmp_path / "raw", DERIVATIVE_PATTERNS, "lanterns", "01", None, "2",
+                           derivatives_root=tmp_path / "deriv", space="tmplA", res="2")
+    assert files["bold"] == str(tmp_path / "deriv/sub-01/func/sub-01_task-lanterns_run-2_space-tmplA_res-2_desc-preproc_bold.nii.gz")
+    assert files["brain_mask"].startswith(str(tmp_path / "deriv"))
+    assert files["confounds"].startswith(str(tmp_path / "deriv"))
+    assert files["events"] == str(tmp_path / "raw/sub-01/func/sub-01_task-lanterns_run-2_events.tsv")
+    assert files["sidecar"] == str(tmp_path / "raw/task-lanterns_bold.json")  # BIDS inheritance: one sidecar at the top
+
+
+def test_run_files_space_placeholder_without_a_space_is_an_error(tmp_path):
+    with pytest.raises(InputError) as excinfo:
+        bids.run_files(tmp_path, DERIVATIVE_PATTERNS, "lanterns", "01", None, "2", space="tmplA")
+    _assert_input_error(excinfo, "dataset.res", "{res}")
+
+
+def test_discover_runs_in_a_derivatives_tree_with_space_and_res(tmp_path):
+    for space in ("tmplA", "native"):
+        for run in ("1", "2"):
+            _touch(tmp_path / "deriv", f"sub-01/func/sub-01_task-lanterns_run-{run}_space-{space}_res-2_desc-preproc_bold.nii.gz")
+    (tmp_path / "raw").mkdir()
+    runs = bids.discover_runs(tmp_path / "raw", DERIVATIVE_PATTERNS, "lanterns", derivatives_root=tmp_path / "deriv",
+                              space="tmplA", res="2")
+    assert [run["run"] for run in runs] == ["1", "2"]
+    assert all("space-tmplA" in run["bold"] and run["events"].startswith(str(tmp_path / "raw")) for run in runs)
+
+
+def test_discover_runs_names_the_space_values_found_near_the_pattern(tmp_path):
+    for run in ("1", "2", "3"):
+        _touch(tmp_path / "deriv", f"sub-01/func/sub-01_task-lanterns_run-{run}_space-tmplB_res-2_desc-preproc_bold.nii.gz")
+    (tmp_path / "raw").mkdir()
+    with pytest.raises(InputError) as excinfo:
+        bids.discover_runs(tmp_path / "raw", DERIVATIVE_PATTERNS, "lanterns", derivatives_root=tmp_path / "deriv",
+                           space="tmplA", res="2")
+    _assert_input_error(excinfo, "space-tmplB (3 files)", "asks space-tmplA", "dataset.space")
+
+
+def test_discover_runs_names_entities_the_pattern_lacks_and_the_closest_file(tmp_path):
+    # The pattern has no space- part but every file has one: the message says so and shows the closest file.
+    for run in ("1", "2"):
+        _touch(tmp_path, f"sub-01/func/sub-01_task-lanterns_run-{run}_space-tmplA_desc-preproc_bold.nii.gz")
+    _touch(tmp_path, "sub-01/func/sub-01_task-lanterns_run-1_events.tsv")
+    with pytest.raises(InputError) as excinfo:
+        bids.discover_runs(tmp_path, PATTERNS, "lanterns")
+    _assert_input_error(excinfo, "carry space-tmplA", "add _space-{space}",
+                        "closest file: sub-01/func/sub-01_task-lanterns_run-1_space-tmplA_desc-preproc_bold.nii.gz")
+
+
+def test_discover_runs_missing_derivatives_root(tmp_path):
+    with pytest.raises(InputError) as excinfo:
+        bids.discover_runs(tmp_path, DERIVATIVE_PATTERNS, "lanterns", derivatives_root=tmp_path / "absent", space="a", res="2")
+    _assert_input_error(excinfo, "dataset.derivatives_root")
+
+
+# ------------------------------------------------ confound selectors, flagged initial volumes, condition column
+
+def test_select_confound_columns_by_name_prefix_and_first_k():
+    header = ["trans_x", "noise_comp_10", "noise_comp_02", "spike_vol07", "noise_comp_01", "spike_vol31", "rot_x"]
+    chosen = bids.select_confound_columns(header, ["trans_x", "spike_vol*", {"prefix": "noise_comp_", "first": 2}, "trans_x"])
+    # by name; every spike column in file order; the two lowest-numbered components (10 sorts after 02 by value)
+    assert chosen == ["trans_x", "spike_vol07", "spike_vol31", "noise_comp_01", "noise_comp_02"]
+    assert bids.select_confound_columns(["trans_x"], ["spike_vol*"]) == []  # a run without flagged volumes
+
+
+def test_select_confound_columns_errors_name_the_problem(tmp_path):
+    with pytest.raises(InputError) as excinfo:
+        bids.select_confound_columns(["trans_x", "trans_y"], ["tran_x"], tmp_path / "c.tsv")
+    _assert_input_error(excinfo, "close names: trans_x")
+    with pytest.raises(InputError) as excinfo:
+        bids.select_confound_columns(["comp_1"], [{"prefix": "comp_", "first": 3}], tmp_path / "c.tsv")
+    _assert_input_error(excinfo, "asks for 3 columns", "has 1")
+
+
+@pytest.mark.parametrize("flags, expected", [
+    (np.zeros((5, 0)), 0),
+    ([[0], [1], [0]], 0),             # volume 0 unflagged: no initial transient
+    ([[1, 0, 0], [0, 1, 0], [0, 0, 0], [0, 0, 1]], 2),  # the late flag is not initial
+    ([[1], [1]], 2),
+])
+def test_count_flagged_initial_volumes(flags, expected):
+    assert bids.count_flagged_initial_volumes(flags) == expected
+
+
+def test_read_events_with_another_condition_column(tmp_path):
+    path = tmp_path / "events.tsv"
+    path.write_text("onset\tduration\ttrial_type\tcue\n0\t1\tx\tseen_round\n10\t1\tx\tn/a\n", encoding="utf-8")
+    events = bids.read_events(path, 20, 2.0, condition_column="cue")
+    assert events["trial_type"].tolist() == ["seen_round"] and events.attrs["n_unlabelled"] == 1
+    with pytest.raises(InputError) as excinfo:
+        bids.read_events(path, 20, 2.0, condition_column="stimulus")
+    _assert_input_error(excinfo, "stimulus")

@@ -1,10 +1,15 @@
 """The dataset reader: BIDS file names, BOLD images, sidecars, events, confounds.
 
 BIDS (the Brain Imaging Data Structure, an open standard) names each file by
-its entities (``sub``, ``ses``, ``task``, ``run``). foldwise finds files
-through configurable templates with the placeholders ``{subject}``,
-``{session}``, ``{task}`` and ``{run}``; templates are filled by plain string
-concatenation on those placeholders only and are never evaluated.
+its entities (``sub``, ``ses``, ``task``, ``run``, and in derivatives
+``space`` and ``res``). foldwise finds files through configurable templates
+with the placeholders ``{subject}``, ``{session}``, ``{task}``, ``{run}``,
+``{space}`` and ``{res}``; templates are filled by plain string concatenation
+on those placeholders only and are never evaluated.
+
+A study may keep its files in two trees: the raw dataset (events, sidecars)
+under ``bids_root`` and a preprocessing pipeline's derivatives (BOLD,
+confounds, brain masks) under ``derivatives_root``; see :data:`DERIVED_PATTERNS`.
 
 Every reader checks its file and raises :class:`foldwise.errors.InputError`
 naming the file, the field and the fix.
@@ -39,10 +44,19 @@ __all__ = [
     "read_tr_s",
     "read_events",
     "read_confounds",
+    "select_confound_columns",
+    "count_flagged_initial_volumes",
+    "confound_table_columns",
+    "DERIVED_PATTERNS",
+    "near_pattern_message",
 ]
 
-PLACEHOLDERS = ("subject", "session", "task", "run")
+PLACEHOLDERS = ("subject", "session", "task", "run", "space", "res")
 PATTERN_NAMES = ("bold", "events", "sidecar", "confounds", "brain_mask")
+#: Patterns read from ``derivatives_root`` when one is given (the rest from ``bids_root``).
+DERIVED_PATTERNS = ("bold", "confounds", "brain_mask")
+# Placeholders whose value is one label for the whole study (from the config), not found per file.
+_FIXED_PLACEHOLDERS = ("task", "space", "res")
 # Patterns that may be empty: no file of that kind exists for the dataset.
 _OPTIONAL_PATTERNS = ("confounds", "brain_mask")
 # A BIDS label: letters and digits only (BIDS specification, "Entities").
@@ -65,7 +79,7 @@ def _parse_template(name, template):
         parsed = list(string.Formatter().parse(template))
     except ValueError as error:
         raise InputError(_CONFIG, f"dataset.patterns.{name}", f"the pattern {template!r} is malformed ({error})",
-                         "use only {subject} {session} {task} {run}; write a literal brace as {{ or }}") from None
+                         "use only {subject} {session} {task} {run} {space} {res}; write a literal brace as {{ or }}") from None
     for literal, field, format_spec, conversion in parsed:
         if literal:
             pieces.append(("literal", literal))
@@ -74,7 +88,7 @@ def _parse_template(name, template):
         if field not in PLACEHOLDERS or format_spec or conversion:
             shown = "{" + field + ("!" + conversion if conversion else "") + (":" + format_spec if format_spec else "") + "}"
             raise InputError(_CONFIG, f"dataset.patterns.{name}", f"the placeholder {shown} in {template!r} is not allowed",
-                             "use only {subject} {session} {task} {run}, without format specs")
+                             "use only {subject} {session} {task} {run} {space} {res}, without format specs")
         pieces.append(("field", field))
     return pieces
 
@@ -108,7 +122,7 @@ def make_run_id(session, run):
     return f"run-{run}" if session is None else f"ses-{session}_run-{run}"
 
 
-def run_files(bids_root, patterns, task, subject, session, run):
+def run_files(bids_root, patterns, task, subject, session, run, derivatives_root=None, space=None, res=None):
     """The paths of one run's files, built from the ``dataset.patterns`` templates.
 
     Parameters
@@ -116,13 +130,21 @@ def run_files(bids_root, patterns, task, subject, session, run):
     bids_root : str or os.PathLike
         The dataset's root folder.
     patterns : dict
-        Name -> template relative to ``bids_root`` for ``bold``, ``events``,
-        ``sidecar``, ``confounds``, ``brain_mask`` (placeholders
-        ``{subject}`` ``{session}`` ``{task}`` ``{run}``).
+        Name -> template relative to ``bids_root`` (or ``derivatives_root``)
+        for ``bold``, ``events``, ``sidecar``, ``confounds``, ``brain_mask``
+        (placeholders ``{subject}`` ``{session}`` ``{task}`` ``{run}``
+        ``{space}`` ``{res}``).
     task, subject, run : str
         BIDS labels without their prefixes.
     session : str or None
         Session label, or ``None`` when the dataset has no sessions.
+    derivatives_root : str or os.PathLike or None
+        The pipeline's derivatives folder: the :data:`DERIVED_PATTERNS`
+        (``bold``, ``confounds``, ``brain_mask``) are relative to it. ``None``
+        or empty: every pattern is relative to ``bids_root``.
+    space, res : str or None
+        The ``space`` and ``res`` labels of the derivatives, used where a
+        pattern has ``{space}`` or ``{res}``.
 
     Returns
     -------
@@ -147,9 +169,10 @@ def run_files(bids_root, patterns, task, subject, session, run):
                          "give dataset.patterns as a mapping name -> template")
     for entity, value in (("task", task), ("subject", subject), ("run", run)):
         _check_label(entity, value)
-    if session is not None:
-        _check_label("session", session)
-    values = {"subject": subject, "session": session, "task": task, "run": run}
+    for entity, value in (("session", session), ("space", space), ("res", res)):
+        if value not in (None, ""):
+            _check_label(entity, value)
+    values = {"subject": subject, "session": session, "task": task, "run": run, "space": space or None, "res": res or None}
     paths = {}
     for name in PATTERN_NAMES:
         template = patterns.get(name, "")
@@ -164,16 +187,26 @@ def run_files(bids_root, patterns, task, subject, session, run):
             if kind == "literal":
                 text.append(piece)
             elif values[piece] is None:
-                raise InputError(_CONFIG, f"dataset.patterns.{name}", f"the pattern {template!r} uses {{session}} but the run has no session",
-                                 "remove {session} from the pattern or give the session label")
+                if piece == "session":
+                    raise InputError(_CONFIG, f"dataset.patterns.{name}", f"the pattern {template!r} uses {{session}} but the run has no session",
+                                     "remove {session} from the pattern or give the session label")
+                raise InputError(_CONFIG, f"dataset.{piece}", f"the pattern dataset.patterns.{name} uses {{{piece}}} but dataset.{piece} is empty",
+                                 f"set dataset.{piece} to the {piece} label of the files (e.g. the part after '{piece}-'), "
+                                 f"or remove {{{piece}}} from the pattern")
             else:
                 text.append(values[piece])
-        paths[name] = os.path.join(str(bids_root), "".join(text))
+        root = derivatives_root if (derivatives_root and name in DERIVED_PATTERNS) else bids_root
+        paths[name] = os.path.join(str(root), "".join(text))
     return paths
 
 
-def _bold_regex(template, task):
-    """A regex with named groups for subject/session/run matching the bold template."""
+def _bold_regex(template, fixed, loose=False):
+    """A regex with named groups for subject/session/run matching the bold template.
+
+    ``fixed`` maps ``task``/``space``/``res`` to their configured labels;
+    ``loose`` lets those take any label too (named groups), to find files
+    that differ from the configured ones only there.
+    """
     pieces = _parse_template("bold", template)
     fields = {piece for kind, piece in pieces if kind == "field"}
     for needed in ("subject", "run"):
@@ -184,8 +217,11 @@ def _bold_regex(template, task):
     for kind, piece in pieces:
         if kind == "literal":
             parts.append(re.escape(piece))
-        elif piece == "task":
-            parts.append(re.escape(task))
+        elif piece in _FIXED_PLACEHOLDERS and not loose:
+            if not fixed.get(piece):
+                raise InputError(_CONFIG, f"dataset.{piece}", f"the pattern dataset.patterns.bold uses {{{piece}}} but dataset.{piece} is empty",
+                                 f"set dataset.{piece} to the {piece} label of the BOLD files, or remove {{{piece}}} from the pattern")
+            parts.append(re.escape(fixed[piece]))
         elif piece in seen:
             parts.append(f"(?P={piece})")  # a repeated placeholder must repeat the same label
         else:
@@ -210,7 +246,80 @@ def _natural_key(label):
     return (1, int(label), label) if label.isdigit() else (2, 0, label)
 
 
-def discover_runs(bids_root, patterns, task, subjects=()):
+_ENTITY_RE = re.compile(r"(?:^|[_/])([a-z]+)-([A-Za-z0-9]+)")
+_MAX_SHOWN = 4
+
+
+def _entities(relative):
+    """``{key: value}`` of the BIDS entities in a relative file name (last value wins)."""
+    return dict(_ENTITY_RE.findall(relative))
+
+
+def _example_name(template, fixed, candidates):
+    """The template filled with the configured labels and a found subject, for string similarity."""
+    subject = next((_entities(name).get("sub") for name in candidates if "sub" in _entities(name)), "01")
+    values = {"subject": subject, "session": "1", "run": "1", **{key: value or "" for key, value in fixed.items()}}
+    text = []
+    for kind, piece in _parse_template("bold", template):
+        text.append(piece if kind == "literal" else values.get(piece, ""))
+    return "".join(text)
+
+
+def near_pattern_message(template, fixed, candidates):
+    """Describe the files found near a BOLD pattern that matched nothing.
+
+    Parameters
+    ----------
+    template : str
+        The ``dataset.patterns.bold`` template.
+    fixed : dict
+        ``task``, ``space``, ``res``: the configured labels.
+    candidates : sequence of str
+        Relative paths of the files found at the template's folder depth.
+
+    Returns
+    -------
+    str
+        Empty when nothing is near; otherwise which ``task``/``space``/``res``
+        labels the files near the pattern carry (when they differ from the
+        configured ones only there), which entities the files have that the
+        pattern lacks, and the closest file name (``difflib`` similarity).
+    """
+    if not candidates:
+        return ""
+    notes = []
+    loose, _ = _bold_regex(template, fixed, loose=True)
+    differing = {}
+    for name in candidates:
+        found = loose.fullmatch(name)
+        if found is None:
+            continue
+        for key, value in found.groupdict().items():
+            if key in _FIXED_PLACEHOLDERS and value != fixed.get(key):
+                differing.setdefault(key, {}).setdefault(value, 0)
+                differing[key][value] += 1
+    for key, counts in differing.items():
+        shown = ", ".join(f"{key}-{value} ({count} file{'s' if count > 1 else ''})" for value, count in sorted(counts.items())[:_MAX_SHOWN])
+        notes.append(f"the files that fit the pattern have {shown} where the config asks {key}-{fixed.get(key)}")
+    if not differing:
+        example = _example_name(template, fixed, candidates)
+        wanted = set(_entities(example))
+        extra = {}
+        for name in candidates:
+            for key, value in _entities(name).items():
+                if key not in wanted and key in ("space", "res", "desc", "ses", "task", "echo", "acq", "dir"):
+                    extra.setdefault(key, set()).add(value)
+        for key, values in sorted(extra.items()):
+            shown = ", ".join(f"{key}-{value}" for value in sorted(values)[:_MAX_SHOWN])
+            notes.append(f"the files here carry {shown}, which the pattern does not name"
+                         + (f" (add _{key}-{{{key}}} and set dataset.{key})" if key in ("space", "res") else ""))
+        close = difflib.get_close_matches(example, list(candidates), n=1, cutoff=0.5)
+        if close:
+            notes.append(f"closest file: {close[0]}")
+    return "; ".join(notes)
+
+
+def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None, space=None, res=None):
     """Find every run of a task in a dataset by matching the bold template.
 
     Parameters
@@ -223,6 +332,11 @@ def discover_runs(bids_root, patterns, task, subjects=()):
         The BIDS task label.
     subjects : sequence of str, optional
         Subject labels to keep; empty means every subject found.
+    derivatives_root : str or os.PathLike or None
+        Where the BOLD files are when they are a pipeline's derivatives
+        (see :func:`run_files`); ``None`` or empty: ``bids_root``.
+    space, res : str or None
+        The ``space`` and ``res`` labels for ``{space}`` and ``{res}``.
 
     Returns
     -------
@@ -234,9 +348,11 @@ def discover_runs(bids_root, patterns, task, subjects=()):
     Raises
     ------
     InputError
-        If ``bids_root`` is missing, no run is found, a listed subject is
-        absent or has no run of the task, or two files name the same run
-        (e.g. ``run-1`` and ``run-01``).
+        If ``bids_root`` (or ``derivatives_root``) is missing, no run is found
+        (the message then lists what was found near the pattern, see
+        :func:`near_pattern_message`), a listed subject is absent or has no
+        run of the task, or two files name the same run (e.g. ``run-1`` and
+        ``run-01``).
 
     Notes
     -----
@@ -246,21 +362,26 @@ def discover_runs(bids_root, patterns, task, subjects=()):
     ``subjects`` empty, a subject folder without runs of this task is
     skipped (it may hold other tasks).
     """
-    root = Path(bids_root)
-    if not root.is_dir():
-        raise InputError(root, "dataset.bids_root", "the dataset folder does not exist",
+    raw_root = Path(bids_root)
+    if not raw_root.is_dir():
+        raise InputError(raw_root, "dataset.bids_root", "the dataset folder does not exist",
                          "correct dataset.bids_root or create the dataset there")
+    root = Path(derivatives_root) if derivatives_root else raw_root
+    if not root.is_dir():
+        raise InputError(root, "dataset.derivatives_root", "the derivatives folder does not exist",
+                         "correct dataset.derivatives_root (the preprocessing pipeline's output folder)")
     _check_label("task", task)
+    fixed = {"task": task, "space": space or None, "res": res or None}
     subjects = [str(subject) for subject in subjects]
     for subject in subjects:
         _check_label("subject", subject)
     template = patterns.get("bold", "") if isinstance(patterns, dict) else None
     if not template:
         raise InputError(_CONFIG, "dataset.patterns.bold", "the pattern is empty", "give a template for the BOLD files")
-    regex, has_session = _bold_regex(template, task)
+    regex, has_session = _bold_regex(template, fixed)
     depth = template.count("/")
 
-    matches = {}
+    matches, candidates = {}, []
     for folder, dirnames, filenames in os.walk(root, followlinks=True):  # depth-limited, so link loops end
         relative_folder = os.path.relpath(folder, root)
         level = 0 if relative_folder == "." else relative_folder.count(os.sep) + 1
@@ -273,6 +394,7 @@ def discover_runs(bids_root, patterns, task, subjects=()):
             relative = filename if level == 0 else Path(relative_folder, filename).as_posix()
             found = regex.fullmatch(relative)
             if found is None:
+                candidates.append(relative)
                 continue
             labels = found.groupdict()
             session = labels.get("session") if has_session else None
@@ -296,14 +418,19 @@ def discover_runs(bids_root, patterns, task, subjects=()):
             if folder_match is not None:
                 subject_folders.add(folder_match.group("subject"))
     if not matches and not subjects:
-        raise InputError(root / template, "dataset.patterns.bold", f"no BOLD file of task {task!r} matches the pattern",
-                         "check dataset.bids_root, dataset.task and dataset.patterns.bold")
+        near = near_pattern_message(template, fixed, candidates)
+        raise InputError(root / template, "dataset.patterns.bold",
+                         f"no BOLD file of task {task!r} matches the pattern" + (f" ({near})" if near else ""),
+                         "check dataset.bids_root, dataset.derivatives_root, dataset.task, dataset.space, dataset.res "
+                         "and dataset.patterns.bold")
     for subject in subjects:
         if subject in found_subjects:
             continue
         if subject in subject_folders:
+            own = [name for name in candidates if name.startswith(template.split("/", 1)[0].replace("{subject}", subject) + "/")]
+            near = near_pattern_message(template, fixed, own)
             raise InputError(root / template.replace("{subject}", subject).replace("{task}", task), "dataset.subjects",
-                             f"subject {subject} has no run of task {task!r}",
+                             f"subject {subject} has no run of task {task!r}" + (f" ({near})" if near else ""),
                              f"add its BOLD runs or remove {subject} from dataset.subjects")
         raise InputError(root, "dataset.subjects",
                          f"subject {subject} is not in the dataset (found: {', '.join(found_subjects) or 'none'})",
@@ -315,7 +442,7 @@ def discover_runs(bids_root, patterns, task, subjects=()):
         if subject not in keep:
             continue
         entry = {"subject": subject, "session": session, "run": run, "run_id": make_run_id(session, run)}
-        entry.update(run_files(root, patterns, task, subject, session, run))
+        entry.update(run_files(raw_root, patterns, task, subject, session, run, derivatives_root=derivatives_root, space=space, res=res))
         runs.append(entry)
     runs.sort(key=lambda entry: (_natural_key(entry["subject"]), _natural_key(entry["session"]), _natural_key(entry["run"])))
     return runs
@@ -444,7 +571,7 @@ def _numeric_column(frame, column, path):
     return numbers
 
 
-def read_events(path, n_scans, tr_s):
+def read_events(path, n_scans, tr_s, condition_column="trial_type"):
     """Read and check a BIDS events file.
 
     Parameters
@@ -455,6 +582,9 @@ def read_events(path, n_scans, tr_s):
         Number of volumes in the run.
     tr_s : float
         Repetition time in seconds.
+    condition_column : str
+        The column that names each event's condition (``dataset.condition_column``);
+        its values are returned as ``trial_type``.
 
     Returns
     -------
@@ -482,7 +612,7 @@ def read_events(path, n_scans, tr_s):
         raise InputError(path, "n_scans", f"expected a positive number of volumes, got {n_scans!r}", "pass the BOLD run's volume count")
     if not np.isfinite(tr_s) or tr_s <= 0:
         raise InputError(path, "tr_s", f"expected a positive TR in seconds, got {tr_s!r}", "pass the run's RepetitionTime")
-    frame = _read_text_columns(path, _EVENT_COLUMNS, "events file")
+    frame = _read_text_columns(path, ("onset", "duration", condition_column), "events file")
     if len(frame) == 0:
         raise InputError(path, "rows", "the events file has a header but no events", "add one row per event")
     missing_onset = np.flatnonzero(frame["onset"].isna().to_numpy())
@@ -503,10 +633,11 @@ def read_events(path, n_scans, tr_s):
         raise InputError(path, "onset", f"row {row + 1} (line {row + 2}) starts at {onset[row]:g} s, at or after the end of the scan "
                                         f"({n_scans} volumes x {tr_s:g} s = {scan_end_s:g} s)",
                          "check the onsets are in seconds from the first volume and that events and BOLD belong to the same run")
-    trial_type = frame["trial_type"].fillna("").str.strip()
+    trial_type = frame[condition_column].fillna("").str.strip()
     labelled = (trial_type != "").to_numpy()
     if not labelled.any():
-        raise InputError(path, "trial_type", "no event has a trial_type (all n/a or empty)", "label each event with its condition")
+        raise InputError(path, condition_column, f"no event has a {condition_column} (all n/a or empty)",
+                         "label each event with its condition, or name the column that does in dataset.condition_column")
     events = pd.DataFrame({"onset": onset[labelled], "duration": duration[labelled],
                            "trial_type": trial_type[labelled].to_numpy(dtype=object)})
     events.attrs["n_unlabelled"] = int((~labelled).sum())
@@ -576,3 +707,114 @@ def read_confounds(path, columns, n_scans):
         values[:n_leading] = 0.0  # leading n/a of derivative columns
         matrix[:, index] = values
     return matrix
+
+
+def _selector_text(selector):
+    if isinstance(selector, dict):
+        return f"first {selector.get('first')} of {selector.get('prefix')}*"
+    return str(selector)
+
+
+def _numeric_suffix_key(name, prefix):
+    rest = name[len(prefix):]
+    digits = re.match(r"\d+", rest)
+    return (0, int(digits.group()), rest) if digits else (1, 0, rest)
+
+
+def select_confound_columns(available, selectors, path=None):
+    """The confound columns a list of selectors picks from a table's header.
+
+    Parameters
+    ----------
+    available : sequence of str
+        The confounds table's column names, in file order.
+    selectors : sequence of str or dict
+        Each one of: a column name (``"trans_x"``); a prefix ending in ``*``
+        (``"spike_*"``: every column whose name starts with the prefix, in
+        file order, possibly none: a run without flagged volumes has no such
+        column); ``{"prefix": p, "first": k}`` (the first ``k`` columns
+        starting with ``p``, ordered by the number after the prefix: e.g.
+        the first k noise components).
+    path : str or os.PathLike or None
+        The table, named in messages.
+
+    Returns
+    -------
+    list of str
+        The chosen names, in selector order, each once.
+
+    Raises
+    ------
+    InputError
+        For an absent named column (close names are suggested) or fewer than
+        ``k`` columns with a prefix.
+
+    Examples
+    --------
+    >>> select_confound_columns(["a", "c_2", "c_10", "c_1", "s_7"], ["a", "s_*", {"prefix": "c_", "first": 2}])
+    ['a', 's_7', 'c_1', 'c_2']
+    """
+    available = [str(column) for column in available]
+    chosen = []
+    for selector in selectors:
+        if isinstance(selector, dict):
+            prefix, first = str(selector["prefix"]), int(selector["first"])
+            members = sorted((column for column in available if column.startswith(prefix)),
+                             key=lambda column: _numeric_suffix_key(column, prefix))
+            if len(members) < first:
+                raise InputError(path, "dataset.confounds", f"{_selector_text(selector)} asks for {first} columns "
+                                                            f"but the table has {len(members)} starting with {prefix!r}",
+                                 "lower 'first' or correct the prefix")
+            picked = members[:first]
+        elif selector.endswith("*"):
+            prefix = selector[:-1]
+            picked = [column for column in available if column.startswith(prefix)]
+        else:
+            if selector not in available:
+                close = difflib.get_close_matches(selector, available, n=5, cutoff=0.5)
+                hint = f"close names: {', '.join(close)}" if close else f"{len(available)} columns, none close"
+                raise InputError(path, selector, f"the confound column is absent ({hint})",
+                                 "correct dataset.confounds to name columns of the confounds table")
+            picked = [selector]
+        chosen += [column for column in picked if column not in chosen]
+    return chosen
+
+
+def confound_table_columns(path):
+    """The column names of a confounds table (header only, checked by ``read_tsv``)."""
+    return [str(column) for column in read_tsv(path, required_columns=(), what="confounds table").columns]
+
+
+def count_flagged_initial_volumes(flags):
+    """How many volumes at the start of a run are flagged as not yet at steady state.
+
+    Parameters
+    ----------
+    flags : array_like, shape (n_scans, n_flag_columns)
+        The pipeline's flag columns (one column per flagged volume, 1 at that
+        volume, 0 elsewhere; any non-zero value counts as a flag).
+
+    Returns
+    -------
+    int
+        The length of the run of flagged volumes that starts at volume 0
+        (0 if the first volume is not flagged or there is no flag column).
+
+    Notes
+    -----
+    Only the leading flagged volumes are dropped: a flagged volume after an
+    unflagged one is not an initial transient and stays in the data (its own
+    flag column, if selected as a confound, models it).
+
+    Examples
+    --------
+    >>> count_flagged_initial_volumes([[1, 0], [0, 1], [0, 0], [0, 0]])
+    2
+    """
+    values = np.asarray(flags, dtype=np.float64)
+    if values.ndim == 1:
+        values = values[:, None]
+    if values.shape[1] == 0:
+        return 0
+    flagged = np.any(np.nan_to_num(values) != 0, axis=1)
+    return int(flagged.size if flagged.all() else np.argmin(flagged))

@@ -2,17 +2,20 @@
 
 A job's memo key is sha256 over (step, code hash, canonical settings, the
 content hash of every input). Outputs are kept in a content-addressed store;
-a job whose key is already stored restores its outputs from there (hard link,
-or copy across file systems) instead of computing them, and says so in its
-log. A touched-but-unchanged input or a reverted edit therefore costs almost
+a job whose key is already stored restores its outputs from there (a copy,
+or a reflink where the file system shares blocks copy-on-write; never a hard
+link, so a change to a store object cannot reach a result file) instead of
+computing them, and says so in its log. A job Snakemake was told to force
+(``--forcerun``, ``--forceall``) bypasses the memo and hashes its inputs
+afresh. A touched-but-unchanged input or a reverted edit therefore costs almost
 nothing (DESIGN invariant 4).
 
 Store layout (``study.store_dir``, ``results/.store`` by default)::
 
     objects/ab/<key>/entry.json   what the entry holds: output names, sha256
     objects/ab/<key>/0, 1, ...    the output files, read-only
-    hashes/<sha1 of path>.json    content hash of an input, by path+size+mtime
-    incoming/                     entries being written (renamed into objects/)
+    hashes/<sha1 of path>.json    content hash of a file, by size, mtime, inode and ctime (no path kept)
+    incoming/<key>.<host>.<pid>.* entries being written (renamed into objects/)
 
 Every entry is written under ``incoming/`` and renamed into place as a whole,
 so a reader never sees half an entry and two jobs that store the same key at
@@ -40,7 +43,8 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import write_json
 from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
-__all__ = ["MemoStore", "memo_key", "run_job", "file_system_error", "package_versions", "relative_path"]
+__all__ = ["MemoStore", "memo_key", "run_job", "file_system_error", "package_versions", "relative_path", "forced_jobs",
+           "FORCED_JOBS_VARIABLE", "copy_file"]
 
 _VERSIONED_PACKAGES = ("numpy", "scipy", "nibabel", "scikit-learn", "pandas", "PyYAML", "matplotlib", "snakemake", "isal", "foldwise")
 
@@ -87,20 +91,29 @@ class MemoStore:
     def __init__(self, root):
         self.root = Path(root)
 
-    # -- input hashing, cached per path + size + mtime ---------------------
-    def content_hash(self, path):
-        """sha256 of a file's content, cached by (path, size, mtime_ns)."""
+    # -- input hashing, cached per file identity ----------------------------
+    def content_hash(self, path, fresh=False):
+        """sha256 of a file's content, cached by (size, mtime_ns, inode, ctime_ns).
+
+        The inode and ctime make an edit that keeps the size and the mtime
+        (``cp -p``, ``rsync -t``, unpacking an archive) a cache miss: a
+        process can set a file's mtime but not its ctime. The cache file is
+        named by a hash of the path and holds no path, so a shared store
+        keeps no user's folders. ``fresh=True`` hashes the content whatever
+        the cache says (a forced job).
+        """
         stat = os.stat(path)
         cache_name = hashlib.sha1(os.path.abspath(path).encode("utf-8")).hexdigest()
-        cache_path = self.root / "hashes" / f"{cache_name}.json"
-        stamp = [stat.st_size, stat.st_mtime_ns]
-        with contextlib.suppress(OSError, ValueError, KeyError):
-            cached = json.loads(cache_path.read_text(encoding="utf-8"))
-            if cached["stamp"] == stamp:
-                return cached["sha256"]
+        cache_path = self.root / "hashes" / cache_name[:2] / f"{cache_name}.json"
+        stamp = [stat.st_size, stat.st_mtime_ns, stat.st_ino, stat.st_ctime_ns]
+        if not fresh:
+            with contextlib.suppress(OSError, ValueError, KeyError, TypeError):
+                cached = json.loads(cache_path.read_text(encoding="utf-8"))
+                if cached["stamp"] == stamp:
+                    return cached["sha256"]
         digest = hash_file(path)
         with contextlib.suppress(OSError):
-            write_json(cache_path, {"path": os.path.abspath(path), "stamp": stamp, "sha256": digest})
+            write_json(cache_path, {"stamp": stamp, "sha256": digest})
         return digest
 
     # -- entries -----------------------------------------------------------
@@ -129,7 +142,7 @@ class MemoStore:
                 shutil.rmtree(entry, ignore_errors=True)
                 return False
         for number, (_, _, path) in enumerate(items):
-            _link_or_copy(entry / str(number), Path(path))
+            _restore_copy(entry / str(number), Path(path))
         return True
 
     def store(self, key, outputs, description):
@@ -139,7 +152,8 @@ class MemoStore:
             return
         incoming = self.root / "incoming"
         incoming.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f"{key[:12]}.", dir=incoming))
+        # host and pid in the name: a later run removes it only if this process is gone (store.remove_leftovers)
+        staging = Path(tempfile.mkdtemp(prefix=f"{key[:12]}.{_HOST}.{os.getpid()}.", dir=incoming))
         try:
             files = []
             for number, (name, index, path) in enumerate(_flatten(outputs)):
@@ -159,17 +173,52 @@ class MemoStore:
                 shutil.rmtree(staging, ignore_errors=True)
 
 
-def _link_or_copy(source, destination):
-    """Put ``source`` at ``destination`` atomically: hard link, else copy."""
+_HOST = platform.node().replace(".", "_") or "host"
+_FICLONE = 0x40049409  # Linux ioctl: share the blocks of another file (btrfs, XFS, ...), copy-on-write
+
+
+def copy_file(source, destination):
+    """Copy ``source`` to ``destination`` as a reflink where the file system can, else byte by byte.
+
+    Never a hard link: the result must not share an inode with a store object,
+    or a change to one (bit rot on a shared store, a write as root) would
+    silently change the other.
+    """
+    with open(source, "rb") as reader, open(destination, "wb") as writer:
+        try:
+            import fcntl
+            fcntl.ioctl(writer.fileno(), _FICLONE, reader.fileno())
+            return
+        except (ImportError, OSError):
+            pass
+        shutil.copyfileobj(reader, writer, 1 << 20)
+
+
+def _restore_copy(source, destination):
+    """Put a copy of ``source`` at ``destination`` atomically (written beside it, then renamed)."""
     destination.parent.mkdir(parents=True, exist_ok=True)
     temporary = destination.with_name(f".{destination.name}.{os.getpid()}.restore")
     with contextlib.suppress(FileNotFoundError):
         os.unlink(temporary)
-    try:
-        os.link(source, temporary)
-    except OSError:
-        shutil.copyfile(source, temporary)
+    copy_file(source, temporary)
+    os.chmod(temporary, 0o644)
     os.replace(temporary, destination)
+
+
+# The workflow's onstart hook writes the provenance paths of the jobs Snakemake
+# forces into a file and names it in this variable (foldwise.provenance.runs).
+FORCED_JOBS_VARIABLE = "FOLDWISE_FORCED_JOBS"
+
+
+def forced_jobs():
+    """The provenance-record paths of the jobs this run forces (a set; empty outside a forced run)."""
+    listing = os.environ.get(FORCED_JOBS_VARIABLE)
+    if not listing:
+        return frozenset()
+    try:
+        return frozenset(line for line in Path(listing).read_text(encoding="utf-8").splitlines() if line)
+    except OSError:
+        return frozenset()
 
 
 def memo_key(step, code, settings, input_hashes, output_names):
@@ -322,15 +371,19 @@ def _run_job(smk, step, job):
     canonical_json(settings)  # refuses values that have no canonical form (NaN) before any work
     code = smk.params.code
     store = MemoStore(smk.config["study"]["store_dir"])
+    # A job Snakemake forces (--forcerun, --forceall) recomputes: no restore, no cached input hash.
+    forced = os.path.normpath(str(smk.output.provenance)) in {os.path.normpath(path) for path in forced_jobs()}
     try:
-        input_hashes = {name: [store.content_hash(path) for path in ([paths] if isinstance(paths, str) else paths)]
+        input_hashes = {name: [store.content_hash(path, fresh=forced) for path in ([paths] if isinstance(paths, str) else paths)]
                         for name, paths in sorted(inputs.items())}
         output_counts = {name: (1 if isinstance(paths, str) else len(paths)) for name, paths in outputs.items()}
         # The packages that shape the numbers are part of the code: an upgrade recomputes.
         key = memo_key(step, {"code": code, "versions": package_versions()}, settings, input_hashes, output_counts)
         # FOLDWISE_MEMO=off (set by `make verify`) recomputes everything for real.
         use_memo = os.environ.get("FOLDWISE_MEMO", "on") != "off"
-        restored = use_memo and store.restore(key, outputs, log)
+        restored = use_memo and not forced and store.restore(key, outputs, log)
+        if forced:
+            log.info("forced by Snakemake (--forcerun/--forceall): the memo is bypassed and the inputs hashed afresh")
         if restored:
             log.info("restored from the content memo (key %s); nothing recomputed", key)
         else:

@@ -362,6 +362,7 @@ def run_job(smk, step, job):
 
 def _run_job(smk, step, job):
     started = time.perf_counter()
+    cpu_started = time.process_time()  # this process only: the job's own CPU, without start-up and imports
     log = _job_logger(smk.log[0] if len(smk.log) else None)
     inputs = _named(smk.input)
     outputs = _named(smk.output, exclude=("provenance",))
@@ -415,6 +416,7 @@ def _run_job(smk, step, job):
         "versions": package_versions(),
         "platform": {"system": platform.system(), "machine": platform.machine()},
         "wall_time_s": round(wall_time_s, 3),
+        "cpu_time_s": round(time.process_time() - cpu_started, 3),
         "peak_memory_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0, 1),
     }
     write_json(smk.output.provenance, record)

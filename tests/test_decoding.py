@@ -342,23 +342,70 @@ def test_a_shared_code_decodes_across_sets_and_a_set_specific_code_does_not(clas
     assert both.n_test.tolist() == [12] * 6 and specific.directions["seen->heard"].n_train.tolist() == [30] * 6
 
 
-def test_cross_null_permutes_training_labels_and_keeps_test_labels_true():
+def test_cross_null_uses_one_relabeling_for_training_and_testing():
+    # Permutation k relabels every pattern once (within run x set blocks); null value k of every direction equals
+    # decoding the data relabeled by k (training and held-out labels both the relabeled ones).
     patterns, labels, sets, runs = _cross_patterns(shared=True, seed=3, n_voxels=20)
     options = {"set_names": ("seen", "heard"), "classifier": "gaussian_nb", "selection": "f"}
     result = decoding.decode_cross(patterns, labels, sets, runs, [5, "all"], n_permutations=3, rng=np.random.default_rng(8), **options)
+    assert not result.null_exact and result.permuted_labels.shape == (3, labels.size)
     for permutation, relabeled in enumerate(result.permuted_labels):
         # blocks are run x set: each keeps its labels
         for block in set(zip(runs, sets)):
             members = (runs == block[0]) & (sets == block[1])
             np.testing.assert_array_equal(np.sort(relabeled[members]), np.sort(labels[members]))
-        for train_set, direction in ((0, "seen->heard"), (1, "heard->seen")):
-            mixed = np.where(sets == train_set, relabeled, labels)  # permuted training set, true test set
-            rerun = decoding.decode_cross(patterns, mixed, sets, runs, [5, "all"], **options)
-            np.testing.assert_allclose(result.directions[direction].null_balanced_accuracy[permutation],
-                                       rerun.directions[direction].balanced_accuracy.mean(axis=0))
+        rerun = decoding.decode_cross(patterns, relabeled, sets, runs, [5, "all"], **options)
+        for direction, scores in result.directions.items():
+            np.testing.assert_allclose(scores.null_balanced_accuracy[permutation],
+                                       rerun.directions[direction].balanced_accuracy.mean(axis=0), err_msg=direction)
+            np.testing.assert_allclose(scores.null_accuracy[permutation], rerun.directions[direction].accuracy.mean(axis=0))
     both = result.directions["seen<->heard"]
     np.testing.assert_allclose(both.null_balanced_accuracy, (result.directions["seen->heard"].null_balanced_accuracy
                                                              + result.directions["heard->seen"].null_balanced_accuracy) / 2)
+
+
+@pytest.mark.parametrize("classifier", ["correlation_centroid", "linear_svm"])
+def test_a_to_a_in_a_cross_analysis_equals_a_within_analysis_with_the_same_folds_and_seed(classifier):
+    # The same accuracies must get the same p-value whether reached as A->A or as a within analysis of set A.
+    patterns, labels, sets, runs = _cross_patterns(shared=False, seed=21, n_voxels=24)
+    counts = [6, "all"]
+    cross = decoding.decode_cross(patterns, labels, sets, runs, counts, set_names=("seen", "heard"), classifier=classifier,
+                                  n_permutations=20, rng=np.random.default_rng(4))
+    for set_number, direction in ((0, "seen->seen"), (1, "heard->heard")):
+        members = sets == set_number
+        within = decoding.decode_curve(patterns[members], labels[members], runs[members], counts, classifier=classifier,
+                                       n_permutations=20, rng=np.random.default_rng(4))
+        if set_number == 0:  # set A's blocks come first in the stream: the very same relabelings
+            np.testing.assert_array_equal(cross.permuted_labels[:, members], within.permuted_labels)
+            np.testing.assert_array_equal(cross.directions[direction].null_balanced_accuracy,
+                                          within.directions["within"].null_balanced_accuracy)
+        np.testing.assert_array_equal(cross.directions[direction].balanced_accuracy, within.directions["within"].balanced_accuracy)
+
+
+def test_a_small_relabeling_space_is_enumerated_each_relabeling_once():
+    # 2 classes x 4 runs, one pattern per class and run: 2**4 = 16 label vectors, 8 up to renaming the classes
+    # (hand count; Hemerik & Goeman 2018, JRSS-B 80:137-155, for exact tests over a group of relabelings).
+    rng = np.random.default_rng(2)
+    runs = np.repeat(np.arange(4), 2)
+    labels = np.tile([0, 1], 4)
+    patterns = rng.standard_normal((8, 10)) + 1.5 * labels[:, None] * (np.arange(10) < 4)
+    result = decoding.decode_curve(patterns, labels, runs, ["all"], classifier="correlation_centroid", n_permutations=100,
+                                   rng=np.random.default_rng(0))
+    assert result.null_exact and result.n_relabelings == 8
+    relabeled = result.permuted_labels
+    assert relabeled.shape == (8, 8)
+    np.testing.assert_array_equal(relabeled[0], labels)  # the actual labeling is one of them
+    renamed = np.where(relabeled[:, :1] == 0, relabeled, 1 - relabeled)  # canonical form up to class renaming
+    assert len({tuple(row) for row in renamed}) == 8  # each of the 8 exactly once
+    within = result.directions["within"]
+    observed = within.balanced_accuracy.mean(axis=0)[0]
+    p_value = np.mean(within.null_balanced_accuracy[:, 0] >= observed - 1e-12)
+    assert np.isclose(p_value * 8, round(p_value * 8)) and p_value >= 1 / 8
+    assert result.p_min == 1 / 8
+    # asking for fewer permutations than the space holds draws them instead (with the identity counted apart)
+    drawn = decoding.decode_curve(patterns, labels, runs, ["all"], classifier="correlation_centroid", n_permutations=5,
+                                  rng=np.random.default_rng(0))
+    assert not drawn.null_exact and drawn.permuted_labels.shape == (5, 8) and drawn.p_min == 1 / 6
 
 
 @pytest.mark.parametrize("call", [

@@ -16,7 +16,10 @@ One fold, in order (everything fitted on the training patterns only):
    top-ranked voxels and predict the held-out patterns.
 
 The permutation null relabels the patterns within runs (runs are the
-exchangeability blocks) and reruns the whole fold loop per permutation,
+exchangeability blocks; run x set blocks in cross-decoding) *once* per
+permutation, and that one label vector is used for training and testing in
+every fold (:mod:`foldwise.decoding.permutations`: small spaces are
+enumerated exactly, larger ones drawn), and reruns the whole fold loop per permutation,
 label-dependent selection included; only label-free work (demeaning, the
 scaler, ``signal``/``none`` rankings, Gram matrices of label-free selections)
 is computed once per fold and shared by all permutations and counts. The real
@@ -31,6 +34,7 @@ import numpy as np
 from foldwise.decoding import classifiers as clf
 from foldwise.errors import InputError
 from foldwise.decoding.folds import held_out_runs, make_folds
+from foldwise.decoding.permutations import block_codes, draw_relabelings, null_relabelings, smallest_p
 from foldwise.decoding.selection import (LABEL_FREE_METHODS, SELECTION_METHODS, f_scores, random_order, rank_voxels, signal_scores, stability_scores,
                         top_ranked)
 
@@ -106,12 +110,24 @@ class DecodeResult:
         (``"within"`` for plain decoding, else the set name).
     voxel_scores : dict of str to ndarray or None
         The scores behind each ranking (None for selection ``none``).
-    permuted_labels : ndarray of int, shape (n_permutations, n_patterns)
+    permuted_labels : ndarray of int, shape (n_null, n_patterns)
+        The null's relabelings (one label vector per permutation, used for
+        training and testing alike). With ``null_exact`` every distinct
+        relabeling once, the actual labeling first.
     states : dict of str to list of dict, or None
         With ``keep_state``: per training set and fold, the training-side
         state (scaler, scores, ranking, fitted model per count).
     n_not_converged : int
         Logistic-regression fits that stopped before converging.
+    null_exact : bool
+        The null lists the whole relabeling space (p is then
+        ``#{null >= observed} / n_null``), else it holds random draws
+        (``(1 + #{null >= observed}) / (1 + n_null)``).
+    n_relabelings : int
+        Distinct relabelings the design allows (up to class renaming where
+        that leaves scores unchanged); 0 without a null.
+    p_min : float
+        The smallest p-value the null can give (NaN without a null).
     """
 
     voxel_counts: tuple
@@ -125,6 +141,9 @@ class DecodeResult:
     permuted_labels: np.ndarray
     states: dict | None = None
     n_not_converged: int = 0
+    null_exact: bool = False
+    n_relabelings: int = 0
+    p_min: float = float("nan")
 
 
 # -- preprocessing -------------------------------------------------------------------
@@ -270,15 +289,24 @@ def permute_within_runs(labels, run_labels, n_permutations, rng):
         raise InputError(None, "n_permutations", f"expected a non-negative integer, got {n_permutations!r}", "set n_permutations >= 0")
     if n_permutations and not isinstance(rng, np.random.Generator):
         raise InputError(None, "rng", f"expected a numpy.random.Generator, got {type(rng).__name__}", "pass np.random.default_rng(seed)")
-    permuted = np.empty((int(n_permutations), array.size), dtype=array.dtype)
-    if not n_permutations:
-        return permuted
-    _, block_index = np.unique(runs, return_inverse=True)
-    for block in range(int(block_index.max()) + 1):
-        members = np.flatnonzero(block_index == block)
-        order = np.argsort(rng.random((int(n_permutations), members.size)), axis=1)
-        permuted[:, members] = array[members][order]
-    return permuted
+    return draw_relabelings(array, runs, int(n_permutations), rng)
+
+
+def _null_label_rows(classes, blocks, n_permutations, rng, n_classes):
+    """Label rows for one pass of the fold loop: row 0 the real labels, the null's rows after it.
+
+    Returns ``(label_rows, null_start, exact, space)``: the null is
+    ``label_rows[null_start:]``. An exactly enumerated null starts at row 0
+    (its first relabeling is the actual one), a drawn null at row 1.
+    """
+    if isinstance(n_permutations, bool) or not isinstance(n_permutations, (int, np.integer)) or n_permutations < 0:
+        raise InputError(None, "n_permutations", f"expected a non-negative integer, got {n_permutations!r}", "set n_permutations >= 0")
+    if n_permutations and not isinstance(rng, np.random.Generator):
+        raise InputError(None, "rng", f"expected a numpy.random.Generator, got {type(rng).__name__}", "pass np.random.default_rng(seed)")
+    relabeled, exact, space = null_relabelings(classes, blocks, int(n_permutations), rng, n_classes)
+    if exact:
+        return relabeled, 0, True, space
+    return np.vstack([classes[np.newaxis], relabeled]), 1, False, space
 
 
 # -- metrics --------------------------------------------------------------------------
@@ -646,15 +674,18 @@ def decode_curve(patterns, labels, run_labels, voxel_counts, *, folds=None, n_cl
     the held-out labels of a fold are the permuted ones: the analysis is
     rerun on relabeled data, selection included (Nichols & Holmes 2002,
     Human Brain Mapping 15:1-25): every label-dependent step is redone for
-    each relabeling, or the null would be too narrow. The p-value of an observed fold-mean score is
-    ``(1 + #{null >= observed}) / (1 + n_permutations)`` (Phipson & Smyth
-    2010, Stat. Appl. Genet. Mol. Biol. 9:39).
+    each relabeling, or the null would be too narrow. When the design allows
+    no more distinct relabelings than requested, the null lists each once
+    (the actual one first) and the p-value is ``#{null >= observed} /
+    n_null``; otherwise the relabelings are drawn and the p-value of an
+    observed fold-mean score is ``(1 + #{null >= observed}) / (1 +
+    n_permutations)`` (Hemerik & Goeman 2018, JRSS-B 80:137-155; Phipson &
+    Smyth 2010, Stat. Appl. Genet. Mol. Biol. 9:39).
     """
     options = _options(classifier, selection, demean_patterns, svm_c, logistic_c)
     data, classes, runs, n_classes = _check_inputs(patterns, labels, run_labels, n_classes)
     folds = make_folds(runs) if folds is None else folds
-    permuted = permute_within_runs(classes, runs, n_permutations, rng)
-    label_rows = np.vstack([classes[np.newaxis], permuted])
+    label_rows, null_start, exact, space = _null_label_rows(classes, block_codes(runs), n_permutations, rng, n_classes)
     n_used, _ = resolve_counts(voxel_counts, data.shape[1])
     unique_counts, count_index = np.unique(n_used, return_inverse=True)
     fold_accuracy, fold_balanced, n_train, n_test, rankings, voxel_scores, states = [], [], [], [], [], [], []
@@ -681,13 +712,15 @@ def decode_curve(patterns, labels, run_labels, voxel_counts, *, folds=None, n_cl
     fold_accuracy, fold_balanced = np.stack(fold_accuracy), np.stack(fold_balanced)  # (n_folds, L, n_counts)
     within = DirectionScores(
         accuracy=fold_accuracy[:, 0], balanced_accuracy=fold_balanced[:, 0], n_train=np.asarray(n_train), n_test=np.asarray(n_test),
-        confusion=confusion, null_accuracy=_fold_means(fold_accuracy[:, 1:]), null_balanced_accuracy=_fold_means(fold_balanced[:, 1:]),
-        predictions=predicted)
+        confusion=confusion, null_accuracy=_fold_means(fold_accuracy[:, null_start:]),
+        null_balanced_accuracy=_fold_means(fold_balanced[:, null_start:]), predictions=predicted)
+    permuted = label_rows[null_start:]
     return DecodeResult(
         voxel_counts=tuple(voxel_counts), n_used=n_used, n_voxels=data.shape[1], n_classes=n_classes, test_runs=held_out_runs(runs, folds),
         directions={"within": within}, rankings={"within": np.stack(rankings)},
         voxel_scores={"within": None if selection == "none" else np.stack(voxel_scores)}, permuted_labels=permuted,
-        states={"within": states} if keep_state else None, n_not_converged=n_not_converged)
+        states={"within": states} if keep_state else None, n_not_converged=n_not_converged, null_exact=exact,
+        n_relabelings=space.n_distinct if n_permutations else 0, p_min=smallest_p(permuted.shape[0], exact, space))
 
 
 def permutation_null(patterns, labels, run_labels, voxel_counts, n_permutations, rng, **options):
@@ -752,9 +785,17 @@ def decode_cross(patterns, labels, set_index, run_labels, voxel_counts, *, set_n
     Each fold fits one model per training set (scaler, selection and
     classifier from that set's training-run patterns only) and predicts the
     held-out runs' patterns of both sets, so ``A->B`` and ``A->A`` share a
-    fit. For the null, the training labels are permuted within run-by-set
-    blocks and the test labels stay true (Kaplan, Man & Greening 2015,
-    Front. Hum. Neurosci. 9:151, on cross-classification).
+    fit. For the null, the labels of *all* patterns are relabeled once per
+    permutation within run-by-set blocks, and that one label vector serves
+    as the training labels and as the held-out truth of every direction, as
+    in plain decoding: permuting the training labels alone and testing
+    against the true labels gives a null that is too narrow for ``A<->B``,
+    ``A->A`` and ``B->B`` (a run trained with permuted labels in one fold is
+    tested with its true labels in another). The blocks are ordered set
+    A's runs first (:func:`foldwise.decoding.permutations.block_codes`), so
+    ``A->A`` gets exactly the observed score and null of a within analysis
+    of set A's patterns with the same folds and generator (when both nulls
+    are drawn, or both enumerated).
     """
     options = _options(classifier, selection, demean_patterns, svm_c, logistic_c)
     data, classes, runs, n_classes = _check_inputs(patterns, labels, run_labels, n_classes)
@@ -765,9 +806,7 @@ def decode_cross(patterns, labels, set_index, run_labels, voxel_counts, *, set_n
     if len(set_names) != 2 or set_names[0] == set_names[1]:
         raise InputError(None, "sets", f"expected two distinct set names, got {set_names!r}", "name the two sets differently")
     folds = make_folds(runs) if folds is None else folds
-    _, run_codes = np.unique(runs, return_inverse=True)
-    permuted = permute_within_runs(classes, run_codes * 2 + sets, n_permutations, rng)
-    label_rows = np.vstack([classes[np.newaxis], permuted])
+    label_rows, null_start, exact, space = _null_label_rows(classes, block_codes(runs, sets), n_permutations, rng, n_classes)
     n_used, _ = resolve_counts(voxel_counts, data.shape[1])
     unique_counts, count_index = np.unique(n_used, return_inverse=True)
     n_counts = len(n_used)
@@ -800,7 +839,7 @@ def decode_cross(patterns, labels, set_index, run_labels, voxel_counts, *, set_n
                 if columns.size == 0:
                     raise InputError(None, "sets", f"set {set_names[test_set]!r} has no pattern in a held-out run", "give each set patterns in every run")
                 pair = (train_set, test_set)
-                truth = classes[test][columns]  # test labels stay true under permutation
+                truth = label_rows[:, test[columns]][:, np.newaxis, :]  # one relabeling per row, for training and testing alike
                 chosen = predictions[:, :, columns]
                 fold_acc[pair].append(accuracy(truth, chosen))
                 fold_bal[pair].append(balanced_accuracy(truth, chosen, n_classes))
@@ -808,13 +847,13 @@ def decode_cross(patterns, labels, set_index, run_labels, voxel_counts, *, set_n
                 counts_test[pair].append(columns.size)
                 predicted[pair][:, test[columns]] = chosen[0]
                 for position in range(n_counts):
-                    confusion[pair][position] += confusion_counts(truth, chosen[0, position], n_classes)
+                    confusion[pair][position] += confusion_counts(classes[test[columns]], chosen[0, position], n_classes)
 
     def scores_of(pair):
         acc, bal = np.stack(fold_acc[pair]), np.stack(fold_bal[pair])
         return DirectionScores(accuracy=acc[:, 0], balanced_accuracy=bal[:, 0], n_train=np.asarray(counts_train[pair]),
-                               n_test=np.asarray(counts_test[pair]), confusion=confusion[pair], null_accuracy=_fold_means(acc[:, 1:]),
-                               null_balanced_accuracy=_fold_means(bal[:, 1:]), predictions=predicted[pair])
+                               n_test=np.asarray(counts_test[pair]), confusion=confusion[pair], null_accuracy=_fold_means(acc[:, null_start:]),
+                               null_balanced_accuracy=_fold_means(bal[:, null_start:]), predictions=predicted[pair])
 
     forward, backward, same_first, same_second = scores_of((0, 1)), scores_of((1, 0)), scores_of((0, 0)), scores_of((1, 1))
     both = DirectionScores(
@@ -828,4 +867,6 @@ def decode_cross(patterns, labels, set_index, run_labels, voxel_counts, *, set_n
         voxel_counts=tuple(voxel_counts), n_used=n_used, n_voxels=data.shape[1], n_classes=n_classes, test_runs=held_out_runs(runs, folds),
         directions=directions, rankings={name: np.stack(value) for name, value in rankings.items()},
         voxel_scores={name: (None if selection == "none" else np.stack(value)) for name, value in voxel_scores.items()},
-        permuted_labels=permuted, states=states if keep_state else None, n_not_converged=n_not_converged)
+        permuted_labels=label_rows[null_start:], states=states if keep_state else None, n_not_converged=n_not_converged,
+        null_exact=exact, n_relabelings=space.n_distinct if n_permutations else 0,
+        p_min=smallest_p(label_rows.shape[0] - null_start, exact, space))

@@ -60,6 +60,7 @@ from foldwise.decoding.classifiers import linear_svm_fit_predict
 from foldwise.decoding.curves import apply_scaler, balanced_accuracy, cross_directions, fit_scaler, permute_within_runs
 from foldwise.errors import InputError
 from foldwise.decoding.folds import FOLD_SCHEMES, make_folds
+from foldwise.decoding.permutations import block_codes
 from foldwise.stats.group import TIE_TOLERANCE, group_mean_null
 
 __all__ = [
@@ -889,11 +890,11 @@ def searchlight_scores(patterns, labels, run_labels, spheres, *, set_index=None,
     patterns (:func:`foldwise.decoding.curves.fit_scaler`, StandardScaler's
     arithmetic) once, for all spheres and permutations, and the classifier
     sees nothing else of the held-out run. The null follows the ROI decoding
-    of :mod:`foldwise.decoding.curves`: plain decoding relabels all patterns within
-    runs (training and held-out labels both permuted; Nichols & Holmes 2002,
-    Human Brain Mapping 15:1-25); cross-decoding permutes the training labels
-    within run-by-set blocks and keeps the test labels true (Kaplan, Man &
-    Greening 2015, Front. Hum. Neurosci. 9:151). ``A->B`` trains on set A's
+    of :mod:`foldwise.decoding.curves`: each permutation relabels all patterns
+    once, within runs (cross-decoding: within run-by-set blocks, set A's
+    first), and that one label vector is both the training labels and the
+    held-out truth of every direction (Nichols & Holmes 2002, Human Brain
+    Mapping 15:1-25). ``A->B`` trains on set A's
     patterns of the training runs and tests set B's patterns of the held-out
     runs; ``A->B`` and ``A->A`` share one fit per fold; ``A<->B`` is the mean
     of ``A->B`` and ``B->A``.
@@ -931,13 +932,12 @@ def searchlight_scores(patterns, labels, run_labels, spheres, *, set_index=None,
             _fail("sets", f"expected two distinct set names, got {set_names!r}", "name the two sets differently")
         directions = list(cross_directions(set_names))
         pairs = [(0, 1), (1, 0), (0, 0), (1, 1)]  # A->B, B->A, A->A, B->B; A<->B is their mean below
-        _, run_codes = np.unique(runs, return_inverse=True)
-        permuted = permute_within_runs(classes, run_codes * 2 + sets, n_permutations, rng)
+        permuted = permute_within_runs(classes, block_codes(runs, sets), n_permutations, rng)
     else:
         sets = np.zeros_like(classes)
         directions, pairs = ["within"], [(0, 0)]
         permuted = permute_within_runs(classes, runs, n_permutations, rng)
-    label_rows = np.vstack([classes[np.newaxis], permuted])
+    label_rows = np.vstack([classes[np.newaxis], permuted])  # one relabeling per row, for training and testing alike
     n_labelings = label_rows.shape[0]
     folds = make_folds(runs, fold_scheme, n_groups)
     totals = {pair: np.zeros((n_labelings, spheres.n_centres)) for pair in pairs}
@@ -965,8 +965,7 @@ def searchlight_scores(patterns, labels, run_labels, spheres, *, set_index=None,
                 predictions = predict(z_train, label_rows[chunk][:, train_rows], z_test, spheres, n_classes, **extra)
                 for test_set in test_sets:
                     columns = np.flatnonzero(sets[test] == test_set)
-                    truth = classes[test][columns] if cross else label_rows[chunk][:, test][:, columns]
-                    truth = np.broadcast_to(truth, (chunk.stop - chunk.start, columns.size))[:, np.newaxis, :]
+                    truth = label_rows[chunk][:, test[columns]][:, np.newaxis, :]
                     totals[(train_set, test_set)][chunk] += balanced_accuracy(truth, predictions[:, :, columns], n_classes)
     fold_means = {pair: total / len(folds) for pair, total in totals.items()}
     if cross:

@@ -24,6 +24,7 @@ rule all:
 
 
 onsuccess:
+    finish_run(all_provenance_records(), STUDY["study"]["store_dir"])  # every output against its provenance record
     print_group_summaries()
 
 

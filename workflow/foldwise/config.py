@@ -220,3 +220,132 @@ def _valid_set_name(name):
 def load_study_config(path):
     """Load, validate and fill the study config at ``path``."""
     return validate(load_yaml(path), path=str(path))
+
+
+def apply_overrides(study, arguments, path, configfiles=()):
+    """The study config with the command line's ``--config`` entries merged in, validated.
+
+    Snakemake hands every ``--config key=value`` to the workflow; foldwise
+    merges them into the study config *before* validation, so an override
+    is checked like a file edit, enters the narrow keys of exactly the jobs
+    that read it, and is recorded wherever the settings are.
+
+    Parameters
+    ----------
+    study : dict
+        The study config as loaded from ``path`` (not yet validated).
+    arguments : list of str
+        The raw ``key=value`` entries of ``--config`` (``config_file=...``
+        is skipped). ``key={nested: yaml}`` merges into the mapping ``key``
+        (mappings merge key by key; lists and values are replaced whole).
+        ``set=a.b=1 c[0].d=x`` takes dotted keys, which Snakemake's own
+        parser refuses; ``name[index]`` picks an existing list entry.
+        Values are read with ``yaml.safe_load``, so ``'"01"'`` stays text.
+    path : str
+        The config file, for messages.
+    configfiles : sequence of path
+        Files given with ``--configfile`` (refused: Snakemake's loader
+        evaluates YAML templates before foldwise can check anything).
+
+    Returns
+    -------
+    dict
+        The validated config, defaults filled.
+
+    Raises
+    ------
+    InputError
+        For ``--configfile``, an entry that is not ``key=value``, a value
+        that is not plain YAML, a dotted key that does not reach into a
+        mapping or an existing list entry, or a merged value the schema
+        refuses; the message names what was passed and how to write it.
+    """
+    if configfiles:
+        raise InputError("--configfile", "config_file", "the study config was passed with --configfile",
+                         "pass it as --config config_file=PATH (read safely by foldwise)")
+    usage = ("write --config 'section={key: value}' (nested YAML) or, for dotted keys, "
+             "--config 'set=section.key=value other.key=value' (make demo SET='section.key=value')")
+
+    def read_value(text, entry):
+        try:
+            return yaml.safe_load(text) if text.strip() else None
+        except yaml.YAMLError as error:
+            problem = getattr(error, "problem", None) or str(error).splitlines()[0]
+            raise InputError("--config", entry, f"the value {text!r} is not plain YAML ({problem})", usage) from None
+
+    def parse_dotted(dotted, entry):
+        parts = []
+        for piece in dotted.split("."):
+            name, _, rest = piece.partition("[")
+            if not name or not (name.replace("_", "").isalnum()):
+                raise InputError("--config", entry, f"the key {dotted!r} is not a dotted key path", usage)
+            parts.append(name)
+            while rest:
+                index, _, rest = rest.partition("]")
+                if not index.isdigit() or (rest and not rest.startswith("[")):
+                    raise InputError("--config", entry, f"the key {dotted!r} has a list index that is not [number]", usage)
+                parts.append(int(index))
+                rest = rest[1:]
+        return parts
+
+    def merge(base, value):
+        if isinstance(base, dict) and isinstance(value, dict):
+            merged = dict(base)
+            for key, item in value.items():
+                merged[key] = merge(base[key], item) if key in base else item
+            return merged
+        return value
+
+    def set_at(target, parts, value, entry):
+        node = target
+        for depth, part in enumerate(parts[:-1]):
+            following = parts[depth + 1]
+            if isinstance(part, int):
+                if not isinstance(node, list) or part >= len(node):
+                    raise InputError("--config", entry, f"{key_path(parts[:depth + 1])} is not an existing list entry",
+                                     "index an entry the config file lists, or pass the whole list: --config 'key=[...]'")
+                node = node[part]
+                continue
+            if not isinstance(node, dict):
+                raise InputError("--config", entry, f"{key_path(parts[:depth])} is not a mapping", usage)
+            if part not in node:
+                node[part] = [] if isinstance(following, int) else {}
+            node = node[part]
+        last = parts[-1]
+        if isinstance(last, int):
+            if not isinstance(node, list) or last >= len(node):
+                raise InputError("--config", entry, f"{key_path(parts)} is not an existing list entry",
+                                 "index an entry the config file lists, or pass the whole list: --config 'key=[...]'")
+            node[last] = value
+        elif isinstance(node, dict):
+            node[last] = merge(node.get(last), value)
+        else:
+            raise InputError("--config", entry, f"{key_path(parts[:-1])} is not a mapping", usage)
+
+    merged = copy.deepcopy(study)
+    passed = []  # (key path, the entry as typed)
+    for entry in arguments or ():
+        key, equals, text = str(entry).partition("=")
+        if not equals:
+            raise InputError("--config", entry, f"{entry!r} is not key=value", usage)
+        if key == "config_file":
+            continue
+        if key == "set":
+            for item in text.split():
+                dotted, equals, item_text = item.partition("=")
+                if not equals:
+                    raise InputError("--config", entry, f"{item!r} is not dotted.key=value", usage)
+                parts = parse_dotted(dotted, entry)
+                set_at(merged, parts, read_value(item_text, entry), entry)
+                passed.append((key_path(parts), item))
+            continue
+        parts = parse_dotted(key, entry)
+        set_at(merged, parts, read_value(text, entry), entry)
+        passed.append((key_path(parts), entry))
+    try:
+        return validate(merged, path=path)
+    except InputError as error:
+        for where, typed in passed:
+            if error.field == where or error.field.startswith((f"{where}.", f"{where}[")) or where.startswith(f"{error.field}."):
+                raise InputError("--config", error.field, f"{error.problem} (passed as {typed!r})", error.fix) from None
+        raise

@@ -6,7 +6,9 @@ import re
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # one BLAS thread per job: same bits whatever --cores
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-from foldwise.config import load_yaml, validate
+from foldwise.config import apply_overrides, load_yaml, validate
+from foldwise.provenance.environment import check_environment, versioned_code
+from foldwise.provenance.runs import finish_run, start_run
 from foldwise.errors import InputError
 from foldwise.data.fileio import check_output_folder
 from foldwise.provenance.hashing import code_hash, hash_object
@@ -19,12 +21,11 @@ from foldwise.plan import plan_study
 # a malformed file by line.
 CONFIG_FILE = config.pop("config_file", None)
 try:
-    if config and CONFIG_FILE is None:
-        # Snakemake's own --configfile loader evaluates YAML templates (yte); ours never evaluates anything.
-        raise InputError("--configfile", "config_file", "the study config was passed with --configfile",
-                         "pass it as --config config_file=PATH (read safely by foldwise)")
     CONFIG_FILE = CONFIG_FILE or "config/config.yaml"
-    STUDY = validate(load_yaml(CONFIG_FILE), path=CONFIG_FILE)
+    # Other --config entries override the file (merged before validation); --configfile is refused.
+    OVERRIDES = [entry for entry in workflow.config_settings.config_args or [] if not entry.startswith("config_file=")]
+    STUDY = apply_overrides(load_yaml(CONFIG_FILE), OVERRIDES, CONFIG_FILE, workflow.overwrite_configfiles)
+    check_environment(os.path.join(workflow.basedir, "requirements", "lock.txt"))
     check_output_folder("results", "results folder")
     check_output_folder(STUDY["study"]["store_dir"], "study.store_dir")
     PLAN = plan_study(STUDY, path=CONFIG_FILE)
@@ -32,6 +33,10 @@ except InputError as error:
     raise WorkflowError(f"foldwise: {error}") from None
 config.clear()
 config.update(STUDY)  # scripts read study.store_dir from here
+
+
+onstart:
+    start_run(workflow.dag, "results", STUDY["study"]["store_dir"])  # leftovers of a killed run; forced jobs skip the memo
 
 SCRIPTS = os.path.join(workflow.basedir, "workflow", "scripts")
 SUBJECTS = PLAN.subjects
@@ -89,7 +94,7 @@ def log_path(rule_name, pattern):
 
 def step_code(script_name, *modules):
     """Hash of a step's script and every package module it imports (narrow code key)."""
-    return code_hash(os.path.join(SCRIPTS, script_name), *modules)
+    return versioned_code(code_hash(os.path.join(SCRIPTS, script_name), *modules))  # versions in: an upgrade reruns
 
 
 # -- runs ----------------------------------------------------------------------

@@ -259,7 +259,7 @@ def _bad_placeholder(folder):
     study = _study(**{"dataset.patterns": {"bold": "sub-{subject.__class__}/func/run-{run}_bold.nii.gz"}})
     return Expectation(_planning(study), "the study config: dataset.patterns.bold: the placeholder {subject.__class__} in "
                                          "'sub-{subject.__class__}/func/run-{run}_bold.nii.gz' is not allowed. "
-                                         "Fix: use only {subject} {session} {task} {run}, without format specs")
+                                         "Fix: use only {subject} {session} {task} {run} {space} {res}, without format specs")
 
 
 # -- the dataset: finding subjects and runs (workflow_plan.plan_study, before any job) ---------

@@ -4,7 +4,8 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
-from foldwise.data.bids import load_bold, read_confounds, read_events, read_tr_s
+from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, load_bold, read_confounds, read_events,
+                                read_tr_s, select_confound_columns)
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_tsv
 from foldwise.glm.estimate import estimate_patterns
@@ -126,6 +127,43 @@ def design_figure(matrix, labels, title):
     return figure
 
 
+def run_nuisance(confounds_path, selectors, drop_initial_volumes, n_scans):
+    """The confound columns and the count of initial volumes to drop for one run.
+
+    Parameters
+    ----------
+    confounds_path : str or None
+        The run's confounds table.
+    selectors : sequence of str or dict
+        ``dataset.confounds`` (see :func:`foldwise.data.bids.select_confound_columns`).
+    drop_initial_volumes : int or dict
+        A count, or ``{"flagged_by": prefix}``.
+    n_scans : int
+        Volumes in the run.
+
+    Returns
+    -------
+    names : list of str
+    values : ndarray or None
+        ``(n_scans, len(names))``, all volumes (nothing dropped yet).
+    n_drop : int
+    """
+    header = confound_table_columns(confounds_path) if confounds_path and (selectors or isinstance(drop_initial_volumes, dict)) else []
+    names = select_confound_columns(header, selectors, confounds_path) if selectors else []
+    values = read_confounds(confounds_path, names, n_scans) if names else None
+    if isinstance(drop_initial_volumes, dict):
+        prefix = drop_initial_volumes["flagged_by"]
+        flag_columns = [column for column in header if column.startswith(prefix)]
+        n_drop = count_flagged_initial_volumes(read_confounds(confounds_path, flag_columns, n_scans))
+    else:
+        n_drop = int(drop_initial_volumes)
+    if n_drop > n_scans - 2:
+        raise InputError(confounds_path if isinstance(drop_initial_volumes, dict) else "the study config", "dataset.drop_initial_volumes",
+                         f"dropping {n_drop} initial volumes leaves fewer than 2 of the run's {n_scans}",
+                         "lower dataset.drop_initial_volumes (or check the flag columns)")
+    return names, values, n_drop
+
+
 def run(inputs, outputs, params, log):
     """Fit the GLM of one run inside the brain mask and write its patterns.
 
@@ -145,18 +183,32 @@ def run(inputs, outputs, params, log):
         Receives a warning for each configured condition absent from the run.
     """
     glm_settings = params["glm"]
-    confound_names = list(params.get("confounds") or [])
     subject, session, run_id = params["subject"], params.get("session"), params["run_id"]
 
     bold, affine, header = load_bold(inputs["bold"])
     n_scans = bold.shape[3]
     tr_s = read_tr_s(inputs["sidecar"], header, inputs["bold"])
-    events = read_events(inputs["events"], n_scans, tr_s)
-    confounds = read_confounds(inputs.get("confounds"), confound_names, n_scans) if confound_names else None
+    events = read_events(inputs["events"], n_scans, tr_s, params.get("condition_column", "trial_type"))
+    confound_names, confounds, n_drop = run_nuisance(inputs.get("confounds"), list(params.get("confounds") or []),
+                                                     params.get("drop_initial_volumes", 0), n_scans)
     mask = _load_mask(inputs["mask"], bold.shape[:3], affine)
     voxels = np.flatnonzero(mask.ravel(order="F"))
     bold_2d = _masked_time_series(bold, voxels)
     del bold
+    if n_drop:
+        # Volumes before steady state leave the model; times are then counted from the first kept volume.
+        bold_2d = bold_2d[n_drop:]
+        events = events.assign(onset=events["onset"] - n_drop * tr_s)
+        if confounds is not None:
+            confounds = confounds[n_drop:]
+    if confounds is not None:
+        silent = ~np.any(confounds != 0, axis=0)  # e.g. the spike column of a dropped volume
+        if silent.any():
+            confounds = confounds[:, ~silent]
+            confound_names = [name for name, keep in zip(confound_names, ~silent) if keep]
+        if not confound_names:
+            confounds = None
+    log.info("sub-%s %s: dropped %d initial volume(s); confounds: %s", subject, run_id, n_drop, ", ".join(confound_names) or "none")
 
     try:
         estimate = estimate_patterns(bold_2d, events, tr_s, glm_settings, confounds, confound_names)

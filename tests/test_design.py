@@ -139,8 +139,8 @@ def test_per_condition_design_layout():
     confounds = np.random.default_rng(3).normal(size=(60, 2))
     design = _lantern_design(confounds=confounds, confound_names=("trans_x", "rot_z"))
     # 2 x 60 x 2 s / 60 s = 4 drift cosines; heard_square and button are modelled, not patterns.
-    assert design.names == ("seen_round", "seen_star", "button", "heard_square", "drift_01", "drift_02", "drift_03",
-                            "drift_04", "trans_x", "rot_z", "intercept")
+    assert design.names == ("seen_round", "seen_star", "button", "heard_square", "lowfreq_cos_01", "lowfreq_cos_02", "lowfreq_cos_03",
+                            "lowfreq_cos_04", "trans_x", "rot_z", "intercept")
     assert design.pattern_columns.tolist() == [0, 1]
     assert design.nuisance_columns.tolist() == list(range(2, 11))
     assert design.matrix.shape == (60, 11) and design.matrix.dtype == np.float64
@@ -212,3 +212,18 @@ def test_too_many_regressors_for_the_scans_is_an_error():
     with pytest.raises(InputError) as excinfo:
         _lantern_design("lsa", events=_events(rows), n_scans=30, conditions=())
     assert excinfo.value.field == "design"
+
+
+def test_column_convolution_equals_scipy_fftconvolve_bit_for_bit():
+    # Source: scipy.signal.fftconvolve (scipy's reference implementation, full mode along axis 0);
+    # the design convolves with scipy.fft directly so a GLM job need not import scipy.signal.
+    from scipy.signal import fftconvolve
+
+    from foldwise.glm.design import _convolve_columns
+
+    rng = np.random.default_rng(3)
+    for n_fine, n_columns, n_kernel in ((2880, 6, 513), (1000, 1, 97), (37, 48, 513), (5, 3, 4)):
+        signal = rng.standard_normal((n_fine, n_columns))
+        kernel = rng.standard_normal(n_kernel)
+        expected = fftconvolve(signal, kernel[:, None], axes=0)
+        assert np.array_equal(_convolve_columns(signal, kernel), expected)

@@ -20,16 +20,12 @@ once per label set. Equal class priors everywhere.
 import warnings
 
 import numpy as np
-from sklearn.exceptions import ConvergenceWarning
-from sklearn.linear_model import LogisticRegression
-from sklearn.svm import SVC
-
-try:  # scikit-learn's own libsvm binding: the very routines SVC.fit/predict call, minus per-call validation
-    from sklearn.svm import _libsvm
-except ImportError:  # pragma: no cover - a scikit-learn without the private module falls back to SVC
-    _libsvm = None
 
 from foldwise.errors import InputError
+
+# scikit-learn is imported inside the two functions that call it (the linear
+# SVM and the logistic regression): importing it costs about 0.7 s of CPU per
+# job process, which a decode job with another classifier never needs.
 
 __all__ = [
     "CLASSIFIERS",
@@ -615,7 +611,13 @@ def _svm_one(train_gram, labels, test_gram, C):
     if present.size < 2:
         raise InputError(None, "labels", f"a linear SVM needs two classes in training, got {present.tolist()}", "train on folds with every class")
     targets = encoded.astype(np.float64)
+    try:  # scikit-learn's own libsvm binding: the very routines SVC.fit/predict call, minus per-call validation
+        from sklearn.svm import _libsvm
+    except ImportError:  # pragma: no cover - a scikit-learn without the private module falls back to SVC
+        _libsvm = None
     if _libsvm is None:  # pragma: no cover - fallback path
+        from sklearn.svm import SVC
+
         model = SVC(kernel="precomputed", C=C).fit(train_gram, targets)
         raw = model.predict(test_gram)
         fitted = {"support": model.support_, "dual_coef": model.dual_coef_, "intercept": model.intercept_}
@@ -709,6 +711,9 @@ def logistic_l2_fit_predict(train_patterns, train_labels, test_patterns, C=1.0, 
     defaults), so predictions are scikit-learn's; its convergence warnings
     are counted rather than raised, for the caller to log.
     """
+    from sklearn.exceptions import ConvergenceWarning
+    from sklearn.linear_model import LogisticRegression
+
     if not np.isscalar(C) or isinstance(C, bool) or not C > 0:
         raise InputError(None, "logistic_c", f"C must be a positive number, got {C!r}", "set logistic_c > 0 (default 1)")
     rows, single = _label_rows(train_labels, _n_classes_of(train_labels))

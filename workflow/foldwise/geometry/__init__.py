@@ -1,0 +1,1 @@
+"""Representational geometry: cross-validated distances, models, comparison, noise ceilings, group tests."""

@@ -1,0 +1,167 @@
+"""Dissimilarities between condition patterns: cross-validated and plain.
+
+Conditions are compared pair by pair in a fixed order: ``condition_pairs``
+lists the upper triangle row by row, ``(0, 1), (0, 2), ..., (1, 2), ...``;
+every vector of dissimilarities in foldwise uses that order.
+"""
+
+import numpy as np
+
+from foldwise.errors import InputError
+
+__all__ = ["DISTANCES", "BIASED_DISTANCES", "condition_pairs", "square_form", "condition_patterns",
+           "crossvalidated_distances", "correlation_distances", "distances"]
+
+#: ``crossnobis`` (with noise normalisation) and ``euclidean_cv`` (without) are
+#: cross-validated and unbiased; ``correlation`` is not cross-validated and
+#: biased by noise (labelled as such in every output).
+DISTANCES = ("crossnobis", "euclidean_cv", "correlation")
+BIASED_DISTANCES = ("correlation",)
+
+
+def _fail(field, problem, fix, file=None):
+    raise InputError(file, field, problem, fix)
+
+
+def condition_pairs(n_conditions):
+    """Row and column indices of the upper triangle (``i < j``), row by row.
+
+    >>> [tuple(map(int, pair)) for pair in zip(*condition_pairs(3))]
+    [(0, 1), (0, 2), (1, 2)]
+    """
+    return np.triu_indices(int(n_conditions), k=1)
+
+
+def square_form(values, n_conditions):
+    """Symmetric ``(..., n, n)`` matrices with zero diagonal from ``(..., n_pairs)`` vectors."""
+    values = np.asarray(values, dtype=np.float64)
+    rows, columns = condition_pairs(n_conditions)
+    square = np.zeros(values.shape[:-1] + (n_conditions, n_conditions))
+    square[..., rows, columns] = values
+    square[..., columns, rows] = values
+    return square
+
+
+def condition_patterns(patterns, conditions, runs, wanted, file=None):
+    """Average the patterns of each wanted condition within each run.
+
+    Parameters
+    ----------
+    patterns : array_like, shape (n_patterns, n_voxels)
+    conditions, runs : array_like, shape (n_patterns,)
+        Condition and run label of each pattern.
+    wanted : sequence of str
+        Conditions in the order the dissimilarities use.
+    file : str, optional
+        Named in the error when a condition is missing from a run.
+
+    Returns
+    -------
+    ndarray, shape (n_runs, n_wanted, n_voxels)
+        Runs in sorted order of their labels.
+    """
+    patterns = np.asarray(patterns, dtype=np.float64)
+    conditions, runs = np.asarray(conditions).astype(str), np.asarray(runs).astype(str)
+    run_names = np.unique(runs)
+    out = np.empty((run_names.size, len(wanted), patterns.shape[1]))
+    for r, run in enumerate(run_names):
+        for c, condition in enumerate(wanted):
+            rows = (runs == run) & (conditions == condition)
+            if not rows.any():
+                _fail("condition", f"condition {condition!r} has no pattern in run {run}",
+                      "leave the run out or drop the condition from the geometry analysis", file)
+            out[r, c] = patterns[rows].mean(axis=0)
+    return out
+
+
+def _check_run_patterns(run_patterns):
+    values = np.asarray(run_patterns, dtype=np.float64)
+    if values.ndim != 3 or values.shape[0] < 2 or values.shape[1] < 2 or values.shape[2] < 1:
+        _fail("patterns", f"expected (n_runs >= 2, n_conditions >= 2, n_voxels >= 1), got shape {values.shape}",
+              "give two or more runs and two or more conditions")
+    return values
+
+
+def crossvalidated_distances(run_patterns, noise=None):
+    """Cross-validated squared distances of every condition pair, per voxel.
+
+    Parameters
+    ----------
+    run_patterns : array_like, shape (n_runs, n_conditions, n_voxels)
+        Condition patterns estimated in each run separately.
+    noise : foldwise.geometry.noise.FoldNoise, optional
+        Fold-wise weighting ``W_k`` (default: none, i.e. cross-validated
+        Euclidean).
+
+    Returns
+    -------
+    ndarray, shape (n_pairs,)
+        ``d_ij = 1/(R V) sum_k  mean_{m != k}(delta_m)' W_k delta_k`` with
+        ``delta_r = b_i^r - b_j^r`` the pattern difference in run ``r``,
+        ``R`` runs, ``V`` voxels; pairs as in :func:`condition_pairs`.
+
+    Notes
+    -----
+    Crossnobis estimator (Walther et al. 2016, NeuroImage 137:188-200;
+    Nili et al. 2014, PLoS Comput Biol 10:e1003553): the product of two
+    differences whose noise is independent has expectation ``delta' W delta``,
+    so the estimate is unbiased (0 in expectation when the conditions do not
+    differ) and may be negative. Leave-one-run-out form: fold ``k`` tests run
+    ``k`` against the mean of the other runs, weighted by ``W_k``, which is
+    estimated from the other runs' residuals only. With ``W_k = I`` this
+    equals the mean over all ordered run pairs ``m != n`` of
+    ``delta_m' delta_n / V``, computed here without a loop over pairs as
+    ``(|sum_r delta_r|^2 - sum_r |delta_r|^2) / (R (R - 1) V)``.
+    """
+    values = _check_run_patterns(run_patterns)
+    n_runs, n_conditions, n_voxels = values.shape
+    rows, columns = condition_pairs(n_conditions)
+    differences = values[:, rows] - values[:, columns]  # (R, P, V)
+    total = differences.sum(axis=0)
+    if noise is None or noise.kind == "none":
+        own = np.einsum("rpv,rpv->p", differences, differences)
+        return (np.einsum("pv,pv->p", total, total) - own) / (n_runs * (n_runs - 1) * n_voxels)
+    out = np.zeros(rows.size)
+    for fold in range(n_runs):  # one weighting per fold; all pairs at once
+        training_mean = (total - differences[fold]) / (n_runs - 1)
+        out += np.einsum("pv,pv->p", training_mean, noise.apply(fold, differences[fold]))
+    return out / (n_runs * n_voxels)
+
+
+def correlation_distances(run_patterns):
+    """One minus Pearson's r between the run-averaged condition patterns (biased by noise).
+
+    Parameters
+    ----------
+    run_patterns : array_like, shape (n_runs, n_conditions, n_voxels)
+
+    Returns
+    -------
+    ndarray, shape (n_pairs,)
+
+    Notes
+    -----
+    The classic RSA dissimilarity (Kriegeskorte, Mur & Bandettini 2008,
+    Front Syst Neurosci 2:4). Not cross-validated: noise pushes every value
+    towards 1, more so the noisier the data, so it is positive even when
+    conditions do not differ (Walther et al. 2016). NaN for a constant pattern.
+    """
+    values = _check_run_patterns(run_patterns)
+    mean = values.mean(axis=0)
+    centred = mean - mean.mean(axis=1, keepdims=True)
+    norms = np.linalg.norm(centred, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        unit = centred / norms[:, None]
+    rows, columns = condition_pairs(values.shape[1])
+    return 1.0 - np.einsum("pv,pv->p", unit[rows], unit[columns])
+
+
+def distances(run_patterns, distance, noise=None):
+    """Dispatch: ``crossnobis`` / ``euclidean_cv`` (cross-validated) or ``correlation``."""
+    if distance == "correlation":
+        return correlation_distances(run_patterns)
+    if distance == "euclidean_cv":
+        return crossvalidated_distances(run_patterns, None)
+    if distance == "crossnobis":
+        return crossvalidated_distances(run_patterns, noise)
+    _fail("distance", f"unknown distance {distance!r}", f"use one of {', '.join(DISTANCES)}")

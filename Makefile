@@ -12,7 +12,7 @@ export OPENBLAS_NUM_THREADS := 1
 export OMP_NUM_THREADS := 1
 export MKL_NUM_THREADS := 1
 
-.PHONY: demo test env bundle verify benchmark lint cluster-test clean
+.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean
 
 $(STAMP): requirements/lock.txt pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -25,6 +25,14 @@ env: $(STAMP)
 
 demo: $(STAMP)
 	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG)
+
+# A study of your own: make check CONFIG=config/my_study.yaml, then make study CONFIG=config/my_study.yaml
+study: $(STAMP)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG)
+
+# What the dataset holds per subject, and every configured condition some subject lacks (reads headers only).
+check: $(STAMP)
+	$(BIN)/python -m foldwise.data.check --config $(CONFIG)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest $(PYTEST_ARGS)

@@ -656,6 +656,43 @@ def _results_is_a_file(folder):
                        "Fix: move or remove that file, then rerun")
 
 
+@case("a condition misspelt in one subject's events", "data.check.check_dataset (make check, and at the start of every run, before any job)")
+def _misspelt_condition(folder):
+    from foldwise.data.check import check_dataset
+    study = validate(_bids_study(folder), path="config/study.yaml")
+    runs = []
+    for subject, label in (("01", "seen_star"), ("02", "seen_stra")):
+        stem = folder / "bids" / f"sub-{subject}" / "func" / f"sub-{subject}_task-lanterns_run-1"
+        stem.parent.mkdir(parents=True, exist_ok=True)
+        save_nifti(f"{stem}_bold.nii.gz", np.zeros(GRID + (10,), dtype=np.float32), AFFINE)
+        Path(f"{stem}_bold.json").write_text('{"RepetitionTime": 1.0}', encoding="utf-8")
+        events = "onset\tduration\ttrial_type\n" + "".join(f"{2 * i}\t1\t{name}\n" for i, name in enumerate(("seen_round", "seen_square", label)))
+        Path(f"{stem}_events.tsv").write_text(events, encoding="utf-8")
+        runs.append({"subject": subject, "session": None, "run_id": "run-1", "bold": f"{stem}_bold.nii.gz",
+                     "events": f"{stem}_events.tsv", "sidecar": f"{stem}_bold.json"})
+    return Expectation(lambda: check_dataset(study, runs, "config/study.yaml"),
+                       f"{FOLDER}/bids/sub-02/func/sub-02_task-lanterns_run-1_events.tsv: analyses[0].classes.star: subject 02 has no "
+                       "event 'seen_star' of task 'lanterns' (did you mean 'seen_stra'?). Fix: correct the condition name in "
+                       "config/study.yaml or in the subject's events files (or leave the subject out with dataset.exclude_subjects)")
+
+
+@case("derivatives in another space than configured", "bids.discover_runs via plan, before any job")
+def _other_space(folder):
+    study = _study(**{"dataset": {"source": "bids", "bids_root": str(folder / "raw"), "derivatives_root": str(folder / "prep"),
+                                  "space": "tmplA", "patterns": {
+                                      "bold": "sub-{subject}/func/sub-{subject}_task-{task}_run-{run}_space-{space}_desc-preproc_bold.nii.gz"}}})
+    (folder / "raw").mkdir()
+    for run in ("1", "2"):
+        path = folder / "prep" / "sub-01" / "func" / f"sub-01_task-lanterns_run-{run}_space-tmplB_desc-preproc_bold.nii.gz"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(b"")
+    return Expectation(_planning(study),
+                       f"{FOLDER}/prep/sub-{{subject}}/func/sub-{{subject}}_task-{{task}}_run-{{run}}_space-{{space}}_desc-preproc_bold.nii.gz: "
+                       "dataset.patterns.bold: no BOLD file of task 'lanterns' matches the pattern (the files that fit the pattern have "
+                       "space-tmplB (2 files) where the config asks space-tmplA). Fix: check dataset.bids_root, dataset.derivatives_root, "
+                       "dataset.task, dataset.space, dataset.res and dataset.patterns.bold")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

@@ -94,3 +94,48 @@ def test_dropping_every_volume_is_refused(dataset):
     with pytest.raises(InputError) as excinfo:
         glm_job.run_nuisance(run["confounds"], [], 10_000, 40)
     assert "dataset.drop_initial_volumes" in str(excinfo.value)
+
+
+# ------------------------------------------------ the dataset check (before any job)
+
+from foldwise.data import check as dataset_check  # noqa: E402
+
+STUDY_BASE = {
+    "dataset": {"source": "bids", "task": "lanterns", "condition_column": "trial_type"},
+    "glm": {"conditions": []},
+    "rois": [{"name": "ember", "labels": ["ember_L", "ember_R"]}],
+    "analyses": [{"name": "shape", "kind": "within", "classes": {"round": ["seen_round"], "square": ["seen_square"]}},
+                 {"name": "carry", "kind": "cross", "sets": {"seen": {"round": "seen_round", "square": "seen_square"},
+                                                              "heard": {"round": "heard_round", "square": "heard_square"}}}],
+}
+
+
+def test_dataset_check_lists_each_subject(dataset):
+    table = dataset_check.check_dataset(STUDY_BASE, _runs(dataset))
+    assert table["subject"].tolist() == ["01", "02"]
+    assert table["sessions"].tolist() == ["1,2", "1,2"] and table["n_runs"].tolist() == [4, 4]
+    assert table["tr_s"].tolist() == ["2", "2"] and table["grid"].iloc[0] == "12x12x9@3x3x3"
+    assert table["trial_types"].iloc[0] == "heard_round,heard_square,seen_round,seen_square"
+
+
+def test_dataset_check_flags_a_misspelt_condition_in_one_subject_with_did_you_mean(tmp_path):
+    written = simulated.write_dataset(tmp_path, n_subjects=3, sessions=("1",), condition_rename={("02", "heard_square"): "heard_sqaure"})
+    runs = bids.discover_runs(written["raw"], PATTERNS, "lanterns", derivatives_root=written["derivatives"],
+                              space=simulated.SPACE, res=simulated.RES)
+    with pytest.raises(InputError) as excinfo:
+        dataset_check.check_dataset(STUDY_BASE, runs, "config/study.yaml")
+    error = excinfo.value
+    assert error.field == "analyses[1].sets.heard.square"
+    assert error.file.endswith("sub-02_ses-1_task-lanterns_run-1_events.tsv")
+    assert "subject 02 has no event 'heard_square'" in error.problem and "did you mean 'heard_sqaure'?" in error.problem
+    assert "subject 01" not in error.problem and "subject 03" not in error.problem
+    assert "config/study.yaml" in error.fix
+
+
+def test_required_conditions_cover_analyses_glm_and_localizers():
+    study = dict(STUDY_BASE, glm={"conditions": ["seen_round"]},
+                 rois=[{"name": "beam", "localizer": {"task": "beacon", "contrast": {"lit": 1, "dark": -1}}}])
+    required = dataset_check.required_conditions(study)
+    assert ("heard_square", "analyses[1].sets.heard.square", "lanterns") in required
+    assert ("seen_round", "glm.conditions", "lanterns") in required
+    assert ("dark", "rois[0].localizer.contrast", "beacon") in required

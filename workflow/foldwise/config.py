@@ -160,61 +160,11 @@ def _first_non_text_key(node, parts=()):
     return None, None
 
 
-def _duplicates(names):
-    seen, repeated = set(), []
-    for name in names:
-        if name in seen:
-            repeated.append(name)
-        seen.add(name)
-    return repeated
-
-
 def _check_references(config, path):
-    roi_names = [roi["name"] for roi in config["rois"]]
-    for repeated in _duplicates(roi_names):
-        raise InputError(path, "rois[].name", f"the ROI name '{repeated}' is used twice", "give each ROI a unique name")
-    analysis_names = [analysis["name"] for analysis in config["analyses"]]
-    for repeated in _duplicates(analysis_names):
-        raise InputError(path, "analyses[].name", f"the analysis name '{repeated}' is used twice", "give each analysis a unique name")
-    for index, analysis in enumerate(config["analyses"]):
-        where = f"analyses[{index}]"
-        for roi in analysis["rois"]:
-            if roi not in roi_names:
-                close = difflib.get_close_matches(roi, roi_names, n=1)
-                hint = f" (did you mean '{close[0]}'?)" if close else ""
-                raise InputError(path, f"{where}.rois", f"unknown ROI '{roi}'{hint}", f"use one of {', '.join(roi_names)} or define it under rois")
-        if analysis["kind"] == "within":
-            if "sets" in analysis:
-                raise InputError(path, f"{where}.sets", "a 'within' analysis takes 'classes', not 'sets'", "remove 'sets' or set kind: cross")
-            conditions = [c for members in analysis["classes"].values() for c in members]
-            for repeated in _duplicates(conditions):
-                raise InputError(path, f"{where}.classes", f"condition '{repeated}' belongs to two classes", "put each condition in one class only")
-        else:
-            if "classes" in analysis:
-                raise InputError(path, f"{where}.classes", "a 'cross' analysis takes 'sets', not 'classes'", "remove 'classes' or set kind: within")
-            (name_a, set_a), (name_b, set_b) = analysis["sets"].items()
-            if sorted(set_a) != sorted(set_b):
-                raise InputError(path, f"{where}.sets", f"the class labels of set '{name_a}' ({', '.join(sorted(set_a))}) and set '{name_b}' "
-                                 f"({', '.join(sorted(set_b))}) do not match", "map the same class labels in both sets")
-            for set_name, mapping in analysis["sets"].items():
-                if not _valid_set_name(set_name):
-                    raise InputError(path, f"{where}.sets.{set_name}", "set names may hold letters, digits and underscores only", "rename the set")
-                for repeated in _duplicates(mapping.values()):
-                    raise InputError(path, f"{where}.sets.{set_name}", f"condition '{repeated}' stands for two classes", "map each class to its own condition")
-        counts = [count for count in analysis["voxel_counts"] if count != "all"]
-        if counts != sorted(counts):
-            raise InputError(path, f"{where}.voxel_counts", f"counts {counts} are not increasing", "list the counts from small to large ('all' last)")
-    excluded = set(config["dataset"]["exclude_subjects"])
-    chosen = config["dataset"]["subjects"]
-    if chosen and not set(chosen) - excluded:
-        raise InputError(path, "dataset.exclude_subjects", "every listed subject is excluded", "exclude fewer subjects")
-    for name in config["searchlight"]["analyses"]:
-        if name not in analysis_names:
-            raise InputError(path, "searchlight.analyses", f"unknown analysis '{name}'", f"use one of {', '.join(analysis_names)}")
+    """The checks of meaning the schema cannot express live in the study model, once."""
+    from foldwise.study import check_meaning  # late: the study model imports the dataset readers
 
-
-def _valid_set_name(name):
-    return name.replace("_", "").isalnum()
+    check_meaning(config, path)
 
 
 def load_study_config(path):

@@ -1,4 +1,4 @@
-"""The study plan: which subjects and runs exist, decided before any job runs.
+"""The study plan: which subjects and runs exist, and every job with its inputs, outputs and settings.
 
 For the demo the runs follow from the demo settings (the dataset does not
 exist yet when Snakemake builds its DAG); for a BIDS dataset they are found on
@@ -6,12 +6,17 @@ disk with the configured file-name templates.
 """
 
 from dataclasses import dataclass
+from typing import Callable
+
+from foldwise import contract
 
 from foldwise.data import bids
 from foldwise.data import demo
 from foldwise.errors import InputError
 
-__all__ = ["StudyPlan", "plan_study"]
+__all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
+           "step_outputs", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
+           "report_input_index", "report_figures"]
 
 
 @dataclass(frozen=True)
@@ -46,7 +51,8 @@ def plan_study(study, path="the study config"):
                 raise InputError(path, "dataset.subjects", f"subject(s) {', '.join(absent)} are not in the demo (it has {', '.join(known)})",
                                  "list demo subjects only, or raise demo.n_subjects")
     else:
-        runs = bids.discover_runs(dataset["bids_root"], dataset["patterns"], dataset["task"], dataset["subjects"])
+        runs = bids.discover_runs(dataset["bids_root"], dataset["patterns"], dataset["task"], dataset["subjects"],
+                                  derivatives_root=dataset.get("derivatives_root"), space=dataset.get("space"), res=dataset.get("res"))
     chosen = set(dataset["subjects"]) if dataset["subjects"] else {run["subject"] for run in runs}
     chosen -= set(dataset["exclude_subjects"])
     runs = [run for run in runs if run["subject"] in chosen]
@@ -55,3 +61,287 @@ def plan_study(study, path="the study config"):
                          "check dataset.subjects, dataset.exclude_subjects and dataset.patterns.bold")
     subjects = tuple(sorted(chosen))
     return StudyPlan(subjects=subjects, runs=tuple(runs))
+
+
+# -- the jobs of a study: every job's identity, inputs, outputs and settings ---------------
+# Built from a foldwise.study.Study (duck-typed here: plan.py is imported by study.py).
+# Snakemake's rules take their outputs, inputs and params from these functions,
+# so the plan can be tested without Snakemake (tests/test_narrow_keys.py).
+
+@dataclass(frozen=True)
+class Step:
+    """One step (rule) of the workflow.
+
+    Attributes
+    ----------
+    identity : str
+        Names one job among the step's jobs (a wildcard template): its
+        provenance record, log and benchmark files are named after it.
+    outputs : callable
+        ``outputs(study) -> {output name: path template}`` (the provenance
+        record is added by :func:`step_outputs`).
+    """
+
+    identity: str
+    outputs: Callable
+
+
+def _named(**names):
+    """Outputs by contract name: ``mask="brain_mask"`` -> the contract's template."""
+    return lambda study: {output: contract.TEMPLATES[name] for output, name in names.items()}
+
+
+def _demo_outputs(study):
+    dataset = study.config["dataset"]
+    return {"description": f"{dataset['bids_root']}/dataset_description.json", "atlas": dataset["atlas_image"],
+            "atlas_labels": dataset["atlas_labels"], "ground_truth": contract.TEMPLATES["demo_truth"],
+            "bold": [run["bold"] for run in study.runs], "events": [run["events"] for run in study.runs],
+            "sidecars": [run["sidecar"] for run in study.runs], "confounds": [run["confounds"] for run in study.runs]}
+
+
+def _searchlight_group_outputs(study):
+    names = ["mean", "p", "p_fwe"] + (["tfce", "p_tfce"] if study.config["searchlight"]["tfce"] else [])
+    outputs = {f"{name}_map": contract.TEMPLATES[f"searchlight_{name}"] for name in names}
+    outputs["table"] = contract.TEMPLATES["searchlight_group_table"]
+    return outputs
+
+
+def report_figures(study):
+    """The report's figure catalogue (entries with ``paths``), from the report's figure plan."""
+    from foldwise.report.figures import figure_catalogue  # late: matplotlib is needed by the report only
+
+    return figure_catalogue(study.config, study.subjects)
+
+
+def _report_outputs(study):
+    return {"html": contract.TEMPLATES["report_html"], "figures": [path for entry in report_figures(study) for path in entry["paths"]]}
+
+
+STEPS = {
+    "demo_dataset": Step("study", _demo_outputs),
+    "brain_mask": Step("sub-{subject}", _named(mask="brain_mask", mean="brain_mean", summary="brain_summary")),
+    "glm": Step("sub-{subject}_{run_id}", _named(patterns="patterns_image", table="patterns_table", design="design_table",
+                                                 design_png="design_figure", resvar="residual_variance")),
+    "roi_mask": Step("sub-{subject}_roi-{roi}", _named(mask="roi_mask", info="roi_info")),
+    "roi_counts": Step("sub-{subject}", _named(table="roi_counts")),
+    "decode": Step("{analysis}_sub-{subject}_roi-{roi}", _named(scores="decode_scores", null="decode_null", rankings="decode_rankings",
+                                                                confusion="decode_confusion")),
+    "decode_gather": Step("{analysis}_sub-{subject}", _named(scores="subject_scores", summary="subject_summary")),
+    "group": Step("{analysis}", _named(table="group_table", null="group_null", summary="group_summary")),
+    "searchlight_block": Step("{analysis}_sub-{subject}_block-{block}", _named(scores="searchlight_block_scores",
+                                                                               null="searchlight_block_null")),
+    "searchlight_merge": Step("{analysis}_sub-{subject}", _named(map="searchlight_map", directions="searchlight_directions",
+                                                                 null="searchlight_subject_null")),
+    "searchlight_group": Step("{analysis}", _searchlight_group_outputs),
+    "report": Step("study", _report_outputs),
+    "manifest": Step("study", _named(manifest="manifest")),
+}
+
+
+def step_outputs(study, step):
+    """Output templates of a step (wildcards unfilled), its provenance record last."""
+    return {**STEPS[step].outputs(study), "provenance": contract.provenance_path(step, STEPS[step].identity)}
+
+
+def step_log(step):
+    return contract.log_path(step, STEPS[step].identity)
+
+
+def step_benchmark(step):
+    return contract.benchmark_path(step, STEPS[step].identity)
+
+
+def planned_jobs(study):
+    """Every job of the study as ``(step, wildcards)``, in pipeline order (the manifest and the default target)."""
+    subjects = study.subjects
+    jobs = [("demo_dataset", {})] if study.is_demo else []
+    jobs += [("brain_mask", {"subject": subject}) for subject in subjects]
+    jobs += [("glm", {"subject": run["subject"], "run_id": run["run_id"]}) for run in study.runs]
+    jobs += [("roi_mask", {"subject": subject, "roi": roi}) for subject in subjects for roi in study.rois]
+    jobs += [("roi_counts", {"subject": subject}) for subject in subjects]
+    for name, analysis in study.analyses.items():
+        steps = analysis.steps
+        if "decode" in steps:
+            jobs += [("decode", {"analysis": name, "subject": subject, "roi": roi}) for subject in subjects for roi in analysis.rois]
+        if "decode_gather" in steps:
+            jobs += [("decode_gather", {"analysis": name, "subject": subject}) for subject in subjects]
+        if "group" in steps:
+            jobs += [("group", {"analysis": name})]
+    for name in study.searchlight_analyses:
+        jobs += [("searchlight_block", {"analysis": name, "subject": subject, "block": str(block)})
+                 for subject in subjects for block in study.searchlight_blocks]
+        jobs += [("searchlight_merge", {"analysis": name, "subject": subject}) for subject in subjects]
+        jobs += [("searchlight_group", {"analysis": name})]
+    jobs += [("report", {})]
+    return jobs
+
+
+def _fill(template, wildcards):
+    return template.format(**wildcards) if wildcards else template
+
+
+def job_outputs(study, step, wildcards):
+    """The output files of one job: {output name: path or list of paths}."""
+    return {name: [_fill(path, wildcards) for path in value] if isinstance(value, list) else _fill(value, wildcards)
+            for name, value in step_outputs(study, step).items()}
+
+
+def job_output_files(study, step, wildcards):
+    """The output files of one job as one flat list."""
+    files = []
+    for value in job_outputs(study, step, wildcards).values():
+        files += value if isinstance(value, list) else [value]
+    return files
+
+
+def all_job_outputs(study):
+    """Every output file of every planned job: the default target, so a deleted file is made again."""
+    return [path for step, wildcards in planned_jobs(study) for path in job_output_files(study, step, wildcards)]
+
+
+def all_provenance_records(study):
+    """Every planned job's provenance record: the manifest is built from them."""
+    return [job_outputs(study, step, wildcards)["provenance"] for step, wildcards in planned_jobs(study)]
+
+
+def planned_output_counts(study):
+    """step -> [number of output files of each planned job, provenance record aside], for the report's provenance summary."""
+    counts = {}
+    for step, wildcards in planned_jobs(study):
+        if step != "report":
+            counts.setdefault(step, []).append(len(job_output_files(study, step, wildcards)) - 1)
+    return counts
+
+
+# -- inputs of each job --------------------------------------------------------------------
+def _subject_patterns(study, subject, name):
+    return [contract.fill(name, subject=subject, run_id=run["run_id"]) for run in study.runs_of(subject)]
+
+
+def _brain_mask_inputs(study, w):
+    inputs = {"bold": [run["bold"] for run in study.runs_of(w["subject"])]}
+    given = study.runs_of(w["subject"])[0]["brain_mask"]
+    if given:
+        inputs["given_mask"] = given
+    return inputs
+
+
+def _glm_inputs(study, w):
+    run = study.run(w["subject"], w["run_id"])
+    inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"], "mask": contract.fill("brain_mask", subject=run["subject"])}
+    dataset = study.config["dataset"]
+    if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):  # flagged volumes are read from the confounds
+        inputs["confounds"] = run["confounds"]
+    return inputs
+
+
+def _roi_mask_inputs(study, w):
+    return {"brain_mask": contract.fill("brain_mask", subject=w["subject"]), **study.rois[w["roi"]].inputs(study.config)}
+
+
+def _decode_inputs(study, w):
+    return {"patterns": _subject_patterns(study, w["subject"], "patterns_image"),
+            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": contract.fill("roi_mask", **w)}
+
+
+def _group_inputs(study, w):
+    analysis = study.analyses[w["analysis"]]
+    return {"summaries": [contract.fill("subject_summary", analysis=analysis.name, subject=s) for s in study.subjects],
+            "nulls": [contract.fill("decode_null", analysis=analysis.name, subject=s, roi=roi) for s in study.subjects for roi in analysis.rois]}
+
+
+def _searchlight_block_inputs(study, w):
+    return {"patterns": _subject_patterns(study, w["subject"], "patterns_image"),
+            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": contract.fill("brain_mask", subject=w["subject"])}
+
+
+def _searchlight_merge_inputs(study, w):
+    blocks = study.searchlight_blocks
+    return {"scores": [contract.fill("searchlight_block_scores", block=block, **w) for block in blocks],
+            "nulls": [contract.fill("searchlight_block_null", block=block, **w) for block in blocks],
+            "mask": contract.fill("brain_mask", subject=w["subject"])}
+
+
+def _searchlight_group_inputs(study, w):
+    subjects = study.subjects
+    return {"maps": [contract.fill("searchlight_map", analysis=w["analysis"], subject=s) for s in subjects],
+            "nulls": [contract.fill("searchlight_subject_null", analysis=w["analysis"], subject=s) for s in subjects],
+            "masks": [contract.fill("brain_mask", subject=s) for s in subjects]}
+
+
+def report_input_index(study):
+    """The report's inputs as records: {input name: [{"path": ..., "subject": ..., "run_id": ..., "roi": ..., "analysis": ...}]}.
+
+    The report can take the fields of each file from here instead of
+    parsing them back out of the path; :func:`job_inputs` of the report
+    lists the same paths, in the same order.
+    """
+    subjects = study.subjects
+    first_runs = {subject: study.runs_of(subject)[0]["run_id"] for subject in subjects}
+
+    def record(name, **fields):
+        return {"path": contract.fill(name, **fields), **fields}
+
+    index = {
+        "designs": [record("design_table", subject=s, run_id=first_runs[s]) for s in subjects],
+        "events": [{"path": run["events"], "subject": run["subject"], "run_id": run["run_id"]} for run in study.runs],
+        "sidecars": [{"path": run["sidecar"], "subject": run["subject"], "run_id": run["run_id"]} for run in study.runs],
+        "brain_masks": [record("brain_mask", subject=s) for s in subjects],
+        "means": [record("brain_mean", subject=s) for s in subjects],
+        "roi_masks": [record("roi_mask", subject=s, roi=roi) for s in subjects for roi in study.rois],
+        "roi_counts": [record("roi_counts", subject=s) for s in subjects],
+        "resvar": [record("residual_variance", subject=subjects[0], run_id=first_runs[subjects[0]])],
+        "summaries": [record("subject_summary", analysis=name, subject=s) for name in study.analyses for s in subjects],
+        "confusions": [record("decode_confusion", analysis=name, subject=s, roi=roi)
+                       for name, analysis in study.analyses.items() for s in subjects for roi in analysis.rois],
+        "group_tables": [record("group_table", analysis=name) for name in study.analyses],
+    }
+    if study.searchlight_analyses:
+        index["searchlight_means"] = [record("searchlight_mean", analysis=name) for name in study.searchlight_analyses]
+        index["searchlight_p_fwe"] = [record("searchlight_p_fwe", analysis=name) for name in study.searchlight_analyses]
+        index["searchlight_directions"] = [record("searchlight_directions", analysis=name, subject=subjects[0])
+                                           for name in study.searchlight_analyses]
+    if study.is_demo:
+        index["ground_truth"] = [{"path": contract.TEMPLATES["demo_truth"]}]
+    return index
+
+
+def _report_inputs(study, w):
+    index = report_input_index(study)
+    return {name: records[0]["path"] if name == "ground_truth" else [item["path"] for item in records] for name, records in index.items()}
+
+
+JOB_INPUTS = {
+    "demo_dataset": lambda study, w: {},
+    "brain_mask": _brain_mask_inputs,
+    "glm": _glm_inputs,
+    "roi_mask": _roi_mask_inputs,
+    "roi_counts": lambda study, w: {"infos": [contract.fill("roi_info", subject=w["subject"], roi=roi) for roi in study.rois]},
+    "decode": _decode_inputs,
+    "decode_gather": lambda study, w: {"scores": [contract.fill("decode_scores", roi=roi, **w) for roi in study.analyses[w["analysis"]].rois]},
+    "group": _group_inputs,
+    "searchlight_block": _searchlight_block_inputs,
+    "searchlight_merge": _searchlight_merge_inputs,
+    "searchlight_group": _searchlight_group_inputs,
+    "report": _report_inputs,
+    "manifest": lambda study, w: {"records": all_provenance_records(study)},
+}
+
+
+def job_inputs(study, step, wildcards):
+    """The input files of one job: {input name: path or list of paths}."""
+    return JOB_INPUTS[step](study, dict(wildcards))
+
+
+def report_settings(study):
+    """What the report reads: the whole validated config (the page shows it), subjects, runs and the planned jobs."""
+    return {"study": study.config, "subjects": list(study.subjects), "config_file": study.config_file,
+            "planned_jobs": planned_output_counts(study),
+            "runs": {subject: [run["run_id"] for run in study.runs_of(subject)] for subject in study.subjects}}
+
+
+def job_settings(study, step, wildcards):
+    """``params.settings`` of one job: exactly the config subset its step reads."""
+    if step == "report":
+        return report_settings(study)
+    return study.settings(step, wildcards)

@@ -4,22 +4,16 @@
 
 rule decode:
     input:
-        patterns=subject_pattern_files,
-        tables=subject_pattern_tables,
-        mask=ROI_MASK,
+        unpack(inputs_of("decode")),
     output:
-        scores=DECODE_SCORES,
-        null=DECODE_NULL,
-        rankings=DECODE_RANKINGS,
-        confusion=DECODE_CONFUSION,
-        provenance=provenance_path("decode", "{analysis}_sub-{subject}_roi-{roi}"),
+        **outputs_of("decode"),
     params:
-        settings=decode_settings,
+        settings=settings_of("decode"),
         code=step_code("decode.py"),
     log:
-        log_path("decode", "{analysis}_sub-{subject}_roi-{roi}"),
+        log_of("decode"),
     benchmark:
-        "results/benchmarks/decode/{analysis}_sub-{subject}_roi-{roi}.tsv"
+        benchmark_of("decode")
     threads: 1
     resources:
         mem_mb=2000,
@@ -32,16 +26,14 @@ rule decode:
 
 rule decode_gather:
     input:
-        scores=subject_analysis_scores,
+        unpack(inputs_of("decode_gather")),
     output:
-        scores=SUBJECT_SCORES,
-        summary=SUBJECT_SUMMARY,
-        provenance=provenance_path("decode_gather", "{analysis}_sub-{subject}"),
+        **outputs_of("decode_gather"),
     params:
-        settings=decode_gather_settings,
+        settings=settings_of("decode_gather"),
         code=step_code("decode_gather.py"),
     log:
-        log_path("decode_gather", "{analysis}_sub-{subject}"),
+        log_of("decode_gather"),
     threads: 1
     resources:
         mem_mb=500,

@@ -1,24 +1,18 @@
 # The invented demo study, simulated into a BIDS dataset under results/demo.
-if STUDY["dataset"]["source"] == "demo":
+if MODEL.is_demo:
 
     rule demo_dataset:
+        input:
+            unpack(inputs_of("demo_dataset")),
         output:
-            description=DEMO_DESCRIPTION,
-            atlas=STUDY["dataset"]["atlas_image"],
-            atlas_labels=STUDY["dataset"]["atlas_labels"],
-            ground_truth=DEMO_TRUTH,
-            bold=[run["bold"] for run in PLAN.runs],
-            events=[run["events"] for run in PLAN.runs],
-            sidecars=[run["sidecar"] for run in PLAN.runs],
-            confounds=[run["confounds"] for run in PLAN.runs],
-            provenance=provenance_path("demo_dataset", "study"),
+            **outputs_of("demo_dataset"),
         params:
-            settings=demo_settings(),
+            settings=settings_of("demo_dataset"),
             code=step_code("demo_dataset.py"),
         log:
-            log_path("demo_dataset", "study"),
+            log_of("demo_dataset"),
         benchmark:
-            "results/benchmarks/demo_dataset/study.tsv"
+            benchmark_of("demo_dataset")
         threads: 1
         resources:
             mem_mb=1000,

@@ -3,17 +3,14 @@
 
 rule brain_mask:
     input:
-        unpack(brain_mask_inputs),
+        unpack(inputs_of("brain_mask")),
     output:
-        mask=BRAIN_MASK,
-        mean=BRAIN_MEAN,
-        summary=BRAIN_SUMMARY,
-        provenance=provenance_path("brain_mask", "sub-{subject}"),
+        **outputs_of("brain_mask"),
     params:
-        settings=brain_mask_settings,
+        settings=settings_of("brain_mask"),
         code=step_code("brain_mask.py"),
     log:
-        log_path("brain_mask", "sub-{subject}"),
+        log_of("brain_mask"),
     threads: 1
     resources:
         mem_mb=2000,
@@ -26,21 +23,16 @@ rule brain_mask:
 
 rule glm:
     input:
-        unpack(glm_inputs),
+        unpack(inputs_of("glm")),
     output:
-        patterns=PATTERNS_IMAGE,
-        table=PATTERNS_TABLE,
-        design=DESIGN_TABLE,
-        design_png=DESIGN_FIGURE,
-        resvar=RESIDUAL_VARIANCE,
-        provenance=provenance_path("glm", "sub-{subject}_{run_id}"),
+        **outputs_of("glm"),
     params:
-        settings=glm_settings,
+        settings=settings_of("glm"),
         code=step_code("glm.py"),
     log:
-        log_path("glm", "sub-{subject}_{run_id}"),
+        log_of("glm"),
     benchmark:
-        "results/benchmarks/glm/sub-{subject}_{run_id}.tsv"
+        benchmark_of("glm")
     threads: 1
     resources:
         mem_mb=3000,

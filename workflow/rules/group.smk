@@ -3,20 +3,16 @@
 
 rule group:
     input:
-        summaries=analysis_summaries,
-        nulls=analysis_nulls,
+        unpack(inputs_of("group")),
     output:
-        table=GROUP_TABLE,
-        null=GROUP_NULL,
-        summary=GROUP_SUMMARY,
-        provenance=provenance_path("group", "{analysis}"),
+        **outputs_of("group"),
     params:
-        settings=group_settings,
+        settings=settings_of("group"),
         code=step_code("group.py"),
     log:
-        log_path("group", "{analysis}"),
+        log_of("group"),
     benchmark:
-        "results/benchmarks/group/{analysis}.tsv"
+        benchmark_of("group")
     threads: 1
     resources:
         mem_mb=2000,

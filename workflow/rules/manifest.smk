@@ -3,15 +3,14 @@
 
 rule manifest:
     input:
-        records=all_provenance_records(),
+        unpack(inputs_of("manifest")),
     output:
-        manifest=MANIFEST,
-        provenance=provenance_path("manifest", "study"),
+        **outputs_of("manifest"),
     params:
-        settings={},
+        settings=settings_of("manifest"),
         code=step_code("manifest.py"),
     log:
-        log_path("manifest", "study"),
+        log_of("manifest"),
     threads: 1
     resources:
         mem_mb=500,

@@ -1,23 +1,28 @@
 # The study report: one self-contained HTML page (figures embedded) plus every
 # figure as PNG and SVG; the figure list comes from foldwise.report.figures.figure_catalogue.
-REPORT_HTML = "results/report/index.html"
-REPORT_FIGURES = figure_catalogue(STUDY, SUBJECTS)  # figures_dir defaults to results/report/figures
+
+
+def report_figure(entry, path):
+    """Curve figures (SVG) go into Snakemake's --report with their caption; every file is an output."""
+    if entry["kind"] != "curve" or not path.endswith(".svg"):
+        return path
+    return report(path, caption=os.path.join(workflow.basedir, entry["caption"]), category=entry["category"],
+                  subcategory=entry["analysis"], labels={"analysis": entry["analysis"], "ROI": entry["roi"]})
 
 
 rule report:
     input:
-        unpack(report_inputs),
+        unpack(inputs_of("report")),
     output:
-        html=REPORT_HTML,
-        figures=[report_figure(entry, path) for entry in REPORT_FIGURES for path in entry["paths"]],
-        provenance=REPORT_PROVENANCE[0],
+        **{**outputs_of("report"),
+           "figures": [report_figure(entry, path) for entry in plan.report_figures(MODEL) for path in entry["paths"]]},
     params:
-        settings=report_settings(),
+        settings=plan.report_settings(MODEL),
         code=step_code("report.py"),
     log:
-        log_path("report", "study"),
+        log_of("report"),
     benchmark:
-        "results/benchmarks/report/study.tsv"
+        benchmark_of("report")
     threads: 1
     resources:
         mem_mb=2000,

@@ -3,16 +3,14 @@
 
 rule roi_mask:
     input:
-        unpack(roi_inputs),
+        unpack(inputs_of("roi_mask")),
     output:
-        mask=ROI_MASK,
-        info=ROI_INFO,
-        provenance=provenance_path("roi_mask", "sub-{subject}_roi-{roi}"),
+        **outputs_of("roi_mask"),
     params:
-        settings=roi_settings,
+        settings=settings_of("roi_mask"),
         code=step_code("roi_mask.py"),
     log:
-        log_path("roi_mask", "sub-{subject}_roi-{roi}"),
+        log_of("roi_mask"),
     threads: 1
     resources:
         mem_mb=1000,
@@ -25,15 +23,14 @@ rule roi_mask:
 
 rule roi_counts:
     input:
-        infos=subject_roi_infos,
+        unpack(inputs_of("roi_counts")),
     output:
-        table=ROI_COUNTS,
-        provenance=provenance_path("roi_counts", "sub-{subject}"),
+        **outputs_of("roi_counts"),
     params:
-        settings=subject_settings,
+        settings=settings_of("roi_counts"),
         code=step_code("roi_counts.py"),
     log:
-        log_path("roi_counts", "sub-{subject}"),
+        log_of("roi_counts"),
     threads: 1
     resources:
         mem_mb=500,

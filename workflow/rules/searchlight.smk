@@ -4,20 +4,16 @@
 
 rule searchlight_block:
     input:
-        patterns=subject_pattern_files,
-        tables=subject_pattern_tables,
-        mask=BRAIN_MASK,
+        unpack(inputs_of("searchlight_block")),
     output:
-        scores=f"{SEARCHLIGHT_BLOCK}_scores.npy",
-        null=f"{SEARCHLIGHT_BLOCK}_null.npy",
-        provenance=provenance_path("searchlight_block", "{analysis}_sub-{subject}_block-{block}"),
+        **outputs_of("searchlight_block"),
     params:
-        settings=searchlight_block_settings,
+        settings=settings_of("searchlight_block"),
         code=step_code("searchlight_block.py"),
     log:
-        log_path("searchlight_block", "{analysis}_sub-{subject}_block-{block}"),
+        log_of("searchlight_block"),
     benchmark:
-        "results/benchmarks/searchlight_block/{analysis}_sub-{subject}_block-{block}.tsv"
+        benchmark_of("searchlight_block")
     threads: 1
     resources:
         mem_mb=4000,
@@ -30,19 +26,14 @@ rule searchlight_block:
 
 rule searchlight_merge:
     input:
-        scores=searchlight_block_scores,
-        nulls=searchlight_block_nulls,
-        mask=BRAIN_MASK,
+        unpack(inputs_of("searchlight_merge")),
     output:
-        map=f"{SEARCHLIGHT_SUBJECT}_map.nii.gz",
-        directions=f"{SEARCHLIGHT_SUBJECT}_directions.tsv",
-        null=f"{SEARCHLIGHT_SUBJECT}_null.npy",
-        provenance=provenance_path("searchlight_merge", "{analysis}_sub-{subject}"),
+        **outputs_of("searchlight_merge"),
     params:
-        settings=searchlight_merge_settings,
+        settings=settings_of("searchlight_merge"),
         code=step_code("searchlight_merge.py"),
     log:
-        log_path("searchlight_merge", "{analysis}_sub-{subject}"),
+        log_of("searchlight_merge"),
     threads: 1
     resources:
         mem_mb=2000,
@@ -55,19 +46,16 @@ rule searchlight_merge:
 
 rule searchlight_group:
     input:
-        maps=searchlight_subject_maps,
-        nulls=searchlight_subject_nulls,
-        masks=all_brain_masks,
+        unpack(inputs_of("searchlight_group")),
     output:
-        **searchlight_group_outputs(),
-        provenance=provenance_path("searchlight_group", "{analysis}"),
+        **outputs_of("searchlight_group"),
     params:
-        settings=searchlight_group_settings,
+        settings=settings_of("searchlight_group"),
         code=step_code("searchlight_group.py"),
     log:
-        log_path("searchlight_group", "{analysis}"),
+        log_of("searchlight_group"),
     benchmark:
-        "results/benchmarks/searchlight_group/{analysis}.tsv"
+        benchmark_of("searchlight_group")
     threads: 1
     resources:
         mem_mb=4000,

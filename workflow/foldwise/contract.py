@@ -1,0 +1,160 @@
+"""The data contract as code: where every artefact lives, what its tables hold, how it is read.
+
+Path templates use Snakemake's ``{wildcard}`` syntax, relative to the
+working folder; :func:`fill` turns one into a path. Rules name their outputs
+with these templates, :mod:`foldwise.plan` lists every job's outputs from
+them, and jobs and the report read artefacts through the readers below --
+one reader per artefact, so a check (a grid, a column) is written once.
+"""
+
+import numpy as np
+
+from foldwise.data.fileio import load_nifti, read_tsv
+from foldwise.errors import InputError
+
+__all__ = [
+    "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "provenance_path", "log_path", "benchmark_path",
+    "PATTERN_TABLE_COLUMNS", "SCORE_COLUMNS", "NULL_COLUMNS", "RANKING_COLUMNS", "CONFUSION_COLUMNS", "SUMMARY_COLUMNS",
+    "ROI_COUNT_COLUMNS", "GROUP_COLUMNS", "GROUP_NULL_COLUMNS", "SEARCHLIGHT_GROUP_COLUMNS", "SEARCHLIGHT_DIRECTION_COLUMNS",
+    "TABLE_COLUMNS", "read_brain_mask", "read_table",
+]
+
+RESULTS = "results"
+
+# Two grids are one grid when their voxel centres agree to within this many mm:
+# NIfTI stores affines as float32, so one grid written twice can differ by float
+# rounding (~1e-5 mm at 100 mm from the origin); 1e-3 mm is far above that and
+# far below any voxel (common practice, no source).
+GRID_TOLERANCE_MM = 1e-3
+
+_PATTERN_STEM = "results/patterns/sub-{subject}/sub-{subject}_{run_id}"
+_DECODE_STEM = "results/decoding/{analysis}/sub-{subject}/sub-{subject}_roi-{roi}"
+_GROUP_STEM = "results/group/{analysis}/{analysis}"
+_SEARCHLIGHT_BLOCK = "results/searchlight/{analysis}/sub-{subject}/sub-{subject}_block-{block}"
+_SEARCHLIGHT_SUBJECT = "results/searchlight/{analysis}/sub-{subject}_searchlight"
+_SEARCHLIGHT_GROUP = "results/searchlight/{analysis}/{analysis}_searchlight"
+
+# Every output of the workflow, by name. The demo's own files (its BIDS dataset
+# and atlas) follow the config (dataset.bids_root, dataset.atlas_*), not this list.
+TEMPLATES = {
+    "demo_truth": "results/demo/ground_truth.json",
+    "brain_mask": "results/masks/sub-{subject}/sub-{subject}_brainmask.nii.gz",
+    "brain_mean": "results/masks/sub-{subject}/sub-{subject}_mean.nii.gz",
+    "brain_summary": "results/masks/sub-{subject}/sub-{subject}_brainmask.json",
+    "patterns_image": f"{_PATTERN_STEM}_patterns.nii.gz",
+    "patterns_table": f"{_PATTERN_STEM}_patterns.tsv",
+    "design_table": f"{_PATTERN_STEM}_design.tsv",
+    "design_figure": f"{_PATTERN_STEM}_design.png",
+    "residual_variance": f"{_PATTERN_STEM}_resvar.nii.gz",
+    "roi_mask": "results/masks/sub-{subject}/sub-{subject}_roi-{roi}_mask.nii.gz",
+    "roi_info": "results/masks/sub-{subject}/sub-{subject}_roi-{roi}.json",
+    "roi_counts": "results/masks/sub-{subject}/sub-{subject}_roi_counts.tsv",
+    "decode_scores": f"{_DECODE_STEM}_scores.tsv",
+    "decode_null": f"{_DECODE_STEM}_null.tsv.gz",
+    "decode_rankings": f"{_DECODE_STEM}_rankings.tsv.gz",
+    "decode_confusion": f"{_DECODE_STEM}_confusion.tsv",
+    "subject_scores": "results/decoding/{analysis}/sub-{subject}_scores.tsv",
+    "subject_summary": "results/decoding/{analysis}/sub-{subject}_summary.tsv",
+    "group_table": f"{_GROUP_STEM}_group.tsv",
+    "group_null": f"{_GROUP_STEM}_group_null.tsv.gz",
+    "group_summary": f"{_GROUP_STEM}_summary.txt",
+    "searchlight_block_scores": f"{_SEARCHLIGHT_BLOCK}_scores.npy",
+    "searchlight_block_null": f"{_SEARCHLIGHT_BLOCK}_null.npy",
+    "searchlight_map": f"{_SEARCHLIGHT_SUBJECT}_map.nii.gz",
+    "searchlight_directions": f"{_SEARCHLIGHT_SUBJECT}_directions.tsv",
+    "searchlight_subject_null": f"{_SEARCHLIGHT_SUBJECT}_null.npy",
+    "searchlight_mean": f"{_SEARCHLIGHT_GROUP}_mean.nii.gz",
+    "searchlight_p": f"{_SEARCHLIGHT_GROUP}_p.nii.gz",
+    "searchlight_p_fwe": f"{_SEARCHLIGHT_GROUP}_p_fwe.nii.gz",
+    "searchlight_tfce": f"{_SEARCHLIGHT_GROUP}_tfce.nii.gz",
+    "searchlight_p_tfce": f"{_SEARCHLIGHT_GROUP}_p_tfce.nii.gz",
+    "searchlight_group_table": f"{_SEARCHLIGHT_GROUP}_group.tsv",
+    "report_html": "results/report/index.html",
+    "report_figures_dir": "results/report/figures",
+    "manifest": "results/manifest.tsv",
+}
+
+
+def fill(name, **wildcards):
+    """The path of artefact ``name`` (a key of TEMPLATES) for these wildcards.
+
+    >>> fill("roi_mask", subject="01", roi="ember")
+    'results/masks/sub-01/sub-01_roi-ember_mask.nii.gz'
+    """
+    return TEMPLATES[name].format(**wildcards)
+
+
+def provenance_path(step, identity):
+    """Where a job's provenance record goes: results/provenance/<step>/<identity>.json."""
+    return f"results/provenance/{step}/{identity}.json"
+
+
+def log_path(step, identity):
+    return f"results/logs/{step}/{identity}.log"
+
+
+def benchmark_path(step, identity):
+    return f"results/benchmarks/{step}/{identity}.tsv"
+
+
+# -- table columns (every TSV the workflow writes, in column order) -------------------
+PATTERN_TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
+SCORE_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "fold", "test_runs", "n_train", "n_test",
+                 "accuracy", "balanced_accuracy")
+NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation", "balanced_accuracy", "accuracy")
+RANKING_COLUMNS = ("fold", "rank", "voxel_index", "i", "j", "k", "score")  # cross analyses: train_set first
+CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
+SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy", "balanced_accuracy", "chance")
+ROI_COUNT_COLUMNS = ("subject", "roi", "n_voxels", "min_voxels")
+GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low", "ci_high")  # leading columns
+GROUP_NULL_COLUMNS = ("roi", "direction", "n_voxels", "draw", "mean")
+SEARCHLIGHT_DIRECTION_COLUMNS = ("volume", "direction")
+SEARCHLIGHT_GROUP_COLUMNS = ("analysis", "direction", "n_subjects", "n_voxels", "chance", "n_permutations", "n_draws", "alpha",
+                             "n_voxels_p_below_alpha", "n_voxels_p_fwe_below_alpha", "peak_accuracy", "peak_i", "peak_j", "peak_k",
+                             "peak_p", "peak_p_fwe")
+
+# artefact name -> (columns a reader requires, what the table is called in messages)
+TABLE_COLUMNS = {
+    "patterns_table": (PATTERN_TABLE_COLUMNS, "pattern table"),
+    "decode_scores": (SCORE_COLUMNS, "score table"),
+    "decode_null": (NULL_COLUMNS, "null table"),
+    "decode_confusion": (CONFUSION_COLUMNS, "confusion table"),
+    "subject_summary": (SUMMARY_COLUMNS, "subject summary"),
+    "roi_counts": (ROI_COUNT_COLUMNS, "ROI counts table"),
+    "group_table": (GROUP_COLUMNS, "group table"),
+    "group_null": (GROUP_NULL_COLUMNS, "group null table"),
+    "searchlight_directions": (SEARCHLIGHT_DIRECTION_COLUMNS, "searchlight direction table"),
+    "searchlight_group_table": (SEARCHLIGHT_GROUP_COLUMNS, "searchlight group table"),
+}
+
+
+# -- readers: one per artefact ----------------------------------------------------------
+def read_table(name, path):
+    """Read one of the workflow's tables, checking the columns its contract names.
+
+    Parameters
+    ----------
+    name : str
+        A key of TABLE_COLUMNS (``"decode_scores"``, ``"subject_summary"``, ...).
+    path : str
+    """
+    columns, what = TABLE_COLUMNS[name]
+    return read_tsv(path, columns, what=what)
+
+
+def read_brain_mask(path):
+    """A subject's brain mask as ``(bool array (I, J, K), affine float64 (4, 4))``.
+
+    Refuses a mask that is not 3-D (a single-volume 4-D file is accepted) or
+    holds no voxel: every later step needs at least one.
+    """
+    image = load_nifti(path, what="brain mask")
+    data = np.asanyarray(image.dataobj)
+    if data.ndim == 4 and data.shape[3] == 1:
+        data = data[..., 0]
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"expected a 3D brain mask, got shape {data.shape}", "give one 3D mask volume")
+    mask = np.asarray(data) > 0
+    if not mask.any():
+        raise InputError(path, "data", "the brain mask holds no voxel", "check the brain mask step (brain_mask.mean_fraction)")
+    return mask, np.asarray(image.affine, dtype=np.float64)

@@ -1,0 +1,550 @@
+"""The study model: one object built once from the validated config.
+
+Every concept of a study -- its subjects and runs, its ROIs, its analyses
+(classes, sets, directions, chance, ROI list), the searchlight's choice of
+analyses -- is worked out here, once, and every check of meaning the schema
+cannot express is done here, before any job runs. Rules, the plan
+(:mod:`foldwise.plan`) and the tests read this model; no other module
+decides again what "``rois: []``" means or which conditions an analysis
+names.
+
+Extending
+---------
+An analysis kind and an ROI kind each plug in at one place:
+:func:`register_analysis_kind` and :func:`register_roi_kind` (the built-in
+kinds below are registered the same way). docs/architecture.md walks
+through both.
+"""
+
+import csv
+import difflib
+from dataclasses import dataclass, field
+from types import MappingProxyType
+from typing import Callable
+
+from foldwise.data import demo
+from foldwise.errors import InputError
+from foldwise.plan import plan_study
+
+__all__ = [
+    "AnalysisKind",
+    "RoiKind",
+    "Analysis",
+    "Roi",
+    "Study",
+    "ANALYSIS_KINDS",
+    "ROI_KINDS",
+    "register_analysis_kind",
+    "register_roi_kind",
+    "build_study",
+    "check_meaning",
+    "STEP_SETTINGS",
+    "cross_directions",
+]
+
+_MISSING_VALUES = ("", "n/a")  # BIDS's missing value in an events file
+
+
+def cross_directions(set_names):
+    """The five directions of a cross analysis, in the order of every table and map.
+
+    ``a->b`` (train on a, test on b), ``b->a``, ``a<->b`` (their mean),
+    ``a->a`` and ``b->b`` (within each set, leave-one-run-out).
+    Same order as :func:`foldwise.decoding.curves.cross_directions`, which the
+    jobs use (tests/test_study.py checks that they agree).
+    """
+    first, second = set_names
+    return (f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}", f"{first}->{first}", f"{second}->{second}")
+
+
+# -- analysis kinds ------------------------------------------------------------
+@dataclass(frozen=True)
+class AnalysisKind:
+    """What the model needs to know about one kind of analysis.
+
+    Attributes
+    ----------
+    name : str
+        The value of ``kind`` in the config (the schema's enum lists it too).
+    outline : callable
+        ``outline(entry) -> (class_names, set_names, directions)``; set_names
+        is None when the kind has no sets.
+    condition_keys : callable
+        ``condition_keys(entry) -> [(key path below the entry, condition)]``:
+        every condition the entry names, with where it is named (for messages).
+    check : callable
+        ``check(entry, where, path)``: raises InputError for what the schema
+        cannot express (``where`` is ``analyses[i]``, ``path`` the config file).
+    steps : tuple of str
+        The per-ROI steps this kind runs (the plan schedules them per subject x ROI).
+    searchlight : bool
+        Whether ``searchlight.analyses`` may name an analysis of this kind.
+    """
+
+    name: str
+    outline: Callable
+    condition_keys: Callable
+    check: Callable
+    steps: tuple = ("decode", "decode_gather", "group")
+    searchlight: bool = True
+
+
+ANALYSIS_KINDS = {}
+
+
+def register_analysis_kind(kind):
+    """Plug in an analysis kind (see docs/architecture.md, "Adding an analysis kind")."""
+    ANALYSIS_KINDS[kind.name] = kind
+    return kind
+
+
+def _duplicates(names):
+    seen, repeated = set(), []
+    for name in names:
+        if name in seen and name not in repeated:
+            repeated.append(name)
+        seen.add(name)
+    return repeated
+
+
+def _within_outline(entry):
+    return tuple(entry["classes"]), None, ("within",)
+
+
+def _within_conditions(entry):
+    return [(f"classes.{label}", condition) for label, members in entry["classes"].items() for condition in members]
+
+
+def _within_check(entry, where, path):
+    if "sets" in entry:
+        raise InputError(path, f"{where}.sets", "a 'within' analysis takes 'classes', not 'sets'", "remove 'sets' or set kind: cross")
+    conditions = [condition for members in entry["classes"].values() for condition in members]
+    for repeated in _duplicates(conditions):
+        raise InputError(path, f"{where}.classes", f"condition '{repeated}' belongs to two classes", "put each condition in one class only")
+
+
+def _cross_outline(entry):
+    set_names = tuple(entry["sets"])
+    return tuple(entry["sets"][set_names[0]]), set_names, cross_directions(set_names)
+
+
+def _cross_conditions(entry):
+    return [(f"sets.{set_name}.{label}", condition) for set_name, mapping in entry["sets"].items() for label, condition in mapping.items()]
+
+
+def _cross_check(entry, where, path):
+    if "classes" in entry:
+        raise InputError(path, f"{where}.classes", "a 'cross' analysis takes 'sets', not 'classes'", "remove 'classes' or set kind: within")
+    (name_a, set_a), (name_b, set_b) = entry["sets"].items()
+    if sorted(set_a) != sorted(set_b):
+        raise InputError(path, f"{where}.sets", f"the class labels of set '{name_a}' ({', '.join(sorted(set_a))}) and set '{name_b}' "
+                         f"({', '.join(sorted(set_b))}) do not match", "map the same class labels in both sets")
+    for set_name, mapping in entry["sets"].items():
+        if not set_name.replace("_", "").isalnum():
+            raise InputError(path, f"{where}.sets.{set_name}", "set names may hold letters, digits and underscores only", "rename the set")
+        for repeated in _duplicates(mapping.values()):
+            raise InputError(path, f"{where}.sets.{set_name}", f"condition '{repeated}' stands for two classes", "map each class to its own condition")
+    used = [condition for mapping in entry["sets"].values() for condition in mapping.values()]
+    for repeated in _duplicates(used):
+        raise InputError(path, f"{where}.sets", f"condition '{repeated}' is used by both sets", "give each set its own conditions")
+
+
+register_analysis_kind(AnalysisKind("within", _within_outline, _within_conditions, _within_check))
+register_analysis_kind(AnalysisKind("cross", _cross_outline, _cross_conditions, _cross_check))
+
+
+# -- ROI kinds -------------------------------------------------------------------
+@dataclass(frozen=True)
+class RoiKind:
+    """What the model needs to know about one kind of ROI definition.
+
+    Attributes
+    ----------
+    name : str
+        The key that defines the kind in an ``rois`` entry (``labels``,
+        ``image``, ``sphere``); the schema's ``oneOf`` lists it too.
+    inputs : callable
+        ``inputs(entry, config) -> {input name: path}``: the files the
+        roi_mask job reads besides the brain mask.
+    source : callable
+        ``source(entry, config) -> str or None``: the file the ROI comes from
+        (for the report and messages).
+    check : callable
+        ``check(entry, where, path, config)``: raises InputError for what the
+        schema cannot express.
+    """
+
+    name: str
+    inputs: Callable
+    source: Callable
+    check: Callable = lambda entry, where, path, config: None
+
+
+ROI_KINDS = {}
+
+
+def register_roi_kind(kind):
+    """Plug in an ROI kind (see docs/architecture.md, "Adding an ROI kind")."""
+    ROI_KINDS[kind.name] = kind
+    return kind
+
+
+register_roi_kind(RoiKind(
+    "labels",
+    inputs=lambda entry, config: {"atlas": config["dataset"]["atlas_image"], "atlas_labels": config["dataset"]["atlas_labels"]},
+    source=lambda entry, config: config["dataset"]["atlas_image"]))
+register_roi_kind(RoiKind("image", inputs=lambda entry, config: {"image": entry["image"]}, source=lambda entry, config: entry["image"]))
+register_roi_kind(RoiKind("sphere", inputs=lambda entry, config: {}, source=lambda entry, config: None))
+
+
+# -- the model -----------------------------------------------------------------------
+@dataclass(frozen=True)
+class Roi:
+    """One ROI: its kind, the file it comes from, threshold and minimum size."""
+
+    name: str
+    kind: str
+    entry: MappingProxyType  # the validated config entry (defaults filled)
+    source: str | None
+    threshold: float | None
+    min_voxels: int
+
+    def inputs(self, config):
+        """Files the roi_mask job reads besides the brain mask."""
+        return ROI_KINDS[self.kind].inputs(self.entry, config)
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """One analysis, with everything derived from its entry resolved once."""
+
+    name: str
+    kind: str
+    entry: MappingProxyType  # the validated config entry (defaults filled)
+    rois: tuple  # resolved: an empty list in the config means every ROI, in config order
+    class_names: tuple
+    set_names: tuple | None
+    directions: tuple
+    conditions: tuple  # every condition the analysis names, in entry order
+    searchlight: bool  # listed in searchlight.analyses (and the searchlight is on)
+
+    @property
+    def chance(self):
+        """Chance level of balanced accuracy: 1 / number of classes."""
+        return 1.0 / len(self.class_names)
+
+    @property
+    def steps(self):
+        return ANALYSIS_KINDS[self.kind].steps
+
+    def method(self):
+        """The entry without its ROI list: one ROI's job does not depend on the others."""
+        return {key: value for key, value in _plain(self.entry).items() if key != "rois"}
+
+    def outline(self):
+        """The keys that say what is decoded: name, kind and classes or sets."""
+        return {key: value for key, value in _plain(self.entry).items() if key in ("name", "kind", "classes", "sets")}
+
+
+def _plain(value):
+    """A frozen config value as plain dicts and lists (for params and JSON)."""
+    if isinstance(value, (dict, MappingProxyType)):
+        return {key: _plain(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(item) for item in value]
+    return value
+
+
+def _frozen(value):
+    if isinstance(value, dict):
+        return MappingProxyType({key: _frozen(item) for key, item in value.items()})
+    if isinstance(value, list):
+        return tuple(_frozen(item) for item in value)
+    return value
+
+
+@dataclass(frozen=True)
+class Study:
+    """The whole study, built once by :func:`build_study`.
+
+    Attributes
+    ----------
+    config : dict
+        The validated config (defaults filled). Read-only by convention.
+    config_file : str
+        Named in messages and in the report.
+    subjects : tuple of str
+        After ``dataset.subjects`` and ``dataset.exclude_subjects``.
+    runs : tuple of dict
+        Every run: ``subject``, ``session``, ``run``, ``run_id`` and its files.
+    rois : dict
+        ROI name -> :class:`Roi`, in config order.
+    analyses : dict
+        Analysis name -> :class:`Analysis`, in config order.
+    searchlight_analyses : tuple of str
+        The analyses mapped by the searchlight (empty when it is off).
+    searchlight_blocks : tuple of int
+    """
+
+    config: dict
+    config_file: str
+    subjects: tuple
+    runs: tuple
+    rois: dict
+    analyses: dict
+    searchlight_analyses: tuple
+    searchlight_blocks: tuple
+    available_conditions: dict = field(repr=False)  # subject -> frozenset of conditions in its events
+
+    @property
+    def sessions(self):
+        """Session labels in use (empty when the dataset has none)."""
+        return tuple(sorted({run["session"] for run in self.runs if run["session"]}))
+
+    @property
+    def tasks(self):
+        return (self.config["dataset"]["task"],)
+
+    @property
+    def seed(self):
+        return self.config["study"]["seed"]
+
+    @property
+    def is_demo(self):
+        return self.config["dataset"]["source"] == "demo"
+
+    def runs_of(self, subject):
+        return [run for run in self.runs if run["subject"] == subject]
+
+    def run(self, subject, run_id):
+        for run in self.runs:
+            if run["subject"] == subject and run["run_id"] == run_id:
+                return run
+        raise KeyError(f"no run {run_id} for subject {subject}")
+
+    # -- the exact settings each step reads (a rule's params.settings) -------------
+    def searchlight_method(self, step):
+        """The searchlight section's keys one searchlight step reads (never the switch or the analysis list)."""
+        section = self.config["searchlight"]
+        keys = {"searchlight_block": ("radius_mm", "classifier", "n_blocks", "n_permutations"),
+                "searchlight_merge": ("n_blocks", "n_permutations"),
+                "searchlight_group": ("n_permutations", "tfce")}[step]
+        return {key: section[key] for key in keys}
+
+    def searchlight_analysis(self, name, step):
+        """The part of an analysis a searchlight step reads: what is decoded, plus the folds and the SVM's C for the blocks."""
+        analysis = self.analyses[name]
+        view = analysis.outline()
+        if step == "searchlight_block":
+            view["folds"] = _plain(analysis.entry["folds"])
+            if self.config["searchlight"]["classifier"] == "linear_svm":
+                view["svm_c"] = analysis.entry["svm_c"]
+        return view
+
+    def settings(self, step, wildcards):
+        """``params.settings`` of one job: exactly the config subset the step reads.
+
+        Parameters
+        ----------
+        step : str
+            The rule name.
+        wildcards : mapping
+            The job's wildcards (``subject``, ``run_id``, ``roi``, ``analysis``, ``block``).
+        """
+        return STEP_SETTINGS[step](self, wildcards)
+
+
+def _demo_settings(study, wildcards):
+    dataset = study.config["dataset"]
+    return {"demo": study.config["demo"], "seed": study.seed, "task": dataset["task"], "bids_root": dataset["bids_root"],
+            "patterns": dataset["patterns"], "confounds": dataset["confounds"]}
+
+
+def _glm_settings(study, wildcards):
+    run = study.run(wildcards["subject"], wildcards["run_id"])
+    return {"glm": study.config["glm"], "confounds": study.config["dataset"]["confounds"], "subject": run["subject"],
+            "session": run["session"], "run_id": run["run_id"],
+            "drop_initial_volumes": study.config["dataset"]["drop_initial_volumes"], "condition_column": study.config["dataset"]["condition_column"]}
+
+
+def _decode_gather_settings(study, wildcards):
+    analysis = study.analyses[wildcards["analysis"]]
+    return {"analysis": {**analysis.outline(), "voxel_counts": _plain(analysis.entry["voxel_counts"])}, "subject": wildcards["subject"]}
+
+
+def _group_settings(study, wildcards):
+    analysis = study.analyses[wildcards["analysis"]]
+    return {"group": study.config["group"], "analysis": {**_plain(analysis.entry), "rois": list(analysis.rois)},
+            "subjects": list(study.subjects), "seed": study.seed}
+
+
+STEP_SETTINGS = {
+    "demo_dataset": _demo_settings,
+    "brain_mask": lambda study, w: {"brain_mask": study.config["brain_mask"], "subject": w["subject"]},
+    "glm": _glm_settings,
+    "roi_mask": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"]},
+    "roi_counts": lambda study, w: {"subject": w["subject"]},
+    "decode": lambda study, w: {"analysis": study.analyses[w["analysis"]].method(), "subject": w["subject"], "roi": w["roi"],
+                                "seed": study.seed},
+    "decode_gather": _decode_gather_settings,
+    "group": _group_settings,
+    "searchlight_block": lambda study, w: {"searchlight": study.searchlight_method("searchlight_block"),
+                                           "analysis": study.searchlight_analysis(w["analysis"], "searchlight_block"),
+                                           "subject": w["subject"], "block": int(w["block"]), "seed": study.seed},
+    "searchlight_merge": lambda study, w: {"searchlight": study.searchlight_method("searchlight_merge"),
+                                           "analysis": study.searchlight_analysis(w["analysis"], "searchlight_merge"),
+                                           "subject": w["subject"]},
+    "searchlight_group": lambda study, w: {"searchlight": study.searchlight_method("searchlight_group"),
+                                           "analysis": study.searchlight_analysis(w["analysis"], "searchlight_group"),
+                                           "subjects": list(study.subjects), "group": study.config["group"], "seed": study.seed},
+    "manifest": lambda study, w: {},
+}
+
+
+# -- building the model (every check of meaning, once) ------------------------------
+def _event_conditions(path, column):
+    """The conditions named in one events TSV (read as text; the GLM job reads it fully later)."""
+    try:
+        with open(path, encoding="utf-8", newline="") as handle:
+            rows = csv.DictReader(handle, delimiter="\t")
+            if rows.fieldnames is None or column not in rows.fieldnames:
+                raise InputError(path, column, f"the events file has no {column} column",
+                                 f"add a {column} column naming each event's condition, or set dataset.condition_column")
+            return {(row[column] or "").strip() for row in rows} - set(_MISSING_VALUES)
+    except (OSError, UnicodeDecodeError) as error:
+        raise InputError(path, "file", f"the events file cannot be read ({error})", "check the file and its permissions") from None
+
+
+def _available_conditions(config, subjects, runs):
+    """subject -> the conditions its events name (the demo: the simulator's conditions), as the GLM models them."""
+    if config["dataset"]["source"] == "demo":
+        found = {subject: set(demo.CONDITIONS) for subject in subjects}
+    else:
+        found = {subject: set() for subject in subjects}
+        for run in runs:
+            found[run["subject"]] |= _event_conditions(run["events"], config["dataset"].get("condition_column", "trial_type"))
+    modelled = config["glm"]["conditions"]
+    if modelled:  # the GLM keeps the listed conditions only
+        found = {subject: conditions & set(modelled) for subject, conditions in found.items()}
+    return {subject: frozenset(conditions) for subject, conditions in found.items()}
+
+
+def _check_conditions(analysis, index, available, glm_conditions, path):
+    """Every condition an analysis names is in the events of every subject (did-you-mean on a miss)."""
+    kind = ANALYSIS_KINDS[analysis.kind]
+    every = sorted(set().union(*available.values())) if available else []
+    for key, condition in kind.condition_keys(analysis.entry):
+        lacking = [subject for subject, conditions in available.items() if condition not in conditions]
+        if not lacking:
+            continue
+        close = difflib.get_close_matches(condition, every, n=1)
+        hint = f" (did you mean '{close[0]}'?)" if close else ""
+        who = "any subject" if len(lacking) == len(available) else f"subject(s) {', '.join(lacking[:8])}" + (" ..." if len(lacking) > 8 else "")
+        modelled = " among the conditions the GLM models (glm.conditions)" if glm_conditions else ""
+        raise InputError(path, f"analyses[{index}].{key}",
+                         f"analysis '{analysis.name}' names condition '{condition}', found in the events of no run of {who}{hint}{modelled}",
+                         f"use a condition of the events ({', '.join(every[:12])}{' ...' if len(every) > 12 else ''})")
+
+
+def check_meaning(config, path="the study config"):
+    """Every check of meaning that needs the config only (no dataset): names, references, kinds, counts.
+
+    :func:`foldwise.config.validate` calls it after the schema, so a config
+    that validates is one this model can be built from.
+    """
+    roi_names = [entry["name"] for entry in config["rois"]]
+    for repeated in _duplicates(roi_names):
+        raise InputError(path, "rois[].name", f"the ROI name '{repeated}' is used twice", "give each ROI a unique name")
+    for index, entry in enumerate(config["rois"]):
+        kinds = [name for name in ROI_KINDS if name in entry]
+        if len(kinds) != 1:
+            raise InputError(path, f"rois[{index}]", f"an ROI needs exactly one of {', '.join(repr(k) for k in ROI_KINDS)}, "
+                             f"found {', '.join(kinds) or 'none'}", "keep one definition")
+        ROI_KINDS[kinds[0]].check(entry, f"rois[{index}]", path, config)
+    names = [entry["name"] for entry in config["analyses"]]
+    for repeated in _duplicates(names):
+        raise InputError(path, "analyses[].name", f"the analysis name '{repeated}' is used twice", "give each analysis a unique name")
+    for index, entry in enumerate(config["analyses"]):
+        where = f"analyses[{index}]"
+        if entry["kind"] not in ANALYSIS_KINDS:
+            raise InputError(path, f"{where}.kind", f"unknown kind '{entry['kind']}'", f"use one of {', '.join(ANALYSIS_KINDS)}")
+        for roi in entry["rois"]:
+            if roi not in roi_names:
+                close = difflib.get_close_matches(roi, roi_names, n=1)
+                hint = f" (did you mean '{close[0]}'?)" if close else ""
+                raise InputError(path, f"{where}.rois", f"unknown ROI '{roi}'{hint}", f"use one of {', '.join(roi_names)} or define it under rois")
+        ANALYSIS_KINDS[entry["kind"]].check(entry, where, path)
+        counts = [count for count in entry["voxel_counts"] if count != "all"]
+        if counts != sorted(counts):
+            raise InputError(path, f"{where}.voxel_counts", f"counts {counts} are not increasing", "list the counts from small to large ('all' last)")
+    excluded = set(config["dataset"]["exclude_subjects"])
+    chosen = config["dataset"]["subjects"]
+    if chosen and not set(chosen) - excluded:
+        raise InputError(path, "dataset.exclude_subjects", "every listed subject is excluded", "exclude fewer subjects")
+    searchlight = config["searchlight"]
+    kinds = {entry["name"]: entry["kind"] for entry in config["analyses"]}
+    for name in searchlight["analyses"]:
+        if name not in kinds:
+            close = difflib.get_close_matches(name, names, n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise InputError(path, "searchlight.analyses", f"unknown analysis '{name}'{hint}", f"use one of {', '.join(names)}")
+        if not ANALYSIS_KINDS[kinds[name]].searchlight:
+            mapped = ", ".join(kind.name for kind in ANALYSIS_KINDS.values() if kind.searchlight)
+            raise InputError(path, "searchlight.analyses", f"analysis '{name}' is of kind '{kinds[name]}', which the searchlight does not map",
+                             f"list analyses of a kind the searchlight maps ({mapped})")
+
+
+def _build_rois(config):
+    rois = {}
+    for entry in config["rois"]:
+        kind = ROI_KINDS[next(name for name in ROI_KINDS if name in entry)]
+        rois[entry["name"]] = Roi(name=entry["name"], kind=kind.name, entry=_frozen(entry), source=kind.source(entry, config),
+                                  threshold=entry.get("threshold"), min_voxels=int(entry["min_voxels"]))
+    return rois
+
+
+def _build_analyses(config, roi_names, searchlight_names):
+    analyses = {}
+    for entry in config["analyses"]:
+        kind = ANALYSIS_KINDS[entry["kind"]]
+        class_names, set_names, directions = kind.outline(entry)
+        analyses[entry["name"]] = Analysis(
+            name=entry["name"], kind=kind.name, entry=_frozen(entry), rois=tuple(entry["rois"]) or tuple(roi_names),
+            class_names=tuple(class_names), set_names=None if set_names is None else tuple(set_names), directions=tuple(directions),
+            conditions=tuple(dict.fromkeys(condition for _, condition in kind.condition_keys(entry))),
+            searchlight=entry["name"] in searchlight_names)
+    return analyses
+
+
+def build_study(config, path="the study config"):
+    """Build the :class:`Study` of a validated config, before any job.
+
+    The config-only checks ran in :func:`check_meaning` (called by
+    :func:`foldwise.config.validate`); this adds those that need the dataset:
+    subjects and runs (:func:`foldwise.plan.plan_study`) and the conditions
+    each analysis names, which must be in the events of every subject.
+
+    Parameters
+    ----------
+    config : dict
+        The output of :func:`foldwise.config.validate` (defaults filled).
+    path : str
+        The config file, named in every message.
+
+    Raises
+    ------
+    InputError
+        Naming the config file, the key path and the fix: no subject left, a
+        run's files missing, a condition absent from a subject's events, ...
+    """
+    plan = plan_study(config, path=path)
+    searchlight = config["searchlight"]
+    searchlight_names = tuple(searchlight["analyses"]) if searchlight["enabled"] else ()
+    rois = _build_rois(config)
+    analyses = _build_analyses(config, list(rois), searchlight_names)
+    available = _available_conditions(config, plan.subjects, plan.runs)
+    for index, analysis in enumerate(analyses.values()):
+        _check_conditions(analysis, index, available, config["glm"]["conditions"], path)
+    return Study(config=config, config_file=str(path), subjects=plan.subjects, runs=plan.runs, rois=rois, analyses=analyses,
+                 searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])),
+                 available_conditions=available)

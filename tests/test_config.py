@@ -31,7 +31,7 @@ def test_minimal_config_gets_every_default():
                "analyses": [{"name": "b", "kind": "within", "classes": {"p": ["c1"], "q": ["c2"]}}]}
     study = validate(minimal)
     assert study["study"]["seed"] == 20261201
-    assert study["group"] == {"n_draws": 10000, "alpha": 0.05, "prevalence": True}
+    assert study["group"] == {"n_draws": 10000, "alpha": 0.05, "prevalence": True, "fwe_method": "standardised", "family": "per_direction"}
     assert study["dataset"]["patterns"]["brain_mask"] == ""
 
 

@@ -215,6 +215,117 @@ def test_max_statistic_finds_a_true_effect():
     assert p_fwe[2] == p_fwe.min()
 
 
+# -- balanced family-wise correction (Westfall & Young 1993; Nichols & Holmes 2002) --
+
+def test_standardised_max_p_equals_brute_force_loop():
+    rng = np.random.default_rng(14)
+    null = rng.normal(size=(60, 5)) * [0.5, 1.0, 2.0, 4.0, 1.0]
+    observed = np.array([1.2, 1.9, 3.0, 5.5, -0.4])
+    families = np.array([0, 0, 0, 0, 1])
+    p_fwe = group.standardised_max_p(observed, null, families, tolerance=0.0)
+    # Source: Westfall & Young (1993) / Nichols & Holmes (2002): standardise each cell by its null's mean and SD
+    # (numpy's population SD), then count draws whose family maximum reaches the observed standardised value.
+    z_null = (null - null.mean(axis=0)) / null.std(axis=0)
+    z_observed = (observed - null.mean(axis=0)) / null.std(axis=0)
+    for cell in range(5):
+        members = np.flatnonzero(families == families[cell])
+        count = sum(max(z_null[draw, m] for m in members) >= z_observed[cell] for draw in range(60))
+        assert p_fwe[cell] == pytest.approx((1 + count) / 61, abs=1e-15)
+
+
+def test_min_p_fwe_equals_brute_force_loop():
+    rng = np.random.default_rng(15)
+    null = rng.normal(size=(50, 4)) * [0.3, 1.0, 3.0, 1.0]
+    observed = np.array([0.6, 2.4, 2.0, 0.1])
+    families = np.array([0, 0, 0, 1])
+    p_fwe = group.min_p_fwe(observed, null, families, tolerance=0.0)
+    # Source: Westfall & Young (1993), single-step min-p, written out as loops: the observed labeling and the
+    # draws are the 51 members; each member's p in a cell is its share of members at least as large.
+    members = np.vstack([observed, null])
+    member_p = np.array([[np.mean(members[:, c] >= members[m, c]) for c in range(4)] for m in range(51)])
+    for cell in range(4):
+        family = np.flatnonzero(families == families[cell])
+        count = sum(min(member_p[m, f] for f in family) <= member_p[0, cell] for m in range(51))
+        assert p_fwe[cell] == pytest.approx(count / 51, abs=1e-15)
+
+
+def _heterogeneous_null_study(rng, n_subjects, n_permutations, n_cells):
+    # Pure noise: cell c has null SD growing with c (as the null SD of accuracy grows with the voxel count).
+    spread = np.linspace(0.02, 0.08, n_cells)
+    shared = rng.normal(size=(n_subjects, n_permutations + 1, 1))
+    values = 0.5 + spread * (np.sqrt(0.5) * shared + np.sqrt(0.5) * rng.normal(size=(n_subjects, n_permutations + 1, n_cells)))
+    return values[:, 0, :], values[:, 1:, :]
+
+
+@pytest.mark.parametrize("method", group.FWE_METHODS)
+def test_balanced_correction_holds_fwe_and_spreads_it_over_cells(method):
+    rng = np.random.default_rng(20261203)
+    n_studies, n_subjects, n_permutations, n_cells, n_draws, alpha = 300, 10, 100, 4, 500, 0.05
+    any_reject, raw_reject_widest, balanced_per_cell = 0, 0, np.zeros(n_cells)
+    for _ in range(n_studies):
+        observed, nulls = _heterogeneous_null_study(rng, n_subjects, n_permutations, n_cells)
+        null_mean = group.group_mean_null(nulls, group.draw_indices(rng, n_permutations, n_subjects, n_draws))
+        p_fwe = group.family_wise_p(observed.mean(axis=0) - 0.5, null_mean - 0.5, np.zeros(n_cells), method)
+        any_reject += np.any(p_fwe <= alpha)
+        balanced_per_cell += p_fwe <= alpha
+        raw = group.max_statistic_p(observed.mean(axis=0) - 0.5, null_mean - 0.5, np.zeros(n_cells))
+        raw_reject_widest += raw[-1] <= alpha
+    # Source: scipy.stats.binom, 99% bounds of the count of studies with any rejection at exactly alpha.
+    assert stats.binom.ppf(0.005, n_studies, alpha) <= any_reject <= stats.binom.ppf(0.995, n_studies, alpha)
+    # Balanced: the narrowest cell gets a share of the error rate (the raw maximum gives it almost none).
+    assert balanced_per_cell[0] >= 2
+    assert raw_reject_widest >= balanced_per_cell[-1]
+
+
+def test_standardised_effect_equals_t_over_root_n():
+    rng = np.random.default_rng(16)
+    scores = 0.5 + rng.normal(0.02, 0.05, size=(9, 3))
+    # Source: scipy.stats.ttest_1samp; Cohen's one-sample d = t / sqrt(n).
+    t_value = stats.ttest_1samp(scores, 0.5).statistic
+    np.testing.assert_allclose(group.standardised_effect(scores, 0.5), t_value / 3.0, rtol=1e-12)
+
+
+def test_gamma0_max_by_hand():
+    # 5 subjects, 10,000 draws: smallest p = 1/10001; (1/10001)**(1/5) = 0.1584; 0.05**(1/5) = 0.5493;
+    # gamma0_max = (0.5493 - 0.1584) / (1 - 0.1584) = 0.4644 < 0.5: the majority test can never succeed.
+    assert group.prevalence_gamma0_max(5, 10_000, 0.05) == pytest.approx(0.4644, abs=1e-4)
+    assert group.prevalence_gamma0_max(20, 10_000, 0.05) > 0.5
+    assert np.isnan(group.prevalence_gamma0_max(3, 10, 0.05))  # 1/11 > 0.05: not even the global null
+
+
+def test_corrected_prevalence_equals_brute_force_from_the_papers_formulas():
+    # Hand-sized: 3 subjects, 2 cells, each subject with its actual labeling (choice 0) and 2 permutations; all
+    # 27 combinations enumerated. Allefeld, Gorgen & Haynes (2016): the minimum statistic over subjects per cell;
+    # family-wise: the maximum over the family of the (here standardised) minimum; then
+    # gamma0* = (alpha**(1/N) - p**(1/N)) / (1 - p**(1/N)) (formulas from memory).
+    labelings = np.array([[[0.70, 0.55], [0.40, 0.50], [0.50, 0.45]],
+                          [[0.80, 0.60], [0.45, 0.65], [0.60, 0.40]],
+                          [[0.75, 0.50], [0.55, 0.45], [0.35, 0.60]]])
+    combinations = np.array(list(itertools.product(range(3), repeat=3)))
+    minimum = group.group_minimum_null(labelings, combinations)
+    observed = labelings[:, 0, :].min(axis=0)
+    brute_min = np.array([[min(labelings[s, combo[s], c] for s in range(3)) for c in range(2)] for combo in combinations])
+    np.testing.assert_allclose(minimum, brute_min)
+    z = (brute_min - brute_min.mean(axis=0)) / brute_min.std(axis=0)
+    z_observed = (observed - brute_min.mean(axis=0)) / brute_min.std(axis=0)
+    expected = np.array([(1 + sum(row.max() >= z_observed[c] for row in z)) / 28 for c in range(2)])
+    p_fwe = group.standardised_max_p(observed, minimum, [0, 0], tolerance=0.0)
+    np.testing.assert_allclose(p_fwe, expected)
+    bound = group.prevalence_bound(p_fwe, 3, 0.5)
+    root = expected ** (1 / 3)
+    np.testing.assert_allclose(bound, np.where(expected <= 0.5, (0.5 ** (1 / 3) - root) / (1 - root), np.nan))
+
+
+def test_group_statistics_report_effect_size_and_corrected_prevalence():
+    rng = np.random.default_rng(17)
+    observed, nulls = _simulated_subject_values(rng, 8, 50, 3, effect=0.0)
+    observed[:, 0] += 0.08
+    columns, _ = group.group_statistics(observed, 0.5, nulls, np.zeros(3, dtype=int), rng, 400, 0.05)
+    np.testing.assert_allclose(columns["effect_size"], group.standardised_effect(observed, 0.5))
+    assert np.all(columns["prevalence_p_global_fwe"] >= columns["prevalence_p_global"] - 1e-12)  # corrected never smaller
+    assert columns["prevalence_gamma0_max"][0] == pytest.approx(group.prevalence_gamma0_max(8, 400, 0.05))
+
+
 # -- prevalence inference (Allefeld, Gorgen & Haynes 2016) ---------------------
 
 def test_prevalence_worked_example_by_hand():
@@ -395,7 +506,7 @@ def test_job_corrects_each_cross_direction_separately(tmp_path):
         rows = table["direction"] == direction
         draws = np.stack([null.loc[(null["roi"] == r) & (null["direction"] == direction) & (null["n_voxels"] == c), "mean"]
                           for r, c in table.loc[rows, ["roi", "n_voxels"]].values], axis=1)
-        expected = group.max_statistic_p(table.loc[rows, "mean"].to_numpy() - 1 / 3, draws - 1 / 3, np.zeros(4))
+        expected = group.standardised_max_p(table.loc[rows, "mean"].to_numpy() - 1 / 3, draws - 1 / 3, np.zeros(4))
         # The written null carries 7 digits; allow one draw's worth of difference.
         np.testing.assert_allclose(table.loc[rows, "p_fwe"], expected, atol=1.5 / 401)
     assert "direction seen<->heard" in Path(outputs["summary"]).read_text(encoding="utf-8")
@@ -480,3 +591,57 @@ def test_job_code_hash_covers_the_science_module():
     from foldwise.provenance.hashing import module_closure
 
     assert Path(group.__file__).resolve() in module_closure("foldwise.jobs.group")
+
+
+def test_job_reports_counts_beyond_the_roi_once_as_all_with_one_warning_per_roi(tmp_path, caplog):
+    # ROIs of 57 voxels: the requested count 100 uses every voxel, like 'all' (n_used 57 in every subject).
+    inputs = _write_study(tmp_path, counts=("10", "100", "all"), seed=8)
+    outputs = _outputs(tmp_path)
+    params = _params()
+    params["analysis"]["voxel_counts"] = [10, 100, "all"]
+    with caplog.at_level(logging.WARNING, logger="test_group"):
+        group_job.run(inputs, outputs, params, LOG)
+    table = pd.read_csv(outputs["table"], sep="\t", dtype={"n_voxels": str, "n_used": str})
+    assert table[["roi", "n_voxels", "n_used"]].values.tolist() == [["ember", "10", "10"], ["ember", "all", "57"],
+                                                                     ["glow", "10", "10"], ["glow", "all", "57"]]
+    warned = [record.getMessage() for record in caplog.records if "reach the ROI's size" in record.getMessage()]
+    assert len(warned) == 2 and "ROI ember" in warned[0] and "ROI glow" in warned[1]  # once per ROI, not per subject
+
+
+@pytest.mark.parametrize("family", ["per_direction", "all_directions"])
+def test_job_family_setting_names_and_forms_the_family(tmp_path, family):
+    directions = ("seen->heard", "heard->seen", "seen<->heard", "seen->seen", "heard->heard")
+    inputs = _write_study(tmp_path, directions=directions, seed=6)
+    analysis = {"name": ANALYSIS, "kind": "cross", "sets": {"seen": {"round": "seen_round"}, "heard": {"round": "heard_round"}},
+                "rois": ["ember", "glow"], "voxel_counts": [10, "all"]}
+    params = _params(analysis=analysis, n_draws=300)
+    params["group"]["family"] = family
+    outputs = _outputs(tmp_path)
+    group_job.run(inputs, outputs, params, LOG)
+    table = pd.read_csv(outputs["table"], sep="\t", dtype={"n_voxels": str})
+    null = pd.read_csv(outputs["null"], sep="\t", dtype={"n_voxels": str})
+    draws = np.stack([null.loc[(null["roi"] == r) & (null["direction"] == d) & (null["n_voxels"] == c), "mean"].to_numpy()
+                      for r, d, c in table[["roi", "direction", "n_voxels"]].values], axis=1)
+    if family == "per_direction":
+        assert table["family"].tolist() == [f"direction {d}" for d in table["direction"]]
+        labels = pd.factorize(table["direction"])[0]
+    else:
+        assert set(table["family"]) == {"all directions"}
+        labels = np.zeros(len(table), dtype=int)
+    expected = group.standardised_max_p(table["mean"].to_numpy() - 1 / 3, draws - 1 / 3, labels)
+    np.testing.assert_allclose(table["p_fwe"], expected, atol=1.5 / 301)  # 7 digits on disk
+    assert "one family" in Path(outputs["summary"]).read_text(encoding="utf-8")
+
+
+def test_job_warns_when_a_subjects_design_cannot_reach_alpha(tmp_path, caplog):
+    inputs = _write_study(tmp_path, seed=9)
+    for path in inputs["summaries"][:2]:  # two subjects with 8 distinct relabelings: p >= 1/8 > 0.05
+        frame = pd.read_csv(path, sep="\t", dtype={"subject": str, "n_voxels": str})
+        write_tsv(path, frame.assign(p_min=0.125))
+    outputs = _outputs(tmp_path)
+    with caplog.at_level(logging.WARNING, logger="test_group"):
+        group_job.run(inputs, outputs, _params(), LOG)
+    assert any("01, 02" in record.getMessage() and "relabelings" in record.getMessage() for record in caplog.records)
+    table = pd.read_csv(outputs["table"], sep="\t")
+    assert np.allclose(table["subject_p_min"], 0.125)
+    assert "relabelings" in Path(outputs["summary"]).read_text(encoding="utf-8")

@@ -374,8 +374,11 @@ def _decode_gather_settings(study, wildcards):
 
 def _group_settings(study, wildcards):
     analysis = study.analyses[wildcards["analysis"]]
-    return {"group": study.config["group"], "analysis": {**_plain(analysis.entry), "rois": list(analysis.rois)},
-            "subjects": list(study.subjects), "seed": study.seed}
+    settings = {"group": study.config["group"], "analysis": {**_plain(analysis.entry), "rois": list(analysis.rois)},
+                "subjects": list(study.subjects), "seed": study.seed}
+    if study.config["group"].get("family") == "all_analyses":  # the Bonferroni factor over analyses
+        settings["n_analyses"] = sum("group" in entry.steps for entry in study.analyses.values())
+    return settings
 
 
 STEP_SETTINGS = {

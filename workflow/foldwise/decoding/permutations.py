@@ -51,6 +51,7 @@ __all__ = [
     "draw_relabelings",
     "null_relabelings",
     "smallest_p",
+    "subject_p",
 ]
 
 
@@ -296,3 +297,34 @@ def smallest_p(n_null, exact, space):
         return float("nan")
     floor = 1.0 / space.n_distinct
     return floor if exact else max(1.0 / (1 + n_null), floor)
+
+
+def subject_p(observed, null, exact, tolerance=1e-9):
+    """p-value of observed scores against a subject's null, per column.
+
+    Parameters
+    ----------
+    observed : array_like, shape (n_cells,)
+    null : array_like, shape (n_null, n_cells)
+    exact : bool
+        The null lists the whole space, the actual labeling included:
+        ``p = #{null >= observed} / n_null``. Otherwise random draws:
+        ``p = (1 + #{null >= observed}) / (1 + n_null)`` (Hemerik & Goeman
+        2018; Phipson & Smyth 2010).
+    tolerance : float
+        Null values this close below the observed count as ties (float noise
+        between equal scores computed in different orders).
+
+    Returns
+    -------
+    ndarray, shape (n_cells,)
+        NaN without a null.
+    """
+    observed = np.asarray(observed, dtype=np.float64)
+    null = np.asarray(null, dtype=np.float64)
+    if null.shape[0] == 0:
+        return np.full(observed.shape, np.nan)
+    at_least = (null >= observed - tolerance).sum(axis=0)
+    if exact:
+        return at_least / null.shape[0]
+    return (1.0 + at_least) / (1.0 + null.shape[0])

@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
+from foldwise.decoding.permutations import subject_p
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, write_tsv
 from foldwise.decoding.folds import check_training_classes, make_folds
@@ -36,7 +37,7 @@ __all__ = [
 
 TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
 SCORE_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "fold", "test_runs", "n_train", "n_test",
-                 "accuracy", "balanced_accuracy")
+                 "accuracy", "balanced_accuracy", "p_perm", "p_min", "n_relabelings", "null_exact")
 NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation", "balanced_accuracy", "accuracy")
 RANKING_COLUMNS = ("fold", "rank", "voxel_index", "i", "j", "k", "score")
 CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
@@ -247,7 +248,10 @@ def _score_rows(result, subject, name, roi, voxel_counts):
             "n_voxels": np.repeat(counts, n_folds), "n_used": np.repeat(result.n_used, n_folds),
             "fold": np.tile(np.arange(1, n_folds + 1), len(counts)), "test_runs": np.tile(test_runs, len(counts)),
             "n_train": np.tile(scores.n_train, len(counts)), "n_test": np.tile(scores.n_test, len(counts)),
-            "accuracy": scores.accuracy.T.ravel(), "balanced_accuracy": scores.balanced_accuracy.T.ravel()}))
+            "accuracy": scores.accuracy.T.ravel(), "balanced_accuracy": scores.balanced_accuracy.T.ravel(),
+            # the subject's permutation p of the fold-mean balanced accuracy (one value per count, repeated per fold)
+            "p_perm": np.repeat(subject_p(scores.balanced_accuracy.mean(axis=0), scores.null_balanced_accuracy, result.null_exact), n_folds),
+            "p_min": result.p_min, "n_relabelings": float(result.n_relabelings), "null_exact": result.null_exact}))
     return pd.concat(frames, ignore_index=True)[list(SCORE_COLUMNS)]
 
 
@@ -335,9 +339,9 @@ def run(inputs, outputs, params, log):
     voxel_counts = list(analysis["voxel_counts"])
     n_voxels = patterns.shape[1]
     _, too_large = resolve_counts(voxel_counts, n_voxels)
-    if too_large:
-        log.warning("subject %s, ROI %s has %d voxels: voxel count(s) %s exceed it and use all %d (see n_used)",
-                    subject, roi, n_voxels, ", ".join(map(str, too_large)), n_voxels)
+    if too_large:  # said once per ROI by the group stage, which also reports such counts once (as all)
+        log.info("subject %s, ROI %s has %d voxels: voxel count(s) %s exceed it and use all %d (see n_used)",
+                 subject, roi, n_voxels, ", ".join(map(str, too_large)), n_voxels)
     options = {"folds": folds, "n_classes": len(class_names), "classifier": analysis["classifier"], "selection": analysis["selection"],
                "demean_patterns": analysis["demean_patterns"], "svm_c": analysis["svm_c"], "logistic_c": analysis["logistic_c"],
                "n_permutations": int(analysis["n_permutations"]), "rng": permutation_rng(seed, subject, name),

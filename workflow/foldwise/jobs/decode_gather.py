@@ -17,7 +17,8 @@ from foldwise.jobs.decode import SCORE_COLUMNS
 
 __all__ = ["SUMMARY_COLUMNS", "gather_scores", "summarise_scores", "run"]
 
-SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy", "balanced_accuracy", "chance")
+SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy", "balanced_accuracy", "chance",
+                   "p_perm", "p_min", "n_relabelings", "null_exact")
 
 
 def _directions(analysis):
@@ -107,7 +108,8 @@ def summarise_scores(scores, analysis):
     keys = ["subject", "analysis", "roi", "direction", "n_voxels"]
     grouped = scores.groupby(keys, sort=False)
     summary = grouped.agg(n_used=("n_used", "first"), n_folds=("fold", "size"), accuracy=("accuracy", "mean"),
-                          balanced_accuracy=("balanced_accuracy", "mean")).reset_index()
+                          balanced_accuracy=("balanced_accuracy", "mean"), p_perm=("p_perm", "first"), p_min=("p_min", "first"),
+                          n_relabelings=("n_relabelings", "first"), null_exact=("null_exact", "first")).reset_index()
     summary["n_used"] = summary["n_used"].astype(np.int64)
     summary["chance"] = 1.0 / _n_classes(analysis)
     return summary[list(SUMMARY_COLUMNS)]

@@ -26,8 +26,10 @@ SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_use
 SUBJECT_NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation",
                         "balanced_accuracy", "accuracy")
 TABLE_COLUMNS = ["analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low",
-                 "ci_high", "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global",
-                 "prevalence_gamma0", "prevalence_p_majority"]
+                 "ci_high", "effect_size", "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global",
+                 "prevalence_gamma0", "prevalence_p_majority", "prevalence_p_global_fwe", "prevalence_gamma0_fwe",
+                 "prevalence_gamma0_max", "n_used", "subject_p_min", "family"]
+FAMILIES = ("per_direction", "all_directions", "all_analyses")
 NULL_COLUMNS = ["roi", "direction", "n_voxels", "draw", "mean"]
 
 _KEY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels")
@@ -107,6 +109,11 @@ def _check_params(params):
     if not isinstance(settings.get("prevalence"), bool):
         raise InputError(None, "group.prevalence", f"must be true or false, got {settings.get('prevalence')!r}",
                          "set group.prevalence")
+    if settings.get("fwe_method", "standardised") not in group_stats.FWE_METHODS:
+        raise InputError(None, "group.fwe_method", f"unknown method {settings.get('fwe_method')!r}",
+                         f"use one of {', '.join(group_stats.FWE_METHODS)}")
+    if settings.get("family", "per_direction") not in FAMILIES:
+        raise InputError(None, "group.family", f"unknown family {settings.get('family')!r}", f"use one of {', '.join(FAMILIES)}")
     name = params["analysis"].get("name") if isinstance(params["analysis"], dict) else None
     if not isinstance(name, str) or not name:
         raise InputError(None, "analysis.name", f"missing or not a string: {name!r}", "pass the analysis entry of the config")
@@ -304,6 +311,70 @@ def _subject_nulls(paths, name, cells, subjects):
     return nulls
 
 
+def _optional_column(subject_frames, cells, column):
+    """(n_subjects, n_cells) values of an optional summary column (NaN where a summary lacks it)."""
+    position = {key: index for index, key in enumerate(cells)}
+    values = np.full((len(subject_frames), len(cells)), np.nan)
+    for row, (frame, _) in enumerate(subject_frames):
+        if column not in frame.columns:
+            continue
+        numbers = pd.to_numeric(frame[column], errors="coerce").to_numpy(dtype=np.float64)
+        for key, value in zip(_cell_keys(frame), numbers):
+            if key in position:
+                values[row, position[key]] = value
+    return values
+
+
+def _duplicate_counts(cells, n_used):
+    """Cells whose count reaches the ROI size in every subject: the same voxels as the ROI's ``all`` cell.
+
+    Returns ``(keep, renamed, notes)``: a mask of the cells to keep (each set of
+    duplicates enters once: ``all`` if requested, else the first such count,
+    renamed ``all``), the new count label per cell, and per ROI the counts dropped.
+    """
+    keep = np.ones(len(cells), dtype=bool)
+    renamed = [cell[2] for cell in cells]
+    dropped = {}
+    by_sweep = {}
+    for index, (roi, direction, count) in enumerate(cells):
+        by_sweep.setdefault((roi, direction), []).append(index)
+    for (roi, direction), members in by_sweep.items():
+        reference = next((index for index in members if cells[index][2] == "all"), None)
+
+        def uses_every_voxel(index):
+            count = cells[index][2]
+            if count == "all":
+                return True
+            if reference is not None:  # the ROI's size per subject is the n_used of its 'all' cell
+                return bool(np.array_equal(n_used[:, index], n_used[:, reference]))
+            return bool(np.all(n_used[:, index] < int(count)))  # capped in every subject
+
+        whole = [index for index in members if uses_every_voxel(index)]
+        if len(whole) < 2 and not (len(whole) == 1 and cells[whole[0]][2] != "all"):
+            continue
+        chosen = next((index for index in whole if cells[index][2] == "all"), whole[0])
+        renamed[chosen] = "all"
+        for index in whole:
+            if index != chosen:
+                keep[index] = False
+                dropped.setdefault(roi, set()).add(cells[index][2])
+            elif cells[index][2] != "all":
+                dropped.setdefault(roi, set()).add(cells[index][2])
+    return keep, renamed, {roi: sorted(counts, key=str) for roi, counts in dropped.items()}
+
+
+def _families(cells, directions, family):
+    """Family label per cell and its description."""
+    if family == "per_direction":
+        return np.array([directions.index(cell[1]) for cell in cells]), [f"direction {cell[1]}" for cell in cells]
+    return np.zeros(len(cells), dtype=np.int64), [family.replace("_", " ")] * len(cells)
+
+
+def _n_used_text(values):
+    low, high = int(np.nanmin(values)), int(np.nanmax(values))
+    return str(low) if low == high else f"{low}-{high}"
+
+
 def _result_table(name, cells, n_subjects, chance, columns):
     table = pd.DataFrame({
         "analysis": [name] * len(cells),
@@ -316,6 +387,15 @@ def _result_table(name, cells, n_subjects, chance, columns):
     for column in TABLE_COLUMNS[6:]:
         table[column] = columns[column]
     return table[TABLE_COLUMNS]
+
+
+def _family_text(family, fwe_method, n_analyses):
+    scale = ("each cell standardised by its own null (mean and SD of its group-null draws) before the maximum"
+             if fwe_method == "standardised" else "each cell entered by its own null p-value (single-step min-p)")
+    where = {"per_direction": "over all ROIs x voxel counts, one family per direction",
+             "all_directions": "over all ROIs x voxel counts x directions of the analysis, one family",
+             "all_analyses": f"over all ROIs x voxel counts x directions, then Bonferroni over the study's {n_analyses} analyses"}[family]
+    return f"maximum statistic {where}; {scale}"
 
 
 def _null_table(cells, null_mean):
@@ -331,7 +411,7 @@ def _null_table(cells, null_mean):
     })
 
 
-def _summary_text(name, analysis, table, directions, n_subjects, n_draws, alpha, notes):
+def _summary_text(name, analysis, table, directions, n_subjects, n_draws, alpha, notes, family_text=None):
     kind = analysis.get("kind", "within")
     lines = [f"Group statistics of analysis {name!r} ({kind} decoding), {n_subjects} subjects; "
              "score: balanced accuracy (fold mean per subject)."]
@@ -339,19 +419,26 @@ def _summary_text(name, analysis, table, directions, n_subjects, n_draws, alpha,
     if not table["p_fwe"].notna().any():
         lines.append("No family-wise corrected p-values (see the note above); nothing is tested.")
     else:
-        lines.append(f"Family-wise correction: maximum statistic (group mean minus chance) over all ROIs x voxel "
-                     f"counts, separately per direction; {n_draws} group draws; alpha {alpha:g}.")
+        lines.append(f"Family-wise correction of the group mean minus chance: {family_text}; {n_draws} group draws; "
+                     f"a cell counts as significant when p_fwe < alpha ({alpha:g}).")
+        gamma_max = table["prevalence_gamma0_max"].dropna()
+        if not gamma_max.empty:
+            lines.append(f"Largest prevalence bound gamma0 this design can reach ({n_subjects} subjects, {n_draws} draws): "
+                         f"{gamma_max.iloc[0]:.3f}" + (" -- below 0.5: the majority test cannot succeed."
+                                                      if gamma_max.iloc[0] < 0.5 else "."))
         for direction in directions:
             rows = table[table["direction"] == direction]
-            surviving = rows[rows["p_fwe"] <= alpha]
+            surviving = rows[rows["p_fwe"] < alpha]
             if surviving.empty:
                 lines.append(f"direction {direction}: nothing survives FWE correction at alpha {alpha:g}.")
                 continue
             lines.append(f"direction {direction}: cells surviving FWE correction at alpha {alpha:g}:")
             for row in surviving.itertuples(index=False):
                 gamma = "n/a" if pd.isna(row.prevalence_gamma0) else f"{row.prevalence_gamma0:.3f}"
+                gamma_fwe = "n/a" if pd.isna(row.prevalence_gamma0_fwe) else f"{row.prevalence_gamma0_fwe:.3f}"
                 lines.append(f"  roi {row.roi}, n_voxels {row.n_voxels}: mean {row.mean:.4f} (chance {row.chance:.4f}), "
-                             f"p_fwe {row.p_fwe:.4g}, prevalence gamma0 {gamma}")
+                             f"effect size {row.effect_size:.2f}, p_fwe {row.p_fwe:.4g}, prevalence gamma0 {gamma} "
+                             f"(family-wise {gamma_fwe})")
     lines.append("Reading: a group test on accuracies speaks about the mean over subjects (is the population-average "
                  "accuracy above chance?), not about how many subjects show the effect; that is what prevalence "
                  "inference addresses (gamma0: the share of the population with an effect exceeds it, at alpha; "
@@ -382,6 +469,9 @@ def run(inputs, outputs, params, log):
     the same inputs and params give byte-identical outputs.
     """
     n_draws, alpha, prevalence, name, subjects = _check_params(params)
+    fwe_method = params["group"].get("fwe_method", "standardised")
+    family = params["group"].get("family", "per_direction")
+    n_analyses = int(params.get("n_analyses", 1)) if family == "all_analyses" else 1
     analysis = params["analysis"]
     summaries = inputs.get("summaries") or []
     summaries = [summaries] if isinstance(summaries, str) else list(summaries)
@@ -390,7 +480,23 @@ def run(inputs, outputs, params, log):
     subject_frames = _read_summaries(summaries, name, subjects)
     cells = _ordered_cells(*subject_frames[0], analysis)
     scores, chance = _subject_scores(subject_frames, cells, subjects)
+    n_used = _optional_column(subject_frames, cells, "n_used")
+    subject_p_min = _optional_column(subject_frames, cells, "p_min")
     notes = []
+    keep, renamed, dropped = _duplicate_counts(cells, n_used)
+    for roi, counts in dropped.items():
+        message = (f"ROI {roi}: voxel count(s) {', '.join(map(str, counts))} reach the ROI's size in every subject; "
+                   f"they use every voxel and are reported once, as 'all' (see n_used)")
+        log.warning(message)
+        notes.append("Note: " + message + ".")
+    worst_p_min = np.nanmax(np.where(np.isnan(subject_p_min), -np.inf, subject_p_min), axis=0)
+    worst_p_min = np.where(np.isfinite(worst_p_min), worst_p_min, np.nan)
+    coarse = [subjects[row] for row in range(len(subjects)) if np.nanmin(np.append(subject_p_min[row], np.inf)) > alpha]
+    if coarse:
+        message = (f"subject(s) {_short_list(coarse)}: the design allows so few distinct relabelings that no "
+                   f"subject-level p can reach alpha {alpha:g} (see subject_p_min)")
+        log.warning(message)
+        notes.append("Note: " + message + ".")
     if len(subjects) < group_stats.MIN_SUBJECTS:
         message = (f"only {len(subjects)} subject(s): descriptive statistics only, inferential columns are n/a "
                    f"(at least {group_stats.MIN_SUBJECTS} are needed)")
@@ -405,13 +511,27 @@ def run(inputs, outputs, params, log):
             notes.append("Note: " + message + ".")
         elif 1.0 / (1 + n_draws) > alpha:
             log.warning("group.n_draws %d cannot reach p <= alpha %g; raise group.n_draws", n_draws, alpha)
+    # duplicates of the ROI's 'all' cell enter the table and the family once
+    cells = [(cell[0], cell[1], renamed[index]) for index, cell in enumerate(cells) if keep[index]]
+    scores, chance, n_used, worst_p_min = scores[:, keep], chance[keep], n_used[:, keep], worst_p_min[keep]
+    if subject_nulls is not None:
+        subject_nulls = subject_nulls[:, :, keep]
     directions = [d for d in _direction_order(analysis) if any(cell[1] == d for cell in cells)]
-    families = np.array([directions.index(cell[1]) for cell in cells])
+    families, family_names = _families(cells, directions, family)
     rng = np.random.default_rng(seed_from(params["seed"], "group", name))
     columns, null_mean = group_stats.group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha,
-                                                       prevalence=prevalence)
+                                                       prevalence=prevalence, fwe_method=fwe_method)
+    if n_analyses > 1:  # one family over the study's analyses: Bonferroni over the analyses' own maxima
+        for column in ("p_fwe", "prevalence_p_global_fwe"):
+            columns[column] = np.minimum(1.0, columns[column] * n_analyses)
+        columns["prevalence_gamma0_fwe"] = group_stats.prevalence_bound(
+            np.where(np.isnan(columns["prevalence_p_global_fwe"]), 1.0, columns["prevalence_p_global_fwe"]), len(subjects), alpha)
+    columns["n_used"] = np.array([_n_used_text(n_used[:, index]) if np.isfinite(n_used[:, index]).any() else "n/a"
+                                  for index in range(len(cells))], dtype=object)
+    columns["subject_p_min"] = worst_p_min
+    columns["family"] = np.array(family_names, dtype=object)
     table = _result_table(name, cells, len(subjects), chance, columns)
     write_tsv(outputs["table"], table)
     write_tsv(outputs["null"], _null_table(cells, null_mean))
     write_text_atomic(outputs["summary"], _summary_text(name, analysis, table, directions, len(subjects), n_draws,
-                                                        alpha, notes))
+                                                        alpha, notes, _family_text(family, fwe_method, n_analyses)))

@@ -311,3 +311,26 @@ def test_sign_flip_two_sided_and_pairwise():
     flips, _ = inference.sign_flips(6, 10_000, np.random.default_rng(0))
     out = inference.signflip_test(-differences[:, :, 0], flips, two_sided=True)
     assert out["p"][0] == pytest.approx(2 / 64)  # all six negative: only the identity and its mirror as extreme (hand count)
+
+
+# -- searchlight ---------------------------------------------------------------
+
+def test_searchlight_distances_equal_the_roi_estimator_on_each_sphere():
+    from foldwise.searchlight.engine import sphere_neighbourhoods
+    from foldwise.searchlight import geometry as searchlight_geometry
+    rng = np.random.default_rng(14)
+    mask = np.ones((6, 6, 5), dtype=bool)
+    mask[0, 0, :] = False
+    spheres = sphere_neighbourhoods(mask, np.eye(4), 2.0)
+    n_voxels = int(mask.sum())
+    patterns = rng.standard_normal((4, 4, n_voxels))
+    residuals = [rng.standard_normal((20, n_voxels)) for _ in range(4)]
+    inverse_variance = noise.fold_noise("univariate", residuals).inverse_variance
+    model_set = rng.standard_normal((2, 6))
+    fits = searchlight_geometry.sphere_model_fits(patterns, spheres, model_set, "kendall_tau_a", inverse_variance)
+    for centre in (0, 37, n_voxels - 1):
+        voxels = spheres.indices[centre][spheres.indices[centre] >= 0]
+        # Source: the ROI estimator (itself checked against the brute-force loop) on the sphere's voxels.
+        roi = distances.crossvalidated_distances(patterns[:, :, voxels], noise.fold_noise("univariate", [r[:, voxels] for r in residuals]))
+        np.testing.assert_allclose(searchlight_geometry.sphere_distances(patterns, spheres, inverse_variance)[centre], roi, atol=1e-12)
+        np.testing.assert_allclose(fits[centre], compare.kendall_tau_a(roi, model_set)[0], atol=1e-12)

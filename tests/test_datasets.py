@@ -139,3 +139,100 @@ def test_required_conditions_cover_analyses_glm_and_localizers():
     assert ("heard_square", "analyses[1].sets.heard.square", "lanterns") in required
     assert ("seen_round", "glm.conditions", "lanterns") in required
     assert ("dark", "rois[0].localizer.contrast", "beacon") in required
+
+
+# ------------------------------------------------ localizer-defined ROIs
+
+from foldwise.masks import localizer  # noqa: E402
+
+
+def _localizer_fit(dataset, subject="01"):
+    """The stacked localizer design and masked data of one subject (every beacon run), built as the job builds it."""
+    from foldwise.jobs import localizer_roi
+    runs = [run for run in _runs(dataset, "beacon") if run["subject"] == subject]
+    brain = simulated.brain().ravel(order="F")
+    settings = {"glm": GLM, "confounds": ["trans_x"], "drop_initial_volumes": {"flagged_by": "unsteady_"}, "condition_column": "trial_type"}
+    return localizer_roi.localizer_model(runs, brain, settings, logging.getLogger("test"))
+
+
+def test_contrast_t_equals_statsmodels_ols_t_on_sampled_voxels(dataset):
+    # Reference: statsmodels OLS(y, X).fit().t_test(c) per voxel (the registry's regression library).
+    import statsmodels.api as sm
+    design, names, data = _localizer_fit(dataset)
+    contrast = localizer.contrast_vector(names, {"lit": 1, "dark": -1})
+    t, dof = localizer.contrast_t(design, data, contrast)
+    rng = np.random.default_rng(5)
+    for voxel in rng.choice(data.shape[1], size=12, replace=False):
+        reference = sm.OLS(data[:, voxel], design).fit()
+        assert dof == int(reference.df_resid)
+        np.testing.assert_allclose(t[voxel], float(np.squeeze(reference.t_test(contrast).tvalue)), rtol=1e-8, atol=1e-10)
+
+
+def test_contrast_that_cannot_be_estimated_is_refused():
+    design = np.column_stack([np.ones(20), np.zeros(20)])  # the second condition never occurs
+    with pytest.raises(InputError) as excinfo:
+        localizer.contrast_t(design, np.random.default_rng(0).standard_normal((20, 3)), np.array([1.0, -1.0]))
+    assert "not estimable" in str(excinfo.value)
+    with pytest.raises(InputError) as excinfo:
+        localizer.contrast_vector(["lit", "dark", "r0_intercept"], {"lti": 1})
+    assert "did you mean 'lit'" in str(excinfo.value)
+
+
+def test_top_k_selection_breaks_ties_by_voxel_index_and_threshold_counts():
+    t = np.array([1.0, 5.0, 3.0, 5.0, 9.0, 2.0])
+    inside = np.array([True, True, True, True, False, True])
+    assert np.flatnonzero(localizer.select_localizer_voxels(t, inside, top_k=2)).tolist() == [1, 3]  # 9.0 is outside
+    assert np.flatnonzero(localizer.select_localizer_voxels(t, inside, t_threshold=3.0)).tolist() == [1, 2, 3]
+    with pytest.raises(InputError):
+        localizer.select_localizer_voxels(t, inside, top_k=6)
+    with pytest.raises(InputError):
+        localizer.select_localizer_voxels(t, inside, t_threshold=8.0, min_voxels=1)
+
+
+def test_localizer_roi_recovers_the_responsive_region(dataset):
+    # Simulated truth: the responsive voxels (36, both sides) lie inside the ember constraint (90 voxels).
+    design, names, data = _localizer_fit(dataset)
+    t, _ = localizer.contrast_t(design, data, localizer.contrast_vector(names, {"lit": 1, "dark": -1}))
+    brain = simulated.brain().ravel(order="F")
+    truth = simulated.responsive_region().ravel(order="F")[brain]
+    constraint = np.isin(simulated.atlas_labels().ravel(order="F")[brain], (1, 2))
+    chosen = localizer.select_localizer_voxels(t, constraint, top_k=int(truth.sum()))
+    overlap = (chosen & truth).sum() / truth.sum()
+    print(f"localizer ROI overlap with the responsive region: {overlap:.3f} ({int((chosen & truth).sum())}/{int(truth.sum())})")
+    assert overlap >= 0.9
+
+
+LOCALIZER_ENTRY = {"name": "beam", "min_voxels": 10,
+                   "localizer": {"task": "beacon", "contrast": {"lit": 1, "dark": -1}, "within": {"labels": ["ember_L", "ember_R"]},
+                                 "top_k": 36}}
+
+
+def _localizer_job(written, subject, folder):
+    from foldwise.jobs import localizer_roi
+    runs = [run for run in bids.discover_runs(written["raw"], PATTERNS, "beacon", derivatives_root=written["derivatives"],
+                                              space=simulated.SPACE, res=simulated.RES) if run["subject"] == subject]
+    inputs = {"bold": [run["bold"] for run in runs], "events": [run["events"] for run in runs],
+              "sidecar": [run["sidecar"] for run in runs], "confounds": [run["confounds"] for run in runs],
+              "brain_mask": runs[0]["brain_mask"], "atlas": str(written["atlas_image"]), "atlas_labels": str(written["atlas_labels"])}
+    folder.mkdir(parents=True, exist_ok=True)
+    outputs = {"mask": str(folder / "mask.nii.gz"), "tmap": str(folder / "tmap.nii.gz"), "info": str(folder / "info.json")}
+    params = {"roi": LOCALIZER_ENTRY, "subject": subject, "glm": GLM, "confounds": ["trans_x"],
+              "drop_initial_volumes": {"flagged_by": "unsteady_"}, "condition_column": "trial_type"}
+    localizer_roi.run(inputs, outputs, params, logging.getLogger("test"))
+    return outputs
+
+
+def test_localizer_roi_is_byte_identical_when_the_main_task_data_change(tmp_path):
+    first = simulated.write_dataset(tmp_path / "a", n_subjects=1, sessions=("1",))
+    second = simulated.write_dataset(tmp_path / "b", n_subjects=1, sessions=("1",), main_seed_offset=1)
+    main_a = first["derivatives"] / "sub-01/ses-1/func/sub-01_ses-1_task-lanterns_run-1_space-tmplA_res-2_desc-preproc_bold.nii.gz"
+    main_b = second["derivatives"] / "sub-01/ses-1/func/sub-01_ses-1_task-lanterns_run-1_space-tmplA_res-2_desc-preproc_bold.nii.gz"
+    assert main_a.read_bytes() != main_b.read_bytes()  # the main task's data did change
+    out_a, out_b = _localizer_job(first, "01", tmp_path / "out_a"), _localizer_job(second, "01", tmp_path / "out_b")
+    assert Path(out_a["mask"]).read_bytes() == Path(out_b["mask"]).read_bytes()
+    assert Path(out_a["tmap"]).read_bytes() == Path(out_b["tmap"]).read_bytes()
+    import nibabel as nib
+    mask = np.asarray(nib.load(out_a["mask"]).dataobj) > 0
+    truth = simulated.responsive_region()
+    print(f"localizer job ROI: {int(mask.sum())} voxels, {int((mask & truth).sum())} of the {int(truth.sum())} responsive")
+    assert mask.sum() == 36 and (mask & truth).sum() >= 32

@@ -164,6 +164,34 @@ def run_nuisance(confounds_path, selectors, drop_initial_volumes, n_scans):
     return names, values, n_drop
 
 
+def drop_initial(bold_2d, events, confounds, confound_names, n_drop, tr_s):
+    """Leave out the first ``n_drop`` volumes; drop confound columns that are then all zero.
+
+    Times are counted from the first kept volume afterwards (event onsets
+    move back by ``n_drop * tr_s``; an event that started earlier gets a
+    negative onset and its tail is still modelled). A confound column that is
+    zero on every kept volume (e.g. the spike column of a dropped volume)
+    would be an empty regressor and is left out.
+
+    Returns
+    -------
+    bold_2d, events, confounds (or None), confound_names
+    """
+    if n_drop:
+        bold_2d = bold_2d[n_drop:]
+        events = events.assign(onset=events["onset"] - n_drop * tr_s)
+        if confounds is not None:
+            confounds = confounds[n_drop:]
+    if confounds is not None:
+        silent = ~np.any(confounds != 0, axis=0)
+        if silent.any():
+            confounds = confounds[:, ~silent]
+            confound_names = [name for name, keep in zip(confound_names, ~silent) if keep]
+        if not confound_names:
+            confounds = None
+    return bold_2d, events, confounds, list(confound_names)
+
+
 def run(inputs, outputs, params, log):
     """Fit the GLM of one run inside the brain mask and write its patterns.
 
@@ -195,19 +223,7 @@ def run(inputs, outputs, params, log):
     voxels = np.flatnonzero(mask.ravel(order="F"))
     bold_2d = _masked_time_series(bold, voxels)
     del bold
-    if n_drop:
-        # Volumes before steady state leave the model; times are then counted from the first kept volume.
-        bold_2d = bold_2d[n_drop:]
-        events = events.assign(onset=events["onset"] - n_drop * tr_s)
-        if confounds is not None:
-            confounds = confounds[n_drop:]
-    if confounds is not None:
-        silent = ~np.any(confounds != 0, axis=0)  # e.g. the spike column of a dropped volume
-        if silent.any():
-            confounds = confounds[:, ~silent]
-            confound_names = [name for name, keep in zip(confound_names, ~silent) if keep]
-        if not confound_names:
-            confounds = None
+    bold_2d, events, confounds, confound_names = drop_initial(bold_2d, events, confounds, confound_names, n_drop, tr_s)
     log.info("sub-%s %s: dropped %d initial volume(s); confounds: %s", subject, run_id, n_drop, ", ".join(confound_names) or "none")
 
     try:

@@ -27,7 +27,24 @@ def run(inputs, outputs, params, log):
     brain_image = load_nifti(inputs["brain_mask"], what="brain mask")
     brain = np.asarray(brain_image.dataobj) > 0
     shape, affine = brain.shape, brain_image.affine
+    roi, source = defined_region(entry, inputs, shape, affine, name)
+    kept = restrict_to_brain(roi, brain, min_voxels, subject, name, source_file=source)
+    save_nifti(outputs["mask"], kept.astype(np.uint8), affine, dtype=np.uint8)
+    write_json(outputs["info"], {"roi": name, "subject": subject, "n_voxels": int(kept.sum()), "min_voxels": min_voxels,
+                                 "definition": entry})
 
+
+def defined_region(entry, inputs, shape, affine, name):
+    """The region an entry with ``labels``, ``image`` or ``sphere`` defines, on the grid ``(shape, affine)``.
+
+    Also the anatomical constraint of a localizer ROI (its ``within`` entry).
+
+    Returns
+    -------
+    roi : ndarray of bool
+    source : str
+        The file the region comes from (named in messages).
+    """
     if "labels" in entry:
         atlas_path, labels_path = _needed(inputs, "atlas", name), _needed(inputs, "atlas_labels", name)
         table = read_tsv(labels_path, required_columns=("index", "name"), what="atlas label table")
@@ -48,8 +65,4 @@ def run(inputs, outputs, params, log):
         source = inputs["brain_mask"]
     else:
         raise InputError(None, f"rois[{name}]", "the ROI entry has none of labels, image, sphere", "give exactly one of them")
-
-    kept = restrict_to_brain(roi, brain, min_voxels, subject, name, source_file=source)
-    save_nifti(outputs["mask"], kept.astype(np.uint8), affine, dtype=np.uint8)
-    write_json(outputs["info"], {"roi": name, "subject": subject, "n_voxels": int(kept.sum()), "min_voxels": min_voxels,
-                                 "definition": entry})
+    return roi, source

@@ -399,7 +399,9 @@ STEP_SETTINGS = {
                                            "subject": w["subject"]},
     "searchlight_group": lambda study, w: {"searchlight": study.searchlight_method("searchlight_group"),
                                            "analysis": study.searchlight_analysis(w["analysis"], "searchlight_group"),
-                                           "subjects": list(study.subjects), "group": study.config["group"], "seed": study.seed},
+                                           "subjects": list(study.subjects), "seed": study.seed,
+                                           # the maps read the draws and the level; the ROI table's options are not theirs
+                                           "group": {key: study.config["group"][key] for key in ("n_draws", "alpha")}},
     "manifest": lambda study, w: {},
 }
 

@@ -236,3 +236,32 @@ def test_localizer_roi_is_byte_identical_when_the_main_task_data_change(tmp_path
     truth = simulated.responsive_region()
     print(f"localizer job ROI: {int(mask.sum())} voxels, {int((mask & truth).sum())} of the {int(truth.sum())} responsive")
     assert mask.sum() == 36 and (mask & truth).sum() >= 32
+
+
+# ------------------------------------------------ sessions as the unit of cross-validation
+
+from foldwise.decoding import folds as fold_schemes  # noqa: E402
+
+
+def test_leave_one_session_out_never_trains_on_the_held_out_session(dataset):
+    # Run labels as the decode job builds them from the pattern tables (session, then run id), 3 patterns per run.
+    run_labels = np.repeat([f"{run['session']}_{run['run_id']}" for run in _runs(dataset) if run["subject"] == "01"], 3)
+    folds = fold_schemes.make_folds(run_labels, "leave_one_session_out")
+    table = pd.DataFrame(fold_schemes.fold_table(run_labels, folds))
+    assert len(folds) == 2
+    for _, rows in table.groupby("fold"):
+        held_out = set(rows.loc[rows["role"] == "test", "session"])
+        trained = set(rows.loc[rows["role"] == "train", "session"])
+        assert len(held_out) == 1 and not (held_out & trained)  # no training pattern from the held-out session
+        assert rows.loc[rows["role"] == "test", "n_patterns"].sum() == 6  # both runs of the session
+    tested = np.sort(np.concatenate([test for _, test in folds]))
+    assert tested.tolist() == list(range(run_labels.size))  # every pattern tested once
+
+
+def test_leave_one_session_out_needs_sessions():
+    with pytest.raises(InputError) as excinfo:
+        fold_schemes.make_folds(["run-1", "run-2"], "leave_one_session_out")
+    assert "has no session" in str(excinfo.value)
+    with pytest.raises(InputError) as excinfo:
+        fold_schemes.make_folds(["ses-1_run-1", "ses-1_run-2"], "leave_one_session_out")
+    assert "two or more sessions" in str(excinfo.value)

@@ -6,13 +6,32 @@ integer index arrays into the patterns, in the order of the sorted unique run
 labels, so the same runs always give the same folds.
 """
 
+import re
+
 import numpy as np
 
 from foldwise.errors import InputError
 
-__all__ = ["FOLD_SCHEMES", "make_folds", "held_out_runs", "check_training_classes"]
+__all__ = ["FOLD_SCHEMES", "make_folds", "held_out_runs", "check_training_classes", "session_of_run", "fold_table"]
 
-FOLD_SCHEMES = ("leave_one_run_out", "run_groups")
+FOLD_SCHEMES = ("leave_one_run_out", "run_groups", "leave_one_session_out")
+_SESSION_RE = re.compile(r"(?:^|_)ses-([A-Za-z0-9]+)_")
+
+
+def session_of_run(run_label):
+    """The session label inside a run label (``"ses-2_run-01"`` -> ``"2"``), or None without one.
+
+    Examples
+    --------
+    >>> session_of_run("ses-2_run-01"), session_of_run("run-01")
+    ('2', None)
+    """
+    found = _SESSION_RE.search(str(run_label))
+    return found.group(1) if found else None
+
+
+def _natural(label):
+    return (0, int(label), label) if label.isdigit() else (1, 0, label)
 
 
 def make_folds(run_labels, scheme="leave_one_run_out", n_groups=2):
@@ -22,11 +41,13 @@ def make_folds(run_labels, scheme="leave_one_run_out", n_groups=2):
     ----------
     run_labels : array_like, shape (n_patterns,)
         The run of each pattern (strings or integers; sorted with ``np.unique``).
-    scheme : {"leave_one_run_out", "run_groups"}
+    scheme : {"leave_one_run_out", "run_groups", "leave_one_session_out"}
         ``leave_one_run_out``: one fold per run, that run held out.
         ``run_groups``: the sorted unique runs are cut into ``n_groups``
         contiguous groups (``np.array_split``: sizes differ by at most one,
         the larger groups first) and each group is held out once.
+        ``leave_one_session_out``: one fold per session (read from the
+        ``ses-<label>_`` part of each run label), all its runs held out.
     n_groups : int
         Number of groups for ``run_groups`` (ignored otherwise); at least 2
         and at most the number of runs.
@@ -63,6 +84,17 @@ def make_folds(run_labels, scheme="leave_one_run_out", n_groups=2):
                          "provide patterns from two or more runs")
     if scheme == "leave_one_run_out":
         groups = [np.array([run]) for run in range(n_runs)]
+    elif scheme == "leave_one_session_out":
+        sessions = [session_of_run(run) for run in unique_runs.tolist()]
+        if None in sessions:
+            raise InputError(None, "folds.scheme", f"leave_one_session_out needs runs in sessions, but run {unique_runs[sessions.index(None)]} "
+                                                   "has no session", "use leave_one_run_out, or a dataset with ses-<label> sessions")
+        labels = sorted(set(sessions), key=_natural)
+        if len(labels) < 2:
+            raise InputError(None, "folds.scheme", f"leave_one_session_out needs two or more sessions, found {labels}",
+                             "use leave_one_run_out or run_groups")
+        session_array = np.asarray(sessions, dtype=object)
+        groups = [np.flatnonzero(session_array == label) for label in labels]
     else:
         if isinstance(n_groups, bool) or not isinstance(n_groups, (int, np.integer)) or not 2 <= n_groups <= n_runs:
             raise InputError(None, "folds.n_groups", f"n_groups must be an integer from 2 to the number of runs ({n_runs}), got {n_groups!r}",
@@ -136,3 +168,29 @@ def check_training_classes(labels, run_labels, folds, class_names, subject, file
                 file, "condition",
                 f"subject {subject}: with run {'+'.join(map(str, runs))} held out, the training runs hold no pattern of class {missing!r}",
                 "model that class's conditions in more runs, drop the class from the analysis, or use folds.scheme run_groups")
+
+
+def fold_table(run_labels, folds):
+    """One row per fold and run: whether the run trains or tests, with its session.
+
+    Parameters
+    ----------
+    run_labels : array_like, shape (n_patterns,)
+    folds : list of tuple of ndarray
+        Output of :func:`make_folds`.
+
+    Returns
+    -------
+    list of dict
+        ``fold``, ``run``, ``session`` (None without sessions), ``role``
+        (``train`` or ``test``), ``n_patterns``; the table the session
+        tests check (no training run shares a session with a test run).
+    """
+    runs = np.asarray(run_labels)
+    rows = []
+    for index, (train, test) in enumerate(folds):
+        for role, members in (("train", train), ("test", test)):
+            labels, counts = np.unique(runs[members], return_counts=True)
+            rows += [{"fold": index, "run": str(label), "session": session_of_run(label), "role": role, "n_patterns": int(count)}
+                     for label, count in zip(labels.tolist(), counts.tolist())]
+    return rows

@@ -693,6 +693,15 @@ def _other_space(folder):
                        "dataset.task, dataset.space, dataset.res and dataset.patterns.bold")
 
 
+
+@case("brain mask summarised over a single volume", "config.validate (schema), before any job")
+def _one_summary_volume(folder):
+    # One volume cannot tell a varying voxel from a constant one: 0 (every volume) or at least 2.
+    study = _study(**{"brain_mask": {"summary_volumes": 1}})
+    return Expectation(_validating(study), "config/study.yaml: brain_mask.summary_volumes: 1 is not valid under any of the given "
+                                           "schemas. Fix: correct brain_mask.summary_volumes (see the README's config reference)")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

@@ -364,3 +364,49 @@ def test_roi_mask_job_is_deterministic(tmp_path):
         roi_mask_job.run(inputs, outputs, params, LOG)
         digests.append((Path(outputs["mask"]).read_bytes(), Path(outputs["info"]).read_bytes()))
     assert digests[0] == digests[1]
+
+
+def test_brain_mask_from_leading_volumes_equals_the_pure_function_on_those_volumes(tmp_path):
+    # Reference: derive_brain_mask (tested above against a brute-force rule) on the first k volumes of each run.
+    rng = np.random.default_rng(11)
+    runs, inside = _runs_with_a_blob(rng, n_runs=3, n_scans=30)
+    runs[1][1, 1, 1, 20] = np.nan  # after the leading volumes: not seen with k = 8
+    runs[2][6, 6, 4, 3] = np.inf   # within them: excluded as before
+    affine = _centred_affine(inside.shape, 3.0)
+    paths = _write_runs(tmp_path, runs, affine)
+    outputs = {"mask": str(tmp_path / "mask.nii.gz"), "mean": str(tmp_path / "mean.nii.gz"), "summary": str(tmp_path / "summary.json")}
+    brain_mask_job.run({"bold": paths}, outputs, {"brain_mask": {"mean_fraction": 0.2, "summary_volumes": 8}, "subject": "01"}, LOG)
+    expected, n_bad = masks.derive_brain_mask([run[..., :8] for run in runs], 0.2)
+    np.testing.assert_array_equal(np.asarray(load_nifti(outputs["mask"]).dataobj) == 1, expected)
+    expected_mean = np.mean([run[..., :8].mean(axis=3, dtype=np.float64) for run in runs], axis=0)
+    expected_mean[~np.all([np.all(np.isfinite(run[..., :8]), axis=3) for run in runs], axis=0)] = 0.0
+    np.testing.assert_allclose(load_nifti(outputs["mean"]).get_fdata(), expected_mean, rtol=1e-6)
+    assert json.loads(Path(outputs["summary"]).read_text())["n_nonfinite_excluded"] == n_bad == 1
+    # 0 reads every volume: the late NaN is found and excluded too.
+    brain_mask_job.run({"bold": paths}, outputs, {"brain_mask": {"mean_fraction": 0.2, "summary_volumes": 0}, "subject": "01"}, LOG)
+    assert json.loads(Path(outputs["summary"]).read_text())["n_nonfinite_excluded"] == 2
+
+
+def test_brain_mask_from_leading_volumes_decodes_only_those_volumes(tmp_path):
+    # A .nii.gz cut short after the first volumes still gives the mask with k = 4 (nothing beyond is
+    # decoded), while a full read (k = 0) reports the truncation as before.
+    import gzip
+
+    rng = np.random.default_rng(12)
+    runs, inside = _runs_with_a_blob(rng, n_runs=1, n_scans=40)
+    affine = _centred_affine(inside.shape, 3.0)
+    full = _write_runs(tmp_path, runs, affine)[0]
+    raw = gzip.decompress(Path(full).read_bytes())
+    volume_bytes = int(np.prod(inside.shape)) * 4
+    cut = tmp_path / "cut_bold.nii.gz"
+    cut.write_bytes(gzip.compress(raw[: len(raw) - 30 * volume_bytes])[:-8])  # 30 volumes and the gzip trailer missing
+    outputs = {"mask": str(tmp_path / "mask.nii.gz"), "mean": str(tmp_path / "mean.nii.gz"), "summary": str(tmp_path / "summary.json")}
+    brain_mask_job.run({"bold": [str(cut)]}, outputs, {"brain_mask": {"mean_fraction": 0.2, "summary_volumes": 4}, "subject": "01"}, LOG)
+    expected, _ = masks.derive_brain_mask([runs[0][..., :4]], 0.2)
+    np.testing.assert_array_equal(np.asarray(load_nifti(outputs["mask"]).dataobj) == 1, expected)
+    with pytest.raises(InputError) as excinfo:
+        brain_mask_job.run({"bold": [str(cut)]}, outputs, {"brain_mask": {"mean_fraction": 0.2, "summary_volumes": 0}, "subject": "01"}, LOG)
+    _assert_input_error(excinfo, "cut_bold.nii.gz", "truncated")
+    with pytest.raises(InputError) as excinfo:
+        brain_mask_job.run({"bold": [str(cut)]}, outputs, {"brain_mask": {"mean_fraction": 0.2, "summary_volumes": 20}, "subject": "01"}, LOG)
+    _assert_input_error(excinfo, "cut_bold.nii.gz", "truncated")

@@ -1,5 +1,8 @@
 """Job: one subject's brain mask (derived from the BOLD runs, or a given mask checked against them)."""
 
+import zlib
+
+import nibabel as nib
 import numpy as np
 
 from foldwise.data.bids import load_bold
@@ -16,6 +19,32 @@ GRID_TOLERANCE_MM = 0.01
 
 def _as_list(paths):
     return [paths] if isinstance(paths, str) else list(paths)
+
+
+def _leading_volumes(path, n_volumes):
+    """The first ``n_volumes`` volumes of a 4D run as float32 (scaling applied), with its affine.
+
+    A .nii.gz stores the volumes one after the other, so only the header and
+    these volumes are decompressed: for 20 of 180 volumes about a ninth of a
+    full read. 0 (or more volumes than the run has) reads every volume, as
+    :func:`foldwise.data.bids.load_bold` does.
+    """
+    if not n_volumes:
+        data, affine, _ = load_bold(path)
+        return data, affine
+    try:
+        image = nib.load(path)  # the header only; the data are read below
+        shape = tuple(image.shape)
+        if len(shape) != 4:
+            raise InputError(path, "dim", f"expected a 4D BOLD time series, got an image of shape {shape}",
+                             "point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
+        data = np.asanyarray(image.dataobj[..., :min(int(n_volumes), shape[3])], dtype=np.float32)
+    except FileNotFoundError:
+        raise InputError(path, "file", "the BOLD image does not exist", "create it or correct the path in the config") from None
+    except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
+        raise InputError(path, "content", f"the BOLD image is truncated or not a NIfTI file ({type(error).__name__}: {error})",
+                         "re-export or re-copy the file") from None
+    return data, np.asarray(image.affine, dtype=np.float64)
 
 
 def _load_given_mask(path, shape, affine):
@@ -38,15 +67,22 @@ def run(inputs, outputs, params, log):
     given mask, the mask is derived by :func:`foldwise.masks.build.threshold_mean_image`
     (``brain_mask.mean_fraction``); a given mask is kept as it is except for
     voxels whose data hold NaN or Inf, which are left out with a warning.
+
+    With ``brain_mask.summary_volumes`` = k > 0 every statistic (time mean,
+    finite, non-constant) is taken over the first k volumes of each run,
+    which are all this job decodes; absent or 0: over every volume. A voxel
+    that turns NaN later in a run then stops that run's GLM with a message
+    naming the file (the GLM refuses non-finite data inside the mask).
     """
     subject = params["subject"]
     mean_fraction = params["brain_mask"]["mean_fraction"]
+    n_volumes = int(params["brain_mask"].get("summary_volumes", 0))
     bold_paths = _as_list(inputs["bold"])
     if not bold_paths:
         raise InputError(None, "bold", f"subject {subject} has no BOLD run", "add runs or exclude the subject")
     statistics, shape, affine = [], None, None
     for path in bold_paths:  # one run in memory at a time
-        data, run_affine, _ = load_bold(path)
+        data, run_affine = _leading_volumes(path, n_volumes)
         if affine is None:
             shape, affine = data.shape[:3], run_affine
         elif not same_grid(data.shape, run_affine, shape, affine, GRID_TOLERANCE_MM):

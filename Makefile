@@ -11,8 +11,15 @@ CONFIG ?= config/config.yaml
 export OPENBLAS_NUM_THREADS := 1
 export OMP_NUM_THREADS := 1
 export MKL_NUM_THREADS := 1
+# SET='study.seed=3 glm.noise_model=ols': dotted overrides of the study config (Snakemake's
+# --config refuses dotted keys; foldwise reads them from its `set` entry). Values without spaces.
+OVERRIDES = $(if $(SET),'set=$(SET)')
+# PACKAGE_CHANGE=rerun: run although installed packages differ from the lock (every job reruns).
+ifdef PACKAGE_CHANGE
+export FOLDWISE_PACKAGE_CHANGE := $(PACKAGE_CHANGE)
+endif
 
-.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean
+.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean store-check store-clean
 
 $(STAMP): requirements/lock.txt pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -24,11 +31,11 @@ $(STAMP): requirements/lock.txt pyproject.toml
 env: $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES)
 
 # A study of your own: make check CONFIG=config/my_study.yaml, then make study CONFIG=config/my_study.yaml
 study: $(STAMP)
-	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES)
 
 # What the dataset holds per subject, and every configured condition some subject lacks (reads headers only).
 check: $(STAMP)
@@ -52,6 +59,13 @@ benchmark: $(STAMP)
 # A real one-node SLURM cluster on localhost (root: installs slurm-wlm and munge).
 cluster-test: $(STAMP)
 	bash tests/cluster/run_slurm_test.sh
+
+# The content memo's store: verify every entry; drop what no manifest reaches (MANIFESTS='a.tsv b.tsv' for a shared store).
+store-check: $(STAMP)
+	$(BIN)/python -m foldwise.provenance.store check --config $(CONFIG)
+
+store-clean: $(STAMP)
+	$(BIN)/python -m foldwise.provenance.store clean --config $(CONFIG) $(foreach manifest,$(MANIFESTS),--manifest $(manifest))
 
 clean:
 	rm -rf results .snakemake

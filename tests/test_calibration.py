@@ -1,0 +1,97 @@
+"""Calibration of foldwise's permutation nulls on pure noise, at small sizes (the large sizes are in
+benchmarks/bench_calibration.py), and the pieces of the calibration table.
+
+Outside references, named beside each check: scipy.stats.chi2 (the sampling distribution of a variance,
+for the band of the variance ratio), scipy.stats.binom (the 99% interval of a rejection count). The designs
+are the invented lanterns demo's: 4 runs, 3 shapes, one pattern per shape, run and (for cross-decoding) set.
+"""
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from foldwise.stats import calibration
+
+N_SUBJECTS = 240
+
+
+def _design(cross, n_permutations=60):
+    runs = np.repeat(np.arange(4), 6)
+    sets = np.tile(np.repeat([0, 1], 3), 4)
+    labels = np.tile(np.arange(3), 8)
+    options = {"classifier": "correlation_centroid", "selection": "signal", "n_classes": 3}
+    if cross:
+        return calibration.NullDesign(labels=labels, runs=runs, n_voxels=60, voxel_counts=(10, "all"), n_permutations=n_permutations,
+                                      set_index=sets, set_names=("seen", "heard"), options=options)
+    seen = sets == 0
+    return calibration.NullDesign(labels=labels[seen], runs=runs[seen], n_voxels=60, voxel_counts=(10, "all"),
+                                  n_permutations=n_permutations, options=options)
+
+
+@pytest.fixture(scope="module")
+def null_records():
+    rng = np.random.default_rng(20261203)
+    return {"cross": calibration.null_subjects(_design(True), N_SUBJECTS, rng),
+            "within": calibration.null_subjects(_design(False), N_SUBJECTS, rng)}
+
+
+def test_every_direction_has_a_null_as_wide_as_the_observed_scores(null_records):
+    # Under H0 the observed fold-mean accuracy is one more draw from the subject's permutation distribution, so
+    # its variance across subjects equals the mean null variance (ratio 1). Band: the 99.9% interval of a sample
+    # variance over its expectation with n - 1 degrees of freedom (scipy.stats.chi2; a normal approximation for
+    # accuracies). The old cross-decoding null (training labels permuted, test labels true) gave 1.4-1.5 for
+    # A<->B, A->A and B->B and fails this band.
+    low = stats.chi2.ppf(0.0005, N_SUBJECTS - 1) / (N_SUBJECTS - 1)
+    high = stats.chi2.ppf(0.9995, N_SUBJECTS - 1) / (N_SUBJECTS - 1)
+    directions = []
+    for records in null_records.values():
+        for direction, record in records.items():
+            ratio = calibration.variance_ratio(record["observed"], record["null"])
+            assert np.all((ratio >= low) & (ratio <= high)), (direction, ratio.round(3), round(low, 3), round(high, 3))
+            directions.append(direction)
+    assert directions == ["seen->heard", "heard->seen", "seen<->heard", "seen->seen", "heard->heard", "within"]
+
+
+def test_subject_level_p_values_hold_their_level(null_records):
+    # Share of subject-level p <= alpha at most the binomial 99% upper bound (scipy.stats.binom); per count, so
+    # the tests counted are independent subjects.
+    for records in null_records.values():
+        for direction, record in records.items():
+            for alpha in (0.05, 0.1):
+                rejections = np.sum(record["p"] <= alpha, axis=0)
+                _, high = calibration.binomial_bounds(N_SUBJECTS, alpha)
+                assert np.all(rejections <= high), (direction, alpha, rejections, high)
+            assert np.all(record["p"] > 0) and np.all(record["p"] <= 1)
+
+
+def test_group_tests_hold_their_level_on_small_null_groups(null_records):
+    # 24 disjoint groups of 10 null subjects per direction: the count of groups with any family-wise rejection at
+    # alpha .05 stays within the binomial 99% upper bound (scipy.stats.binom) in every direction.
+    rng = np.random.default_rng(5)
+    for records in null_records.values():
+        for direction, record in records.items():
+            counts = calibration.group_false_positives(record, 1 / 3, 10, 200, (0.05,), rng)
+            assert counts["n_groups"] == 24
+            _, high = calibration.binomial_bounds(24, 0.05)
+            assert counts["p_fwe"][0] <= high, (direction, counts["p_fwe"])
+            _, high_cells = calibration.binomial_bounds(24 * counts["n_cells"], 0.05)
+            assert counts["p_perm"][0] <= high_cells, (direction, counts["p_perm"])
+
+
+def test_binomial_bounds_equal_scipy():
+    # scipy.stats.binom.interval, the 99% central interval
+    assert calibration.binomial_bounds(500, 0.05) == tuple(int(v) for v in stats.binom.interval(0.99, 500, 0.05))
+    assert calibration.binomial_bounds(1000, 0.01) == tuple(int(v) for v in stats.binom.interval(0.99, 1000, 0.01))
+
+
+def test_calibration_rows_count_and_bound_each_test(null_records):
+    rng = np.random.default_rng(6)
+    records = null_records["within"]
+    counts = {"within": calibration.group_false_positives(records["within"], 1 / 3, 10, 100, (0.05, 0.01), rng)}
+    rows = calibration.calibration_rows("shape", records, counts, (0.05, 0.01))
+    assert {row["test"] for row in rows} == {"subject p", "group p_perm", "group p_t", "group p_wilcoxon", "group prevalence_p_global",
+                                             "group p_fwe", "group prevalence_p_global_fwe"}
+    for row in rows:
+        assert set(row) == set(calibration.CALIBRATION_COLUMNS)
+        assert row["rate"] == pytest.approx(row["n_rejections"] / row["n_tests"])
+        assert row["within_bounds"] == (row["n_rejections"] <= row["bound_high"] * row["n_tests"] + 1e-9)

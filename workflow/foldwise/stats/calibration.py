@@ -1,0 +1,261 @@
+"""Calibration on noise: a study's own analyses run on pure-noise patterns, many times.
+
+Under the null hypothesis (patterns carry no class information) a calibrated
+test rejects at level alpha in a share alpha of studies. This module runs the
+project's own decoding and group functions on noise patterns drawn to the
+shapes of a real design (runs, trials, classes, sets, folds, voxel counts,
+classifier, selection) and measures:
+
+- the **variance ratio** of each direction and count: the variance of the
+  observed fold-mean balanced accuracy across null subjects over the mean
+  variance of a subject's permutation null. A calibrated null has ratio 1; a
+  null narrower than the observed scores' spread (ratio > 1) gives p-values
+  that are too small;
+- the **false-positive rate** of every test foldwise prints (subject-level p,
+  group p_perm, p_t, p_fwe, the prevalence global null) at each alpha, with
+  the binomial 99% interval of the count of rejections if the rate were
+  exactly alpha (``scipy.stats.binom.interval``; Clopper & Pearson would give
+  a slightly wider interval).
+
+Public names:
+
+``NullDesign``              one analysis's design as decoded on noise
+``null_subjects``           noise subjects through the project's own decoding
+``variance_ratio``          observed / null variance per cell
+``binomial_bounds``         the 99% interval of a rejection count at rate alpha
+``group_false_positives``   rejections of each group test on disjoint null groups
+``calibration_rows``        one table row per test, direction and alpha
+"""
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from foldwise.decoding.curves import decode_cross, decode_curve
+from foldwise.decoding.permutations import subject_p
+from foldwise.errors import InputError
+from foldwise.stats import group as group_stats
+
+__all__ = [
+    "NullDesign",
+    "null_subjects",
+    "variance_ratio",
+    "binomial_bounds",
+    "group_false_positives",
+    "calibration_rows",
+    "CALIBRATION_COLUMNS",
+]
+
+CALIBRATION_COLUMNS = ("analysis", "test", "direction", "alpha", "n_tests", "n_rejections", "rate", "bound_low", "bound_high",
+                       "within_bounds", "variance_ratio")
+
+
+@dataclass(frozen=True)
+class NullDesign:
+    """The design of one analysis as it is decoded on noise.
+
+    Attributes
+    ----------
+    labels : ndarray of int, shape (n_patterns,)
+    runs : ndarray, shape (n_patterns,)
+    n_voxels : int
+        Voxels of the noise ROI.
+    voxel_counts : tuple
+    n_permutations : int
+    set_index : ndarray of int or None
+        0 / 1 per pattern for a cross analysis.
+    set_names : tuple
+    options : dict
+        Keywords of :func:`foldwise.decoding.curves.decode_curve` (``folds``,
+        ``classifier``, ``selection``, ``demean_patterns``, ``svm_c``,
+        ``logistic_c``, ``n_classes``).
+    """
+
+    labels: np.ndarray
+    runs: np.ndarray
+    n_voxels: int
+    voxel_counts: tuple
+    n_permutations: int
+    set_index: np.ndarray | None = None
+    set_names: tuple = ("A", "B")
+    options: dict = field(default_factory=dict)
+
+
+def null_subjects(design, n_subjects, rng):
+    """Decode ``n_subjects`` noise subjects of one design.
+
+    Parameters
+    ----------
+    design : NullDesign
+    n_subjects : int
+    rng : numpy.random.Generator
+        Draws the noise patterns, then each subject's relabelings (one
+        child generator per subject, so subjects are independent).
+
+    Returns
+    -------
+    dict of str to dict
+        Per direction: ``observed`` (n_subjects, n_counts) fold-mean balanced
+        accuracy, ``null`` (n_subjects, n_null, n_counts), ``p``
+        (n_subjects, n_counts) the subject-level p-values, ``exact`` (bool
+        per subject).
+
+    Notes
+    -----
+    Noise is independent standard normal per pattern and voxel, the null
+    hypothesis of exchangeable labels within runs (and sets) at its purest.
+    """
+    if isinstance(n_subjects, bool) or not isinstance(n_subjects, (int, np.integer)) or n_subjects < 1:
+        raise InputError(None, "n_subjects", f"expected a positive integer, got {n_subjects!r}", "simulate at least one subject")
+    out = {}
+    seeds = rng.spawn(int(n_subjects))
+    for subject, child in enumerate(seeds):
+        patterns = child.standard_normal((design.labels.size, int(design.n_voxels)))
+        if design.set_index is None:
+            result = decode_curve(patterns, design.labels, design.runs, list(design.voxel_counts), n_permutations=design.n_permutations,
+                                  rng=child, **design.options)
+        else:
+            result = decode_cross(patterns, design.labels, design.set_index, design.runs, list(design.voxel_counts),
+                                  set_names=tuple(design.set_names), n_permutations=design.n_permutations, rng=child, **design.options)
+        for direction, scores in result.directions.items():
+            record = out.setdefault(direction, {"observed": [], "null": [], "p": [], "exact": []})
+            observed = scores.balanced_accuracy.mean(axis=0)
+            record["observed"].append(observed)
+            record["null"].append(scores.null_balanced_accuracy)
+            record["p"].append(subject_p(observed, scores.null_balanced_accuracy, result.null_exact))
+            record["exact"].append(result.null_exact)
+    for record in out.values():
+        n_nulls = {null.shape[0] for null in record["null"]}
+        record["observed"] = np.stack(record["observed"])
+        record["null"] = np.stack(record["null"]) if len(n_nulls) == 1 else record["null"]
+        record["p"] = np.stack(record["p"])
+        record["exact"] = np.asarray(record["exact"])
+    return out
+
+
+def variance_ratio(observed, null):
+    """Variance of the observed scores across subjects over the mean variance of a subject's null.
+
+    Parameters
+    ----------
+    observed : array_like, shape (n_subjects, n_cells)
+    null : array_like, shape (n_subjects, n_null, n_cells)
+
+    Returns
+    -------
+    ndarray, shape (n_cells,)
+        ``var_s(observed) / mean_s var_k(null[s, k])`` (both with ddof 1). Near
+        1 for a calibrated null; above 1 the null is too narrow.
+    """
+    observed = np.asarray(observed, dtype=np.float64)
+    null = np.asarray(null, dtype=np.float64)
+    return observed.var(axis=0, ddof=1) / null.var(axis=1, ddof=1).mean(axis=0)
+
+
+def binomial_bounds(n_tests, alpha, level=0.99):
+    """The central ``level`` interval of the number of rejections among ``n_tests`` at rate ``alpha``.
+
+    ``scipy.stats.binom.interval(level, n_tests, alpha)``: a calibrated test's
+    count falls inside with probability at least ``level``.
+
+    Examples
+    --------
+    >>> binomial_bounds(1000, 0.05)
+    (33, 68)
+    """
+    low, high = stats.binom.interval(level, int(n_tests), float(alpha))
+    return int(low), int(high)
+
+
+def group_false_positives(record, chance, group_size, n_draws, alphas, rng, fwe_method="standardised", prevalence=True):
+    """Rejections of every group test on disjoint groups of null subjects of one direction.
+
+    Parameters
+    ----------
+    record : dict
+        One direction of :func:`null_subjects` (``observed``, ``null``).
+    chance : float
+    group_size : int
+        Subjects per group; ``n_subjects // group_size`` disjoint groups.
+    n_draws : int
+        Group-level draws per group.
+    alphas : sequence of float
+    rng : numpy.random.Generator
+    fwe_method : str
+    prevalence : bool
+
+    Returns
+    -------
+    dict
+        ``n_groups`` and, per test name (``p_perm``, ``p_t``, ``p_wilcoxon``,
+        ``p_fwe``, ``prevalence_p_global``, ``prevalence_p_global_fwe``), an
+        array of rejection counts per alpha. Cell-wise tests count each cell
+        of each group (``n_groups * n_cells`` tests); ``p_fwe`` and the
+        family-wise prevalence count groups with any rejection in the family
+        (the direction's counts), ``n_groups`` tests.
+    """
+    observed, null = record["observed"], record["null"]
+    n_groups = observed.shape[0] // int(group_size)
+    if n_groups < 1:
+        raise InputError(None, "group_size", f"{observed.shape[0]} null subjects make no group of {group_size}", "simulate more subjects")
+    alphas = np.asarray(alphas, dtype=np.float64)
+    names = ("p_perm", "p_t", "p_wilcoxon", "p_fwe", "prevalence_p_global", "prevalence_p_global_fwe")
+    counts = {name: np.zeros(alphas.size, dtype=np.int64) for name in names}
+    n_cells = observed.shape[1]
+    for index in range(n_groups):
+        members = slice(index * group_size, (index + 1) * group_size)
+        columns, _ = group_stats.group_statistics(observed[members], np.full(n_cells, chance), null[members], np.zeros(n_cells, dtype=int),
+                                                  rng, n_draws, float(alphas.max()), prevalence=prevalence, fwe_method=fwe_method)
+        for name in names:
+            values = columns[name]
+            if name in ("p_fwe", "prevalence_p_global_fwe"):
+                counts[name] += np.array([np.any(values <= alpha) for alpha in alphas])
+            else:
+                counts[name] += np.array([np.sum(values <= alpha) for alpha in alphas])
+    counts["n_groups"] = n_groups
+    counts["n_cells"] = n_cells
+    return counts
+
+
+def calibration_rows(analysis, records, group_counts, alphas, level=0.99):
+    """One row per test x direction x alpha: rejections, rate and binomial bounds.
+
+    Parameters
+    ----------
+    analysis : str
+    records : dict
+        :func:`null_subjects` output.
+    group_counts : dict of str to dict
+        :func:`group_false_positives` per direction (may be empty).
+    alphas : sequence of float
+    level : float
+
+    Returns
+    -------
+    list of dict
+        Keys ``CALIBRATION_COLUMNS``. The subject-level row of a direction
+        counts every subject x count (the counts of one subject are
+        correlated, so its spread exceeds the binomial one; the bounds are
+        those of independent tests, and the rate is what to read); the
+        variance ratio is the largest over the direction's counts.
+    """
+    rows = []
+    for direction, record in records.items():
+        ratio = float(np.max(variance_ratio(record["observed"], record["null"])))
+        for alpha in alphas:
+            tests = [("subject p", int(record["p"].size), int(np.sum(record["p"] <= alpha)))]
+            counts = group_counts.get(direction)
+            if counts is not None:
+                position = list(alphas).index(alpha)
+                for name in ("p_perm", "p_t", "p_wilcoxon", "prevalence_p_global"):
+                    tests.append((f"group {name}", counts["n_groups"] * counts["n_cells"], int(counts[name][position])))
+                for name in ("p_fwe", "prevalence_p_global_fwe"):
+                    tests.append((f"group {name}", counts["n_groups"], int(counts[name][position])))
+            for test, n_tests, rejections in tests:
+                low, high = binomial_bounds(n_tests, alpha, level)
+                rows.append({"analysis": analysis, "test": test, "direction": direction, "alpha": alpha, "n_tests": n_tests,
+                             "n_rejections": rejections, "rate": rejections / n_tests, "bound_low": low / n_tests,
+                             "bound_high": high / n_tests, "within_bounds": bool(rejections <= high),
+                             "variance_ratio": ratio})
+    return rows

@@ -265,3 +265,63 @@ def test_leave_one_session_out_needs_sessions():
     with pytest.raises(InputError) as excinfo:
         fold_schemes.make_folds(["ses-1_run-1", "ses-1_run-2"], "leave_one_session_out")
     assert "two or more sessions" in str(excinfo.value)
+
+
+# ------------------------------------------------ several tasks: cross-task decoding with paired runs
+
+from foldwise.decoding.curves import decode_cross  # noqa: E402
+from foldwise.stats.group import draw_indices, group_mean_null, permutation_p  # noqa: E402
+
+
+def _two_task_patterns(rng, shared, n_runs=4, per_class=3, n_voxels=40, signal=0.3):
+    """Trial patterns of two tasks (sets 0/1), two classes; the class code is shared between tasks or not."""
+    code_a = rng.standard_normal((2, n_voxels))
+    code_b = code_a if shared else rng.standard_normal((2, n_voxels))
+    patterns, labels, sets, runs = [], [], [], []
+    for task, code, prefix in ((0, code_a, ""), (1, code_b, "task-beacon_")):
+        for run in range(n_runs):
+            for klass in (0, 1):
+                for _ in range(per_class):
+                    patterns.append(signal * code[klass] + rng.standard_normal(n_voxels))
+                    labels.append(klass)
+                    sets.append(task)
+                    runs.append(f"ses-1_{prefix}run-{run + 1}")
+    return np.array(patterns), np.array(labels), np.array(sets), np.array(runs)
+
+
+def _cross_task_group(shared, n_subjects=10, n_permutations=100, seed=11):
+    observed, nulls = [], []
+    for subject in range(n_subjects):
+        rng = np.random.default_rng([seed, subject, int(shared)])
+        patterns, labels, sets, runs = _two_task_patterns(rng, shared)
+        units = fold_schemes.pair_runs_across_tasks(runs, sets, ("lanterns", "beacon"))
+        folds = fold_schemes.make_folds(units)
+        for train, test in folds:  # independence: no run is on both sides, and each fold holds out one run of each task
+            assert not set(runs[train]) & set(runs[test]) and sorted(set(sets[test])) == [0, 1]
+        result = decode_cross(patterns, labels, sets, units, ["all"], set_names=("lanterns", "beacon"), folds=folds, n_classes=2,
+                              classifier="correlation_centroid", selection="none", n_permutations=n_permutations,
+                              rng=np.random.default_rng([seed, subject, 1]), selection_rng=np.random.default_rng(0))
+        direction = result.directions["lanterns->beacon"]
+        observed.append(direction.balanced_accuracy.mean(axis=0)[0])
+        nulls.append(direction.null_balanced_accuracy[:, :1])
+    indices = draw_indices(np.random.default_rng(seed), n_permutations, n_subjects, 2000)
+    null = group_mean_null(np.stack(nulls), indices)
+    group_mean = float(np.mean(observed))
+    return group_mean, float(permutation_p(np.array([group_mean]), null)[0])
+
+
+def test_cross_task_decoding_transfers_a_shared_code_and_stays_at_chance_without_one():
+    shared_mean, shared_p = _cross_task_group(shared=True)
+    separate_mean, separate_p = _cross_task_group(shared=False)
+    print(f"cross-task lanterns->beacon, 10 subjects: shared code mean balanced accuracy {shared_mean:.3f} (group p {shared_p:.4f}); "
+          f"separate codes {separate_mean:.3f} (group p {separate_p:.4f})")
+    assert shared_mean > 0.6 and shared_p < 0.01
+    assert abs(separate_mean - 0.5) < 0.06 and separate_p > 0.05
+
+
+def test_runs_of_one_task_without_a_partner_are_refused():
+    runs = np.array(["run-1", "run-2", "run-3", "task-beacon_run-1", "task-beacon_run-2"])
+    with pytest.raises(InputError) as excinfo:
+        fold_schemes.pair_runs_across_tasks(runs, np.array([0, 0, 0, 1, 1]), ("lanterns", "beacon"))
+    assert "run run-3 has runs of set 'lanterns'" in str(excinfo.value) and "leave_one_session_out" in str(excinfo.value)
+    assert fold_schemes.task_of_run("ses-1_task-beacon_run-2") == "beacon" and fold_schemes.task_of_run("run-1", "lanterns") == "lanterns"

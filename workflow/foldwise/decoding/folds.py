@@ -12,10 +12,12 @@ import numpy as np
 
 from foldwise.errors import InputError
 
-__all__ = ["FOLD_SCHEMES", "make_folds", "held_out_runs", "check_training_classes", "session_of_run", "fold_table"]
+__all__ = ["FOLD_SCHEMES", "make_folds", "held_out_runs", "check_training_classes", "session_of_run", "fold_table", "task_of_run",
+           "pair_runs_across_tasks"]
 
 FOLD_SCHEMES = ("leave_one_run_out", "run_groups", "leave_one_session_out")
 _SESSION_RE = re.compile(r"(?:^|_)ses-([A-Za-z0-9]+)_")
+_TASK_RE = re.compile(r"(?:^|_)task-([A-Za-z0-9]+)_")
 
 
 def session_of_run(run_label):
@@ -194,3 +196,64 @@ def fold_table(run_labels, folds):
             rows += [{"fold": index, "run": str(label), "session": session_of_run(label), "role": role, "n_patterns": int(count)}
                      for label, count in zip(labels.tolist(), counts.tolist())]
     return rows
+
+
+def task_of_run(run_label, default=None):
+    """The task label inside a run label (``"ses-1_task-beacon_run-2"`` -> ``"beacon"``), or ``default`` without one.
+
+    Runs of the study's main task carry no ``task-`` part; runs of its other
+    tasks do.
+    """
+    found = _TASK_RE.search(str(run_label))
+    return found.group(1) if found else default
+
+
+def pair_runs_across_tasks(run_labels, set_index, set_names=("A", "B")):
+    """Fold units for a cross analysis whose two sets come from different tasks' runs.
+
+    Parameters
+    ----------
+    run_labels : array_like of str, shape (n_patterns,)
+        The run of each pattern (``task-<label>_`` inside for runs of a task
+        other than the main one).
+    set_index : array_like of int, shape (n_patterns,)
+        0 or 1: the set (and so the task) of each pattern.
+    set_names : (str, str)
+        Named in messages.
+
+    Returns
+    -------
+    ndarray of str, shape (n_patterns,)
+        Each pattern's unit: its run label without the task part, so run
+        ``k`` of one task and run ``k`` of the other (same session) form one
+        unit, held out together by :func:`make_folds`.
+
+    Raises
+    ------
+    InputError
+        If some unit holds runs of one task only: that run would be held out
+        with nothing of the other set to test or train against.
+
+    Notes
+    -----
+    Runs of different tasks are different scans, so any fold that holds out
+    whole runs keeps training and test data independent. Pairing by run
+    index makes every fold hold out one run of each task, so each direction
+    (A->B, B->A, A->A, B->B) is tested in every fold; with
+    ``leave_one_session_out`` the units are then grouped by session.
+    """
+    runs = np.asarray(run_labels).astype(str)
+    sets = np.asarray(set_index)
+    units = np.array([re.sub(r"(?<![A-Za-z0-9])task-[A-Za-z0-9]+_", "", label) for label in runs.tolist()], dtype=object)
+    lacking = []
+    for unit in sorted(set(units.tolist())):
+        present = set(sets[units == unit].tolist())
+        if present != {0, 1}:
+            lacking.append((unit, [set_names[number] for number in sorted(present)]))
+    if lacking:
+        unit, has = lacking[0]
+        raise InputError(None, "folds", f"run {unit} has runs of set {has[0]!r}'s task only ({len(lacking)} unpaired run(s)): "
+                                        "a fold needs one run of each task, so train and test runs stay independent",
+                         "give both tasks the same run labels (run-1, run-2, ... in each session), or use folds.scheme "
+                         "leave_one_session_out with both tasks in every session")
+    return units.astype(str)

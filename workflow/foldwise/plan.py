@@ -16,7 +16,7 @@ from foldwise.errors import InputError
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
            "step_outputs", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
-           "report_input_index", "report_figures"]
+           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES"]
 
 
 @dataclass(frozen=True)
@@ -172,6 +172,8 @@ def planned_jobs(study):
                  for subject in subjects for block in study.searchlight_blocks]
         jobs += [("searchlight_merge", {"analysis": name, "subject": subject}) for subject in subjects]
         jobs += [("searchlight_group", {"analysis": name})]
+    for source in JOB_SOURCES:  # steps registered by an analysis or ROI kind (register_steps)
+        jobs += source(study)
     jobs += [("report", {})]
     return jobs
 
@@ -326,6 +328,32 @@ JOB_INPUTS = {
     "report": _report_inputs,
     "manifest": lambda study, w: {"records": all_provenance_records(study)},
 }
+
+
+JOB_SOURCES = []  # functions study -> [(step, wildcards)] of registered steps, planned before the report
+
+
+def register_steps(steps, inputs, settings, jobs):
+    """Plug in the steps of a new analysis or ROI kind, at one place (docs/architecture.md, "Adding a step").
+
+    Parameters
+    ----------
+    steps : dict
+        step -> :class:`Step` (identity template and outputs).
+    inputs : dict
+        step -> ``inputs(study, wildcards) -> {name: path or list}``.
+    settings : dict
+        step -> ``settings(study, wildcards) -> dict``: exactly what the step reads.
+    jobs : callable
+        ``jobs(study) -> [(step, wildcards)]``: the step's jobs for this study.
+    """
+    from foldwise.study import STEP_SETTINGS  # late: the study model imports this module
+
+    STEPS.update(steps)
+    JOB_INPUTS.update(inputs)
+    STEP_SETTINGS.update(settings)
+    if jobs not in JOB_SOURCES:
+        JOB_SOURCES.append(jobs)
 
 
 def job_inputs(study, step, wildcards):

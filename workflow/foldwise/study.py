@@ -16,12 +16,12 @@ kinds below are registered the same way). docs/architecture.md walks
 through both.
 """
 
-import csv
 import difflib
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Callable
 
+from foldwise.data import check as dataset_check
 from foldwise.data import demo
 from foldwise.errors import InputError
 from foldwise.plan import plan_study
@@ -38,12 +38,10 @@ __all__ = [
     "register_roi_kind",
     "build_study",
     "check_meaning",
+    "check_events",
     "STEP_SETTINGS",
     "cross_directions",
 ]
-
-_MISSING_VALUES = ("", "n/a")  # BIDS's missing value in an events file
-
 
 def cross_directions(set_names):
     """The five directions of a cross analysis, in the order of every table and map.
@@ -294,7 +292,6 @@ class Study:
     analyses: dict
     searchlight_analyses: tuple
     searchlight_blocks: tuple
-    available_conditions: dict = field(repr=False)  # subject -> frozenset of conditions in its events
 
     @property
     def sessions(self):
@@ -407,48 +404,25 @@ STEP_SETTINGS = {
 
 
 # -- building the model (every check of meaning, once) ------------------------------
-def _event_conditions(path, column):
-    """The conditions named in one events TSV (read as text; the GLM job reads it fully later)."""
-    try:
-        with open(path, encoding="utf-8", newline="") as handle:
-            rows = csv.DictReader(handle, delimiter="\t")
-            if rows.fieldnames is None or column not in rows.fieldnames:
-                raise InputError(path, column, f"the events file has no {column} column",
-                                 f"add a {column} column naming each event's condition, or set dataset.condition_column")
-            return {(row[column] or "").strip() for row in rows} - set(_MISSING_VALUES)
-    except (OSError, UnicodeDecodeError) as error:
-        raise InputError(path, "file", f"the events file cannot be read ({error})", "check the file and its permissions") from None
+def _demo_surveys(config, runs):
+    """What each demo run will hold (its files are written by the first job, after planning)."""
+    settings = config["demo"]
+    return [dataset_check.RunSurvey(subject=run["subject"], session=run["session"], task=config["dataset"]["task"], run_id=run["run_id"],
+                                    events=run["events"], n_volumes=0, tr_s=float(settings["tr_s"]), grid=tuple(settings["grid_shape"]),
+                                    voxel_mm=(float(settings["voxel_size_mm"]),) * 3, trial_types=tuple(sorted(demo.CONDITIONS)))
+            for run in runs]
 
 
-def _available_conditions(config, subjects, runs):
-    """subject -> the conditions its events name (the demo: the simulator's conditions), as the GLM models them."""
-    if config["dataset"]["source"] == "demo":
-        found = {subject: set(demo.CONDITIONS) for subject in subjects}
-    else:
-        found = {subject: set() for subject in subjects}
-        for run in runs:
-            found[run["subject"]] |= _event_conditions(run["events"], config["dataset"].get("condition_column", "trial_type"))
-    modelled = config["glm"]["conditions"]
-    if modelled:  # the GLM keeps the listed conditions only
-        found = {subject: conditions & set(modelled) for subject, conditions in found.items()}
-    return {subject: frozenset(conditions) for subject, conditions in found.items()}
+def check_events(config, runs, path):
+    """Every condition the config names is in the events of every subject (did-you-mean on a miss), before any job.
 
-
-def _check_conditions(analysis, index, available, glm_conditions, path):
-    """Every condition an analysis names is in the events of every subject (did-you-mean on a miss)."""
-    kind = ANALYSIS_KINDS[analysis.kind]
-    every = sorted(set().union(*available.values())) if available else []
-    for key, condition in kind.condition_keys(analysis.entry):
-        lacking = [subject for subject, conditions in available.items() if condition not in conditions]
-        if not lacking:
-            continue
-        close = difflib.get_close_matches(condition, every, n=1)
-        hint = f" (did you mean '{close[0]}'?)" if close else ""
-        who = "any subject" if len(lacking) == len(available) else f"subject(s) {', '.join(lacking[:8])}" + (" ..." if len(lacking) > 8 else "")
-        modelled = " among the conditions the GLM models (glm.conditions)" if glm_conditions else ""
-        raise InputError(path, f"analyses[{index}].{key}",
-                         f"analysis '{analysis.name}' names condition '{condition}', found in the events of no run of {who}{hint}{modelled}",
-                         f"use a condition of the events ({', '.join(every[:12])}{' ...' if len(every) > 12 else ''})")
+    One check for every step: decoding and the searchlight take their
+    analyses from this model, so a misspelt condition stops the workflow here
+    with one message. The survey itself is :func:`foldwise.data.check.check_dataset`
+    (also behind ``make check``); the demo's runs are described by the simulator.
+    """
+    surveys = _demo_surveys(config, runs) if config["dataset"]["source"] == "demo" else None
+    dataset_check.check_dataset(config, runs, path, surveys=surveys)
 
 
 def check_meaning(config, path="the study config"):
@@ -547,9 +521,6 @@ def build_study(config, path="the study config"):
     searchlight_names = tuple(searchlight["analyses"]) if searchlight["enabled"] else ()
     rois = _build_rois(config)
     analyses = _build_analyses(config, list(rois), searchlight_names)
-    available = _available_conditions(config, plan.subjects, plan.runs)
-    for index, analysis in enumerate(analyses.values()):
-        _check_conditions(analysis, index, available, config["glm"]["conditions"], path)
+    check_events(config, plan.runs, path)
     return Study(config=config, config_file=str(path), subjects=plan.subjects, runs=plan.runs, rois=rois, analyses=analyses,
-                 searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])),
-                 available_conditions=available)
+                 searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])))

@@ -66,6 +66,11 @@ def required_conditions(study):
             for label, conditions in analysis["classes"].items():
                 required += [(condition, f"analyses[{index}].classes.{label}", tasks.get("train", default_task))
                              for condition in conditions]
+        elif analysis["kind"] != "cross":  # a registered kind names its own conditions (foldwise.study.register_analysis_kind)
+            from foldwise.study import ANALYSIS_KINDS  # late: the study model imports this module
+
+            required += [(condition, f"analyses[{index}].{key}", tasks.get("train", default_task))
+                         for key, condition in ANALYSIS_KINDS[analysis["kind"]].condition_keys(analysis)]
         else:
             for position, (set_name, members) in enumerate(analysis["sets"].items()):
                 set_task = tasks.get("train" if position == 0 else "test", default_task)
@@ -183,7 +188,7 @@ def subject_table(surveys):
     return pd.DataFrame(rows, columns=["subject", "sessions", "tasks", "n_runs", "n_volumes", "tr_s", "grid", "trial_types"])
 
 
-def check_dataset(study, runs, config_path="the study config"):
+def check_dataset(study, runs, config_path="the study config", surveys=None):
     """Survey the runs and stop on any configured condition a subject lacks.
 
     Parameters
@@ -194,6 +199,8 @@ def check_dataset(study, runs, config_path="the study config"):
         The planned runs (see :func:`survey_runs`).
     config_path : str
         Named in messages.
+    surveys : sequence of RunSurvey, optional
+        Already known (the demo's, before its files exist); read from the runs when None.
 
     Returns
     -------
@@ -207,7 +214,7 @@ def check_dataset(study, runs, config_path="the study config"):
         the config key that names it, every other (subject, condition) pair
         lacking, and the closest trial types found (did you mean).
     """
-    surveys = survey_runs(runs, study["dataset"].get("condition_column", "trial_type"))
+    surveys = survey_runs(runs, study["dataset"].get("condition_column", "trial_type")) if surveys is None else list(surveys)
     problems = missing_conditions(surveys, required_conditions(study))
     if problems:
         first = problems[0]

@@ -643,3 +643,35 @@ def test_decode_job_with_a_single_run_names_the_tables(tmp_path):
     with pytest.raises(InputError) as error:
         _run_decode(tmp_path, _analysis(), region=ember, images=images, tables=tables)
     assert error.value.file == tables[0] and "at least two runs" in str(error.value) and "subject 01" in str(error.value)
+
+
+# -- class imbalance -------------------------------------------------------------------
+def test_svm_and_logistic_weigh_unequal_classes_as_scikit_learn_balanced():
+    # Reference: sklearn.svm.SVC(kernel="linear", class_weight="balanced") and
+    # sklearn.linear_model.LogisticRegression(class_weight="balanced") on 2:1 imbalanced training classes.
+    from foldwise.decoding import classifiers
+
+    rng = np.random.default_rng(31)
+    labels = np.array([0] * 16 + [1] * 8)
+    train = rng.standard_normal((24, 12)) + 0.4 * labels[:, None]
+    test = rng.standard_normal((40, 12))
+    svm = classifiers.linear_svm_fit_predict(train @ train.T, labels, test @ train.T)
+    np.testing.assert_array_equal(svm, SVC(kernel="linear", class_weight="balanced").fit(train, labels).predict(test))
+    logistic, _ = classifiers.logistic_l2_fit_predict(train, labels, test)
+    np.testing.assert_array_equal(logistic, LogisticRegression(class_weight="balanced").fit(train, labels).predict(test))
+
+
+@pytest.mark.parametrize("classifier", ALL_CLASSIFIERS)
+def test_noise_predictions_do_not_pile_onto_the_majority_class(classifier):
+    # Two conditions mapped to class 0, one to class 1 (2:1), pure noise: with equal priors or balanced weights the
+    # share of class-0 predictions stays near 1/2 (an unweighted SVM or logistic regression drifts toward 2/3).
+    # Bound: 1/2 +- 0.1 over 6 runs x 30 simulated subjects x 18 test patterns, far wider than the binomial
+    # spread (common practice, no source for the band).
+    rng = np.random.default_rng(32)
+    runs = np.repeat(np.arange(6), 18)
+    labels = np.tile([0] * 12 + [1] * 6, 6)
+    shares = []
+    for _ in range(30):
+        result = decoding.decode_curve(rng.standard_normal((labels.size, 20)), labels, runs, ["all"], classifier=classifier)
+        shares.append(np.mean(result.directions["within"].predictions[0] == 0))
+    assert abs(np.mean(shares) - 0.5) < 0.1, np.mean(shares)

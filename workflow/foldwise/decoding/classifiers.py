@@ -14,7 +14,15 @@ Bayes) fit every label set at once: class centroids for all permutations are
 one product of a one-hot label tensor ``(n_label_sets, K, n_train)`` with the
 training data. The linear SVM calls libsvm once per label set on a
 precomputed Gram matrix, and the L2 logistic regression calls scikit-learn
-once per label set. Equal class priors everywhere.
+once per label set.
+
+Class imbalance (several conditions mapped to one class, unequal trial
+counts): every classifier treats the classes as equally likely. Shrinkage
+LDA and Gaussian naive Bayes use equal priors; correlation to centroids has
+no prior; the SVM and the logistic regression use balanced class weights
+``n / (K n_c)`` (scikit-learn's ``class_weight="balanced"``), which equal 1
+when the classes are equal. So on noise, predictions do not pile onto the
+majority class, and balanced accuracy stays at chance.
 """
 
 import warnings
@@ -618,13 +626,15 @@ def _svm_one(train_gram, labels, test_gram, C):
     if _libsvm is None:  # pragma: no cover - fallback path
         from sklearn.svm import SVC
 
-        model = SVC(kernel="precomputed", C=C).fit(train_gram, targets)
+        model = SVC(kernel="precomputed", C=C, class_weight="balanced").fit(train_gram, targets)
         raw = model.predict(test_gram)
         fitted = {"support": model.support_, "dual_coef": model.dual_coef_, "intercept": model.intercept_}
     else:
         _libsvm.set_verbosity_wrap(0)  # as SVC(verbose=False): libsvm prints nothing
+        # balanced class weights n / (K n_c), as SVC(class_weight="balanced") passes them: unequal classes weigh alike
+        class_weight = encoded.size / (present.size * np.bincount(encoded).astype(np.float64))
         support, vectors, n_support, dual_coef, intercept, prob_a, prob_b, _, _ = _libsvm.fit(
-            train_gram, targets, C=C, class_weight=np.empty(0), sample_weight=np.empty(0), random_seed=0, **_SVC_SETTINGS)
+            train_gram, targets, C=C, class_weight=class_weight, sample_weight=np.empty(0), random_seed=0, **_SVC_SETTINGS)
         predict_settings = {key: _SVC_SETTINGS[key] for key in ("svm_type", "kernel", "degree", "coef0", "gamma", "cache_size")}
         raw = _libsvm.predict(test_gram, support, vectors, n_support, dual_coef, intercept, prob_a, prob_b, **predict_settings)
         fitted = {"support": support, "dual_coef": dual_coef, "intercept": intercept}
@@ -655,8 +665,10 @@ def linear_svm_fit_predict(train_gram, train_labels, test_gram, C=1.0, return_mo
     -----
     Support vector classification (Cortes & Vapnik 1995, Machine Learning
     20:273-297) solved by libsvm (Chang & Lin 2011, ACM TIST 2:27) with the
-    settings ``sklearn.svm.SVC(kernel="linear", C=C)`` uses, so predictions
-    equal SVC's: a linear kernel is the Gram matrix, which the caller builds
+    settings ``sklearn.svm.SVC(kernel="linear", C=C, class_weight="balanced")``
+    uses, so predictions equal SVC's (balanced weights ``n / (K n_c)``: with
+    unequal training classes each class weighs alike, the SVM's form of equal
+    priors; with equal classes every weight is 1): a linear kernel is the Gram matrix, which the caller builds
     once per fold and grows across nested voxel counts
     (``G_k = G_{k-1} + X[:, new] X[:, new]'``). scikit-learn's own libsvm
     binding is called directly, skipping SVC's per-call validation.
@@ -707,8 +719,10 @@ def logistic_l2_fit_predict(train_patterns, train_labels, test_patterns, C=1.0, 
 
     Notes
     -----
-    Calls ``sklearn.linear_model.LogisticRegression(C=C)`` (lbfgs, its
-    defaults), so predictions are scikit-learn's; its convergence warnings
+    Calls ``sklearn.linear_model.LogisticRegression(C=C,
+    class_weight="balanced")`` (lbfgs, its defaults; balanced weights so that
+    unequal training classes do not tilt predictions toward the larger one),
+    so predictions are scikit-learn's; its convergence warnings
     are counted rather than raised, for the caller to log.
     """
     from sklearn.exceptions import ConvergenceWarning
@@ -727,7 +741,7 @@ def logistic_l2_fit_predict(train_patterns, train_labels, test_patterns, C=1.0, 
             raise InputError(None, "labels", "logistic regression needs two classes in training", "train on folds with every class")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", ConvergenceWarning)
-            model = LogisticRegression(C=float(C)).fit(trains[0 if trains.shape[0] == 1 else row], rows[row])
+            model = LogisticRegression(C=float(C), class_weight="balanced").fit(trains[0 if trains.shape[0] == 1 else row], rows[row])
         n_not_converged += any(issubclass(item.category, ConvergenceWarning) for item in caught)
         predictions[row] = model.predict(tests[0 if tests.shape[0] == 1 else row])
         if return_models:

@@ -86,7 +86,7 @@ def _subject_images(rng):
 def _design(rng):
     columns = {condition: np.convolve((rng.random(N_SCANS) < 0.08).astype(float), np.hanning(6), mode="same")
                for condition in CONDITIONS}
-    columns["drift_01"] = np.cos(np.pi * (np.arange(N_SCANS) + 0.5) / N_SCANS)
+    columns["lowfreq_cos_01"] = np.cos(np.pi * (np.arange(N_SCANS) + 0.5) / N_SCANS)
     columns["intercept"] = np.ones(N_SCANS)
     return pd.DataFrame(columns)
 
@@ -275,45 +275,51 @@ def _text(page_html):
 
 # -- the figure plan ------------------------------------------------------------------------
 
-def test_figure_plan_lists_png_and_svg_of_every_figure_in_page_order():
+def test_figure_plan_lists_png_svg_and_pdf_of_every_figure_results_first():
     plan = report.figure_plan(STUDY, SUBJECTS)
-    n_figures = 2 * len(SUBJECTS) + 1 + 2 * sum(len(report.analysis_rois(STUDY, a)) for a in STUDY["analyses"])
-    assert len(plan) == 2 * n_figures == len(set(plan))
+    n_results = sum(2 * len(report.analysis_rois(STUDY, a)) + 1 for a in STUDY["analyses"])  # curve, confusion; comparison
+    n_figures = n_results + 2 * len(SUBJECTS) + 1
+    assert len(plan) == 3 * n_figures == len(set(plan))
     assert plan == report.figure_plan(STUDY, list(SUBJECTS))  # deterministic
     assert all(path.startswith("results/report/figures/") for path in plan)
-    assert [Path(path).suffix for path in plan[:4]] == [".png", ".svg", ".png", ".svg"]
-    assert plan[:6] == ["results/report/figures/sub-01_design.png", "results/report/figures/sub-01_design.svg",
-                        "results/report/figures/sub-01_masks.png", "results/report/figures/sub-01_masks.svg",
-                        "results/report/figures/sub-02_design.png", "results/report/figures/sub-02_design.svg"]
+    assert [Path(path).suffix for path in plan[:6]] == [".png", ".svg", ".pdf"] * 2
+    assert plan[:3] == ["results/report/figures/shape_roi-ember_curve.png", "results/report/figures/shape_roi-ember_curve.svg",
+                        "results/report/figures/shape_roi-ember_curve.pdf"]
+    assert plan.index("results/report/figures/carry_rois.png") < plan.index("results/report/figures/sub-01_design.png")
     assert "results/report/figures/sub-01_resvar.png" in plan and "results/report/figures/sub-02_resvar.png" not in plan
-    assert plan[-2:] == ["results/report/figures/carry_roi-glow_confusion.png",
-                         "results/report/figures/carry_roi-glow_confusion.svg"]
+    assert plan[-1] == "results/report/figures/sub-01_resvar.pdf"  # quality checks come last
 
 
 def test_figure_catalogue_names_existing_captions():
     for entry in report.figure_catalogue(STUDY, SUBJECTS):
         assert (REPO / entry["caption"]).is_file(), entry["caption"]
     kinds = {entry["kind"]: entry["caption"] for entry in report.figure_catalogue(STUDY, SUBJECTS)}
-    assert set(kinds) == {"design", "masks", "resvar", "curve", "confusion"}
+    assert set(kinds) == {"design", "masks", "resvar", "curve", "confusion", "comparison"}
 
 
 def test_analysis_with_its_own_roi_list_plans_only_those():
     study = dict(STUDY, analyses=[dict(STUDY["analyses"][0], rois=["glow"])])
     stems = [entry["stem"] for entry in report.figure_catalogue(study, ["01"])]
-    assert stems[-2:] == ["shape_roi-glow_curve", "shape_roi-glow_confusion"] and not any("ember" in s for s in stems)
+    assert stems[:3] == ["shape_roi-glow_curve", "shape_roi-glow_confusion", "shape_rois"]
+    assert not any("ember" in s for s in stems)
 
 
 def test_module_examples_hold():
     # The docstring examples are part of the contract (run as doctests).
-    result = doctest.testmod(report, optionflags=doctest.NORMALIZE_WHITESPACE)
-    assert result.attempted >= 15 and result.failed == 0
+    from foldwise.report import page, summary
+
+    for module, least in ((report, 25), (page, 8), (summary, 3)):
+        result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
+        assert result.attempted >= least and result.failed == 0, module.__name__
 
 
 # -- pure parts --------------------------------------------------------------------------------
 
-def test_all_is_drawn_at_the_roi_mean_size_and_labelled():
+def test_all_is_drawn_last_at_the_roi_mean_size_or_beyond_the_largest_count():
     positions, labels = report.voxel_count_positions(["10", "25", "all"], 136.4)
     assert positions.tolist() == [10.0, 25.0, 136.4] and labels == ["10", "25", "all (136)"]
+    positions, labels = report.voxel_count_positions(["all", "10", "200"], 136.4)
+    assert positions.tolist() == [300.0, 10.0, 200.0] and labels[0] == "all (136)"  # 1.5 x the largest count
     with pytest.raises(InputError, match="neither a whole number"):
         report.voxel_count_positions(["ten"], 100.0)
 
@@ -325,13 +331,30 @@ def test_curve_data_sorts_by_position_marks_strictly_below_alpha_and_flags_cappe
                                  "n_voxels": ["5", "5", "50", "all", "50", "all"],
                                  "n_used": [5, 5, 40, 40, 50, 60], "balanced_accuracy": [0.41, 0.39, 0.5, 0.61, 0.52, 0.6]})
     data = report.curve_data(group_rows, subject_rows, roi_mean_voxels=30.0, alpha=0.05)
-    assert data["counts"] == ["5", "all", "50"]  # 'all' (30 voxels on average) sits before 50
-    assert data["x"].tolist() == [5.0, 30.0, 50.0]
-    assert data["mean"].tolist() == [0.4, 0.6, 0.5]
-    assert data["significant"].tolist() == [False, True, False]  # p = alpha is not marked; NaN is not marked
-    assert data["capped"].tolist() == [False, False, True]  # subject 01's ROI held 40 < 50 voxels
-    assert data["subjects"] == ["01", "02"]
-    np.testing.assert_array_equal(data["scores"], [[0.39, 0.61, 0.5], [0.41, 0.6, 0.52]])
+    assert data["counts"] == ["5", "50", "all"]  # 'all' last, although the ROIs hold 50 voxels on average
+    assert data["x"].tolist() == [5.0, 50.0, 75.0] and np.all(np.diff(data["x"]) > 0)
+    assert data["mean"].tolist() == [0.4, 0.5, 0.6]
+    assert data["significant"].tolist() == [False, False, True]  # p = alpha is not marked; NaN is not marked
+    assert data["capped"].tolist() == [False, True, False]  # subject 01's ROI held 40 < 50 voxels
+    assert data["subjects"] == ["01", "02"] and data["dropped"] == []
+    np.testing.assert_array_equal(data["scores"], [[0.39, 0.5, 0.61], [0.41, 0.52, 0.6]])
+
+
+def test_curve_draws_a_count_larger_than_every_roi_once_as_all():
+    # The issue's case: 200 and 400 exceed every subject's ROI, so they repeat 'all' and are not drawn again.
+    counts = ["10", "100", "200", "400", "all"]
+    group_rows = pd.DataFrame({"n_voxels": counts, "mean": [0.4, 0.5, 0.55, 0.55, 0.55], "ci_low": [0.3] * 5,
+                               "ci_high": [0.7] * 5, "chance": [0.5] * 5, "p_fwe": [0.5] * 5})
+    sizes = {"01": 130, "02": 142}
+    subject_rows = pd.DataFrame([{"subject": subject, "n_voxels": count,
+                                  "n_used": size if count == "all" else min(int(count), size), "balanced_accuracy": 0.5}
+                                 for subject, size in sizes.items() for count in counts])
+    data = report.curve_data(group_rows, subject_rows, roi_mean_voxels=136.0, alpha=0.05)
+    assert data["counts"] == ["10", "100", "all"] and data["dropped"] == ["200", "400"]
+    assert np.all(np.diff(data["x"]) > 0) and data["labels"][-1] == "all (136)"
+    figure = report.curve_figure([dict(data, label="within")], "test", 0.05)
+    ticks = [label.get_text() for label in figure.axes[0].get_xticklabels()]
+    assert ticks == ["10", "100", "all (136)"]  # 'all' once, last
 
 
 def test_confusion_count_falls_back_to_the_nearest_on_the_log_scale():
@@ -389,16 +412,19 @@ def test_best_slices_pick_the_fullest_planes():
     assert report.best_slices(np.zeros((6, 7, 5), dtype=bool)) == (3, 3, 2)
 
 
-def test_design_figure_labels_every_regressor_or_every_kth_of_a_trialwise_design():
+def test_design_figure_labels_every_regressor_grouped_by_kind_or_every_kth_of_a_trialwise_design():
     rng = np.random.default_rng(4)
-    small = report.design_figure(rng.random((30, 8)), [f"r{i}" for i in range(8)], TR_S, "small")
-    assert [label.get_text() for label in small.axes[0].get_xticklabels()] == [f"r{i}" for i in range(8)]
-    assert small.axes[0].get_ylim() == (30 * TR_S, 0.0)  # time (s) runs downwards
+    names = ["lowfreq_cos_01", "r0", "intercept", "r1", "r1_dtime"]
+    small = report.design_figure(rng.random((30, 5)), names, TR_S, "small")
+    band, image = small.axes[:2]
+    assert [label.get_text() for label in band.get_yticklabels()] == ["r0", "r1", "r1_dtime", "lowfreq_cos_01", "intercept"]
+    assert image.get_xlim() == (0.0, 30 * TR_S)  # time (s) runs to the right
+    assert report.regressor_kinds(names) == ["low-frequency cosines", "events", "intercept", "events", "HRF derivatives"]
     names = [f"trial_{i:03d}" for i in range(150)]
     large = report.design_figure(rng.random((200, 150)), names, None, "trial-wise")
-    labels = [label.get_text() for label in large.axes[0].get_xticklabels()]
-    assert labels == names[::3] and "one label every 3 regressors" in large.axes[0].get_xlabel()
-    assert large.get_size_inches()[0] <= 14.0 and "scan" in large.axes[0].get_ylabel()
+    labels = [label.get_text() for label in large.axes[0].get_yticklabels()]
+    assert labels == names[::3] and "one name every 3" in large.axes[0].get_ylabel()
+    assert large.get_size_inches()[1] <= 14.0 and "scan" in large.axes[1].get_xlabel()
     with pytest.raises(InputError, match="does not match 2 regressor names"):
         report.design_figure(np.zeros((5, 3)), ["a", "b"], TR_S, "bad")
 
@@ -450,21 +476,39 @@ def test_job_writes_exactly_the_planned_figures_and_the_page(built):
     assert written == sorted(built["outputs"]["figures"] + [built["outputs"]["html"]])
 
 
-def test_figures_are_valid_non_empty_png_and_svg(built):
+def _png_chunks(data):
+    """(type, payload) of every chunk (Source: PNG specification, 5.3: length, type, data, CRC)."""
+    chunks, offset = [], 8
+    while offset < len(data):
+        length = struct.unpack(">I", data[offset:offset + 4])[0]
+        chunks.append((data[offset + 4:offset + 8], data[offset + 8:offset + 8 + length]))
+        offset += 12 + length
+    return chunks
+
+
+def test_figures_are_valid_publication_png_svg_and_pdf(built):
     for path in built["outputs"]["figures"]:
         data = Path(path).read_bytes()
         if path.endswith(".png"):
-            # Source: PNG specification, 5.2 (signature), 11.2.2 (IHDR: width, height as 4-byte big-endian)
-            # and 11.3.6.1 (tIME, the last-modification time chunk, which must be absent).
+            # Source: PNG specification, 5.2 (signature), 11.2.2 (IHDR: width, height as 4-byte big-endian),
+            # 11.3.5.3 (pHYs: pixels per unit, unit 1 = metre) and 11.3.6.1 (tIME, which must be absent).
             assert data[:8] == b"\x89PNG\r\n\x1a\n" and data[12:16] == b"IHDR", path
             width, height = struct.unpack(">II", data[16:24])
-            assert width >= 300 and height >= 250, (path, width, height)
-            assert b"tIME" not in data
-        else:
+            assert width >= 900 and height >= 750, (path, width, height)
+            chunks = dict(_png_chunks(data))
+            x_per_m, y_per_m, unit = struct.unpack(">IIB", chunks[b"pHYs"])
+            assert unit == 1 and min(x_per_m, y_per_m) * 0.0254 >= 299.5, (path, x_per_m)  # >= 300 dpi
+            assert b"tIME" not in chunks
+        elif path.endswith(".svg"):
             root = ElementTree.fromstring(data)
             assert root.tag == "{http://www.w3.org/2000/svg}svg", path
-            assert len(list(root.iter())) > 50, path
+            texts = [element for element in root.iter() if element.tag == "{http://www.w3.org/2000/svg}text"]
+            assert len(texts) >= 5, path  # labels kept as text, not paths
             assert b"<dc:date>" not in data
+        else:
+            # Source: PDF 1.7 (ISO 32000-1), 7.5.2 (header) and 7.5.5 (trailer): the file starts with %PDF- and ends with %%EOF.
+            assert data.startswith(b"%PDF-") and data.rstrip().endswith(b"%%EOF"), path
+            assert b"/CreationDate" not in data and b"/FontFile2" in data, path  # no date; TrueType fonts (editable text)
 
 
 def test_page_embeds_every_png_and_loads_nothing_else(built):
@@ -492,7 +536,7 @@ def test_rerun_gives_byte_identical_files(tmp_path):
     first, second = outputs_for(tmp_path / "first", study, SUBJECTS[:2]), outputs_for(tmp_path / "second", study, SUBJECTS[:2])
     report_job.run(inputs, first, params, _quiet_log())
     report_job.run(inputs, second, params, _quiet_log())
-    assert len(first["figures"]) == 2 * 7  # design and masks of 2 subjects, 1 residual variance, 1 curve, 1 confusion
+    assert len(first["figures"]) == 3 * 8  # design and masks of 2 subjects, residual variance, curve, confusion, comparison
     for one, other in zip(first["figures"] + [first["html"]], second["figures"] + [second["html"]]):
         assert Path(one).read_bytes() == Path(other).read_bytes(), Path(one).name
 
@@ -501,11 +545,61 @@ def test_rerun_gives_byte_identical_files(tmp_path):
 
 def test_page_has_the_sections_in_order(built):
     ids = [attributes["id"] for tag, attributes in _parse(built["html"]).elements if tag == "section"]
-    assert ids == ["study", "cautions", "quality-checks", "results", "provenance"]
+    assert ids == ["summary", "results", "quality-checks", "warnings", "cautions", "study", "provenance"]
     text = _text(built["html"])
     for heading in ("Design matrices", "Brain and ROI masks", "ROI voxel counts", "GLM residual variance",
-                    "Analysis shape", "Analysis carry", "Confusion matrices of analysis carry"):
+                    "Analysis shape", "Analysis carry", "ROIs compared (analysis carry)"):
         assert heading in text
+    # The answer leads: the summary box comes before the first result figure and long before the quality checks.
+    page_html = built["html"]
+    assert page_html.index('class="answer"') < page_html.index("<figure") < page_html.index('id="fig-sub-01_design"')
+
+
+def test_summary_box_states_what_survives_in_plain_words(built):
+    section = built["html"].split('<section id="summary">', 1)[1].split("</section>", 1)[0]
+    text = _plain(section)
+    # ember survives at 20 and all voxels (p_fwe 0.01 < alpha), glow nowhere (p_fwe 0.6), in every direction.
+    assert "ROI ember, within: above chance after family-wise correction at 2 of 3 voxel counts (20, all)" in text
+    assert "ROI glow, within: no voxel count survives family-wise correction (smallest corrected p 0.6" in text
+    assert "ROI ember, seen<->heard: above chance" in text and "prevalence lower bound 0.20" in text
+    assert "Research use only" in text and "how many people" in text
+
+
+def test_every_contents_link_resolves_to_one_anchor(built):
+    parsed = _parse(built["html"])
+    ids = [attributes["id"] for _, attributes in parsed.elements if "id" in attributes]
+    assert len(ids) == len(set(ids))
+    links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and "href" in attributes]
+    assert links and all(link.startswith("#") and link[1:] in ids for link in links)
+    for target in ("analysis-shape", "analysis-carry-roi-glow", "analysis-carry-rois", "summary", "warnings"):
+        assert f"#{target}" in links, target
+
+
+def _plain(page_html):
+    """Visible text with the space an inline tag leaves before punctuation removed."""
+    return re.sub(r"\s+([,:;.])", r"\1", _text(page_html))
+
+
+def test_warnings_of_the_jobs_are_listed_with_their_job(built, tmp_path):
+    log = tmp_path / "decode.log"
+    log.write_text("INFO computed\nWARNING subject 01, ROI glow has 12 voxels: voxel count(s) 20 exceed it\n", encoding="utf-8")
+    warnings = report_job._read_warnings([["decode", "analysis=shape subject=01 roi=glow", str(log)],
+                                          ["glm", "subject=01", str(tmp_path / "never-written.log")]])
+    assert warnings == [("decode analysis=shape subject=01 roi=glow",
+                         "subject 01, ROI glow has 12 voxels: voxel count(s) 20 exceed it")]
+    section_id, heading, inner, _ = report_job._warnings_section({"warnings": warnings})
+    assert (section_id, heading) == ("warnings", "Warnings (1)")
+    assert "decode analysis=shape subject=01 roi=glow: subject 01, ROI glow has 12 voxels" in _plain(inner)
+    assert "No job of this run logged a warning." in _text(built["html"])
+    assert "This run logged 0 warnings" in _text(built["html"])
+
+
+def test_p_values_at_their_floor_print_their_resolution():
+    from foldwise.report.page import format_p
+
+    assert format_p(1 / 10001, n_draws=10000) == "< 0.0001 (10,000 draws)"
+    assert format_p(1 / 101, n_draws=100) == "< 0.01 (100 draws)"
+    assert format_p(2 / 101, n_draws=100) == "0.0198" and format_p(1 / 101) == "0.0099"
 
 
 def test_study_facts_are_on_the_page(built):
@@ -533,13 +627,16 @@ def test_roi_counts_table_shows_every_subject_mean_and_minimum(built):
 def test_results_show_group_tables_with_corrected_p_and_prevalence(built):
     parsed = _parse(built["html"])
     text = _text(built["html"])
-    assert "p (t-test, uncorrected)" in text and "p (family-wise corrected)" in text
+    assert "p (t-test, uncorrected)" in text and "p_fwe (family-wise corrected)" in text
     assert "prevalence: lower bound" in text
     assert "Group statistics (one-sided: above chance), 3 subjects, chance 0.333." in text  # constant columns
+    assert "< 0.01 (100 draws)" not in text  # the test table's p_fwe (0.01) is above the floor 1/101
     bold_rows = [attributes for tag, attributes in parsed.elements if tag == "tr" and attributes.get("class") == "survives"]
     # ember at 20 and all voxels (p_fwe 0.01) survive: 2 counts x (1 + 5 directions); p_fwe = alpha does not.
     assert len(bold_rows) == 2 * (1 + len(CROSS_DIRECTIONS))
-    assert "train seen, test heard" in text and "within heard" in text and "mean of both transfers" in text
+    # One vocabulary: directions keep their table names; the plain reading is a legend and a tooltip.
+    assert "seen->heard = train on seen, test on heard" in text and "seen<->heard = mean of seen->heard and heard->seen" in text
+    assert "train seen, test heard" not in text
     assert "Demo ground truth for ROI glow" in text
     assert "Okabe & Ito" in text and "balanced accuracy (the mean of the per-class hit rates" in text
 

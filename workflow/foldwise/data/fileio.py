@@ -249,12 +249,20 @@ def load_nifti(path, what="image"):
 
 
 def save_figure(figure, path):
-    """Save a matplotlib figure (PNG or SVG by suffix) without a date stamp."""
+    """Save a matplotlib figure (PNG, SVG or PDF by suffix) without a date stamp.
+
+    PNG at 300 dpi (recorded in the file's pHYs chunk); SVG and PDF keep
+    text as text (SVG ``<text>`` elements, PDF TrueType fonts), so labels
+    stay editable in a figure editor.
+    """
     suffix = Path(path).suffix.lower()
-    metadata = {"Software": None} if suffix == ".png" else {"Date": None, "Creator": None}
+    metadata = {"png": {"Software": None}, "svg": {"Date": None, "Creator": None},
+                "pdf": {"CreationDate": None, "ModDate": None, "Creator": None, "Producer": None}}[suffix.lstrip(".")]
     import matplotlib
 
     matplotlib.rcParams["svg.hashsalt"] = "foldwise"  # stable SVG element ids
+    matplotlib.rcParams["svg.fonttype"] = "none"
+    matplotlib.rcParams["pdf.fonttype"] = 42
     buffer = io.BytesIO()
-    figure.savefig(buffer, format=suffix.lstrip("."), metadata=metadata, dpi=100)
+    figure.savefig(buffer, format=suffix.lstrip("."), metadata=metadata, dpi=300)
     write_bytes_atomic(path, buffer.getvalue())

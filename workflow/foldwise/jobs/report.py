@@ -23,6 +23,8 @@ import pandas as pd
 # Absolute imports on purpose: the rule's code hash (foldwise.provenance.hashing.module_closure)
 # follows ``from foldwise.x`` imports.
 from foldwise.report import figures as page
+from foldwise.report import page as html_page
+from foldwise.report.summary import answer_sentences
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
 from foldwise.provenance.hashing import hash_object
@@ -340,37 +342,54 @@ def _roi_count_table(counts, subjects, rois):
                            caption="ROI voxel counts per subject (inside the brain mask), with the configured minimum")
 
 
-def _group_table(table, alpha):
-    """The group table in words; columns that are constant (subjects, chance) move into the caption."""
+#: The group table's columns on the page: (table column, header, tooltip). Add a column here once.
+GROUP_PAGE_COLUMNS = (
+    ("roi", "ROI", ""),
+    ("direction", "direction", "train->test sets; a<->b is the mean of both transfers"),
+    ("n_voxels", "n_voxels", "voxels selected inside the training folds ('all': the whole ROI)"),
+    ("n_subjects", "subjects", ""),
+    ("chance", "chance", "chance level of balanced accuracy"),
+    ("mean", "mean balanced accuracy", "group mean of the subjects' fold-mean balanced accuracy"),
+    ("ci", "95% CI of the mean", "t-based confidence interval of the group mean"),
+    ("t", "t", "one-sample t statistic against chance"),
+    ("p_t", "p (t-test, uncorrected)", ""),
+    ("p_wilcoxon", "p (Wilcoxon, uncorrected)", ""),
+    ("p_perm", "p (permutation, uncorrected)", ""),
+    ("p_fwe", "p_fwe (family-wise corrected)", "maximum statistic over ROIs and voxel counts, per direction"),
+    ("survives", "survives", "p_fwe below alpha"),
+    ("prevalence_p_global", "prevalence: p (global null)", "p of 'no subject has an effect'"),
+    ("prevalence_gamma0", "prevalence: lower bound", "the population share with an effect exceeds this, at alpha"),
+    ("prevalence_p_majority", "prevalence: p (majority)", "p of 'at most half the population has an effect'"),
+)
+
+
+def _group_table(table, alpha, n_draws=None):
+    """The group table; columns that are constant (subjects, chance) move into the caption."""
     constant = {column: table[column].nunique(dropna=False) == 1 for column in ("n_subjects", "chance")}
+    shown = [entry for entry in GROUP_PAGE_COLUMNS if not constant.get(entry[0], False)]
     rows, classes = [], []
     for row in table.itertuples(index=False):
         survives = math.isfinite(float(row.p_fwe)) and float(row.p_fwe) < alpha
         interval = (f"[{page.format_number(row.ci_low)},\u00a0{page.format_number(row.ci_high)}]"
                     if math.isfinite(float(row.ci_low)) else "n/a")
-        cells = [row.roi, page.direction_label(str(row.direction)), row.n_voxels]
-        cells += [] if constant["n_subjects"] else [int(row.n_subjects)]
-        cells += [] if constant["chance"] else [page.format_number(row.chance)]
-        cells += [page.format_number(row.mean), interval, page.format_number(row.t, 2), page.format_p(row.p_t),
-                  page.format_p(row.p_wilcoxon), page.format_p(row.p_perm), page.format_p(row.p_fwe),
-                  "yes" if survives else "no", page.format_p(row.prevalence_p_global),
-                  page.format_number(row.prevalence_gamma0, 2), page.format_p(row.prevalence_p_majority)]
-        rows.append(cells)
+        cells = {"roi": row.roi, "direction": page.direction_label(str(row.direction)), "n_voxels": row.n_voxels,
+                 "n_subjects": int(row.n_subjects), "chance": page.format_number(row.chance),
+                 "mean": page.format_number(row.mean), "ci": interval, "t": page.format_number(row.t, 2),
+                 "p_t": page.format_p(row.p_t), "p_wilcoxon": page.format_p(row.p_wilcoxon),
+                 "p_perm": page.format_p(row.p_perm), "p_fwe": html_page.format_p(row.p_fwe, n_draws),
+                 "survives": "yes" if survives else "no", "prevalence_p_global": page.format_p(row.prevalence_p_global),
+                 "prevalence_gamma0": page.format_number(row.prevalence_gamma0, 2),
+                 "prevalence_p_majority": page.format_p(row.prevalence_p_majority)}
+        rows.append([cells[key] for key, _, _ in shown])
         classes.append("survives" if survives else "")
-    header = ["ROI", "direction", "voxels"]
-    header += [] if constant["n_subjects"] else ["subjects"]
-    header += [] if constant["chance"] else ["chance"]
-    header += ["mean balanced accuracy", "95% CI of the mean", "t", "p (t-test, uncorrected)",
-               "p (Wilcoxon, uncorrected)", "p (permutation, uncorrected)", "p (family-wise corrected)",
-               f"corrected p < {alpha:g}", "prevalence: p (global null)", "prevalence: lower bound",
-               "prevalence: p (majority)"]
     caption = "Group statistics (one-sided: above chance)"
     if constant["n_subjects"]:
         caption += f", {int(table['n_subjects'].iloc[0])} subjects"
     if constant["chance"]:
         caption += f", chance {page.format_number(table['chance'].iloc[0])}"
-    caption += ". Rows in bold survive the family-wise correction."
-    return page.html_table(header, rows, caption=caption, row_classes=classes, wide=True)
+    caption += f". Rows in bold survive the family-wise correction (p_fwe < {alpha:g})."
+    return html_page.html_table([header for _, header, _ in shown], rows, caption=caption, row_classes=classes,
+                                wide=True, header_titles=[title for _, _, title in shown])
 
 
 def _analysis_text(analysis):
@@ -478,53 +497,192 @@ def run(inputs, outputs, params, log):
     data = {"designs": designs, "brain_masks": brain_masks, "means": means, "roi_mask_paths": roi_mask_paths,
             "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "tr_s": tr_s, "analyses": analyses,
             "group_tables": group_tables, "summaries": summaries, "confusions": confusions, "subjects": subjects,
-            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study,
+            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study, "clusters": {},
             "searchlight": _searchlight_inputs(inputs, study)}
     # Read and check everything first, draw afterwards: bad input stops the job before any drawing.
     specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
-    blocks = {entry["stem"]: page.figure_block(_save(build(), entry), entry["stem"], alt, caption)
-              for entry, (build, alt, caption) in zip(catalogue, specifications)}
+    blocks = {}
+    for entry, (build, alt, caption) in zip(catalogue, specifications):
+        figure = build()
+        blocks[entry["stem"]] = (_save(figure, entry), alt, caption)
     first_mean = load_nifti(means[subjects[0]], what="mean image")
     voxel_size_mm = tuple(float(size) for size in first_mean.header.get_zooms()[:3])
-
-    quality = ("<h3>Design matrices (first run of each subject)</h3><div class=\"gallery\">"
-               + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "design") + "</div>"
-               + "<h3>Brain and ROI masks</h3>"
-               + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "masks")
-               + "<h3>ROI voxel counts</h3>" + _roi_count_table(counts, subjects, roi_names)
-               + "<h3>GLM residual variance</h3>" + "".join(blocks[e["stem"]] for e in catalogue if e["kind"] == "resvar"))
-    results = [_paragraph("Score: balanced accuracy (the mean of the per-class hit rates, a proportion), averaged over "
-                          "the test folds of each subject. Colours follow the colour-blind-safe palette of Okabe & Ito "
-                          "(2008); images use the cividis and viridis colour maps; every mark is also told apart by "
-                          "shape or position.")]
-    for name, analysis in analyses.items():
-        table = group_tables[name][0]
-        parts = [f"<h3>Analysis {html.escape(name)}</h3>", _paragraph(_analysis_text(analysis))]
-        for roi in page.analysis_rois(study, analysis):
-            parts.append(f"<h4>ROI {html.escape(roi)}</h4>")
-            parts.append(_truth_text(truth, roi))
-            parts.append(blocks[f"{name}_roi-{roi}_curve"])
-        parts.append(_group_table(table, alpha))
-        parts.append(f"<h4>Confusion matrices of analysis {html.escape(name)}</h4>")
-        parts.extend(blocks[f"{name}_roi-{roi}_confusion"] for roi in page.analysis_rois(study, analysis))
-        results.append("".join(parts))
-    searchlight_blocks = [blocks[e["stem"]] for e in catalogue if e["kind"] == "searchlight"]
-    if searchlight_blocks:
-        results.append("<h3>Searchlight maps</h3>" + _paragraph(
-            "Each brain voxel's score is the cross-validated balanced accuracy in a sphere around it; the group map is the "
-            "mean over subjects minus chance, tested by the permutation group test with voxel-wise maximum-statistic "
-            "family-wise correction. A significant voxel means its sphere carries information, not that the voxel "
-            "itself does.") + "".join(searchlight_blocks))
-    sections = [
-        ("study", "Study", _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file,
-                                          versions)),
-        ("cautions", "Cautions: how to read these results", _cautions_section(alpha, study["dataset"]["source"])),
-        ("quality-checks", "Quality checks", quality),
-        ("results", "Results", "".join(results)),
-        ("provenance", "Provenance", _provenance_section(study, config_file, versions, records)),
-    ]
+    warnings = _read_warnings(params.get("job_logs") or [])
+    context = {"study": study, "subjects": subjects, "runs": runs, "trials": trials, "alpha": alpha, "counts": counts,
+               "roi_names": roi_names, "analyses": analyses, "group_tables": group_tables, "truth": truth,
+               "catalogue": catalogue, "blocks": blocks, "clusters": data["clusters"], "warnings": warnings,
+               "n_draws": int(study.get("group", {}).get("n_draws", 0)) or None,
+               "repetition_times": repetition_times, "voxel_size_mm": voxel_size_mm, "config_file": config_file,
+               "versions": versions, "records": records}
+    sections = [section(context) for section in SECTIONS]
     title = f"foldwise study report: {study.get('study', {}).get('name', 'study')}"
-    write_text_atomic(outputs["html"], page.render_page(title, sections))
+    write_text_atomic(outputs["html"], html_page.render_page(title, [section for section in sections if section]))
+
+
+# -- the page, one function per section (each returns (id, heading, HTML, contents entries) or None) ----------
+
+def _figure(context, stem, heading=None, heading_id=None):
+    png, alt, caption = context["blocks"][stem]
+    return html_page.figure_block(png, stem, alt, caption, formats=page.FIGURE_FORMATS, heading=heading,
+                                  heading_id=heading_id)
+
+
+def _summary_section(context):
+    """The answer first: per analysis, what survives correction, where and how large, in plain words."""
+    alpha, parts = context["alpha"], ["<div class=\"answer\">"]
+    for name, analysis in context["analyses"].items():
+        table = context["group_tables"][name][0]
+        lines = answer_sentences(table, alpha, context["n_draws"], page.curve_directions(analysis),
+                                 page.analysis_rois(context["study"], analysis))
+        n_found = sum(1 for _, _, found, _ in lines if found)
+        parts.append(f"<h3><a href=\"#{html_page.anchor('analysis', name)}\">Analysis {html.escape(name)}</a>: "
+                     f"{n_found} of {len(lines)} ROI x direction results above chance after correction</h3><ul>")
+        for roi, direction, found, sentence in lines:
+            target = html_page.anchor("analysis", name, "roi", roi)
+            parts.append(f"<li{' class=' + chr(34) + 'found' + chr(34) if found else ''}><a href=\"#{target}\">ROI "
+                         f"{html.escape(roi)}</a>, <span title=\"{html.escape(html_page.direction_tooltip(direction))}\">"
+                         f"{html.escape(direction)}</span>: {html.escape(sentence)}</li>")
+        parts.append("</ul>")
+    n_warnings = len(context["warnings"])
+    parts.append(_paragraph(f"Corrected p: family-wise, maximum statistic over every ROI and voxel count of a direction, "
+                            f"alpha {alpha:g}. This run logged {n_warnings} warning{'s' if n_warnings != 1 else ''} "
+                            "(listed under Warnings)."))
+    parts.append("<p class=\"caveat\">Research use only, not for clinical decisions. Above chance at the group level "
+                 "means the mean accuracy over subjects exceeds chance; it does not say how many people show the effect "
+                 "(that is what the prevalence lower bound addresses). See Cautions.</p></div>")
+    return ("summary", "Summary: the answer", "".join(parts), ())
+
+
+def _analysis_block(context, name, analysis):
+    table = context["group_tables"][name][0]
+    rois = page.analysis_rois(context["study"], analysis)
+    directions = page.curve_directions(analysis)
+    legend = "; ".join(f"{direction} = {html_page.direction_tooltip(direction)}" for direction in directions)
+    parts = [f"<h3 id=\"{html_page.anchor('analysis', name)}\">Analysis {html.escape(name)}</h3>",
+             _paragraph(_analysis_text(analysis)), _paragraph(f"Directions: {legend}.")]
+    for roi in rois:
+        parts.append(_truth_text(context["truth"], roi))
+        parts.append(_figure(context, f"{name}_roi-{roi}_curve", heading=f"ROI {roi}",
+                             heading_id=html_page.anchor("analysis", name, "roi", roi)))
+        parts.append(_figure(context, f"{name}_roi-{roi}_confusion"))
+    parts.append(_figure(context, f"{name}_rois", heading=f"ROIs compared (analysis {name})",
+                         heading_id=html_page.anchor("analysis", name, "rois")))
+    parts.append(_group_table(table, context["alpha"], context["n_draws"]))
+    entries = [(html_page.anchor("analysis", name, "roi", roi), f"ROI {roi}") for roi in rois]
+    entries.append((html_page.anchor("analysis", name, "rois"), "ROIs compared"))
+    return "".join(parts), (html_page.anchor("analysis", name), f"Analysis {name}", entries)
+
+
+def _results_section(context):
+    """Per analysis: curves and group confusion per ROI, the ROI comparison, the group table."""
+    intro = _paragraph("Score: balanced accuracy (the mean of the per-class hit rates, a proportion), averaged over "
+                       "the test folds of each subject. Colours follow the colour-blind-safe palette of Okabe & Ito "
+                       "(2008); images use the cividis and viridis colour maps; every mark is also told apart by "
+                       "shape or position.")
+    blocks = [_analysis_block(context, name, analysis) for name, analysis in context["analyses"].items()]
+    return ("results", "Results per analysis", intro + "".join(block for block, _ in blocks),
+            [entry for _, entry in blocks])
+
+
+def _cluster_table(table):
+    if table.empty:
+        return _paragraph("No voxel survives the family-wise correction: no cluster to list.")
+    rows = [[row.direction, int(row.cluster), int(row.n_voxels_cluster), f"{row.volume_mm3:g}",
+             page.format_number(row.peak_margin), page.format_p(row.peak_p_fwe),
+             f"{row.peak_x_mm:g}", f"{row.peak_y_mm:g}", f"{row.peak_z_mm:g}"] for row in table.itertuples(index=False)]
+    header = ["direction", "cluster", "size (voxels)", "size (mm³)", f"peak {page.SEARCHLIGHT_QUANTITY}",
+              "peak p_fwe", "peak x (mm)", "peak y (mm)", "peak z (mm)"]
+    return html_page.html_table(header, rows, wide=True, caption=(
+        "Clusters of searchlight centres with corrected p below alpha (26-neighbour connectivity), largest first; "
+        "the peak is the centre with the largest margin over chance. Voxel-wise correction: the table says where, "
+        "it is not a cluster-level test."))
+
+
+def _maps_section(context):
+    """Searchlight group maps with their cluster and peak tables (absent when the searchlight is off)."""
+    entries = [entry for entry in context["catalogue"] if entry["kind"] == "searchlight"]
+    if not entries:
+        return None
+    parts = [_paragraph(
+        f"Each brain voxel's score is the cross-validated balanced accuracy in a sphere around it; the group map is "
+        f"the {page.SEARCHLIGHT_QUANTITY} (the mean over subjects of balanced accuracy minus its chance level), tested "
+        "by the permutation group test with voxel-wise maximum-statistic family-wise correction. A significant voxel "
+        "means its sphere carries information, not that the voxel itself does.")]
+    toc = []
+    for entry in entries:
+        name = entry["analysis"]
+        target = html_page.anchor("map", name)
+        parts.append(_figure(context, entry["stem"], heading=f"Searchlight map of analysis {name}", heading_id=target))
+        parts.append(_cluster_table(context["clusters"][name]))
+        toc.append((target, f"Map of analysis {name}"))
+    return ("maps", "Searchlight maps", "".join(parts), toc)
+
+
+def _quality_section(context):
+    """Quality checks: designs, masks, ROI voxel counts, residual variance."""
+    catalogue = context["catalogue"]
+    figures = {kind: "".join(_figure(context, e["stem"]) for e in catalogue if e["kind"] == kind)
+               for kind in ("design", "masks", "resvar")}
+    inner = ("<h3 id=\"qc-designs\">Design matrices (first run of each subject)</h3><div class=\"gallery\">"
+             + figures["design"] + "</div>"
+             + "<h3 id=\"qc-masks\">Brain and ROI masks</h3>" + figures["masks"]
+             + "<h3 id=\"qc-roi-counts\">ROI voxel counts</h3>"
+             + _roi_count_table(context["counts"], context["subjects"], context["roi_names"])
+             + "<h3 id=\"qc-residual-variance\">GLM residual variance</h3>" + figures["resvar"])
+    entries = [("qc-designs", "Design matrices"), ("qc-masks", "Brain and ROI masks"), ("qc-roi-counts", "ROI voxel counts"),
+               ("qc-residual-variance", "GLM residual variance")]
+    return ("quality-checks", "Quality checks", inner, entries)
+
+
+def _warnings_section(context):
+    """Every warning the run's jobs logged, with its job."""
+    warnings = context["warnings"]
+    if not warnings:
+        inner = _paragraph("No job of this run logged a warning.")
+    else:
+        inner = (_paragraph(f"{len(warnings)} warning{'s' if len(warnings) != 1 else ''}, as the jobs logged them "
+                            "(job: step and its wildcards; full logs under results/logs/).")
+                 + "<ul class=\"warnings\">" + "".join(f"<li><strong>{html.escape(job)}</strong>: {html.escape(text)}</li>"
+                                                  for job, text in warnings) + "</ul>")
+    return ("warnings", f"Warnings ({len(warnings)})", inner, ())
+
+
+def _cautions_page_section(context):
+    return ("cautions", "Cautions: how to read these results",
+            _cautions_section(context["alpha"], context["study"]["dataset"]["source"]), ())
+
+
+def _methods_section(context):
+    return ("study", "Study and methods", _study_section(
+        context["study"], context["subjects"], context["runs"], context["trials"], context["repetition_times"],
+        context["voxel_size_mm"], context["config_file"], context["versions"]), ())
+
+
+def _provenance_page_section(context):
+    return ("provenance", "Provenance", _provenance_section(context["study"], context["config_file"], context["versions"],
+                                                            context["records"]), ())
+
+
+#: The page's sections in order: the answer, results, maps, quality checks, warnings, then how it was done.
+SECTIONS = (_summary_section, _results_section, _maps_section, _quality_section, _warnings_section,
+            _cautions_page_section, _methods_section, _provenance_page_section)
+
+
+def _read_warnings(job_logs):
+    """(job, message) for every WARNING line of the jobs' logs, in plan order.
+
+    ``job_logs`` lists ``[step, wildcards text, log path]``; a missing log
+    (a job not run in this tree) is skipped.
+    """
+    found = []
+    for step, label, path in job_logs:
+        try:
+            lines = Path(path).read_text(encoding="utf-8", errors="replace").splitlines()
+        except OSError:
+            continue
+        job = f"{step} {label}".strip()
+        found += [(job, line[len("WARNING "):]) for line in lines if line.startswith("WARNING ")]
+    return found
 
 
 def _searchlight_inputs(inputs, study):
@@ -538,22 +696,38 @@ def _searchlight_inputs(inputs, study):
     return {name: tuple(paths[index] for paths in lists) for index, name in enumerate(names)}
 
 
+def _average_mean_image(data):
+    """The mean over subjects of their mean images (the first subject's alone when the grids differ)."""
+    subjects = data["subjects"]
+    first, image = _volume(data["means"][subjects[0]], "mean image")
+    total, n_used = first.copy(), 1
+    for subject in subjects[1:]:
+        values, other = _volume(data["means"][subject], "mean image")
+        if values.shape != first.shape or not np.allclose(other.affine, image.affine):
+            return first, f"sub-{subjects[0]}'s mean image (the subjects' grids differ)"
+        total += values
+        n_used += 1
+    return total / n_used, f"the mean of the {n_used} subjects' mean images"
+
+
 def _searchlight_specification(entry, data, log):
     name = entry["analysis"]
     mean_path, p_fwe_path, directions_path = data["searchlight"][name]
     subject = data["subjects"][0]
-    background, _ = _volume(data["means"][subject], "mean image")
+    background, underlay = _average_mean_image(data)
     brain = _volume(data["brain_masks"][subject], "brain mask", background.shape)[0] > 0
     means = load_nifti(mean_path, what="searchlight mean map")
     p_fwe = load_nifti(p_fwe_path, what="searchlight FWE p map")
     directions = read_tsv(directions_path, ("volume", "direction"), what="searchlight directions")["direction"].tolist()
     mean_values = np.asarray(means.dataobj, dtype=np.float64).reshape(background.shape + (-1,))
     p_values = np.asarray(p_fwe.dataobj, dtype=np.float64).reshape(background.shape + (-1,))
+    data["clusters"][name] = page.searchlight_clusters(mean_values, p_values, directions, means.affine, data["alpha"])
     build = functools.partial(page.searchlight_figure, mean_values, p_values, directions, background, brain, means.affine,
                               data["alpha"], f"analysis {name}: group searchlight maps")
     return (build, f"group searchlight maps of analysis {name}",
-            f"Analysis {name}: group mean balanced accuracy minus chance per searchlight sphere centre, over sub-{subject}'s "
-            f"mean image; outlined voxels survive voxel-wise family-wise correction at alpha {data['alpha']:g}.")
+            f"Analysis {name}: group {page.SEARCHLIGHT_QUANTITY} per searchlight sphere centre, shown only where the "
+            f"voxel-wise family-wise corrected p is below {data['alpha']:g}, over {underlay}; the same slices in every "
+            "row; coordinates in mm, L and R mark the subject's left and right.")
 
 
 def _design_specification(entry, data, log):
@@ -564,11 +738,13 @@ def _design_specification(entry, data, log):
     values = design.apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64)
     if values.size == 0 or not np.all(np.isfinite(values)):
         raise InputError(path, "values", "the design matrix is empty or holds a non-number", _RERUN)
-    build = functools.partial(page.design_figure, values, [str(name) for name in design.columns], data["tr_s"],
-                              f"sub-{subject} {run_id}: design matrix")
+    names = [str(name) for name in design.columns]
+    kinds = page.regressor_kinds(names, data["study"].get("dataset", {}).get("confounds") or ())
+    build = functools.partial(page.design_figure, values, names, data["tr_s"], f"sub-{subject} {run_id}: design matrix",
+                              kinds)
     return (build, f"Design matrix of sub-{subject}, {run_id}",
-            f"sub-{subject}, {run_id}: {values.shape[1]} regressors over {values.shape[0]} scans; each regressor "
-            "scaled to its largest magnitude.")
+            f"sub-{subject}, {run_id}: {values.shape[1]} regressors (rows, grouped by kind: coloured band) over "
+            f"{values.shape[0]} scans; each regressor scaled to its largest magnitude, zero in white.")
 
 
 def _masks_specification(entry, data, log):
@@ -627,47 +803,81 @@ def _curve_specification(entry, data, log):
     chance = page.format_number(panels[0]["chance"][0])
     caption = (f"Balanced accuracy against the number of voxels (log axis) in ROI {roi}: group mean (thick line) with its "
                f"95% confidence interval (band) over {len(panels[0]['subjects'])} subjects, single subjects (thin lines), "
-               f"chance {chance} (dashed). Stars along the top: family-wise corrected p < {alpha:g}. 'all' sits at the ROI's mean size, "
-               f"{roi_mean:.1f} voxels. Open circles: the ROI held fewer voxels than requested for at least one "
-               "subject, so the point repeats a smaller selection.")
+               f"chance {chance} (dashed). Stars along the top: family-wise corrected p < {alpha:g}. 'all' (the whole ROI, "
+               f"{roi_mean:.1f} voxels on average) comes last, after the dotted line. Open circles: the ROI held fewer "
+               "voxels than requested for at least one subject.")
+    dropped = sorted({count for panel in panels for count in panel["dropped"]}, key=int)
+    if dropped:
+        caption += (f" Not drawn: {', '.join(dropped)} voxels, larger than every subject's ROI, so identical to 'all'.")
     if len(panels) > 1:
-        caption += " Panels: " + "; ".join(panel["label"] for panel in panels) + "."
+        caption += " Panels: " + "; ".join(f"{panel['label']} ({html_page.direction_tooltip(panel['label'])})"
+                                           for panel in panels) + "."
     build = functools.partial(page.curve_figure, panels, f"analysis {name}, ROI {roi}", alpha)
     return build, f"Decoding curves of analysis {name} in ROI {roi}", caption
+
+
+def _chosen_count(data, name, roi, key):
+    table = data["group_tables"][name][0]
+    available = list(dict.fromkeys(table.loc[table["roi"] == roi, "n_voxels"].astype(str)))
+    configured = data["study"].get("report", {}).get(key, 100)
+    chosen, exact = page.choose_confusion_count(configured, available, data["roi_mean_voxels"][roi])
+    text = f"{chosen} voxels" if exact else f"{chosen} voxels (the configured {configured} is not among the counts tested)"
+    return chosen, exact, configured, text
 
 
 def _confusion_specification(entry, data, log):
     name, roi = entry["analysis"], entry["roi"]
     analysis = data["analyses"][name]
-    table = data["group_tables"][name][0]
-    available = list(dict.fromkeys(table.loc[table["roi"] == roi, "n_voxels"].astype(str)))
-    configured = data["study"].get("report", {}).get("confusion_n_voxels", 100)
-    chosen, exact = page.choose_confusion_count(configured, available, data["roi_mean_voxels"][roi])
+    chosen, exact, configured, count_text = _chosen_count(data, name, roi, "confusion_n_voxels")
     if not exact:
         log.info("analysis %s, ROI %s: no results at %s voxels; confusion matrices at %s", name, roi, configured, chosen)
     classes = _classes(analysis)
-    directions = [(direction, page.direction_label(direction)) for direction in page.curve_directions(analysis)]
-    matrices = {}
-    for subject in data["subjects"]:
-        if (name, subject, roi) not in data["confusions"]:
-            raise InputError(None, "confusions", f"no confusion table of analysis {name}, sub-{subject}, ROI {roi}", _RERUN)
-        frame, path = data["confusions"][(name, subject, roi)]
-        for direction, _ in directions:
-            rows = frame[(frame["direction"] == direction) & (frame["n_voxels"] == chosen)]
+    directions = page.curve_directions(analysis)
+    shares = {}
+    for direction in directions:
+        matrices = []
+        for subject in data["subjects"]:
+            if (name, subject, roi) not in data["confusions"]:
+                raise InputError(None, "confusions", f"no confusion table of analysis {name}, sub-{subject}, ROI {roi}", _RERUN)
+            frame, path = data["confusions"][(name, subject, roi)]
+            rows = frame[(frame["direction"] == direction) & (frame["n_voxels"].astype(str) == chosen)]
             if rows.empty:
                 raise InputError(path, "direction, n_voxels", f"no rows for direction {direction} at {chosen} voxels", _RERUN)
             try:
-                matrices[(direction, subject)] = page.confusion_matrix(rows, classes)
+                matrices.append(page.confusion_matrix(rows, classes))
             except InputError as error:
                 raise InputError(path, error.field, error.problem, error.fix) from None
-    count_text = f"{chosen} voxels" if exact else f"{chosen} voxels (the configured {configured} is not among the counts tested)"
-    caption = (f"Confusion matrices per subject at {count_text}, summed over test folds: rows are the true classes, "
-               "columns the predicted ones; colour is the proportion of each true class's test samples, numbers are counts.")
-    build = functools.partial(page.confusion_figure, matrices, data["subjects"], directions, classes,
-                              f"analysis {name}, ROI {roi}: {count_text}")
-    return build, f"Confusion matrices of analysis {name} in ROI {roi}", caption
+        shares[direction] = page.group_confusion(matrices)
+    n_subjects = len(data["subjects"])
+    caption = (f"Group confusion matrices at {count_text}: per subject, the test predictions summed over folds and "
+               f"each true class's row turned into shares; shown is the mean of the {n_subjects} subjects' shares "
+               "(percent; rows sum to 100). Rows are the true classes, columns the predicted ones. Descriptive, not a test.")
+    build = functools.partial(page.confusion_figure, shares, directions, classes,
+                              f"analysis {name}, ROI {roi}: {count_text}", n_subjects)
+    return build, f"Group confusion matrices of analysis {name} in ROI {roi}", caption
+
+
+def _comparison_specification(entry, data, log):
+    name = entry["analysis"]
+    analysis = data["analyses"][name]
+    rois = page.analysis_rois(data["study"], analysis)
+    table, path = data["group_tables"][name]
+    # One count for every ROI: the configured one when every ROI has it, else each ROI's nearest is not comparable,
+    # so the first ROI's choice is used and stated.
+    chosen, exact, configured, count_text = _chosen_count(data, name, rois[0], "comparison_n_voxels")
+    directions = page.curve_directions(analysis)
+    try:
+        panels = page.comparison_data(data["summaries"][name], table, rois, directions, chosen)
+    except InputError as error:
+        raise InputError(path, error.field, error.problem, error.fix) from None
+    caption = (f"ROIs compared at {count_text}: each dot is one subject's balanced accuracy (spread sideways by rank), "
+               "the diamond and bar the group mean and its 95% confidence interval, the dashed line chance; a star "
+               f"marks a family-wise corrected p below {data['alpha']:g}.")
+    build = functools.partial(page.comparison_figure, panels, f"analysis {name}: ROIs at {count_text}", data["alpha"])
+    return build, f"ROI comparison of analysis {name}", caption
 
 
 _FIGURE_SPECIFICATIONS = {"design": _design_specification, "masks": _masks_specification,
                           "resvar": _resvar_specification, "curve": _curve_specification,
-                          "confusion": _confusion_specification, "searchlight": _searchlight_specification}
+                          "confusion": _confusion_specification, "searchlight": _searchlight_specification,
+                          "comparison": _comparison_specification}

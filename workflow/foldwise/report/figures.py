@@ -38,13 +38,20 @@ __all__ = [
     "choose_confusion_count",
     "confusion_matrix",
     "trials_per_condition",
+    "SEARCHLIGHT_QUANTITY",
     "best_slices",
     "grid_axes_mm",
+    "DESIGN_KINDS",
+    "regressor_kinds",
     "design_figure",
     "masks_figure",
     "resvar_figure",
     "curve_figure",
+    "group_confusion",
     "confusion_figure",
+    "comparison_data",
+    "comparison_figure",
+    "searchlight_clusters",
     "reproduce_commands",
     "manifest_summary",
     "format_number",
@@ -59,7 +66,7 @@ OKABE_ITO = {
     "black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9", "bluish green": "#009E73",
     "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish purple": "#CC79A7",
 }
-FIGURE_FORMATS = ("png", "svg")
+FIGURE_FORMATS = ("png", "svg", "pdf")
 FIGURES_DIR = "results/report/figures"
 # Caption files for Snakemake's report(), relative to the repository root.
 CAPTIONS = {
@@ -69,6 +76,7 @@ CAPTIONS = {
     "curve_within": "workflow/report/decoding_curve.rst",
     "curve_cross": "workflow/report/cross_decoding_curve.rst",
     "confusion": "workflow/report/confusion.rst",
+    "comparison": "workflow/report/roi_comparison.rst",
     "searchlight": "workflow/report/searchlight.rst",
 }
 _ROI_COLOURS = ("orange", "sky blue", "bluish green", "vermillion", "blue", "reddish purple")
@@ -118,23 +126,24 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
     Returns
     -------
     list of dict
-        Keys ``stem``, ``kind`` (design, masks, resvar, curve, confusion),
-        ``subject``, ``analysis``, ``roi`` (None where not applicable; kind
-        ``searchlight`` when the config maps analyses with a searchlight),
-        ``paths`` (one per format in ``FIGURE_FORMATS``), ``caption`` (a file
-        of ``CAPTIONS``) and ``category`` (for Snakemake's report()).
+        Keys ``stem``, ``kind`` (curve, confusion, comparison, searchlight,
+        design, masks, resvar), ``subject``, ``analysis``, ``roi`` (None where
+        not applicable), ``paths`` (one per format in ``FIGURE_FORMATS``),
+        ``caption`` (a file of ``CAPTIONS``) and ``category`` (for
+        Snakemake's report()).
 
     Notes
     -----
-    Quality checks come first (design and masks per subject, then the
-    residual variance of the first subject), then per analysis and ROI the
-    decoding curve and the confusion matrices.
+    The page leads with the results: per analysis and ROI the decoding curve
+    and the group confusion matrix, then per analysis the ROI comparison;
+    then the searchlight maps; the quality checks (design and masks per
+    subject, the residual variance of the first subject) come last.
 
     Examples
     --------
     >>> study = {"rois": [{"name": "ember"}], "analyses": [{"name": "shape", "kind": "within"}]}
     >>> [entry["stem"] for entry in figure_catalogue(study, ["01"])]
-    ['sub-01_design', 'sub-01_masks', 'sub-01_resvar', 'shape_roi-ember_curve', 'shape_roi-ember_confusion']
+    ['shape_roi-ember_curve', 'shape_roi-ember_confusion', 'shape_rois', 'sub-01_design', 'sub-01_masks', 'sub-01_resvar']
     """
     subjects = [str(subject) for subject in subjects]
     if not subjects:
@@ -146,24 +155,25 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
         entries.append({"stem": stem, "kind": kind, "subject": subject, "analysis": analysis, "roi": roi,
                         "paths": paths, "caption": CAPTIONS[caption], "category": category})
 
-    for subject in subjects:
-        add(f"sub-{subject}_design", "design", "design", "Quality checks", subject=subject)
-        add(f"sub-{subject}_masks", "masks", "masks", "Quality checks", subject=subject)
-    add(f"sub-{subjects[0]}_resvar", "resvar", "resvar", "Quality checks", subject=subjects[0])
     for analysis in study_config["analyses"]:
         name = analysis["name"]
         curve_caption = "curve_cross" if analysis["kind"] == "cross" else "curve_within"
         for roi in analysis_rois(study_config, analysis):
             add(f"{name}_roi-{roi}_curve", "curve", curve_caption, "Decoding curves", analysis=name, roi=roi)
             add(f"{name}_roi-{roi}_confusion", "confusion", "confusion", "Confusion matrices", analysis=name, roi=roi)
+        add(f"{name}_rois", "comparison", "comparison", "ROI comparison", analysis=name)
     searchlight = study_config.get("searchlight") or {}
     for name in (searchlight.get("analyses", []) if searchlight.get("enabled") else []):
         add(f"{name}_searchlight", "searchlight", "searchlight", "Searchlight maps", analysis=name)
+    for subject in subjects:
+        add(f"sub-{subject}_design", "design", "design", "Quality checks", subject=subject)
+        add(f"sub-{subject}_masks", "masks", "masks", "Quality checks", subject=subject)
+    add(f"sub-{subjects[0]}_resvar", "resvar", "resvar", "Quality checks", subject=subjects[0])
     return entries
 
 
 def figure_plan(study_config, subjects, figures_dir=FIGURES_DIR):
-    """The figure files the report job writes (PNG and SVG of each figure), in a fixed order.
+    """The figure files the report job writes (PNG, SVG and PDF of each figure), in a fixed order.
 
     Parameters
     ----------
@@ -181,8 +191,8 @@ def figure_plan(study_config, subjects, figures_dir=FIGURES_DIR):
     Examples
     --------
     >>> study = {"rois": [{"name": "ember"}], "analyses": [{"name": "shape", "kind": "within"}]}
-    >>> figure_plan(study, ["01"])[:2]
-    ['results/report/figures/sub-01_design.png', 'results/report/figures/sub-01_design.svg']
+    >>> figure_plan(study, ["01"])[:3]
+    ['results/report/figures/shape_roi-ember_curve.png', 'results/report/figures/shape_roi-ember_curve.svg', 'results/report/figures/shape_roi-ember_curve.pdf']
     """
     return [path for entry in figure_catalogue(study_config, subjects, figures_dir) for path in entry["paths"]]
 
@@ -201,13 +211,13 @@ def curve_directions(analysis):
     -------
     list of str
         ``["within"]``, or for the sets A and B of a cross analysis
-        ``["A->A", "B->B", "A->B", "B->A"]`` (within A, within B, then both
-        transfers).
+        ``["A->A", "B->B", "A->B", "B->A", "A<->B"]`` (within A, within B,
+        both transfers, then their mean), named as in the group tables.
 
     Examples
     --------
     >>> curve_directions({"kind": "cross", "sets": {"seen": {}, "heard": {}}})
-    ['seen->seen', 'heard->heard', 'seen->heard', 'heard->seen']
+    ['seen->seen', 'heard->heard', 'seen->heard', 'heard->seen', 'seen<->heard']
     """
     if analysis.get("kind") != "cross":
         return ["within"]
@@ -216,45 +226,39 @@ def curve_directions(analysis):
         raise InputError(None, f"analyses[{analysis.get('name')}].sets", f"a cross analysis needs two sets, got {sets!r}",
                          "give exactly two sets")
     first, second = sets
-    return [f"{first}->{first}", f"{second}->{second}", f"{first}->{second}", f"{second}->{first}"]
+    return [f"{first}->{first}", f"{second}->{second}", f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}"]
 
 
 def direction_label(direction):
-    """A direction in words.
+    """A direction's name on the page and in figures: the same name as in the tables and the terminal.
+
+    The plain-language reading (``foldwise.report.page.direction_tooltip``)
+    goes into tooltips and captions, never in place of the name.
 
     Examples
     --------
-    >>> direction_label("seen->heard")
-    'train seen, test heard'
-    >>> direction_label("seen->seen")
-    'within seen'
-    >>> direction_label("seen<->heard")
-    'seen and heard, mean of both transfers'
+    >>> direction_label("seen->heard"), direction_label("seen<->heard"), direction_label("within")
+    ('seen->heard', 'seen<->heard', 'within')
     """
-    if direction == "within":
-        return "within"
-    if "<->" in direction:
-        first, second = direction.split("<->", 1)
-        return f"{first} and {second}, mean of both transfers"
-    if "->" in direction:
-        train, test = direction.split("->", 1)
-        return f"within {train}" if train == test else f"train {train}, test {test}"
-    return direction
+    return str(direction)
 
 
 def voxel_count_positions(counts, roi_mean_voxels):
-    """Where each voxel count sits on the log axis, and its tick label.
+    """Where each voxel count sits on the log axis, and its tick label; ``all`` comes last.
 
     Parameters
     ----------
     counts : sequence of str or int
         Requested voxel counts; ``"all"`` means the whole ROI.
     roi_mean_voxels : float
-        The ROI's mean size over subjects (voxels); ``all`` is drawn there.
+        The ROI's mean size over subjects (voxels).
 
     Returns
     -------
     positions : ndarray of float
+        A number count at its value; ``all`` at the ROI's mean size, or 1.5
+        times the largest number count when that is larger, so ``all`` is
+        always rightmost.
     labels : list of str
         The count, or ``"all (N)"`` with N the rounded mean size.
 
@@ -263,25 +267,34 @@ def voxel_count_positions(counts, roi_mean_voxels):
     >>> positions, labels = voxel_count_positions(["10", "all"], 136.4)
     >>> positions.tolist(), labels
     ([10.0, 136.4], ['10', 'all (136)'])
+    >>> voxel_count_positions(["10", "200", "all"], 136.4)[0].tolist()
+    [10.0, 200.0, 300.0]
     """
     if not math.isfinite(roi_mean_voxels) or roi_mean_voxels <= 0:
         raise InputError(None, "roi_mean_voxels", f"the ROI's mean voxel count must be positive, got {roi_mean_voxels!r}",
                          "check the ROI voxel-count tables")
+    numbers = {}
+    for count in counts:
+        text = str(count)
+        if text == "all":
+            continue
+        try:
+            value = int(text)
+        except ValueError:
+            raise InputError(None, "n_voxels", f"voxel count {text!r} is neither a whole number nor 'all'",
+                             "rerun the decoding and group stages") from None
+        if value < 1:
+            raise InputError(None, "n_voxels", f"voxel count {value} is below 1", "rerun the decoding and group stages")
+        numbers[text] = float(value)
+    all_position = max(float(roi_mean_voxels), 1.5 * max(numbers.values(), default=0.0))
     positions, labels = [], []
     for count in counts:
         text = str(count)
         if text == "all":
-            positions.append(float(roi_mean_voxels))
+            positions.append(all_position)
             labels.append(f"all ({int(round(roi_mean_voxels))})")
         else:
-            try:
-                value = int(text)
-            except ValueError:
-                raise InputError(None, "n_voxels", f"voxel count {text!r} is neither a whole number nor 'all'",
-                                 "rerun the decoding and group stages") from None
-            if value < 1:
-                raise InputError(None, "n_voxels", f"voxel count {value} is below 1", "rerun the decoding and group stages")
-            positions.append(float(value))
+            positions.append(numbers[text])
             labels.append(text)
     return np.asarray(positions, dtype=np.float64), labels
 
@@ -298,7 +311,7 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
         Rows of the subjects' summaries for this ROI and direction
         (``subject``, ``n_voxels``, ``n_used``, ``balanced_accuracy``).
     roi_mean_voxels : float
-        Where ``all`` is drawn.
+        The ROI's mean size (where ``all`` is drawn when no count exceeds it).
     alpha : float
         Level for the markers: a cell is marked where ``p_fwe < alpha``.
 
@@ -307,8 +320,10 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
     dict
         ``counts`` (str), ``x``, ``labels``, ``mean``, ``ci_low``, ``ci_high``,
         ``chance``, ``significant`` (bool), ``capped`` (bool: the ROI held fewer
-        voxels than requested for at least one subject), ``subjects`` and
-        ``scores`` (n_subjects x n_counts, NaN where missing); sorted by ``x``.
+        voxels than requested for at least one subject), ``subjects``,
+        ``scores`` (n_subjects x n_counts, NaN where missing) and ``dropped``
+        (counts left out because every subject used all its voxels there, so
+        the point would repeat ``all``); sorted by ``x`` with ``all`` last.
     """
     if group_rows.empty:
         raise InputError(None, "roi, direction", "the group table has no row for this ROI and direction",
@@ -316,6 +331,16 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
     counts = [str(value) for value in group_rows["n_voxels"]]
     if len(set(counts)) != len(counts):
         raise InputError(None, "n_voxels", f"duplicate voxel counts in the group table: {counts}", "rerun the group stage")
+    used = {}
+    for row in subject_rows.itertuples(index=False):
+        used.setdefault(str(row.n_voxels), {})[str(row.subject)] = int(row.n_used)
+    whole = used.get("all", {})
+    # A count every subject's ROI is too small for repeats 'all' exactly: drawn once, as 'all'.
+    dropped = [count for count in counts if count != "all" and "all" in counts and whole
+               and count in used and all(used[count].get(subject) == size for subject, size in whole.items())]
+    keep = np.array([count not in dropped for count in counts])
+    group_rows = group_rows[keep]
+    counts = [count for count in counts if count not in dropped]
     x, labels = voxel_count_positions(counts, roi_mean_voxels)
     order = np.argsort(x, kind="stable")
 
@@ -339,6 +364,7 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
         "counts": [counts[index] for index in order], "x": x[order], "labels": [labels[index] for index in order],
         "mean": column("mean"), "ci_low": column("ci_low"), "ci_high": column("ci_high"), "chance": column("chance"),
         "significant": np.isfinite(p_fwe) & (p_fwe < alpha), "capped": capped, "subjects": subjects, "scores": scores,
+        "dropped": dropped,
     }
 
 
@@ -570,8 +596,51 @@ def _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, width,
                  levels=[0.5], colors=[colour], linewidths=width)
 
 
-def design_figure(matrix, names, tr_s, title):
-    """The design matrix as a grey image, each regressor scaled to its largest magnitude.
+#: Regressor kinds of a design, in the order of the band legend, with their band colour.
+DESIGN_KINDS = {"events": "blue", "HRF derivatives": "sky blue", "low-frequency cosines": "bluish green",
+                "confounds": "orange", "intercept": "black"}
+
+
+def regressor_kinds(names, confound_names=()):
+    """The kind of each design column, from its name.
+
+    Parameters
+    ----------
+    names : sequence of str
+        Design columns as the GLM stage writes them.
+    confound_names : sequence of str
+        The study's confound columns.
+
+    Returns
+    -------
+    list of str
+        Keys of ``DESIGN_KINDS``.
+
+    Examples
+    --------
+    >>> regressor_kinds(["seen_round", "seen_round_dtime", "lowfreq_cos_01", "trans_x", "intercept"], ["trans_x"])
+    ['events', 'HRF derivatives', 'low-frequency cosines', 'confounds', 'intercept']
+    """
+    from foldwise.glm.design import DERIVATIVE_SUFFIXES, DRIFT_PREFIX
+
+    confounds = set(confound_names)
+    kinds = []
+    for name in names:
+        if name == "intercept":
+            kinds.append("intercept")
+        elif name in confounds:
+            kinds.append("confounds")
+        elif name.startswith(DRIFT_PREFIX):
+            kinds.append("low-frequency cosines")
+        elif any(suffix and name.endswith(suffix) for suffix in DERIVATIVE_SUFFIXES):
+            kinds.append("HRF derivatives")
+        else:
+            kinds.append("events")
+    return kinds
+
+
+def design_figure(matrix, names, tr_s, title, kinds=None):
+    """The design: one row per regressor over time, grouped by kind with a coloured band, on a diverging scale.
 
     Parameters
     ----------
@@ -581,37 +650,55 @@ def design_figure(matrix, names, tr_s, title):
     tr_s : float or None
         Repetition time (s); None draws the scan number instead of time.
     title : str
+    kinds : sequence of str, optional
+        Kind of each regressor (see :func:`regressor_kinds`); default from the names.
 
     Returns
     -------
     matplotlib.figure.Figure
+
+    Notes
+    -----
+    Each regressor is scaled to its largest magnitude; zero is the middle of
+    the scale (white), so a regressor's sign and its silent stretches read
+    at a glance. Names stay horizontal, beside their row.
     """
     values = np.asarray(matrix, dtype=np.float64)
     if values.ndim != 2 or values.shape[1] != len(names):
         raise InputError(None, "design", f"a design of shape {values.shape} does not match {len(names)} regressor names",
                          "rerun the GLM stage")
+    kinds = list(kinds) if kinds is not None else regressor_kinds(names)
+    order = sorted(range(len(names)), key=lambda index: (list(DESIGN_KINDS).index(kinds[index]), index))
+    values, names, kinds = values[:, order], [names[index] for index in order], [kinds[index] for index in order]
     scale = np.max(np.abs(values), axis=0) if values.size else np.zeros(values.shape[1])
-    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0)
+    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0).T
     n_scans = values.shape[0]
-    width = min(_DESIGN_MAX_WIDTH_IN, max(4.5, 1.6 + 0.2 * len(names)))
     label_step = max(1, int(math.ceil(len(names) / _DESIGN_MAX_LABELS)))
-    figure = Figure(figsize=(width, 4.6), layout="constrained")
-    axes = figure.add_subplot()
+    height = min(_DESIGN_MAX_WIDTH_IN, max(3.2, 1.4 + 0.16 * min(len(names), _DESIGN_MAX_LABELS)))
+    figure = Figure(figsize=(7.2, height), layout="constrained")
+    band_axes, axes = figure.subplots(1, 2, sharey=True, gridspec_kw={"width_ratios": [1, 40], "wspace": 0.01})
     if tr_s:
-        extent, ylabel = (-0.5, len(names) - 0.5, n_scans * tr_s, 0.0), "time from run start (s)"
+        extent, xlabel = (0.0, n_scans * tr_s, len(names) - 0.5, -0.5), "time from run start (s)"
     else:
-        extent, ylabel = (-0.5, len(names) - 0.5, n_scans - 0.5, -0.5), "scan (volume number, from 0)"
-    image = axes.imshow(shown, aspect="auto", cmap="gray", interpolation="nearest", vmin=-1, vmax=1, extent=extent)
+        extent, xlabel = (-0.5, n_scans - 0.5, len(names) - 0.5, -0.5), "scan (volume number, from 0)"
+    image = axes.imshow(shown, aspect="auto", cmap="BrBG", interpolation="nearest", vmin=-1, vmax=1, extent=extent)
+    colours = [OKABE_ITO[DESIGN_KINDS[kind]] for kind in kinds]
+    band_axes.imshow(np.array([to_rgba(colour) for colour in colours])[:, None, :], aspect="auto", interpolation="nearest",
+                     extent=(0, 1, len(names) - 0.5, -0.5))
+    band_axes.set_xticks([])
     ticks = np.arange(0, len(names), label_step)
-    axes.set_xticks(ticks)
-    axes.set_xticklabels([names[index] for index in ticks], rotation=90, fontsize=_FONT_SIZE - 1)
-    axes.set_xlabel("regressor" if label_step == 1 else f"regressor (one label every {label_step} regressors)", fontsize=_FONT_SIZE)
-    axes.set_ylabel(ylabel, fontsize=_FONT_SIZE)
-    axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
-    axes.set_title(title, fontsize=_FONT_SIZE + 1)
-    colourbar = figure.colorbar(image, ax=axes, shrink=0.8)
-    colourbar.set_label("value / largest magnitude of the regressor (unitless)", fontsize=_FONT_SIZE - 1)
+    band_axes.set_yticks(ticks, [names[index] for index in ticks], fontsize=_FONT_SIZE - 1)
+    axes.tick_params(axis="y", left=False, labelleft=False)
+    axes.set_xlabel(xlabel, fontsize=_FONT_SIZE)
+    axes.tick_params(axis="x", labelsize=_FONT_SIZE - 1)
+    band_axes.set_ylabel("regressor" if label_step == 1 else f"regressor (one name every {label_step})", fontsize=_FONT_SIZE)
+    present = [kind for kind in DESIGN_KINDS if kind in kinds]
+    handles = [Patch(facecolor=OKABE_ITO[DESIGN_KINDS[kind]], label=kind) for kind in present]
+    figure.legend(handles=handles, loc="outside lower center", ncols=len(handles), fontsize=_FONT_SIZE - 1, frameon=False)
+    colourbar = figure.colorbar(image, ax=axes, shrink=0.8, pad=0.01)
+    colourbar.set_label("value / the regressor's largest magnitude", fontsize=_FONT_SIZE - 1)
     colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
     return figure
 
 
@@ -675,20 +762,35 @@ def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
     return figure
 
 
+SEARCHLIGHT_QUANTITY = "margin over chance"
+SEARCHLIGHT_QUANTITY_UNIT = "balanced accuracy minus its chance level, proportion"
+
+
+def _side_marks(axes, names, horizontal):
+    """L and R at the panel's edges when the horizontal axis is the world x axis (x grows to the subject's right)."""
+    if names[horizontal] != "x":
+        return
+    for position, text, align in ((0.01, "L", "left"), (0.99, "R", "right")):
+        axes.text(position, 0.97, text, transform=axes.transAxes, ha=align, va="top", fontsize=_FONT_SIZE + 1,
+                  fontweight="bold", color="white", bbox={"facecolor": "0.15", "edgecolor": "none", "pad": 1.5})
+
+
 def searchlight_figure(mean_maps, p_fwe_maps, directions, background, brain_mask, affine, alpha, title):
-    """Group searchlight maps: accuracy minus chance per direction, FWE-significant voxels outlined.
+    """Group searchlight maps thresholded at the corrected level, over the mean image, the same slices for every direction.
 
     Parameters
     ----------
     mean_maps, p_fwe_maps : array_like, 4D (x, y, z, direction)
-        Group mean of balanced accuracy minus chance, and its family-wise corrected p.
+        Group mean of the margin over chance (balanced accuracy minus chance),
+        and its family-wise corrected p.
     directions : sequence of str
         One name per volume.
     background : array_like, 3D
-        An anatomical reference (the first subject's mean image).
+        The anatomical underlay: the mean over subjects of their mean images.
     brain_mask : array_like of bool, 3D
     affine : array_like, shape (4, 4)
     alpha : float
+        Voxels with ``p_fwe < alpha`` are coloured; the rest shows the underlay.
     title : str
 
     Returns
@@ -698,8 +800,8 @@ def searchlight_figure(mean_maps, p_fwe_maps, directions, background, brain_mask
     Notes
     -----
     One row per direction, three orthogonal slices through the planes with
-    the most significant voxels of that direction (or of the brain when none
-    survives). The colour scale is symmetric around zero (chance).
+    the most significant voxels over all directions (the brain's when none
+    survives), so rows can be compared. Axes in mm; L and R mark the sides.
     """
     means = np.asarray(mean_maps, dtype=np.float64)
     p_fwe = np.asarray(p_fwe_maps, dtype=np.float64)
@@ -710,33 +812,96 @@ def searchlight_figure(mean_maps, p_fwe_maps, directions, background, brain_mask
     anatomy = _oriented(np.asarray(background, dtype=np.float64), flips)
     brain = _oriented(np.asarray(brain_mask, dtype=bool), flips)
     low, high = _window(anatomy[brain] if brain.any() else anatomy)
-    limit = float(np.nanmax(np.abs(means))) if np.isfinite(means).any() and np.nanmax(np.abs(means)) > 0 else 0.1
+    significant = _oriented(np.nan_to_num(p_fwe, nan=1.0) < alpha, flips) & brain[..., None]
+    shown_values = np.where(significant, _oriented(means, flips), np.nan)
+    limit = float(np.nanmax(np.abs(shown_values))) if np.isfinite(shown_values).any() else 0.1
+    limit = limit if limit > 0 else 0.1
+    slices = best_slices(significant.any(axis=3) if significant.any() else brain)
     colour_map = colormaps["PuOr_r"].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
-    figure = Figure(figsize=(11, 3.2 * len(directions) + 0.6), layout="constrained")
+    figure = Figure(figsize=(11, 3.2 * len(directions) + 0.8), layout="constrained")
     panels = np.atleast_2d(figure.subplots(len(directions), 3))
     image = None
     for row, direction in enumerate(directions):
-        values = _oriented(means[..., row], flips)
-        significant = _oriented(p_fwe[..., row] < alpha, flips) & brain
-        slices = best_slices(significant if significant.any() else brain)
         for axis, axes in enumerate(panels[row]):
             index = slices[axis]
             horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
             axes.imshow(_take(anatomy, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
                         interpolation="nearest")
-            shown = np.where(_take(brain, axis, index), _take(values, axis, index), np.nan)
-            image = axes.imshow(shown, cmap=colour_map, vmin=-limit, vmax=limit, origin="lower", extent=extent,
-                                interpolation="nearest", alpha=0.85)
-            _outline(axes, coordinates, horizontal, vertical, _take(significant, axis, index), "black", 1.4)
-            axes.set_title(f"{direction}: {panel_title}", fontsize=_FONT_SIZE)
+            image = axes.imshow(_take(shown_values[..., row], axis, index), cmap=colour_map, vmin=-limit, vmax=limit,
+                                origin="lower", extent=extent, interpolation="nearest")
+            _outline(axes, coordinates, horizontal, vertical, _take(brain, axis, index), _BRAIN_OUTLINE, 0.8)
+            _side_marks(axes, names, horizontal)
+            axes.set_title(f"{direction_label(direction)}: {panel_title}", fontsize=_FONT_SIZE)
             _label_axes(axes, names, horizontal, vertical)
     if image is not None:
         bar = figure.colorbar(image, ax=panels, shrink=0.6)
-        bar.set_label("balanced accuracy minus chance (proportion)", fontsize=_FONT_SIZE)
-    handles = [Line2D([], [], color="black", linewidth=1.5, label=f"p (family-wise corrected, voxel-wise maximum) < {alpha:g}")]
-    figure.legend(handles=handles, loc="outside lower center", fontsize=_FONT_SIZE, frameon=False)
+        bar.set_label(f"{SEARCHLIGHT_QUANTITY} ({SEARCHLIGHT_QUANTITY_UNIT})", fontsize=_FONT_SIZE - 1)
+        bar.ax.tick_params(labelsize=_FONT_SIZE - 1)
+    handles = [Patch(facecolor=colour_map(0.85), label=f"coloured: p (family-wise corrected, voxel-wise maximum) < {alpha:g}"),
+               Line2D([], [], color=_BRAIN_OUTLINE, linewidth=1.2, label="brain mask (outline)")]
+    figure.legend(handles=handles, loc="outside lower center", ncols=2, fontsize=_FONT_SIZE, frameon=False)
     figure.suptitle(title, fontsize=_FONT_SIZE + 1)
     return figure
+
+
+def searchlight_clusters(mean_maps, p_fwe_maps, directions, affine, alpha):
+    """Clusters of corrected-significant searchlight centres, with size and peak in mm.
+
+    Parameters
+    ----------
+    mean_maps, p_fwe_maps : array_like, 4D (x, y, z, direction)
+    directions : sequence of str
+    affine : array_like, shape (4, 4)
+        Voxel-to-world affine (mm).
+    alpha : float
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``direction``, ``cluster`` (1 = largest), ``n_voxels_cluster``,
+        ``volume_mm3``, ``peak_margin`` (the largest margin over chance in
+        the cluster), ``peak_p_fwe``, ``peak_x_mm``, ``peak_y_mm``,
+        ``peak_z_mm``; largest cluster first within each direction.
+
+    Notes
+    -----
+    Clusters are face-, edge- or corner-connected voxels (26-neighbourhood,
+    ``scipy.ndimage.label``; common practice, no source). The voxel volume
+    is the absolute determinant of the affine's 3x3 part. The p-values are
+    voxel-wise corrected; the table describes where the significant voxels
+    lie, it is not a cluster-level test.
+
+    Examples
+    --------
+    >>> maps = np.zeros((4, 4, 4, 1)); p = np.ones((4, 4, 4, 1)); p[1:3, 1, 1, 0] = 0.01; maps[2, 1, 1, 0] = 0.2
+    >>> table = searchlight_clusters(maps, p, ["within"], np.diag([2.0, 2.0, 2.0, 1.0]), 0.05)
+    >>> table[["n_voxels_cluster", "volume_mm3", "peak_x_mm"]].values.tolist()
+    [[2.0, 16.0, 4.0]]
+    """
+    from scipy import ndimage
+
+    means = np.asarray(mean_maps, dtype=np.float64)
+    p_fwe = np.asarray(p_fwe_maps, dtype=np.float64)
+    affine = np.asarray(affine, dtype=np.float64)
+    voxel_mm3 = round(float(abs(np.linalg.det(affine[:3, :3]))), 6)  # 2 x 2 x 2 mm gives 8, not 7.999999
+    columns = ["direction", "cluster", "n_voxels_cluster", "volume_mm3", "peak_margin", "peak_p_fwe",
+               "peak_x_mm", "peak_y_mm", "peak_z_mm"]
+    rows = []
+    for index, direction in enumerate(directions):
+        significant = np.nan_to_num(p_fwe[..., index], nan=1.0) < alpha
+        labels, n_clusters = ndimage.label(significant, structure=np.ones((3, 3, 3), dtype=bool))
+        if n_clusters == 0:
+            continue
+        sizes = np.bincount(labels.ravel(), minlength=n_clusters + 1)[1:]
+        values = np.where(significant, np.nan_to_num(means[..., index], nan=-np.inf), -np.inf)
+        peaks = ndimage.maximum_position(values, labels, index=np.arange(1, n_clusters + 1))
+        order = sorted(range(n_clusters), key=lambda k: (-sizes[k], -values[peaks[k]], peaks[k]))
+        for rank, k in enumerate(order, start=1):
+            peak = peaks[k]
+            world = affine @ np.array([*peak, 1.0])
+            rows.append([direction, rank, float(sizes[k]), float(sizes[k]) * voxel_mm3, float(means[peak + (index,)]),
+                         float(p_fwe[peak + (index,)]), float(world[0]), float(world[1]), float(world[2])])
+    return pd.DataFrame(rows, columns=columns)
 
 
 def resvar_figure(residual_variance, brain_mask, affine, title):
@@ -834,6 +999,8 @@ def curve_figure(panels, title, alpha):
         if significant.any():  # a row of stars along the top, so they hide no point of the curve
             axes.scatter(x[significant], np.full(int(significant.sum()), _STAR_ROW), s=90, marker="*",
                          color=OKABE_ITO["black"], transform=axes.get_xaxis_transform(), zorder=4)
+        if panel["counts"][-1] == "all" and len(x) > 1:  # 'all' is a size of its own: set apart by a dotted line
+            axes.axvline(math.sqrt(x[-2] * x[-1]), color="0.6", linestyle=":", linewidth=0.8)
         axes.set_xscale("log")
         axes.set_xticks(x)
         axes.set_xticklabels(panel["labels"], rotation=45, ha="right", fontsize=_FONT_SIZE - 1)
@@ -864,69 +1031,174 @@ def curve_figure(panels, title, alpha):
     return figure
 
 
-def confusion_figure(matrices, subjects, directions, classes, title):
-    """Per-subject confusion matrices (rows: true class, columns: predicted class).
+def group_confusion(matrices):
+    """The group confusion matrix: the mean over subjects of each subject's row-normalised matrix.
 
     Parameters
     ----------
-    matrices : dict
-        ``(direction, subject) -> ndarray`` of counts.
-    subjects : sequence of str
-    directions : sequence of (str, str)
-        Direction and its label in words, one block of rows each.
+    matrices : sequence of ndarray, shape (n_classes, n_classes)
+        Counts per subject (rows: true class, columns: predicted class).
+
+    Returns
+    -------
+    ndarray of float, shape (n_classes, n_classes)
+        Each row sums to 1 (NaN for a class no subject tested): the mean
+        share of a true class's test samples given each prediction. Row
+        normalisation before averaging weighs subjects equally, whatever
+        their number of trials (common practice, no source).
+
+    Examples
+    --------
+    >>> group_confusion([np.array([[3, 1], [0, 4]]), np.array([[1, 1], [2, 2]])]).tolist()
+    [[0.625, 0.375], [0.25, 0.75]]
+    """
+    stack = np.asarray([np.asarray(matrix, dtype=np.float64) for matrix in matrices])
+    totals = stack.sum(axis=2, keepdims=True)
+    shares = np.divide(stack, totals, out=np.full(stack.shape, np.nan), where=totals > 0)
+    with np.errstate(invalid="ignore"):
+        counted = np.isfinite(shares).sum(axis=0)
+        summed = np.nansum(shares, axis=0)
+    return np.divide(summed, counted, out=np.full(summed.shape, np.nan), where=counted > 0)
+
+
+def confusion_figure(shares, directions, classes, title, n_subjects):
+    """Group confusion matrices (mean of row-normalised subject matrices), one panel per direction.
+
+    Parameters
+    ----------
+    shares : dict
+        ``direction -> ndarray`` from :func:`group_confusion`.
+    directions : sequence of str
     classes : sequence of str
     title : str
+    n_subjects : int
 
     Returns
     -------
     matplotlib.figure.Figure
-        Colour: the proportion of each true class's test samples given each
-        predicted class (rows sum to 1); numbers: the counts.
+        Colour and number: the mean share (percent) of a true class's test
+        samples given each predicted class; rows sum to 100.
     """
-    n_columns = min(len(subjects), _CONFUSION_COLUMNS_MAX)
-    rows_per_direction = int(math.ceil(len(subjects) / n_columns))
-    n_rows = rows_per_direction * len(directions)
-    # A fixed layout (inches): constrained layout costs seconds per figure at this many axes.
-    longest = max(len(str(name)) for name in classes)
-    side = 0.36 * len(classes) + 0.4
-    tick_width, tick_height = 0.07 * longest + 0.15, 0.05 * longest + 0.15
-    left, gap_x, right = 0.45 + tick_width, 0.2 + tick_width, 1.3
-    top, gap_y, bottom = 0.55, 0.65 + tick_height, 0.35 + tick_height
-    width = left + n_columns * side + (n_columns - 1) * gap_x + right
-    height = top + n_rows * side + (n_rows - 1) * gap_y + bottom
-    figure = Figure(figsize=(width, height))
+    n_panels = len(directions)
+    side = 0.42 * len(classes) + 1.0
+    figure = Figure(figsize=(max(4.2, side * n_panels + 1.4), side + 1.5), layout="constrained")
+    panels = np.atleast_1d(figure.subplots(1, n_panels, squeeze=False)[0])
     colour_map = colormaps["cividis"]
     image = None
-    for block, (direction, label) in enumerate(directions):
-        for position, subject in enumerate(subjects):
-            row_number, column_number = block * rows_per_direction + position // n_columns, position % n_columns
-            x0 = left + column_number * (side + gap_x)
-            y0 = height - top - (row_number + 1) * side - row_number * gap_y
-            axes = figure.add_axes((x0 / width, y0 / height, side / width, side / height))
-            counts = matrices[(direction, subject)]
-            totals = counts.sum(axis=1, keepdims=True)
-            proportions = np.divide(counts, totals, out=np.full(counts.shape, np.nan), where=totals > 0)
-            image = axes.imshow(proportions, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation="nearest")
-            for (row, column), count in np.ndenumerate(counts):
-                shade = proportions[row, column]
-                text_colour = "white" if not np.isfinite(shade) or shade < 0.55 else "black"
-                axes.text(column, row, str(int(count)), ha="center", va="center", fontsize=_FONT_SIZE - 1,
-                          color=text_colour)
-            axes.set_xticks(np.arange(len(classes)))
-            axes.set_xticklabels(classes, rotation=45, ha="right", fontsize=_FONT_SIZE - 2)
-            axes.set_yticks(np.arange(len(classes)))
-            axes.set_yticklabels(classes, fontsize=_FONT_SIZE - 2)
-            axes.set_title(f"sub-{subject}", fontsize=_FONT_SIZE - 1)
-            axes.set_xlabel("predicted class", fontsize=_FONT_SIZE - 2)
-            if column_number == 0:
-                axes.set_ylabel(f"{label}\ntrue class", fontsize=_FONT_SIZE - 1)
-    bar_height = min(height - top - bottom, 3.0)
-    bar = figure.add_axes(((width - right + 0.35) / width, (height - top - bar_height) / height, 0.15 / width,
-                           bar_height / height))
-    colourbar = figure.colorbar(image, cax=bar)
-    colourbar.set_label("proportion of the true class's test samples", fontsize=_FONT_SIZE - 1)
-    colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
-    figure.suptitle(title, fontsize=_FONT_SIZE + 1, y=1 - 0.15 / height, va="top")
+    for axes, direction in zip(panels, directions):
+        values = shares[direction]
+        image = axes.imshow(values, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation="nearest")
+        for (row, column), share in np.ndenumerate(values):
+            text = "n/a" if not np.isfinite(share) else f"{100 * share:.0f}"
+            colour = "white" if not np.isfinite(share) or share < 0.55 else "black"
+            axes.text(column, row, text, ha="center", va="center", fontsize=_FONT_SIZE - 1, color=colour)
+        axes.set_xticks(np.arange(len(classes)), classes, rotation=30, ha="right", fontsize=_FONT_SIZE - 1)
+        axes.set_yticks(np.arange(len(classes)), classes, fontsize=_FONT_SIZE - 1)
+        axes.set_xlabel("predicted class", fontsize=_FONT_SIZE)
+        axes.set_title(direction_label(direction), fontsize=_FONT_SIZE)
+    panels[0].set_ylabel("true class", fontsize=_FONT_SIZE)
+    bar = figure.colorbar(image, ax=list(panels), shrink=0.85)
+    bar.set_label(f"share of the true class's test samples (mean of {n_subjects} subjects)", fontsize=_FONT_SIZE - 1)
+    bar.ax.tick_params(labelsize=_FONT_SIZE - 1)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
+    return figure
+
+
+def comparison_data(subject_rows, group_rows, rois, directions, count):
+    """Per ROI and direction: subjects' scores, group mean, its CI and chance at one voxel count.
+
+    Parameters
+    ----------
+    subject_rows : pandas.DataFrame
+        The analysis's subject summaries (``subject``, ``roi``, ``direction``,
+        ``n_voxels``, ``balanced_accuracy``).
+    group_rows : pandas.DataFrame
+        The analysis's group table.
+    rois, directions : sequence of str
+    count : str
+        The voxel count shown.
+
+    Returns
+    -------
+    list of dict
+        One per direction: ``direction``, ``rois``, ``scores`` (list of
+        arrays, one per ROI), ``mean``, ``ci_low``, ``ci_high``, ``chance``,
+        ``significant`` (arrays over ROIs).
+    """
+    panels = []
+    for direction in directions:
+        own = subject_rows[(subject_rows["direction"].astype(str) == direction)
+                           & (subject_rows["n_voxels"].astype(str) == count)]
+        group = group_rows[(group_rows["direction"].astype(str) == direction)
+                           & (group_rows["n_voxels"].astype(str) == count)]
+        panel = {"direction": direction, "rois": list(rois), "scores": []}
+        for key in ("mean", "ci_low", "ci_high", "chance", "p_fwe"):
+            panel[key] = np.full(len(rois), np.nan)
+        for index, roi in enumerate(rois):
+            panel["scores"].append(pd.to_numeric(own.loc[own["roi"].astype(str) == roi, "balanced_accuracy"],
+                                                 errors="coerce").to_numpy(dtype=np.float64))
+            row = group[group["roi"].astype(str) == roi]
+            if row.empty:
+                raise InputError(None, "roi, direction, n_voxels", f"no group row for ROI {roi}, direction {direction}, "
+                                 f"{count} voxels", "rerun the group stage")
+            for key in ("mean", "ci_low", "ci_high", "chance", "p_fwe"):
+                panel[key][index] = float(pd.to_numeric(row[key], errors="coerce").iloc[0])
+        panels.append(panel)
+    return panels
+
+
+def comparison_figure(panels, title, alpha):
+    """ROIs side by side at one voxel count: subjects as dots, group mean with its 95% CI, chance line.
+
+    Parameters
+    ----------
+    panels : sequence of dict
+        :func:`comparison_data` output.
+    title : str
+    alpha : float
+        A star marks ``p_fwe < alpha``.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    n_rois = len(panels[0]["rois"])
+    figure = Figure(figsize=(max(4.6, (0.9 * n_rois + 1.2) * len(panels)), 4.2), layout="constrained")
+    axes_list = np.atleast_1d(figure.subplots(1, len(panels), sharey=True, squeeze=False)[0])
+    low, high = 1.0, 0.0
+    for panel in panels:
+        values = np.concatenate([*panel["scores"], panel["ci_low"], panel["ci_high"], panel["chance"]])
+        values = values[np.isfinite(values)]
+        if values.size:
+            low, high = min(low, float(values.min())), max(high, float(values.max()))
+    low, high = (max(0.0, low - 0.05), min(1.0, high + 0.05)) if high > low else (0.0, 1.0)
+    for axes, panel in zip(axes_list, panels):
+        for index, (roi, scores) in enumerate(zip(panel["rois"], panel["scores"])):
+            colour = OKABE_ITO[_ROI_COLOURS[index % len(_ROI_COLOURS)]]
+            # Subjects spread sideways by rank, so equal scores stay visible (no random jitter).
+            offsets = (np.argsort(np.argsort(scores)) / max(len(scores) - 1, 1) - 0.5) * 0.3 if len(scores) else scores
+            axes.scatter(index + offsets, scores, s=16, color=colour, alpha=0.75, edgecolors="none", zorder=2)
+            axes.errorbar(index + 0.32, panel["mean"][index], yerr=[[panel["mean"][index] - panel["ci_low"][index]],
+                                                                   [panel["ci_high"][index] - panel["mean"][index]]],
+                          fmt="D", color="black", markersize=5, capsize=3, linewidth=1.2, zorder=3)
+            axes.hlines(panel["chance"][index], index - 0.45, index + 0.45, colors="0.3", linestyles="--", linewidth=1.0)
+            if np.isfinite(panel["p_fwe"][index]) and panel["p_fwe"][index] < alpha:
+                axes.scatter([index + 0.32], [_STAR_ROW], s=80, marker="*", color="black",
+                             transform=axes.get_xaxis_transform(), zorder=4)
+        axes.set_xticks(np.arange(n_rois), [f"ROI {roi}" for roi in panel["rois"]], fontsize=_FONT_SIZE)
+        axes.set_xlim(-0.6, n_rois - 0.4)
+        axes.set_ylim(low, high + _STAR_HEADROOM)
+        axes.set_title(direction_label(panel["direction"]), fontsize=_FONT_SIZE + 1)
+        axes.grid(True, axis="y", color="0.9", linewidth=0.6)
+        axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
+    axes_list[0].set_ylabel("balanced accuracy (proportion)", fontsize=_FONT_SIZE)
+    handles = [Line2D([], [], color="0.4", marker="o", linestyle="none", label="single subjects"),
+               Line2D([], [], color="black", marker="D", label="group mean and 95% confidence interval"),
+               Line2D([], [], color="0.3", linestyle="--", label="chance level"),
+               Line2D([], [], color="black", marker="*", markersize=10, linestyle="none",
+                      label=f"p (family-wise corrected) < {alpha:g}")]
+    figure.legend(handles=handles, loc="outside lower center", ncols=4, fontsize=_FONT_SIZE - 1, frameon=False)
+    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
     return figure
 
 

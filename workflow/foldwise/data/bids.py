@@ -99,8 +99,8 @@ def _check_label(entity, value):
                          f"give the {entity} label without its prefix, e.g. '01' rather than 'sub-01'")
 
 
-def make_run_id(session, run):
-    """The run identifier: BIDS entities other than sub and task joined by ``_``.
+def make_run_id(session, run, task=None):
+    """The run identifier: BIDS entities other than sub joined by ``_`` (task only for a study's other tasks).
 
     Parameters
     ----------
@@ -108,18 +108,23 @@ def make_run_id(session, run):
         Session label without ``ses-`` (``None`` if the dataset has no sessions).
     run : str
         Run label without ``run-``.
+    task : str or None
+        ``None`` for the study's main task (``dataset.task``), whose run ids
+        carry no task part; the task label for the runs of any other task.
 
     Returns
     -------
     str
-        ``"run-<run>"`` or ``"ses-<session>_run-<run>"``.
+        ``"run-<run>"``, ``"ses-<session>_run-<run>"``, or with
+        ``task-<task>_`` before ``run-`` (BIDS entity order).
 
     Example
     -------
-    >>> make_run_id("2", "01")
-    'ses-2_run-01'
+    >>> make_run_id("2", "01"), make_run_id("2", "01", task="beacon")
+    ('ses-2_run-01', 'ses-2_task-beacon_run-01')
     """
-    return f"run-{run}" if session is None else f"ses-{session}_run-{run}"
+    task_part = "" if task is None else f"task-{task}_"
+    return f"{task_part}run-{run}" if session is None else f"ses-{session}_{task_part}run-{run}"
 
 
 def run_files(bids_root, patterns, task, subject, session, run, derivatives_root=None, space=None, res=None):
@@ -319,7 +324,7 @@ def near_pattern_message(template, fixed, candidates):
     return "; ".join(notes)
 
 
-def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None, space=None, res=None):
+def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None, space=None, res=None, main_task=True):
     """Find every run of a task in a dataset by matching the bold template.
 
     Parameters
@@ -337,6 +342,9 @@ def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None,
         (see :func:`run_files`); ``None`` or empty: ``bids_root``.
     space, res : str or None
         The ``space`` and ``res`` labels for ``{space}`` and ``{res}``.
+    main_task : bool
+        False for a study's other tasks: their runs carry ``task`` and a
+        run id with the task part (:func:`make_run_id`).
 
     Returns
     -------
@@ -441,7 +449,9 @@ def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None,
     for relative, subject, session, run in matches.values():
         if subject not in keep:
             continue
-        entry = {"subject": subject, "session": session, "run": run, "run_id": make_run_id(session, run)}
+        entry = {"subject": subject, "session": session, "run": run, "run_id": make_run_id(session, run, None if main_task else task)}
+        if not main_task:
+            entry["task"] = task
         entry.update(run_files(raw_root, patterns, task, subject, session, run, derivatives_root=derivatives_root, space=space, res=res))
         runs.append(entry)
     runs.sort(key=lambda entry: (_natural_key(entry["subject"]), _natural_key(entry["session"]), _natural_key(entry["run"])))

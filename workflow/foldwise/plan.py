@@ -361,11 +361,23 @@ def job_inputs(study, step, wildcards):
     return JOB_INPUTS[step](study, dict(wildcards))
 
 
+def report_job_logs(study):
+    """``[step, wildcards in words, log file]`` of every planned job before the report: the page lists their warnings."""
+    logs = []
+    for step, wildcards in planned_jobs(study):
+        if step in ("report", "manifest"):
+            continue
+        label = " ".join(f"{key}={value}" for key, value in wildcards.items())
+        logs.append([step, label, step_log(step).format(**wildcards)])
+    return logs
+
+
 def report_settings(study):
-    """What the report reads: the whole validated config (the page shows it), subjects, runs and the planned jobs."""
+    """What the report reads: the whole validated config (the page shows it), subjects, runs, the planned jobs and their logs."""
     return {"study": study.config, "subjects": list(study.subjects), "config_file": study.config_file,
             "planned_jobs": planned_output_counts(study),
-            "runs": {subject: [run["run_id"] for run in study.runs_of(subject)] for subject in study.subjects}}
+            "runs": {subject: [run["run_id"] for run in study.runs_of(subject)] for subject in study.subjects},
+            "job_logs": report_job_logs(study)}
 
 
 def job_settings(study, step, wildcards):

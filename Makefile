@@ -7,7 +7,7 @@ STAMP := $(VENV)/.installed-stamp
 CORES ?= 2
 CONFIG ?= config/config.yaml
 # Pin BLAS/OpenMP threads: jobs run side by side, and one thread per job keeps
-# floating-point results identical whatever --cores is (DESIGN invariant 2).
+# floating-point results identical whatever --cores is (docs/architecture.md, invariant 2).
 export OPENBLAS_NUM_THREADS := 1
 export OMP_NUM_THREADS := 1
 export MKL_NUM_THREADS := 1

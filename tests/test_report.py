@@ -1,7 +1,7 @@
 """Tests of the study report: foldwise.report.figures (pure parts) and foldwise.jobs.report (the page).
 
 Every input is built here, in a temporary folder, following the data
-contract of DESIGN.md (a small invented lanterns study; nothing is read from
+data contract (foldwise.contract) (a small invented lanterns study; nothing is read from
 results/). Outside references, named beside each check: the PNG
 specification (file signature and IHDR chunk, W3C PNG 2nd edition), XML
 parsing by the standard library (SVG root element), Python's html.parser,

@@ -211,7 +211,7 @@ def test_shrinkage_lda_on_a_one_voxel_sphere_equals_scikit_learn():
 
 @pytest.mark.parametrize("classifier", CLASSIFIERS)
 def test_each_test_pattern_is_predicted_from_the_training_side_alone(classifier):
-    # Fold-awareness (DESIGN invariant 1): the scaler comes from the training patterns, and changing the other
+    # Fold-awareness (docs/architecture.md, invariant 1): the scaler comes from the training patterns, and changing the other
     # held-out patterns (here wildly) changes no prediction of an unchanged one.
     mask, patterns, labels, _, runs = _small_problem(seed=6)
     spheres = sl.sphere_neighbourhoods(mask, np.eye(4), 1.5)

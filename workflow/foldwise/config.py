@@ -1,6 +1,6 @@
 """Load and validate the study config before any job runs.
 
-The schema (``config/schema.yaml``) is strict: unknown keys, wrong types and
+The schema (``foldwise/schema.yaml``, package data) is strict: unknown keys, wrong types and
 bad choices are errors that name the key path (``analyses[1].classifier``).
 Validation fills in every default, nested ones included, so the rest of the
 workflow never guesses. Cross-references the schema cannot express (an
@@ -20,7 +20,7 @@ from foldwise.errors import InputError
 
 __all__ = ["SCHEMA_PATH", "load_yaml", "validate", "load_study_config", "key_path"]
 
-SCHEMA_PATH = Path(__file__).resolve().parents[2] / "config" / "schema.yaml"
+SCHEMA_PATH = Path(__file__).resolve().parent / "schema.yaml"  # package data; in a checkout it is config/schema.yaml
 
 
 def key_path(parts):

@@ -1,7 +1,7 @@
 """File I/O at the edges: atomic, deterministic writers and careful readers.
 
 Every writer here writes to a temporary name in the destination folder and
-renames it into place (DESIGN invariant 5), and produces the same bytes for
+renames it into place (docs/architecture.md, invariant 5), and produces the same bytes for
 the same content (invariant 2): gzip headers carry no time stamp and no file
 name, figures carry no date, tables use one float format.
 """

@@ -3,7 +3,7 @@
 Reads the subject's per-run pattern images and tables and the ROI mask,
 keeps the analysis's conditions, and writes the per-fold scores, the
 permutation null, the training-fold voxel rankings and the confusion counts
-(columns of DESIGN.md's data contract).
+(columns of the data contract, foldwise.contract).
 
 Randomness: the permutations come from
 ``default_rng(seed_from(seed, "permutation", subject, analysis))`` -- without

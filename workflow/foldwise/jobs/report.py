@@ -66,7 +66,7 @@ def _name_fields(path, input_name):
     match = re.fullmatch(_NAME_PATTERNS[input_name], Path(path).name)
     if match is None:
         raise InputError(path, "file name", f"the {input_name} input does not follow the pattern {_NAME_PATTERNS[input_name]}",
-                         "pass the files the workflow writes (see the data contract in DESIGN.md)")
+                         "pass the files the workflow writes (see the data contract, foldwise.contract)")
     return match.groupdict()
 
 

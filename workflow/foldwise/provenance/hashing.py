@@ -1,6 +1,6 @@
 """Canonical hashes of config entries, package code and file contents.
 
-These hashes are the narrow keys of the workflow (DESIGN invariant 3) and the
+These hashes are the narrow keys of the workflow (docs/architecture.md, invariant 3) and the
 ingredients of the content memo (invariant 4).
 """
 
@@ -150,7 +150,7 @@ def code_hash(*entry_points):
     """sha256 over the source text of ``module_closure(*entry_points)``.
 
     Snakemake's code trigger never sees modules a script imports, so each
-    rule carries this hash in its params (DESIGN, measured Snakemake facts).
+    rule carries this hash in its params (docs/architecture.md, Narrow keys).
     File names enter relative to the package so the hash is machine-free.
     """
     digest = hashlib.sha256()
@@ -167,7 +167,7 @@ def code_hash(*entry_points):
 def seed_from(study_seed, *identity):
     """A 63-bit seed derived from the study seed and a job's identity.
 
-    Never from time (DESIGN invariant 2): the same study seed and the same
+    Never from time (docs/architecture.md, invariant 2): the same study seed and the same
     identity strings (rule, subject, analysis, ROI, ...) give the same seed.
     """
     text = canonical_json([int(study_seed), [str(part) for part in identity]])

@@ -8,7 +8,7 @@ link, so a change to a store object cannot reach a result file) instead of
 computing them, and says so in its log. A job Snakemake was told to force
 (``--forcerun``, ``--forceall``) bypasses the memo and hashes its inputs
 afresh. A touched-but-unchanged input or a reverted edit therefore costs almost
-nothing (DESIGN invariant 4).
+nothing (docs/architecture.md, invariant 4).
 
 Store layout (``study.store_dir``, ``results/.store`` by default)::
 

@@ -53,15 +53,31 @@ def test_every_direction_has_a_null_as_wide_as_the_observed_scores(null_records)
 
 
 def test_subject_level_p_values_hold_their_level(null_records):
-    # Share of subject-level p <= alpha at most the binomial 99% upper bound (scipy.stats.binom); per count, so
-    # the tests counted are independent subjects.
+    # Share of subject-level p <= alpha: at most the binomial 99% upper bound at alpha, and inside the binomial 99%
+    # interval around the attainable level (the exact rejection probability of the discrete null, below alpha;
+    # scipy.stats.binom). Per count, so the tests counted are independent subjects.
     for records in null_records.values():
         for direction, record in records.items():
-            for alpha in (0.05, 0.1):
+            for alpha in (0.05, 0.01):
                 rejections = np.sum(record["p"] <= alpha, axis=0)
                 _, high = calibration.binomial_bounds(N_SUBJECTS, alpha)
                 assert np.all(rejections <= high), (direction, alpha, rejections, high)
+                for count, level in enumerate(record["level"][alpha].mean(axis=0)):
+                    low, high = calibration.binomial_bounds(N_SUBJECTS, level)
+                    assert low <= rejections[count] <= high, (direction, alpha, count, rejections[count], level)
             assert np.all(record["p"] > 0) and np.all(record["p"] <= 1)
+
+
+def test_attainable_level_by_hand():
+    # Observed 0.5 and four drawn null values: members 0.5, 0.25, 0.5, 0.75, 1.0 (n + 1 = 5). Each member's p within
+    # the set: 1.0 -> 1/5, 0.75 -> 2/5, 0.5 -> 4/5 (twice), 0.25 -> 5/5. At alpha 0.2 only the 1.0 member rejects:
+    # level 1/5; at alpha 0.4 two of five.
+    observed, null = np.array([0.5]), np.array([[0.25], [0.5], [0.75], [1.0]])
+    assert calibration.attainable_level(observed, null, False, 0.2)[0] == pytest.approx(0.2)
+    assert calibration.attainable_level(observed, null, False, 0.4)[0] == pytest.approx(0.4)
+    assert calibration.attainable_level(observed, null, False, 0.1)[0] == 0.0
+    # exact: the null lists the members itself (the actual labeling among them)
+    assert calibration.attainable_level(observed, null, True, 0.25)[0] == pytest.approx(0.25)
 
 
 def test_group_tests_hold_their_level_on_small_null_groups(null_records):

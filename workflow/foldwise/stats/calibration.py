@@ -23,6 +23,7 @@ Public names:
 ``null_subjects``           noise subjects through the project's own decoding
 ``variance_ratio``          observed / null variance per cell
 ``binomial_bounds``         the 99% interval of a rejection count at rate alpha
+``attainable_level``        the exact rejection probability a discrete null allows at alpha
 ``group_false_positives``   rejections of each group test on disjoint null groups
 ``calibration_rows``        one table row per test, direction and alpha
 """
@@ -42,12 +43,13 @@ __all__ = [
     "null_subjects",
     "variance_ratio",
     "binomial_bounds",
+    "attainable_level",
     "group_false_positives",
     "calibration_rows",
     "CALIBRATION_COLUMNS",
 ]
 
-CALIBRATION_COLUMNS = ("analysis", "test", "direction", "alpha", "n_tests", "n_rejections", "rate", "bound_low", "bound_high",
+CALIBRATION_COLUMNS = ("analysis", "test", "direction", "alpha", "level", "n_tests", "n_rejections", "rate", "bound_low", "bound_high",
                        "within_bounds", "variance_ratio")
 
 
@@ -82,7 +84,7 @@ class NullDesign:
     options: dict = field(default_factory=dict)
 
 
-def null_subjects(design, n_subjects, rng):
+def null_subjects(design, n_subjects, rng, levels=(0.05, 0.01)):
     """Decode ``n_subjects`` noise subjects of one design.
 
     Parameters
@@ -99,7 +101,8 @@ def null_subjects(design, n_subjects, rng):
         Per direction: ``observed`` (n_subjects, n_counts) fold-mean balanced
         accuracy, ``null`` (n_subjects, n_null, n_counts), ``p``
         (n_subjects, n_counts) the subject-level p-values, ``exact`` (bool
-        per subject).
+        per subject), ``level`` ({alpha: (n_subjects, n_counts)} the
+        attainable level of each subject's test, :func:`attainable_level`).
 
     Notes
     -----
@@ -119,18 +122,21 @@ def null_subjects(design, n_subjects, rng):
             result = decode_cross(patterns, design.labels, design.set_index, design.runs, list(design.voxel_counts),
                                   set_names=tuple(design.set_names), n_permutations=design.n_permutations, rng=child, **design.options)
         for direction, scores in result.directions.items():
-            record = out.setdefault(direction, {"observed": [], "null": [], "p": [], "exact": []})
+            record = out.setdefault(direction, {"observed": [], "null": [], "p": [], "exact": [], "level": []})
             observed = scores.balanced_accuracy.mean(axis=0)
             record["observed"].append(observed)
             record["null"].append(scores.null_balanced_accuracy)
             record["p"].append(subject_p(observed, scores.null_balanced_accuracy, result.null_exact))
             record["exact"].append(result.null_exact)
+            record["level"].append({alpha: attainable_level(observed, scores.null_balanced_accuracy, result.null_exact, alpha)
+                                    for alpha in levels})
     for record in out.values():
         n_nulls = {null.shape[0] for null in record["null"]}
         record["observed"] = np.stack(record["observed"])
         record["null"] = np.stack(record["null"]) if len(n_nulls) == 1 else record["null"]
         record["p"] = np.stack(record["p"])
         record["exact"] = np.asarray(record["exact"])
+        record["level"] = {alpha: np.stack([entry[alpha] for entry in record["level"]]) for alpha in levels}
     return out
 
 
@@ -166,6 +172,41 @@ def binomial_bounds(n_tests, alpha, level=0.99):
     """
     low, high = stats.binom.interval(level, int(n_tests), float(alpha))
     return int(low), int(high)
+
+
+def attainable_level(observed, null, exact, alpha):
+    """The probability that a subject-level p is <= alpha under H0, given the subject's scores.
+
+    Parameters
+    ----------
+    observed : array_like, shape (n_cells,)
+    null : array_like, shape (n_null, n_cells)
+    exact : bool
+        As for :func:`foldwise.decoding.permutations.subject_p`.
+    alpha : float
+
+    Returns
+    -------
+    ndarray, shape (n_cells,)
+
+    Notes
+    -----
+    Under H0 the actual labeling is exchangeable with the null's relabelings
+    (drawn: the observed and the ``n`` draws; exact: the listed relabelings),
+    so given the multiset of their scores each member is the observed one
+    with equal probability. The rejection probability is therefore the share
+    of members whose own p-value within the set is <= alpha. Accuracies are
+    discrete (fold means of a few test patterns), ties count as at least as
+    extreme, so this level is below alpha; a calibrated test rejects at this
+    rate (the randomization argument of Hemerik & Goeman 2018, JRSS-B
+    80:137-155).
+    """
+    observed = np.asarray(observed, dtype=np.float64)
+    null = np.asarray(null, dtype=np.float64)
+    members = null if exact else np.vstack([observed[np.newaxis], null])
+    # scores equal up to float noise tie (9 decimals); #{members >= v} = n + 1 - (lowest rank of v)
+    at_least = members.shape[0] + 1 - stats.rankdata(np.round(members, 9), method="min", axis=0)
+    return np.mean(at_least / members.shape[0] <= alpha + 1e-12, axis=0)
 
 
 def group_false_positives(record, chance, group_size, n_draws, alphas, rng, fwe_method="standardised", prevalence=True):
@@ -234,7 +275,10 @@ def calibration_rows(analysis, records, group_counts, alphas, level=0.99):
     Returns
     -------
     list of dict
-        Keys ``CALIBRATION_COLUMNS``. The subject-level row of a direction
+        Keys ``CALIBRATION_COLUMNS``. ``level`` is the rate a calibrated test
+        has: alpha for the group tests, the mean attainable level
+        (:func:`attainable_level`, below alpha for discrete accuracies) for
+        the subject-level p; the bounds are around it. The subject-level row of a direction
         counts every subject x count (the counts of one subject are
         correlated, so its spread exceeds the binomial one; the bounds are
         those of independent tests, and the rate is what to read); the
@@ -245,6 +289,7 @@ def calibration_rows(analysis, records, group_counts, alphas, level=0.99):
         ratio = float(np.max(variance_ratio(record["observed"], record["null"])))
         for alpha in alphas:
             tests = [("subject p", int(record["p"].size), int(np.sum(record["p"] <= alpha)))]
+            attainable = float(np.mean(record["level"][alpha])) if alpha in record.get("level", {}) else alpha
             counts = group_counts.get(direction)
             if counts is not None:
                 position = list(alphas).index(alpha)
@@ -253,9 +298,10 @@ def calibration_rows(analysis, records, group_counts, alphas, level=0.99):
                 for name in ("p_fwe", "prevalence_p_global_fwe"):
                     tests.append((f"group {name}", counts["n_groups"], int(counts[name][position])))
             for test, n_tests, rejections in tests:
-                low, high = binomial_bounds(n_tests, alpha, level)
-                rows.append({"analysis": analysis, "test": test, "direction": direction, "alpha": alpha, "n_tests": n_tests,
-                             "n_rejections": rejections, "rate": rejections / n_tests, "bound_low": low / n_tests,
+                nominal = attainable if test == "subject p" else alpha
+                low, high = binomial_bounds(n_tests, nominal, level)
+                rows.append({"analysis": analysis, "test": test, "direction": direction, "alpha": alpha, "level": nominal,
+                             "n_tests": n_tests, "n_rejections": rejections, "rate": rejections / n_tests, "bound_low": low / n_tests,
                              "bound_high": high / n_tests, "within_bounds": bool(rejections <= high),
                              "variance_ratio": ratio})
     return rows

@@ -376,6 +376,7 @@ def parse_arguments(argv):
     parser.add_argument("--baseline", help="also run the study (and demo) with the workflow of this commit, e.g. an earlier one")
     parser.add_argument("--no-demo", action="store_true", help="skip the demo from empty results")
     parser.add_argument("--no-study", action="store_true", help="only the demo")
+    parser.add_argument("--prepare-only", action="store_true", help="only simulate the dataset into --data (for a later run)")
     return parser.parse_args(argv)
 
 
@@ -401,6 +402,9 @@ def main(argv):
         if not arguments.no_study:
             data_root = os.path.abspath(arguments.data) if arguments.data else os.path.join(scratch, "data")
             demo_root = simulate(trees[0][1], data_root, shape, scratch)
+            if arguments.prepare_only:
+                print(f"bench_study: dataset ready in {data_root}")
+                return 0
             paths = bold_files(demo_root)
             first_reads = read_floor(paths)
             for label, tree in trees:

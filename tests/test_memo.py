@@ -66,6 +66,24 @@ def test_second_run_restores_byte_identical_output(tmp_path, monkeypatch):
     assert "restored from the content memo" in Path(smk.log[0]).read_text()
 
 
+def _double_with_a_warning(inputs, outputs, settings, log):
+    log.warning("subject 01: the lantern flickered %d times", 3)
+    _double(inputs, outputs, settings, log)
+
+
+def test_a_restored_job_logs_the_warnings_of_the_run_that_computed_it(tmp_path, monkeypatch):
+    # The report lists every job's warnings from the logs: a restore must not lose them.
+    monkeypatch.chdir(tmp_path)
+    _double.calls = 0
+    smk = _fake_smk(tmp_path, {"times": 2})
+    run_job(smk, "double", _double_with_a_warning)
+    os.unlink(smk.output.doubled)
+    run_job(smk, "double", _double_with_a_warning)
+    log_text = Path(smk.log[0]).read_text()
+    assert _double.calls == 1 and "restored from the content memo" in log_text
+    assert "WARNING subject 01: the lantern flickered 3 times" in log_text.splitlines()
+
+
 def test_changed_settings_or_input_content_recompute(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     _double.calls = 0

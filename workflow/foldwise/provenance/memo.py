@@ -145,6 +145,14 @@ class MemoStore:
             _restore_copy(entry / str(number), Path(path))
         return True
 
+    def warnings(self, key):
+        """The warnings the job of entry ``key`` logged when it was computed (an empty list if none or unreadable)."""
+        try:
+            record = json.loads((self.entry_dir(key) / "entry.json").read_text(encoding="utf-8"))
+            return [str(message) for message in record.get("job", {}).get("warnings", [])]
+        except (OSError, ValueError, AttributeError):
+            return []
+
     def store(self, key, outputs, description):
         """Add the finished ``outputs`` as the entry ``key`` (atomically)."""
         final = self.entry_dir(key)
@@ -240,6 +248,17 @@ def package_versions():
         except metadata.PackageNotFoundError:
             versions[name] = None
     return versions
+
+
+class _WarningCollector(logging.Handler):
+    """Keeps the text of every warning a job logs, for its memo entry."""
+
+    def __init__(self):
+        super().__init__(level=logging.WARNING)
+        self.messages = []
+
+    def emit(self, record):
+        self.messages.append(record.getMessage())
 
 
 def _job_logger(log_path):
@@ -387,13 +406,21 @@ def _run_job(smk, step, job):
             log.info("forced by Snakemake (--forcerun/--forceall): the memo is bypassed and the inputs hashed afresh")
         if restored:
             log.info("restored from the content memo (key %s); nothing recomputed", key)
+            for message in store.warnings(key):  # the computing run's warnings, so the log (and the report) still show them
+                log.warning("%s", message)
         else:
-            job(inputs, outputs, settings, log)
+            collected = _WarningCollector()
+            log.addHandler(collected)
+            try:
+                job(inputs, outputs, settings, log)
+            finally:
+                log.removeHandler(collected)
             missing = [path for _, _, path in _flatten(outputs) if not os.path.isfile(path)]
             if missing:
                 raise RuntimeError(f"step {step} did not write {', '.join(missing)}")
             if use_memo:
-                store.store(key, outputs, {"step": step, "wildcards": dict(smk.wildcards.items())})
+                store.store(key, outputs, {"step": step, "wildcards": dict(smk.wildcards.items()),
+                                           "warnings": collected.messages})
             log.info("computed (key %s)%s", key, " and stored in the content memo" if use_memo else "; memo off")
     except InputError as error:
         log.error("%s", error)

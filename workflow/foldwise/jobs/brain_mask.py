@@ -8,13 +8,11 @@ import numpy as np
 from foldwise.data.bids import load_bold
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, save_nifti, write_json
+from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
 from foldwise.masks.build import combine_run_statistics, run_statistics, same_grid, threshold_mean_image
 
 __all__ = ["GRID_TOLERANCE_MM", "run"]
 
-# Images of one subject share one grid; voxel centres may differ by float
-# rounding of the affine only (common practice, no source).
-GRID_TOLERANCE_MM = 0.01
 
 
 def _as_list(paths):

@@ -16,6 +16,7 @@ null); the random voxel orders of selection ``none`` come from
 import numpy as np
 import pandas as pd
 
+from foldwise.contract import GRID_TOLERANCE_MM
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import subject_p
 from foldwise.errors import InputError
@@ -42,7 +43,6 @@ NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutat
 RANKING_COLUMNS = ("fold", "rank", "voxel_index", "i", "j", "k", "score")
 CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
 _RUN_SEPARATOR = "+"  # joins the held-out runs of a fold in test_runs
-_AFFINE_TOLERANCE_MM = 1e-3
 
 
 def permutation_rng(seed, subject, analysis_name):
@@ -123,7 +123,7 @@ def read_roi_patterns(pattern_paths, table_paths, mask_path, subject):
         if image.shape[:3] != inside.shape or len(image.shape) not in (3, 4):
             raise InputError(image_path, "dim", f"grid {image.shape} does not match the ROI mask's {inside.shape} ({mask_path})",
                              "make the ROI mask on the subject's pattern grid")
-        if not np.allclose(image.affine, mask_affine, atol=_AFFINE_TOLERANCE_MM):
+        if not np.allclose(image.affine, mask_affine, atol=GRID_TOLERANCE_MM):
             raise InputError(image_path, "affine", f"the image affine differs from the ROI mask's ({mask_path})",
                              "make the ROI mask on the subject's pattern grid")
         data = image.get_fdata(dtype=np.float64)

@@ -9,13 +9,11 @@ from foldwise.data.bids import (confound_table_columns, count_flagged_initial_vo
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_tsv
 from foldwise.glm.estimate import estimate_patterns
+from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
 from foldwise.masks.build import same_grid
 
 __all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_labels", "design_figure"]
 
-# Voxel centres of the BOLD and the mask may differ by float rounding of the
-# affine only (common practice, no source; the brain-mask job uses the same).
-GRID_TOLERANCE_MM = 0.01
 TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
 _MAX_LABELS = 24
 

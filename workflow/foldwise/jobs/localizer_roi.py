@@ -11,7 +11,7 @@ from foldwise.data.bids import load_bold, read_events, read_tr_s
 from foldwise.data.fileio import load_nifti, save_nifti, write_json
 from foldwise.errors import InputError
 from foldwise.glm.design import build_design
-from foldwise.jobs.brain_mask import GRID_TOLERANCE_MM
+from foldwise.contract import GRID_TOLERANCE_MM, read_brain_mask
 from foldwise.jobs.glm import _masked_time_series, _unmask, drop_initial, run_nuisance
 from foldwise.jobs.roi_mask import defined_region
 from foldwise.masks.build import restrict_to_brain, same_grid
@@ -95,9 +95,8 @@ def run(inputs, outputs, params, log):
     entry, subject = params["roi"], params["subject"]
     name, spec = entry["name"], entry["localizer"]
     min_voxels = int(entry.get("min_voxels", _DEFAULT_MIN_VOXELS))
-    brain_image = load_nifti(inputs["brain_mask"], what="brain mask")
-    brain = np.asarray(brain_image.dataobj) > 0
-    shape, affine = brain.shape, brain_image.affine
+    brain, affine = read_brain_mask(inputs["brain_mask"])
+    shape = brain.shape
     brain_flat = brain.ravel(order="F")
 
     bolds = list(inputs["bold"]) if not isinstance(inputs["bold"], str) else [inputs["bold"]]

@@ -5,7 +5,7 @@ import numpy as np
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, save_nifti, write_json
 from foldwise.masks.build import resample_nearest, restrict_to_brain, roi_from_image, roi_from_labels, sphere_mask
-from foldwise.jobs.brain_mask import GRID_TOLERANCE_MM
+from foldwise.contract import GRID_TOLERANCE_MM, read_brain_mask
 
 __all__ = ["run"]
 
@@ -24,9 +24,8 @@ def run(inputs, outputs, params, log):
     entry, subject = params["roi"], params["subject"]
     name = entry["name"]
     min_voxels = int(entry.get("min_voxels", _DEFAULT_MIN_VOXELS))
-    brain_image = load_nifti(inputs["brain_mask"], what="brain mask")
-    brain = np.asarray(brain_image.dataobj) > 0
-    shape, affine = brain.shape, brain_image.affine
+    brain, affine = read_brain_mask(inputs["brain_mask"])
+    shape = brain.shape
     roi, source = defined_region(entry, inputs, shape, affine, name)
     kept = restrict_to_brain(roi, brain, min_voxels, subject, name, source_file=source)
     save_nifti(outputs["mask"], kept.astype(np.uint8), affine, dtype=np.uint8)

@@ -27,14 +27,14 @@ import numpy as np
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, write_bytes_atomic
 from foldwise.provenance.hashing import seed_from
+from foldwise.contract import GRID_TOLERANCE_MM
+from foldwise.contract import read_brain_mask as load_brain_mask  # the one brain-mask reader
 from foldwise.masks.build import same_grid
 from foldwise.searchlight.engine import SEARCHLIGHT_CLASSIFIERS, block_centres, sample_design, searchlight_scores, sphere_neighbourhoods
 
 __all__ = ["run", "GRID_TOLERANCE_MM", "load_brain_mask", "load_subject_patterns", "save_npy"]
 
 _TABLE_COLUMNS = ("volume", "condition", "run_id")
-# Two grids are one grid when their voxel centres agree to this many mm (common practice, no source).
-GRID_TOLERANCE_MM = 1e-3
 
 
 def save_npy(path, array):
@@ -42,20 +42,6 @@ def save_npy(path, array):
     buffer = io.BytesIO()
     np.save(buffer, np.ascontiguousarray(array), allow_pickle=False)
     write_bytes_atomic(path, buffer.getvalue())
-
-
-def load_brain_mask(path):
-    """The brain mask as (bool array, affine); refuses a non-3D or empty mask."""
-    image = load_nifti(path, what="brain mask")
-    data = np.asanyarray(image.dataobj)
-    if data.ndim == 4 and data.shape[3] == 1:
-        data = data[..., 0]
-    if data.ndim != 3:
-        raise InputError(path, "dim", f"expected a 3D brain mask, got shape {data.shape}", "give one 3D mask volume")
-    mask = np.asarray(data) > 0
-    if not mask.any():
-        raise InputError(path, "data", "the brain mask holds no voxel", "check the brain mask step (brain_mask.mean_fraction)")
-    return mask, np.asarray(image.affine, dtype=np.float64)
 
 
 def load_subject_patterns(pattern_paths, table_paths, mask, affine):

@@ -1,23 +1,36 @@
 """The reviewer bundle: one archive that reproduces and proves every number.
 
 ``python -m foldwise.provenance.bundle make`` (``make bundle``) writes
-``results/bundle/<study>-bundle.tar.gz`` with the repository's tracked code
-and config, the exact lock, the manifest, every provenance record, the group
-tables, the report and a README for reviewers. Participant images (NIfTI
-files) are left out unless ``--include-images`` is given.
+``results/bundle/<study>-bundle.tar.gz`` with exactly: the repository's
+tracked code and config, the study config (bundled with a warning if git
+does not track it), the exact lock, the manifest, the files the manifest
+lists, the provenance records of those files' jobs and a README for
+reviewers. Outputs of an earlier study in the same checkout are not in the
+manifest and stay out. Participant images stay out unless
+``--include-images`` is given: NIfTI files, and the report figures drawn
+over a participant's images (mean BOLD slices, residual variance,
+searchlight maps); the report inside the bundle is then
+``REVIEW/report.html``, the page with those figures replaced by a note.
 
-``python -m foldwise.provenance.bundle verify`` (``make verify``), run in an unpacked
-bundle with the dataset in place, first checks every bundled result against
-the manifest, then recomputes the study with the content memo switched off
-and compares each output with the manifest: ``match`` (byte-identical),
-``match within tolerance`` (numbers equal within rtol 1e-5 / atol 1e-7, as
-expected across platforms and BLAS builds), or ``MISMATCH``.
+``python -m foldwise.provenance.bundle verify`` (``make verify``), run in an
+unpacked bundle with the dataset in place, first checks every bundled result
+against the manifest and every provenance record against the manifest, the
+bundled lock and its own memo key (an edited setting, version or code hash
+breaks the key); then recomputes the study with the content memo switched
+off, keeping the bundled evidence under ``REVIEW/bundled`` (never
+overwritten, also by a second verify), and compares each output with the
+manifest: ``match`` (byte-identical), ``match within tolerance`` (numbers
+equal within rtol 1e-5 / atol 1e-7, as expected across platforms and BLAS
+builds), or ``MISMATCH``; and each new provenance record's settings, code
+hash, versions and inputs with the bundled one.
 """
 
 import argparse
 import gzip
 import io
+import json
 import os
+import re
 import subprocess
 import sys
 import tarfile
@@ -27,34 +40,63 @@ import numpy as np
 import pandas as pd
 
 from foldwise.config import load_study_config
+from foldwise.provenance.environment import read_lock, version_differences
 from foldwise.provenance.hashing import hash_file
+from foldwise.provenance.memo import memo_key
 
-__all__ = ["bundle_members", "make_bundle", "compare_outputs", "verify", "main", "NUMERIC_RTOL", "NUMERIC_ATOL"]
+__all__ = ["bundle_members", "bundle_records", "make_bundle", "without_participant_figures", "compare_outputs",
+           "check_records", "compare_records", "verify", "main", "NUMERIC_RTOL", "NUMERIC_ATOL"]
 
 NUMERIC_RTOL = 1e-5
 NUMERIC_ATOL = 1e-7
-_RESULT_FOLDERS = ("results/provenance", "results/group", "results/report")
 _IMAGE_SUFFIXES = (".nii", ".nii.gz")
+_MANIFEST_RECORD = "results/provenance/manifest/study.json"
+_REPORT_PAGE = "results/report/index.html"
+# Report figures drawn over a participant's images (figure_catalogue kinds masks, resvar, searchlight).
+_PARTICIPANT_FIGURE = re.compile(r"^(sub-[A-Za-z0-9]+_(masks|resvar)|[A-Za-z0-9][A-Za-z0-9_]*_searchlight)$")
+_FIGURE_BLOCK = re.compile(r'<figure id="fig-(?P<stem>[^"]+)">.*?</figure>', re.S)
+_EVIDENCE = "REVIEW/bundled"
 
 REVIEWER_README = """# Reviewer bundle: {study}
 
 This archive holds the complete foldwise pipeline of the study "{study}": its
-code and config, the exact package lock (requirements/lock.txt), the manifest
-of every output with its sha256 (results/manifest.tsv, copied to
-REVIEW/manifest.tsv), one provenance record per job (results/provenance), the
-group tables (results/group) and the report (results/report/index.html).
-{images}
+code and config ({config}), the exact package lock (requirements/lock.txt),
+the manifest of every output with its sha256 (results/manifest.tsv, copied to
+REVIEW/manifest.tsv), the files the manifest lists, and the provenance record
+of each job that made them (results/provenance). Nothing else: outputs of
+other studies in the same checkout are left out.
+{images}{warning}
 To reproduce every number, on a machine with python3:
 
-    make verify      # checks the bundled results, then recomputes the study and compares
+    make verify CONFIG={config}
 
-`make verify` needs the dataset where config/config.yaml expects it (the demo
-study simulates its own). It prints, for every output, `match` (identical
-bytes), `match within tolerance` (numbers equal within rtol {rtol:g}, atol
-{atol:g}: expected across platforms) or `MISMATCH`, and exits non-zero on any
-mismatch. `make test` runs the test suite.
+It first checks the bundled results and provenance records against the
+manifest, the lock and each record's own memo key, then recomputes the study
+with the content memo off (the bundled files are kept under REVIEW/bundled
+and never overwritten) and compares. It needs the dataset where {config}
+expects it (the demo study simulates its own). It prints, for every output,
+`match` (identical bytes), `match within tolerance` (numbers equal within
+rtol {rtol:g}, atol {atol:g}: expected across platforms) or `MISMATCH`, and
+exits non-zero on any mismatch or any provenance record that disagrees.
+`make test` runs the test suite.
 
 Research use only; not for clinical decisions.
+"""
+
+_IMAGES_LEFT_OUT = """
+Participant images are left out for privacy: NIfTI files, and the report
+figures drawn over a participant's images (mean BOLD slices with the masks,
+residual variance maps, searchlight maps). REVIEW/report.html is the report
+with those figures replaced by a note; it shows the study settings, the
+decoding curves, confusion matrices, group tables and design matrices.
+`make verify` recomputes the full report (results/report/index.html) from
+the dataset.
+"""
+
+_IMAGES_INCLUDED = """
+Participant images are included (made with INCLUDE_IMAGES=1): the NIfTI files
+the manifest lists and the full report (results/report/index.html) with the
+figures drawn over participant images.
 """
 
 
@@ -67,24 +109,81 @@ def _tracked_files(root):
     return sorted(name for name in listing.decode("utf-8").split("\0") if name and (root / name).is_file())
 
 
-def bundle_members(root, include_images=False):
-    """The relative paths a bundle holds (sorted, no duplicates)."""
+def _participant_figure(path):
+    """True for a report figure file drawn over a participant's images."""
+    if not path.startswith("results/report/figures/"):
+        return False
+    stem = path.rsplit("/", 1)[1].split(".", 1)[0]
+    return bool(_PARTICIPANT_FIGURE.match(stem))
+
+
+def bundle_records(root, manifest):
+    """The provenance records of this study's jobs: those whose every output the manifest lists with the same sha256.
+
+    A record of an earlier study (another analysis, another ROI) names
+    outputs the manifest does not list and is left out; the manifest job's
+    own record is kept when its output is this manifest.
+    """
+    root = Path(root)
+    listed = dict(zip(manifest["path"], manifest["sha256"]))
+    manifest_digest = hash_file(root / "results/manifest.tsv")
+    records = []
+    for path in sorted((root / "results/provenance").rglob("*.json")) if (root / "results/provenance").is_dir() else []:
+        relative = path.relative_to(root).as_posix()
+        try:
+            outputs = json.loads(path.read_text(encoding="utf-8"))["outputs"]
+        except (OSError, ValueError, KeyError, TypeError):
+            continue
+        if not outputs:
+            continue
+        if relative == _MANIFEST_RECORD:
+            if all(item["path"] == "results/manifest.tsv" and item["sha256"] == manifest_digest for item in outputs):
+                records.append(relative)
+        elif all(listed.get(item["path"]) == item["sha256"] for item in outputs):
+            records.append(relative)
+    return records
+
+
+def bundle_members(root, include_images=False, config_path=None):
+    """The relative paths a bundle holds (sorted, no duplicates).
+
+    Code and config that git tracks (or, outside git, everything but results
+    and environments), the study config, the manifest, the existing files
+    it lists, and the provenance records of their jobs. Images and report
+    figures drawn over participant images only with ``include_images``; the
+    report page itself only then (else the bundle carries REVIEW/report.html).
+    """
     root = Path(root)
     tracked = _tracked_files(root)
     if tracked is None:  # an unpacked bundle: everything but results and environments
         tracked = sorted(p.relative_to(root).as_posix() for p in root.rglob("*")
                          if p.is_file() and not p.relative_to(root).as_posix().startswith(("results/", ".venv/", ".snakemake/", "REVIEW/")))
-    members = set(tracked)
-    members.add("results/manifest.tsv")
-    for folder in _RESULT_FOLDERS:
-        members.update(p.relative_to(root).as_posix() for p in (root / folder).rglob("*") if p.is_file())
     # Images only from config/ (e.g. an ROI mask that is part of the study's definition): a dataset kept
     # inside the repository is participant data, and an unpacked bundle has no git to tell them apart.
-    members = {m for m in members if not m.endswith(".part") and (not m.endswith(_IMAGE_SUFFIXES) or m.startswith("config/"))}
-    if include_images:
-        manifest = pd.read_csv(root / "results/manifest.tsv", sep="\t")
-        members.update(path for path in manifest["path"] if path.endswith(_IMAGE_SUFFIXES))
+    members = {m for m in tracked if not m.startswith("results/") and (not m.endswith(_IMAGE_SUFFIXES) or m.startswith("config/"))}
+    if config_path is not None and (root / config_path).is_file():
+        members.add(Path(config_path).as_posix())
+    manifest = pd.read_csv(root / "results/manifest.tsv", sep="\t", dtype=str, keep_default_na=False)
+    members.add("results/manifest.tsv")
+    for path in manifest["path"]:
+        if not (root / path).is_file() or path.endswith(".part"):
+            continue
+        participant = path.endswith(_IMAGE_SUFFIXES) or _participant_figure(path) or path == _REPORT_PAGE
+        if include_images or not participant:
+            members.add(path)
+    members.update(bundle_records(root, manifest))
     return sorted(members)
+
+
+def without_participant_figures(page):
+    """The report page with every figure drawn over participant images replaced by a note (str in, str out)."""
+    def replace(match):
+        if not _PARTICIPANT_FIGURE.match(match.group("stem")):
+            return match.group(0)
+        return (f'<figure id="fig-{match.group("stem")}"><figcaption>Left out of the reviewer bundle: this figure is drawn '
+                "over a participant's images. `make verify` recomputes it from the dataset; a bundle made with "
+                "INCLUDE_IMAGES=1 holds it.</figcaption></figure>")
+    return _FIGURE_BLOCK.sub(replace, page)
 
 
 def _add_bytes(archive, name, data):
@@ -100,20 +199,34 @@ def make_bundle(root=".", include_images=False, config_path="config/config.yaml"
     root = Path(root).resolve()
     if not (root / "results/manifest.tsv").is_file():
         raise SystemExit("foldwise: results/manifest.tsv does not exist: run the study first (make demo)")
+    if not (root / config_path).is_file():
+        raise SystemExit(f"foldwise: the study config {config_path} does not exist: pass the one the study ran with (make bundle CONFIG=...)")
+    config_path = Path(os.path.relpath(root / config_path, root)).as_posix()
     study = load_study_config(root / config_path)["study"]["name"]
     prefix = f"{study}-bundle"
     target = root / "results" / "bundle" / f"{prefix}.tar.gz"
     target.parent.mkdir(parents=True, exist_ok=True)
-    images = ("Participant images (NIfTI) are included." if include_images else
-              "Participant images (NIfTI) are left out for privacy; `make verify` recomputes them from the dataset.")
-    readme = REVIEWER_README.format(study=study, images=images, rtol=NUMERIC_RTOL, atol=NUMERIC_ATOL)
+    tracked = _tracked_files(root)
+    warning = ""
+    if tracked is not None and config_path not in tracked:
+        warning = (f"\nWarning: the study config {config_path} was not committed to git when this bundle was made; "
+                   "it is bundled as it was on disk.\n")
+        print(f"foldwise: warning: {config_path} is not tracked by git; it is bundled as it is on disk. "
+              f"Commit it (git add {config_path}) so the study's definition is in its history.", file=sys.stderr)
+    images = _IMAGES_INCLUDED if include_images else _IMAGES_LEFT_OUT
+    readme = REVIEWER_README.format(study=study, config=config_path, images=images, warning=warning, rtol=NUMERIC_RTOL, atol=NUMERIC_ATOL)
+    about = json.dumps({"study": study, "config": config_path, "include_images": bool(include_images)}, indent=1, sort_keys=True) + "\n"
     temporary = target.with_suffix(".part")
     with open(temporary, "wb") as raw, gzip.GzipFile(fileobj=raw, mode="wb", mtime=0, filename="") as zipped:
         with tarfile.open(fileobj=zipped, mode="w", format=tarfile.PAX_FORMAT) as archive:
-            for member in bundle_members(root, include_images):
+            for member in bundle_members(root, include_images, config_path):
                 _add_bytes(archive, f"{prefix}/{member}", (root / member).read_bytes())
             _add_bytes(archive, f"{prefix}/REVIEW/README.md", readme.encode("utf-8"))
             _add_bytes(archive, f"{prefix}/REVIEW/manifest.tsv", (root / "results/manifest.tsv").read_bytes())
+            _add_bytes(archive, f"{prefix}/REVIEW/study.json", about.encode("utf-8"))
+            if not include_images and (root / _REPORT_PAGE).is_file():
+                page = without_participant_figures((root / _REPORT_PAGE).read_text(encoding="utf-8"))
+                _add_bytes(archive, f"{prefix}/REVIEW/report.html", page.encode("utf-8"))
     os.replace(temporary, target)
     return target
 
@@ -173,34 +286,132 @@ def compare_outputs(reference_manifest, root=".", reference_root=None):
     return pd.DataFrame(rows, columns=["path", "status"])
 
 
+def _record_key(record):
+    """The memo key a provenance record's own fields give (as run_job computes it)."""
+    input_hashes = {name: [] for name in record.get("empty_inputs", [])}
+    for item in record["inputs"]:
+        input_hashes.setdefault(item["name"], []).append(item["sha256"])
+    output_counts = {}
+    for item in record["outputs"]:
+        output_counts[item["name"]] = output_counts.get(item["name"], 0) + 1
+    return memo_key(record["step"], {"code": record["code_hash"], "versions": record["versions"]}, record["settings"],
+                    input_hashes, output_counts)
+
+
+def check_records(root, record_paths, manifest, lock_file):
+    """[(record, problem)] for bundled provenance records that disagree with the manifest, the lock or their own key.
+
+    A record lists its outputs' sha256 (they must be the manifest's), the
+    package versions (they must be the lock's) and the memo key, a hash of
+    its step, code hash, versions, settings and input hashes: editing any of
+    these without recomputing the key is caught here, before any recompute.
+    """
+    root = Path(root)
+    listed = dict(zip(manifest["path"], manifest["sha256"]))
+    pins = read_lock(lock_file) if Path(lock_file).is_file() else None
+    problems = []
+    for relative in record_paths:
+        try:
+            record = json.loads((root / relative).read_text(encoding="utf-8"))
+            outputs = record["outputs"]
+        except (OSError, ValueError, KeyError, TypeError):
+            problems.append((relative, "unreadable or not a provenance record"))
+            continue
+        if relative != _MANIFEST_RECORD:
+            for item in outputs:
+                if listed.get(item.get("path")) != item.get("sha256"):
+                    problems.append((relative, f"lists {item.get('path')} with another sha256 than the manifest"))
+        for item in record.get("inputs", []):
+            if item.get("path") in listed and listed[item["path"]] != item.get("sha256"):
+                problems.append((relative, f"used {item['path']} with another sha256 than the manifest lists"))
+        if pins is None:
+            problems.append((relative, "no lock (requirements/lock.txt) to compare its versions with"))
+        else:
+            for name, locked, version in version_differences(pins, record.get("versions") or {}):
+                problems.append((relative, f"claims {name} {version}, the bundled lock pins {locked}"))
+        try:
+            if _record_key(record) != record.get("key"):
+                problems.append((relative, "its settings, code hash, versions or inputs do not give its memo key (edited after the run)"))
+        except (KeyError, TypeError, ValueError):
+            problems.append((relative, "lacks the fields of its memo key"))
+    return problems
+
+
+_COMPARED_FIELDS = ("step", "wildcards", "settings", "code_hash")
+
+
+def compare_records(reference_root, root, record_paths):
+    """[(record, problem)] where a recomputed provenance record differs from the bundled one (settings, code, versions, inputs)."""
+    problems = []
+    for relative in record_paths:
+        try:
+            bundled = json.loads((Path(reference_root) / relative).read_text(encoding="utf-8"))
+            fresh = json.loads((Path(root) / relative).read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            problems.append((relative, "the recomputation wrote no such record"))
+            continue
+        for field in _COMPARED_FIELDS:
+            if bundled.get(field) != fresh.get(field):
+                problems.append((relative, f"{field} differs from the bundled record"))
+        locked = lambda record: {k: v for k, v in (record.get("versions") or {}).items() if k != "python"}  # noqa: E731
+        if locked(bundled) != locked(fresh):  # the Python patch version is not pinned and may differ
+            problems.append((relative, "versions differ from the bundled record"))
+        digests = lambda record: [(item.get("name"), item.get("sha256")) for item in record.get("inputs", [])]  # noqa: E731
+        if digests(bundled) != digests(fresh):
+            problems.append((relative, "its input hashes differ from the bundled record"))
+    return problems
+
+
+def _study_of_bundle(root):
+    about = Path(root) / "REVIEW/study.json"
+    try:
+        return json.loads(about.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
 def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
-    """Check the bundled results, then (optionally) recompute and compare. Returns an exit code."""
+    """Check the bundled results and records, then (optionally) recompute and compare. Returns an exit code."""
     root = Path(root).resolve()
+    about = _study_of_bundle(root)
+    if about is not None and Path(config_path).as_posix() != about.get("config"):
+        print(f"foldwise verify: this bundle was made from the study config {about.get('config')}, not {config_path}; "
+              f"run: make verify CONFIG={about.get('config')}")
+        return 2
     reference_path = root / "REVIEW/manifest.tsv"
     if not reference_path.is_file():
         reference_path = root / "results/manifest.tsv"
     if not reference_path.is_file():
         print("foldwise verify: no manifest found (REVIEW/manifest.tsv or results/manifest.tsv); run it inside an unpacked bundle")
         return 2
-    reference = pd.read_csv(reference_path, sep="\t")
-    bundled = reference[[(root / path).is_file() for path in reference["path"]]]
-    print(f"Step 1: {len(bundled)} bundled results checked against the manifest")
+    reference = pd.read_csv(reference_path, sep="\t", dtype=str, keep_default_na=False)
+    kept = root / _EVIDENCE
+    # The bundled evidence: under REVIEW/bundled once a verify has moved it there (a later verify reads it from there).
+    evidence_root = kept if kept.is_dir() else root
+    bundled = reference[[(evidence_root / path).is_file() for path in reference["path"]]]
+    records = sorted(p.relative_to(evidence_root).as_posix() for p in (evidence_root / "results/provenance").rglob("*.json")) \
+        if (evidence_root / "results/provenance").is_dir() else []
+    print(f"Step 1: {len(bundled)} bundled results checked against the manifest, {len(records)} provenance records "
+          "against the manifest, the lock and their memo keys")
     failures = 0
-    for row in compare_outputs(bundled, root).itertuples():
+    for row in compare_outputs(bundled, evidence_root).itertuples():
         if row.status != "match":
             print(f"  {row.status}: {row.path}  (the bundled file differs from the manifest)")
             failures += 1
+    for record, problem in check_records(evidence_root, records, reference, root / "requirements/lock.txt"):
+        print(f"  RECORD: {record}: {problem}")
+        failures += 1
     if failures:
-        print(f"foldwise verify: {failures} bundled file(s) do not match the manifest")
+        print(f"foldwise verify: {failures} problem(s) with the bundled evidence; nothing was recomputed")
         return 1
     if not recompute:
-        print("Step 1 passed: every bundled result matches the manifest.")
+        print("Step 1 passed: every bundled result and provenance record agrees with the manifest.")
         return 0
-    kept = root / "REVIEW" / "bundled"
-    for path in bundled["path"]:
-        destination = kept / path
-        destination.parent.mkdir(parents=True, exist_ok=True)
-        os.replace(root / path, destination)  # recompute from scratch; keep the bundled copy for comparison
+    if evidence_root == root:
+        for path in list(bundled["path"]) + records:
+            destination = kept / path
+            destination.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(root / path, destination)  # recompute from scratch; keep the bundled copy, never overwritten
     print("Step 2: recomputing the study with the content memo off")
     environment = dict(os.environ, FOLDWISE_MEMO="off")
     command = [sys.executable, "-m", "snakemake", "--profile", "config/profiles/local", "--cores", str(cores), "--forceall",
@@ -212,11 +423,15 @@ def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
     result = compare_outputs(reference, root, reference_root=kept)
     for row in result.itertuples():
         print(f"  {row.status}: {row.path}")
+    record_problems = compare_records(kept, root, records)
+    for record, problem in record_problems:
+        print(f"  RECORD: {record}: {problem}")
     counts = result["status"].value_counts().to_dict()
-    print("Summary: " + ", ".join(f"{count} {status}" for status, count in sorted(counts.items())))
-    bad = int(sum(count for status, count in counts.items() if status in ("MISMATCH", "MISSING")))
+    print("Summary: " + ", ".join(f"{count} {status}" for status, count in sorted(counts.items()))
+          + f"; {len(records) - len({record for record, _ in record_problems})} of {len(records)} provenance records agree")
+    bad = int(sum(count for status, count in counts.items() if status in ("MISMATCH", "MISSING"))) + len(record_problems)
     if bad:
-        print(f"foldwise verify: {bad} output(s) do not reproduce")
+        print(f"foldwise verify: {bad} output(s) or record(s) do not reproduce")
     else:
         print("foldwise verify: every output reproduces")
     return 1 if bad else 0

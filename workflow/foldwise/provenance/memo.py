@@ -35,7 +35,9 @@ import resource
 import shutil
 import sys
 import tempfile
+import threading
 import time
+import types
 from importlib import metadata
 from pathlib import Path
 
@@ -43,7 +45,7 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import write_json
 from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
-__all__ = ["MemoStore", "memo_key", "run_job", "file_system_error", "package_versions", "relative_path", "forced_jobs",
+__all__ = ["MemoStore", "memo_key", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "forced_jobs",
            "FORCED_JOBS_VARIABLE", "copy_file"]
 
 _VERSIONED_PACKAGES = ("numpy", "scipy", "nibabel", "scikit-learn", "pandas", "PyYAML", "matplotlib", "snakemake", "isal", "foldwise")
@@ -261,8 +263,14 @@ class _WarningCollector(logging.Handler):
         self.messages.append(record.getMessage())
 
 
-def _job_logger(log_path):
-    logger = logging.getLogger(f"foldwise.job.{os.getpid()}")
+def _logger_name():
+    # One logger per job: a job process runs one job, the Snakemake process
+    # several at once in threads (run_in_process).
+    return f"foldwise.job.{os.getpid()}.{threading.get_ident()}"
+
+
+def _job_logger(log_path, capture_warnings=True):
+    logger = logging.getLogger(_logger_name())
     logger.setLevel(logging.INFO)
     logger.propagate = False
     formatter = logging.Formatter("%(levelname)s %(message)s")
@@ -275,8 +283,9 @@ def _job_logger(log_path):
     stream_handler.setLevel(logging.WARNING)
     stream_handler.setFormatter(logging.Formatter("foldwise %(levelname)s: %(message)s"))
     logger.addHandler(stream_handler)
-    logging.captureWarnings(True)
-    logging.getLogger("py.warnings").handlers = logger.handlers
+    if capture_warnings:  # process-wide: only in a job's own process, never in Snakemake's
+        logging.captureWarnings(True)
+        logging.getLogger("py.warnings").handlers = logger.handlers
     return logger
 
 
@@ -366,23 +375,76 @@ def run_job(smk, step, job):
     job : callable
         ``job(inputs, outputs, settings, log)``: the job function.
     """
+    _run_stated(smk, step, job, in_process=False)
+
+
+class JobFailed(Exception):
+    """A job run inside the Snakemake process stopped on bad input; its ``foldwise:`` line is printed already."""
+
+
+_ONE_BLAS_THREAD = []
+
+
+def run_in_process(step, job, input, output, params, wildcards, log, config):  # noqa: A002 (Snakemake's names)
+    """Run one job inside the Snakemake process (a rule's ``run:`` block), through the memo.
+
+    For steps whose own work takes a fraction of a second (an ROI mask, a
+    counts table, the manifest): a job process of their own would spend
+    more CPU starting Python and importing numpy, pandas and nibabel, which
+    Snakemake's process has imported already. Snakemake runs ``run:`` jobs
+    in threads of its own process when ``force-use-threads`` is set (the
+    local profile); on a cluster each still runs in its own Snakemake
+    process on a node, as every job does there.
+
+    The job is the same as through :func:`run_job` (memo, provenance record,
+    log) except that bad input raises :class:`JobFailed` after printing the
+    one ``foldwise:`` line, instead of ending a process, and Python warnings
+    are not rerouted into the job's log (that setting is process-wide).
+
+    Parameters
+    ----------
+    step : str
+        The step's name (a rule name).
+    job : callable
+        ``job(inputs, outputs, settings, log)``.
+    input, output, params, wildcards, log, config
+        The objects Snakemake names so inside a ``run:`` block.
+    """
+    if not _ONE_BLAS_THREAD:  # one BLAS thread, as in a job process: the same bits whatever --cores
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(limits=1, user_api="blas")
+        _ONE_BLAS_THREAD.append(True)
+    smk = types.SimpleNamespace(input=input, output=output, params=params, wildcards=wildcards, log=log, config=config)
+    _run_stated(smk, step, job, in_process=True)
+
+
+def _stop(stated, in_process):
+    print(f"foldwise: {stated}", file=sys.stderr)
+    if in_process:
+        raise JobFailed(f"foldwise: {stated}")
+    sys.exit(1)
+
+
+def _run_stated(smk, step, job, in_process):
     try:
-        _run_job(smk, step, job)
+        _run_job(smk, step, job, in_process)
     except OSError as error:
         stated = file_system_error(error, step)
         if stated is None:
             raise
-        log = logging.getLogger(f"foldwise.job.{os.getpid()}")
+        log = logging.getLogger(_logger_name())
         log.error("%s", stated)
         _close(log)
-        print(f"foldwise: {stated}", file=sys.stderr)
-        sys.exit(1)
+        _stop(stated, in_process)
 
 
-def _run_job(smk, step, job):
+def _run_job(smk, step, job, in_process=False):
     started = time.perf_counter()
-    cpu_started = time.process_time()  # this process only: the job's own CPU, without start-up and imports
-    log = _job_logger(smk.log[0] if len(smk.log) else None)
+    # The job's own CPU, without start-up and imports: this process's, or this thread's inside Snakemake's process.
+    cpu_clock = time.thread_time if in_process else time.process_time
+    cpu_started = cpu_clock()
+    log = _job_logger(smk.log[0] if len(smk.log) else None, capture_warnings=not in_process)
     inputs = _named(smk.input)
     outputs = _named(smk.output, exclude=("provenance",))
     # Plain JSON values in the configured order (sets and classes keep their order);
@@ -425,8 +487,7 @@ def _run_job(smk, step, job):
     except InputError as error:
         log.error("%s", error)
         _close(log)
-        print(f"foldwise: {error}", file=sys.stderr)
-        sys.exit(1)
+        _stop(error, in_process)
     wall_time_s = time.perf_counter() - started
     record = {
         "step": step,
@@ -440,10 +501,11 @@ def _run_job(smk, step, job):
                    for path, digest in zip([paths] if isinstance(paths, str) else paths, input_hashes[name])],
         "outputs": [{"name": name, "path": relative_path(path), "sha256": store.content_hash(path)}
                     for name, _, path in _flatten(outputs)],
+        "empty_inputs": sorted(name for name, paths in inputs.items() if not isinstance(paths, str) and not paths),  # for the key check
         "versions": package_versions(),
         "platform": {"system": platform.system(), "machine": platform.machine()},
         "wall_time_s": round(wall_time_s, 3),
-        "cpu_time_s": round(time.process_time() - cpu_started, 3),
+        "cpu_time_s": round(cpu_clock() - cpu_started, 3),
         "peak_memory_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0, 1),
     }
     write_json(smk.output.provenance, record)

@@ -31,7 +31,7 @@ from foldwise.provenance.hashing import hash_object
 
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
-VERSIONED_PACKAGES = ("foldwise", "numpy", "scipy", "nibabel", "scikit-learn", "pandas", "matplotlib", "snakemake")
+from foldwise.provenance.memo import VERSIONED_PACKAGES, package_versions  # noqa: E402 (one list of versioned packages)
 GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low", "ci_high",
                  "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global", "prevalence_gamma0",
                  "prevalence_p_majority")
@@ -203,13 +203,8 @@ def _roi_counts(paths, subjects, rois):
 
 
 def _package_versions():
-    versions = [("python", platform.python_version())]
-    for name in VERSIONED_PACKAGES:
-        try:
-            versions.append((name, metadata.version(name)))
-        except metadata.PackageNotFoundError:
-            versions.append((name, "not installed"))
-    return versions
+    """python and the packages whose versions key the memo (foldwise.provenance.memo.VERSIONED_PACKAGES)."""
+    return [(name, version or "not installed") for name, version in package_versions().items()]
 
 
 def _check_params(params):

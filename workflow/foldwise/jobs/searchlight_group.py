@@ -32,7 +32,8 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, save_nifti, write_tsv
 from foldwise.stats.group import MIN_SUBJECTS, TIE_TOLERANCE, draw_indices
 from foldwise.provenance.hashing import seed_from
-from foldwise.searchlight.engine import analysis_outline, group_permutation_maps, tfce
+from foldwise.searchlight.engine import analysis_outline
+from foldwise.stats.maps import group_permutation_maps, tfce
 from foldwise.masks.build import same_grid
 from foldwise.jobs.searchlight_block import GRID_TOLERANCE_MM, load_brain_mask
 
@@ -132,7 +133,8 @@ def run(inputs, outputs, params, log):
     if tested:
         rng = np.random.default_rng(seed_from(params["seed"], "searchlight-group", analysis["name"]))
         indices = draw_indices(rng, n_permutations, n_subjects, n_draws)
-        results = group_permutation_maps(scores, nulls, indices, chance, voxel_maps=voxel_maps)
+        # each voxel standardised by its own null before the map's maximum (min_p is offered for ROI tables only)
+        results = group_permutation_maps(scores, nulls, indices, chance, voxel_maps=voxel_maps, fwe_method="standardised")
         p_value, p_fwe = results["p"], results["p_fwe"]
         log.info("analysis %s: %d subjects, %d group voxels, %d permutations per subject, %d group draws",
                  analysis["name"], n_subjects, n_voxels, n_permutations, n_draws)

@@ -46,9 +46,10 @@ from foldwise.data.fileio import write_json
 from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
 __all__ = ["MemoStore", "memo_key", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "forced_jobs",
-           "FORCED_JOBS_VARIABLE", "copy_file"]
+           "FORCED_JOBS_VARIABLE", "copy_file", "VERSIONED_PACKAGES"]
 
-_VERSIONED_PACKAGES = ("numpy", "scipy", "nibabel", "scikit-learn", "pandas", "PyYAML", "matplotlib", "snakemake", "isal", "foldwise")
+# The packages that shape the numbers: the memo keys on their versions and the report prints them (one list).
+VERSIONED_PACKAGES = ("numpy", "scipy", "nibabel", "scikit-learn", "pandas", "PyYAML", "matplotlib", "snakemake", "isal", "foldwise")
 
 
 def relative_path(path, root=None):
@@ -244,7 +245,7 @@ def memo_key(step, code, settings, input_hashes, output_names):
 def package_versions():
     """Installed versions of the packages that shape the numbers."""
     versions = {"python": platform.python_version()}
-    for name in _VERSIONED_PACKAGES:
+    for name in VERSIONED_PACKAGES:
         try:
             versions[name] = metadata.version(name)
         except metadata.PackageNotFoundError:

@@ -11,6 +11,7 @@ Snakemake renders them) and Debian's chromium (the page in a real browser).
 """
 
 import base64
+import html as html_module
 import doctest
 import json
 import logging
@@ -790,3 +791,77 @@ def test_report_screenshot_is_not_blank(browser_runs):
     assert (grey < 0.5).mean() > 0.01 and (grey > 0.9).mean() > 0.3
     blank = imread(browser_runs["blank"][2])[..., :3].mean(axis=2)
     assert grey.std() > 3 * blank.std()
+
+
+# -- the page printed to PDF by chromium, read back with poppler's pdftotext ---------------------------
+
+_PDFTOTEXT_MISSING = ("pdftotext is not installed: run `apt-get install -y poppler-utils` (CI's .ci/run installs it); "
+                      "the print test reads the PDF's text with it")
+
+
+def _words(text):
+    """Lower-case words without hyphens (pdftotext joins a word hyphenated at a line end)."""
+    return re.sub(r"[-\s]+", " ", text.replace("-\n", "")).lower().split()
+
+
+@pytest.fixture(scope="module")
+def printed(built, tmp_path_factory):
+    if _chromium() is None or shutil.which("pdftotext") is None:
+        return None
+    folder = tmp_path_factory.mktemp("printed")
+    pdf = folder / "report.pdf"
+    command = [_chromium(), *_CHROMIUM_FLAGS, f"--user-data-dir={folder / 'profile'}", "--no-pdf-header-footer",
+               f"--print-to-pdf={pdf}", Path(built["outputs"]["html"]).resolve().as_uri()]
+    finished = subprocess.run(command, capture_output=True, text=True, timeout=180, check=False)
+    assert finished.returncode == 0 and pdf.is_file(), finished.stderr[-2000:]
+    dom = subprocess.run([_chromium(), *_CHROMIUM_FLAGS, f"--user-data-dir={folder / 'profile-dom'}", "--dump-dom",
+                          Path(built["outputs"]["html"]).resolve().as_uri()], capture_output=True, text=True, timeout=180,
+                         check=False)
+    assert dom.returncode == 0, dom.stderr[-2000:]
+    text = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True, check=True).stdout
+    return {"pdf": pdf, "text": text, "dom": dom.stdout}
+
+
+def _printed_or_fail(printed):
+    if printed is None:
+        pytest.fail(_CHROMIUM_MISSING if _chromium() is None else _PDFTOTEXT_MISSING, pytrace=False)
+    return printed
+
+
+def _group_headers(page_html):
+    tables = re.findall(r"<table class=\"compact\".*?</table>", page_html, flags=re.S)
+    group = [table for table in tables if "Group statistics" in table]
+    assert group, "no group table on the page"
+    return [html_module.unescape(re.sub(r"<[^>]+>", "", cell)) for cell in re.findall(r"<th[^>]*>(.*?)</th>", group[0])]
+
+
+@pytest.mark.browser
+def test_printed_pdf_holds_every_group_table_column(built, printed):
+    printed = _printed_or_fail(printed)
+    headers = _group_headers(built["html"])
+    assert "p_fwe (family-wise corrected)" in headers and "prevalence: p (majority)" in headers
+    words = _words(printed["text"])
+    for header in headers:
+        for word in _words(header):
+            assert word in words, (header, word)  # a column cut at the page edge loses its header
+    assert "p_fwe" in words and "survives" in words
+    # Every cell of a surviving row too: the last column's values (prevalence p, majority) are printed.
+    assert _words(printed["text"]).count("0.3") >= 2
+
+
+@pytest.mark.browser
+def test_printed_pdf_leads_with_the_answer(printed):
+    printed = _printed_or_fail(printed)
+    text = " ".join(_words(printed["text"]))
+    answer = text.index(" ".join(_words("ROI ember, within: above chance after")))
+    first_quality_figure = text.index(" ".join(_words("regressors (rows, grouped by kind")))
+    assert answer < first_quality_figure
+
+
+@pytest.mark.browser
+def test_every_contents_anchor_resolves_in_the_browser(printed):
+    printed = _printed_or_fail(printed)
+    parsed = _parse(printed["dom"])
+    ids = {attributes["id"] for _, attributes in parsed.elements if "id" in attributes}
+    links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and "href" in attributes]
+    assert len(links) >= 15 and all(link[1:] in ids for link in links)

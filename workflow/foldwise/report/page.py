@@ -220,6 +220,7 @@ figcaption { font-size: 0.88rem; color: #333333; max-width: 70rem; }
 code, pre { font-family: ui-monospace, "DejaVu Sans Mono", monospace; background: #f4f4f4; }
 pre { padding: 0.5rem 0.8rem; overflow-x: auto; white-space: pre-wrap; }
 @page { size: A4; margin: 14mm 12mm; }
+@page wide-table { size: A4 landscape; margin: 12mm 10mm; }
 @media print {
   body { font-size: 10pt; line-height: 1.3; }
   main { max-width: none; padding: 0; }
@@ -229,10 +230,10 @@ pre { padding: 0.5rem 0.8rem; overflow-x: auto; white-space: pre-wrap; }
   h2, h3, h4, caption { break-after: avoid; page-break-after: avoid; }
   figure, .answer li, tr { break-inside: avoid; page-break-inside: avoid; }
   figure img { max-height: 230mm; width: auto; max-width: 100%; border: none; }
-  .wide { overflow: visible; }
+  .wide { overflow: visible; page: wide-table; }
   table { width: 100%; table-layout: fixed; }
-  table.compact { font-size: 6.5pt; }
-  table.compact th, table.compact td { padding: 1px 2px; overflow-wrap: anywhere; word-break: break-word; hyphens: auto; }
+  table.compact { font-size: 7pt; }
+  table.compact th, table.compact td { padding: 1px 2px; overflow-wrap: break-word; }
   thead { display: table-header-group; }
   .gallery figure { max-width: 48%; }
   a { color: inherit; text-decoration: none; }

@@ -28,6 +28,7 @@ from foldwise.report.summary import answer_sentences
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
 from foldwise.provenance.hashing import hash_object
+from foldwise.provenance.memo import display_path
 
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
@@ -280,7 +281,7 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
     source = study["dataset"]["source"]
     rows = [
         ("study name", study.get("study", {}).get("name", "study")),
-        ("dataset", "simulated demo (the invented lanterns study)" if source == "demo" else f"BIDS dataset at {study['dataset']['bids_root']}"),
+        ("dataset", "simulated demo (the invented lanterns study)" if source == "demo" else f"BIDS dataset at {display_path(study['dataset']['bids_root'])}"),
         ("subjects", f"{len(subjects)}: {_text_list(subjects, 30)}"),
         ("runs", runs_text),
         ("repetition time (s)", ", ".join(f"{value:g}" for value in repetition_times)),
@@ -289,7 +290,7 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
                 f"{glm.get('statistic')}, high-pass cutoff {glm.get('highpass_s')} s, HRF derivatives {glm.get('hrf_derivatives')}"),
         ("ROIs", _text_list(roi["name"] for roi in study["rois"])),
         ("analyses", _text_list(f"{a['name']} ({a['kind']})" for a in study["analyses"])),
-        ("config file", config_file or "given with --configfile"),
+        ("config file", display_path(config_file) or "given with --configfile"),
         ("config hash (sha256 of the validated config)", hash_object(study)),
         ("versions", ", ".join(f"{name} {version}" for name, version in versions)),
     ]
@@ -457,7 +458,7 @@ def run(inputs, outputs, params, log):
     analyses = {analysis["name"]: analysis for analysis in study["analyses"]}
     roi_names = [roi["name"] for roi in study["rois"]]
     alpha = float(study.get("group", {}).get("alpha", 0.05))
-    config_file = params.get("config_file")
+    config_file = display_path(params.get("config_file"))  # never an absolute path in the report
     versions = _package_versions()
 
     repetition_times = _repetition_times(inputs.get("sidecars"))

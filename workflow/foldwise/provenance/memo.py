@@ -45,7 +45,7 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import write_json
 from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
-__all__ = ["MemoStore", "memo_key", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "forced_jobs",
+__all__ = ["MemoStore", "memo_key", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "display_path", "forced_jobs",
            "FORCED_JOBS_VARIABLE", "copy_file", "VERSIONED_PACKAGES"]
 
 # The packages that shape the numbers: the memo keys on their versions and the report prints them (one list).
@@ -64,6 +64,18 @@ def relative_path(path, root=None):
         return absolute.relative_to(root).as_posix()
     except ValueError:
         return f"<outside>/{absolute.name}"
+
+
+def display_path(path, root=None):
+    """How results show a path: relative inside the working directory, else ``<outside>/<name>``; never absolute.
+
+    For the report and every other text a study writes, so no result names a
+    user's home folder or machine (the same reduction provenance records use).
+    ``None`` and empty strings are returned unchanged.
+    """
+    if path is None or str(path) == "":
+        return path
+    return relative_path(path, root)
 
 
 def _without_absolute_paths(value):

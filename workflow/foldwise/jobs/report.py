@@ -12,9 +12,7 @@ import functools
 import html
 import json
 import math
-import platform
 import re
-from importlib import metadata
 from pathlib import Path
 
 import numpy as np

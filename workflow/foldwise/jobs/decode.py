@@ -21,7 +21,7 @@ from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import subject_p
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, write_tsv
-from foldwise.decoding.folds import check_training_classes, make_folds
+from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks, task_of_run
 from foldwise.provenance.hashing import seed_from
 
 __all__ = [
@@ -224,6 +224,36 @@ def analysis_labels(analysis, table, subject, tables_label):
     return keep, labels, set_index, class_names, set_names
 
 
+def keep_task_patterns(keep, labels, set_index, set_names, run_labels, pattern_tasks):
+    """Keep only the patterns whose run belongs to the task of their part of the analysis.
+
+    Parameters
+    ----------
+    keep : ndarray of bool, shape (n_rows,)
+        From :func:`analysis_labels`.
+    labels, set_index : ndarray
+        Of the kept rows (``set_index`` None for a within analysis).
+    set_names : list of str or None
+    run_labels : ndarray of str, shape (n_rows,)
+        Every row's run (``task-<label>_`` inside for a run of another task).
+    pattern_tasks : dict
+        ``{"within": task}`` or ``{set name: task}``; ``None`` is the main task.
+
+    Returns
+    -------
+    keep, labels, set_index
+        Narrowed to the rows of the right task.
+    """
+    rows = np.flatnonzero(keep)
+    row_tasks = [task_of_run(run) for run in np.asarray(run_labels)[rows]]
+    wanted = [pattern_tasks["within"] if set_index is None else pattern_tasks[set_names[number]]
+              for number in (set_index if set_index is not None else np.zeros(rows.size, dtype=np.int64))]
+    right = np.array([have == want for have, want in zip(row_tasks, wanted)], dtype=bool)
+    keep = keep.copy()
+    keep[rows[~right]] = False
+    return keep, labels[right], None if set_index is None else set_index[right]
+
+
 def _check_sets_in_runs(set_index, runs, set_names, subject, tables_label):
     for set_number, set_name in enumerate(set_names):
         missing = sorted(set(runs.tolist()) - set(runs[set_index == set_number].tolist()))
@@ -322,8 +352,17 @@ def run(inputs, outputs, params, log):
     tables_label = _files_label(table_paths)
     patterns, table, coordinates = read_roi_patterns(inputs["patterns"], table_paths, inputs["mask"], subject)
     keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, tables_label)
+    pattern_tasks = params.get("pattern_tasks")  # an analysis of another task, or sets from two tasks
+    if pattern_tasks:
+        keep, labels, set_index = keep_task_patterns(keep, labels, set_index, set_names, table["run"].to_numpy(), pattern_tasks)
     patterns, runs = patterns[keep], table["run"].to_numpy()[keep]
     scheme, n_groups = analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2)
+    if pattern_tasks and set_index is not None and len(set(pattern_tasks.values())) == 2:
+        # Sets from two tasks: run k of each task (or each session) is one fold unit, held out together.
+        try:
+            runs = pair_runs_across_tasks(runs, set_index, set_names, scheme)
+        except InputError as error:
+            raise InputError(tables_label, error.field, f"subject {subject}: {error.problem}", error.fix) from None
     try:
         folds = make_folds(runs, scheme, n_groups)
     except InputError as error:  # name the subject's tables, where the runs come from

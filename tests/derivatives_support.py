@@ -124,8 +124,12 @@ def main_codes(rng):
 
 
 def write_dataset(root, n_subjects=3, sessions=("1", "2"), runs_per_session=2, n_scans=None, seed=1,
-                  main_amplitude=1.2, localizer_amplitude=3.0, main_seed_offset=0, condition_rename=None):
+                  main_amplitude=1.2, localizer_amplitude=3.0, main_seed_offset=0, condition_rename=None, subject_rois=False):
     """Write the raw and derivatives trees under ``root``; return a dict of paths and truths.
+
+    ``sessions=None`` writes a dataset without sessions (``runs_per_session``
+    runs per task); ``subject_rois`` also writes one ROI image per subject
+    (``rois/sub-XX_ember.nii.gz``, the ember region).
 
     ``main_seed_offset`` changes the main task's data only (the localizer's
     stays the same bits); ``condition_rename`` maps (subject, condition) to
@@ -150,13 +154,16 @@ def write_dataset(root, n_subjects=3, sessions=("1", "2"), runs_per_session=2, n
     pd.DataFrame({"index": list(names), "name": list(names.values())}).to_csv(root / "atlas" / "atlas_labels.tsv", sep="\t", index=False)
 
     subjects = [f"{index + 1:02d}" for index in range(n_subjects)]
+    if subject_rois:
+        for subject in subjects:
+            _write_nifti(root / "rois" / f"sub-{subject}_ember.nii.gz", np.isin(atlas_labels(), (1, 2)).astype(np.uint8), dtype=np.uint8)
     for subject_index, subject in enumerate(subjects):
-        for session in sessions:
+        for session in (sessions or (None,)):
             for task, conditions in (("lanterns", MAIN_CONDITIONS), ("beacon", LOCALIZER_CONDITIONS)):
                 for run_index in range(runs_per_session):
                     run = str(run_index + 1)
                     offset = main_seed_offset if task == "lanterns" else 0
-                    rng = np.random.default_rng([seed, subject_index, int(session), run_index, 0 if task == "lanterns" else 1, offset])
+                    rng = np.random.default_rng([seed, subject_index, int(session or 0), run_index, 0 if task == "lanterns" else 1, offset])
                     is_localizer = task == "beacon"
                     n_per = 4 if is_localizer else 5
                     per_event_s = (18.0 if is_localizer else 8.0)
@@ -181,7 +188,8 @@ def write_dataset(root, n_subjects=3, sessions=("1", "2"), runs_per_session=2, n
                     series[spikes] += 25.0
                     series = np.where(inside, 100.0 + series, 0.0)
                     bold = series.T.reshape(GRID + (total,), order="F")
-                    stem = f"sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}"
+                    stem = (f"sub-{subject}/func/sub-{subject}_task-{task}_run-{run}" if session is None else
+                            f"sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}")
                     _write_nifti(deriv / f"{stem}_space-{SPACE}_res-{RES}_desc-preproc_bold.nii.gz", bold)
                     _write_nifti(deriv / f"{stem}_space-{SPACE}_res-{RES}_desc-brain_mask.nii.gz",
                                  brain().astype(np.uint8), dtype=np.uint8)

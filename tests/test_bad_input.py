@@ -181,7 +181,7 @@ def _unknown_key(folder):
     study["analyses"][0]["clasifier"] = "linear_svm"
     return Expectation(_validating(study), "config/study.yaml: analyses[0]: unknown key 'clasifier' (did you mean 'classifier'?). "
                                            "Fix: remove or rename it; allowed keys here: classes, classifier, demean_patterns, folds, "
-                                           "kind, logistic_c, n_permutations, name, rois, selection, sets, svm_c, voxel_counts")
+                                           "geometry, kind, logistic_c, n_permutations, name, rois, selection, set_tasks, sets, svm_c, task, voxel_counts")
 
 
 @case("key that is not text (unquoted 1:)", "config.validate, before any job")

@@ -137,7 +137,7 @@ def test_required_conditions_cover_analyses_glm_and_localizers():
                  rois=[{"name": "beam", "localizer": {"task": "beacon", "contrast": {"lit": 1, "dark": -1}}}])
     required = dataset_check.required_conditions(study)
     assert ("heard_square", "analyses[1].sets.heard.square", "lanterns") in required
-    assert ("seen_round", "glm.conditions", "lanterns") in required
+    assert ("seen_round", "glm.conditions", None) in required  # the GLM models every task's runs
     assert ("dark", "rois[0].localizer.contrast", "beacon") in required
 
 
@@ -325,3 +325,67 @@ def test_runs_of_one_task_without_a_partner_are_refused():
         fold_schemes.pair_runs_across_tasks(runs, np.array([0, 0, 0, 1, 1]), ("lanterns", "beacon"))
     assert "run run-3 has runs of set 'lanterns'" in str(excinfo.value) and "leave_one_session_out" in str(excinfo.value)
     assert fold_schemes.task_of_run("ses-1_task-beacon_run-2") == "beacon" and fold_schemes.task_of_run("run-1", "lanterns") == "lanterns"
+
+
+# ------------------------------------------------ the shipped example configs, planned on the simulated dataset
+
+import yaml  # noqa: E402
+
+from foldwise import plan as study_plan  # noqa: E402
+from foldwise.config import validate  # noqa: E402
+from foldwise.study import build_study  # noqa: E402
+
+EXAMPLES = Path(__file__).resolve().parents[1] / "config" / "examples"
+
+
+def example_config(name, written, **changes):
+    """A shipped example config with its data paths pointed at a simulated dataset (nothing else changed)."""
+    config = yaml.safe_load((EXAMPLES / name).read_text(encoding="utf-8"))
+    config["dataset"].update({"bids_root": str(written["raw"]), "derivatives_root": str(written["derivatives"])})
+    if "atlas_image" in config["dataset"]:
+        config["dataset"].update({"atlas_image": str(written["atlas_image"]), "atlas_labels": str(written["atlas_labels"])})
+    for roi in config["rois"]:
+        if "image" in roi:
+            roi["image"] = str(Path(written["raw"]).parent / "rois" / Path(roi["image"]).name)
+    for dotted, value in changes.items():
+        node, *parts = dotted.split(".")
+        target = config[node]
+        for part in parts[:-1]:
+            target = target[part]
+        target[parts[-1]] = value
+    return config
+
+
+def test_sessions_example_plans_localizer_and_cross_task_jobs(dataset):
+    config = validate(example_config("sessions_localizer.yaml", dataset), path="sessions_localizer.yaml")
+    study = build_study(config, path="sessions_localizer.yaml")
+    assert study.tasks == ("lanterns", "beacon") and study.sessions == ("1", "2")
+    glm_runs = [w["run_id"] for step, w in study_plan.planned_jobs(study) if step == "glm" and w["subject"] == "01"]
+    assert glm_runs == ["ses-1_run-1", "ses-1_run-2", "ses-2_run-1", "ses-2_run-2",
+                        "ses-1_task-beacon_run-1", "ses-1_task-beacon_run-2", "ses-2_task-beacon_run-1", "ses-2_task-beacon_run-2"]
+    inputs = study_plan.job_inputs(study, "roi_mask", {"subject": "01", "roi": "beam"})
+    assert len(inputs["bold"]) == 4 and all("task-beacon" in path for path in inputs["bold"] + inputs["events"])
+    settings = study_plan.job_settings(study, "roi_mask", {"subject": "01", "roi": "beam"})
+    assert set(settings) == {"roi", "subject", "glm", "confounds", "drop_initial_volumes", "condition_column"}
+    decode = study_plan.job_settings(study, "decode", {"analysis": "lit_from_shape", "subject": "01", "roi": "ember"})
+    assert decode["pattern_tasks"] == {"lanterns": None, "beacon": "beacon"}
+    assert "pattern_tasks" not in study_plan.job_settings(study, "decode", {"analysis": "shape", "subject": "01", "roi": "ember"})
+
+
+def test_a_task_without_partner_runs_is_refused_before_any_job(tmp_path):
+    written = simulated.write_dataset(tmp_path, n_subjects=2, sessions=("1", "2"))
+    for path in Path(written["derivatives"]).glob("sub-02/ses-2/func/*task-beacon_run-2_*bold.nii.gz"):
+        path.unlink()  # subject 02 lacks its second beacon run of session 2
+    config = validate(example_config("sessions_localizer.yaml", written), path="sessions_localizer.yaml")
+    with pytest.raises(InputError) as excinfo:
+        build_study(config, path="sessions_localizer.yaml")
+    assert excinfo.value.field == "analyses[1].set_tasks" and "subject 02" in excinfo.value.problem
+    assert "run 1_ses-2_run-2" in excinfo.value.problem or "ses-2_run-2" in excinfo.value.problem
+
+
+def test_decoding_inside_the_roi_the_same_task_defined_is_refused(dataset):
+    config = example_config("sessions_localizer.yaml", dataset)
+    config["analyses"][1]["rois"] = ["beam"]
+    with pytest.raises(InputError) as excinfo:
+        build_study(validate(config, path="s.yaml"), path="s.yaml")
+    assert "circular" in excinfo.value.problem and excinfo.value.field == "analyses[1].rois"

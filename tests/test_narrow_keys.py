@@ -108,6 +108,8 @@ READERS = {
 # Keys not perturbed here, each with where it is tested instead.
 NOT_PERTURBED = {
     "dataset.source": "switches the data source itself (demo or a BIDS folder on disk): tests/test_workflow.py runs both",
+    "analyses[i].task": "the demo simulates one task, so another task is refused; tests/test_datasets.py plans a two-task study "
+                        "(decode reads it as pattern_tasks, the GLM runs of the task are scheduled)",
 }
 
 # Perturbed values that need more than "another value of the same type".

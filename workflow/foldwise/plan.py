@@ -12,6 +12,7 @@ from foldwise import contract
 
 from foldwise.data import bids
 from foldwise.data import demo
+from foldwise.data.check import study_tasks
 from foldwise.errors import InputError
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
@@ -21,10 +22,16 @@ __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inpu
 
 @dataclass(frozen=True)
 class StudyPlan:
-    """Subjects (after exclusion) and their runs, each a dict of entities and paths."""
+    """Subjects (after exclusion) and their runs, each a dict of entities and paths.
+
+    ``runs`` are the runs whose patterns are estimated (the main task's and
+    those of any task an analysis decodes; a run of another task carries
+    ``task``); ``localizer_runs`` those of tasks read by localizer ROIs only.
+    """
 
     subjects: tuple
     runs: tuple
+    localizer_runs: tuple = ()
 
     def runs_of(self, subject):
         return [run for run in self.runs if run["subject"] == subject]
@@ -60,7 +67,19 @@ def plan_study(study, path="the study config"):
         raise InputError(dataset["bids_root"], "dataset.subjects", "no subject with a run is left to analyse",
                          "check dataset.subjects, dataset.exclude_subjects and dataset.patterns.bold")
     subjects = tuple(sorted(chosen))
-    return StudyPlan(subjects=subjects, runs=tuple(runs))
+    pattern_runs, localizer_runs = list(runs), []
+    for task, role in study_tasks(study).items():  # the study's other tasks (several tasks, localizers)
+        if task == dataset["task"]:
+            continue
+        if dataset["source"] == "demo":
+            raise InputError(path, "analyses[].task / rois[].localizer.task", f"the demo simulates one task ({dataset['task']}), "
+                                                                              f"the config also reads task {task!r}",
+                             "use a BIDS dataset for several tasks (docs/datasets.md)")
+        found = bids.discover_runs(dataset["bids_root"], dataset["patterns"], task, list(subjects),
+                                   derivatives_root=dataset.get("derivatives_root"), space=dataset.get("space"), res=dataset.get("res"),
+                                   main_task=False)
+        (pattern_runs if role == "patterns" else localizer_runs).extend(found)
+    return StudyPlan(subjects=subjects, runs=tuple(pattern_runs), localizer_runs=tuple(localizer_runs))
 
 
 # -- the jobs of a study: every job's identity, inputs, outputs and settings ---------------
@@ -238,7 +257,16 @@ def _glm_inputs(study, w):
 
 
 def _roi_mask_inputs(study, w):
-    return {"brain_mask": contract.fill("brain_mask", subject=w["subject"]), **study.rois[w["roi"]].inputs(study.config)}
+    roi = study.rois[w["roi"]]
+    # An ROI image may be one per subject: "{subject}" in its path is this subject's label.
+    inputs = {name: path.replace("{subject}", w["subject"]) for name, path in roi.inputs(study.config).items()}
+    if roi.kind == "localizer":  # the localizer's own runs, nothing of the decoded task
+        runs = study.task_runs(w["subject"], roi.entry["localizer"]["task"])
+        inputs.update({name: [run[name] for run in runs] for name in ("bold", "events", "sidecar")})
+        dataset = study.config["dataset"]
+        if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):
+            inputs["confounds"] = [run["confounds"] for run in runs]
+    return {"brain_mask": contract.fill("brain_mask", subject=w["subject"]), **inputs}
 
 
 def _decode_inputs(study, w):

@@ -195,6 +195,30 @@ register_roi_kind(RoiKind("image", inputs=lambda entry, config: {"image": entry[
 register_roi_kind(RoiKind("sphere", inputs=lambda entry, config: {}, source=lambda entry, config: None))
 
 
+def _localizer_constraint_inputs(entry, config):
+    """The files a localizer ROI's anatomical constraint reads (its localizer runs are added per subject by the plan)."""
+    within = entry["localizer"]["within"]
+    if "labels" in within:
+        return {"atlas": config["dataset"]["atlas_image"], "atlas_labels": config["dataset"]["atlas_labels"]}
+    return {"image": within["image"]} if "image" in within else {}
+
+
+def _localizer_check(entry, where, path, config):
+    spec = entry["localizer"]
+    if not any(weight != 0 for weight in spec["contrast"].values()):
+        raise InputError(path, f"{where}.localizer.contrast", "every contrast weight is 0", "give non-zero weights, e.g. {lit: 1, dark: -1}")
+    if spec["task"] == config["dataset"]["task"]:
+        raise InputError(path, f"{where}.localizer.task", f"the localizer task is the main task ({spec['task']}): the ROI would be "
+                                                          "defined from the data it is decoded from",
+                         "name an independent localizer task (its own runs)")
+
+
+register_roi_kind(RoiKind("localizer", inputs=_localizer_constraint_inputs,
+                          source=lambda entry, config: entry["localizer"]["within"].get("image") or
+                          (config["dataset"]["atlas_image"] if "labels" in entry["localizer"]["within"] else None),
+                          check=_localizer_check))
+
+
 # -- the model -----------------------------------------------------------------------
 @dataclass(frozen=True)
 class Roi:
@@ -292,6 +316,7 @@ class Study:
     analyses: dict
     searchlight_analyses: tuple
     searchlight_blocks: tuple
+    localizer_runs: tuple = ()  # runs of tasks read by localizer ROIs only (no GLM job of their own)
 
     @property
     def sessions(self):
@@ -300,7 +325,21 @@ class Study:
 
     @property
     def tasks(self):
-        return (self.config["dataset"]["task"],)
+        """Every task the study reads, the main task (``dataset.task``) first."""
+        return tuple(dataset_check.study_tasks(self.config))
+
+    def task_runs(self, subject, task):
+        """One subject's runs of one task (the main task's runs carry no ``task`` entry)."""
+        main = self.config["dataset"]["task"]
+        return [run for run in self.runs + self.localizer_runs if run["subject"] == subject and run.get("task", main) == task]
+
+    def pattern_tasks(self, name):
+        """The run-id task of each part of an analysis (None: the main task), or None when it reads the main task only."""
+        main = self.config["dataset"]["task"]
+        tasks = dataset_check.analysis_tasks(_plain(self.analyses[name].entry), main)
+        if set(tasks.values()) == {main}:
+            return None
+        return {("within" if part is None else part): (None if task == main else task) for part, task in tasks.items()}
 
     @property
     def seed(self):
@@ -357,6 +396,13 @@ def _demo_settings(study, wildcards):
             "patterns": dataset["patterns"], "confounds": dataset["confounds"]}
 
 
+def _localizer_settings(study):
+    """What a localizer ROI's own GLM reads: the GLM's design keys and the dataset's nuisance keys."""
+    glm, dataset = study.config["glm"], study.config["dataset"]
+    return {"glm": {key: glm[key] for key in ("hrf_derivatives", "highpass_s", "oversampling")}, "confounds": dataset["confounds"],
+            "drop_initial_volumes": dataset["drop_initial_volumes"], "condition_column": dataset["condition_column"]}
+
+
 def _glm_settings(study, wildcards):
     run = study.run(wildcards["subject"], wildcards["run_id"])
     return {"glm": study.config["glm"], "confounds": study.config["dataset"]["confounds"], "subject": run["subject"],
@@ -382,10 +428,12 @@ STEP_SETTINGS = {
     "demo_dataset": _demo_settings,
     "brain_mask": lambda study, w: {"brain_mask": study.config["brain_mask"], "subject": w["subject"]},
     "glm": _glm_settings,
-    "roi_mask": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"]},
+    "roi_mask": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"],
+                                  **(_localizer_settings(study) if study.rois[w["roi"]].kind == "localizer" else {})},
     "roi_counts": lambda study, w: {"subject": w["subject"]},
     "decode": lambda study, w: {"analysis": study.analyses[w["analysis"]].method(), "subject": w["subject"], "roi": w["roi"],
-                                "seed": study.seed},
+                                "seed": study.seed,
+                                **({"pattern_tasks": study.pattern_tasks(w["analysis"])} if study.pattern_tasks(w["analysis"]) else {})},
     "decode_gather": _decode_gather_settings,
     "group": _group_settings,
     "searchlight_block": lambda study, w: {"searchlight": study.searchlight_method("searchlight_block"),
@@ -521,6 +569,42 @@ def build_study(config, path="the study config"):
     searchlight_names = tuple(searchlight["analyses"]) if searchlight["enabled"] else ()
     rois = _build_rois(config)
     analyses = _build_analyses(config, list(rois), searchlight_names)
-    check_events(config, plan.runs, path)
+    check_events(config, plan.runs + plan.localizer_runs, path)
+    _check_task_pairing(config, plan, path, searchlight_names)
     return Study(config=config, config_file=str(path), subjects=plan.subjects, runs=plan.runs, rois=rois, analyses=analyses,
-                 searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])))
+                 searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])),
+                 localizer_runs=plan.localizer_runs)
+
+
+def _check_task_pairing(config, plan, path, searchlight_names):
+    """A cross analysis over two tasks needs, in every subject, a run of each task per fold unit (refused otherwise, before any job)."""
+    from foldwise.decoding.folds import pair_runs_across_tasks  # the same pairing the decode job uses
+
+    main = config["dataset"]["task"]
+    localizer_tasks = {roi["name"]: roi["localizer"]["task"] for roi in config["rois"] if "localizer" in roi}
+    for index, entry in enumerate(config["analyses"]):
+        tasks = dataset_check.analysis_tasks(entry, main)
+        for roi in entry["rois"] or [roi["name"] for roi in config["rois"]]:
+            if localizer_tasks.get(roi) in tasks.values():
+                raise InputError(path, f"analyses[{index}].rois", f"analysis '{entry['name']}' decodes task {localizer_tasks[roi]}'s "
+                                                                  f"patterns inside ROI {roi}, which was defined from that task's runs "
+                                                                  "(circular: the selection saw the decoded data)",
+                                 f"leave {roi} out of this analysis's rois, or define {roi} from another task")
+        if set(tasks.values()) == {main}:
+            continue
+        if entry["name"] in searchlight_names:
+            raise InputError(path, "searchlight.analyses", f"analysis '{entry['name']}' reads task(s) other than {main}; the searchlight "
+                                                           f"maps {main} only", "leave it out of searchlight.analyses")
+        if entry["kind"] != "cross" or len(set(tasks.values())) < 2:
+            continue
+        (set_a, task_a), (set_b, task_b) = tasks.items()
+        for subject in plan.subjects:
+            labels, sets = [], []
+            for number, task in enumerate((task_a, task_b)):
+                runs = [run["run_id"] for run in plan.runs if run["subject"] == subject and run.get("task", main) == task]
+                labels += runs
+                sets += [number] * len(runs)
+            try:
+                pair_runs_across_tasks(labels, sets, (set_a, set_b), entry["folds"]["scheme"])
+            except InputError as error:
+                raise InputError(path, f"analyses[{index}].set_tasks", f"subject {subject}: {error.problem}", error.fix) from None

@@ -43,7 +43,7 @@ MANIFEST = contract.TEMPLATES["manifest"]
 
 wildcard_constraints:
     subject="[A-Za-z0-9]+",
-    run_id="(ses-[A-Za-z0-9]+_)?run-[A-Za-z0-9]+",
+    run_id="(ses-[A-Za-z0-9]+_)?(task-[A-Za-z0-9]+_)?run-[A-Za-z0-9]+",
     roi="[A-Za-z0-9]+",
     analysis="[A-Za-z0-9][A-Za-z0-9_]*",
     block="[0-9]+",

@@ -22,7 +22,7 @@ from foldwise.data.bids import read_tr_s
 from foldwise.data.fileio import read_tsv
 from foldwise.errors import InputError
 
-__all__ = ["RunSurvey", "required_conditions", "survey_runs", "missing_conditions", "subject_table", "check_dataset", "main"]
+__all__ = ["RunSurvey", "analysis_tasks", "study_tasks", "required_conditions", "survey_runs", "missing_conditions", "subject_table", "check_dataset", "main"]
 
 _CLOSE_CUTOFF = 0.6  # difflib similarity for a did-you-mean (common practice, no source)
 
@@ -43,6 +43,50 @@ class RunSurvey:
     trial_types: tuple
 
 
+def analysis_tasks(entry, main_task):
+    """The task each part of an analysis takes its patterns from.
+
+    Parameters
+    ----------
+    entry : dict
+        A validated ``analyses`` entry (``task``, ``set_tasks``).
+    main_task : str
+        ``dataset.task``.
+
+    Returns
+    -------
+    dict
+        ``{set name: task}`` for a cross analysis, ``{None: task}`` for
+        every other kind; ``task`` defaults to ``main_task``, a set's task
+        to the analysis's.
+    """
+    task = entry.get("task") or main_task
+    if entry["kind"] == "cross":
+        set_tasks = entry.get("set_tasks") or {}
+        return {set_name: set_tasks.get(set_name) or task for set_name in entry["sets"]}
+    return {None: task}
+
+
+def study_tasks(study):
+    """Every task the study reads: ``dataset.task`` first, then the analyses' tasks, then the localizers' (each once).
+
+    Returns
+    -------
+    dict
+        task -> ``"patterns"`` (its runs get a GLM: the main task and any
+        task an analysis decodes) or ``"localizer"`` (read by localizer ROIs only).
+    """
+    main_task = study["dataset"]["task"]
+    tasks = {main_task: "patterns"}
+    for entry in study["analyses"]:
+        for task in analysis_tasks(entry, main_task).values():
+            tasks[task] = "patterns"
+    for roi in study["rois"]:
+        if "localizer" in roi:
+            tasks.setdefault(roi["localizer"]["task"], "localizer")
+    return tasks
+
+
 def required_conditions(study):
     """Every condition the config names, with where it is named and the task it must come from.
 
@@ -61,21 +105,20 @@ def required_conditions(study):
     default_task = study["dataset"]["task"]
     required = []
     for index, analysis in enumerate(study["analyses"]):
-        tasks = analysis.get("tasks") or {}
+        tasks = analysis_tasks(analysis, default_task)
         if analysis["kind"] == "within":
             for label, conditions in analysis["classes"].items():
-                required += [(condition, f"analyses[{index}].classes.{label}", tasks.get("train", default_task))
-                             for condition in conditions]
+                required += [(condition, f"analyses[{index}].classes.{label}", tasks[None]) for condition in conditions]
         elif analysis["kind"] != "cross":  # a registered kind names its own conditions (foldwise.study.register_analysis_kind)
             from foldwise.study import ANALYSIS_KINDS  # late: the study model imports this module
 
-            required += [(condition, f"analyses[{index}].{key}", tasks.get("train", default_task))
+            required += [(condition, f"analyses[{index}].{key}", tasks[None])
                          for key, condition in ANALYSIS_KINDS[analysis["kind"]].condition_keys(analysis)]
         else:
-            for position, (set_name, members) in enumerate(analysis["sets"].items()):
-                set_task = tasks.get("train" if position == 0 else "test", default_task)
-                required += [(condition, f"analyses[{index}].sets.{set_name}.{label}", set_task) for label, condition in members.items()]
-    required += [(condition, "glm.conditions", default_task) for condition in study["glm"].get("conditions", [])]
+            for set_name, members in analysis["sets"].items():
+                required += [(condition, f"analyses[{index}].sets.{set_name}.{label}", tasks[set_name])
+                             for label, condition in members.items()]
+    required += [(condition, "glm.conditions", None) for condition in study["glm"].get("conditions", [])]
     for index, roi in enumerate(study["rois"]):
         localizer = roi.get("localizer")
         if localizer:
@@ -90,7 +133,7 @@ def _grid(path):
     return image, shape, voxel_mm, int(image.shape[3]) if len(image.shape) > 3 else 1
 
 
-def survey_runs(runs, condition_column="trial_type"):
+def survey_runs(runs, condition_column="trial_type", main_task=""):
     """Read the headers of every run.
 
     Parameters
@@ -100,6 +143,8 @@ def survey_runs(runs, condition_column="trial_type"):
         ``events``, ``sidecar`` and optionally ``task``.
     condition_column : str
         The events column naming conditions.
+    main_task : str
+        The task of runs without a ``task`` entry (the study's main task).
 
     Returns
     -------
@@ -124,7 +169,7 @@ def survey_runs(runs, condition_column="trial_type"):
         frame = read_tsv(run["events"], required_columns=("onset", "duration", condition_column), what="events file",
                          text_columns=(condition_column,))
         labels = frame[condition_column].dropna().astype(str).str.strip()
-        surveys.append(RunSurvey(subject=run["subject"], session=run.get("session"), task=run.get("task", ""), run_id=run["run_id"],
+        surveys.append(RunSurvey(subject=run["subject"], session=run.get("session"), task=run.get("task", main_task), run_id=run["run_id"],
                                  events=str(run["events"]), n_volumes=n_volumes, tr_s=tr_s, grid=shape, voxel_mm=voxel_mm,
                                  trial_types=tuple(sorted(set(labels) - {"", "n/a"}))))
     return surveys
@@ -153,7 +198,11 @@ def missing_conditions(surveys, required):
     problems = []
     for subject, own in by_subject.items():
         for condition, where, task in required:
-            of_task = [survey for survey in own if not task or not survey.task or survey.task == task] or own
+            of_task = [survey for survey in own if survey.task == task] if task else own
+            if not of_task:
+                problems.append({"subject": subject, "condition": condition, "where": where, "task": task, "did_you_mean": [],
+                                 "events": own[0].events, "no_runs": True})
+                continue
             present = sorted({label for survey in of_task for label in survey.trial_types})
             if condition in present:
                 continue
@@ -214,7 +263,8 @@ def check_dataset(study, runs, config_path="the study config", surveys=None):
         the config key that names it, every other (subject, condition) pair
         lacking, and the closest trial types found (did you mean).
     """
-    surveys = survey_runs(runs, study["dataset"].get("condition_column", "trial_type")) if surveys is None else list(surveys)
+    surveys = survey_runs(runs, study["dataset"].get("condition_column", "trial_type"), study["dataset"]["task"]) if surveys is None \
+        else list(surveys)
     problems = missing_conditions(surveys, required_conditions(study))
     if problems:
         first = problems[0]
@@ -222,7 +272,10 @@ def check_dataset(study, runs, config_path="the study config", surveys=None):
         for problem in problems[:6]:
             hint = f" (did you mean {' or '.join(repr(name) for name in problem['did_you_mean'])}?)" if problem["did_you_mean"] else ""
             task = f" of task {problem['task']!r}" if problem["task"] else ""
-            parts.append(f"subject {problem['subject']} has no event {problem['condition']!r}{task}{hint}")
+            if problem.get("no_runs"):
+                parts.append(f"subject {problem['subject']} has no run of task {problem['task']!r} (needed for {problem['condition']!r})")
+            else:
+                parts.append(f"subject {problem['subject']} has no event {problem['condition']!r}{task}{hint}")
         more = f"; and {len(problems) - 6} more" if len(problems) > 6 else ""
         raise InputError(first["events"], first["where"], "; ".join(parts) + more,
                          f"correct the condition name in {config_path} or in the subject's events files "

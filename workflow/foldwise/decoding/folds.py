@@ -208,7 +208,7 @@ def task_of_run(run_label, default=None):
     return found.group(1) if found else default
 
 
-def pair_runs_across_tasks(run_labels, set_index, set_names=("A", "B")):
+def pair_runs_across_tasks(run_labels, set_index, set_names=("A", "B"), scheme="leave_one_run_out"):
     """Fold units for a cross analysis whose two sets come from different tasks' runs.
 
     Parameters
@@ -220,13 +220,17 @@ def pair_runs_across_tasks(run_labels, set_index, set_names=("A", "B")):
         0 or 1: the set (and so the task) of each pattern.
     set_names : (str, str)
         Named in messages.
+    scheme : str
+        The fold scheme; ``leave_one_session_out`` pairs by session instead
+        of by run index.
 
     Returns
     -------
     ndarray of str, shape (n_patterns,)
         Each pattern's unit: its run label without the task part, so run
         ``k`` of one task and run ``k`` of the other (same session) form one
-        unit, held out together by :func:`make_folds`.
+        unit, held out together by :func:`make_folds`; with
+        ``leave_one_session_out``, ``ses-<label>_runs`` (the session).
 
     Raises
     ------
@@ -244,7 +248,14 @@ def pair_runs_across_tasks(run_labels, set_index, set_names=("A", "B")):
     """
     runs = np.asarray(run_labels).astype(str)
     sets = np.asarray(set_index)
-    units = np.array([re.sub(r"(?<![A-Za-z0-9])task-[A-Za-z0-9]+_", "", label) for label in runs.tolist()], dtype=object)
+    if scheme == "leave_one_session_out":
+        sessions = [session_of_run(label) for label in runs.tolist()]
+        if None in sessions:
+            raise InputError(None, "folds.scheme", f"leave_one_session_out needs runs in sessions, but run {runs[sessions.index(None)]} "
+                                                   "has no session", "use leave_one_run_out, or a dataset with ses-<label> sessions")
+        units = np.array([f"ses-{session}_runs" for session in sessions], dtype=object)
+    else:
+        units = np.array([re.sub(r"(?<![A-Za-z0-9])task-[A-Za-z0-9]+_", "", label) for label in runs.tolist()], dtype=object)
     lacking = []
     for unit in sorted(set(units.tolist())):
         present = set(sets[units == unit].tolist())

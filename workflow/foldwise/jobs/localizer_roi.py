@@ -125,7 +125,8 @@ def run(inputs, outputs, params, log):
     mask = np.zeros(brain_flat.size, dtype=np.uint8)
     mask[voxels[chosen]] = 1
     save_nifti(outputs["mask"], mask.reshape(shape, order="F"), affine, dtype=np.uint8)
-    save_nifti(outputs["tmap"], _unmask(t_values, voxels, shape), affine)
+    if "tmap" in outputs:
+        save_nifti(outputs["tmap"], _unmask(t_values, voxels, shape), affine)
     write_json(outputs["info"], {"roi": name, "subject": subject, "n_voxels": int(chosen.sum()), "min_voxels": min_voxels,
                                  "definition": entry, "localizer_runs": len(runs), "dof": int(dof),
                                  "constraint_voxels": int(constraint.sum()),

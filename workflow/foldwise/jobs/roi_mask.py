@@ -22,6 +22,11 @@ def _needed(inputs, name, roi):
 def run(inputs, outputs, params, log):
     """Write ``mask`` (uint8 NIfTI on the brain-mask grid) and ``info`` (JSON) for one subject and ROI."""
     entry, subject = params["roi"], params["subject"]
+    if "localizer" in entry:
+        # Imported here: the localizer job reads the constraint through defined_region below.
+        from foldwise.jobs import localizer_roi
+
+        return localizer_roi.run(inputs, outputs, params, log)
     name = entry["name"]
     min_voxels = int(entry.get("min_voxels", _DEFAULT_MIN_VOXELS))
     brain, affine = read_brain_mask(inputs["brain_mask"])

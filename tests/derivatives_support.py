@@ -124,12 +124,14 @@ def main_codes(rng):
 
 
 def write_dataset(root, n_subjects=3, sessions=("1", "2"), runs_per_session=2, n_scans=None, seed=1,
-                  main_amplitude=1.2, localizer_amplitude=3.0, main_seed_offset=0, condition_rename=None, subject_rois=False):
+                  main_amplitude=1.2, localizer_amplitude=3.0, main_seed_offset=0, condition_rename=None, subject_rois=False,
+                  space=SPACE, res=RES):
     """Write the raw and derivatives trees under ``root``; return a dict of paths and truths.
 
     ``sessions=None`` writes a dataset without sessions (``runs_per_session``
     runs per task); ``subject_rois`` also writes one ROI image per subject
-    (``rois/sub-XX_ember.nii.gz``, the ember region).
+    (``rois/sub-XX_ember.nii.gz``, the ember region); ``space``/``res``
+    name the derivatives (``res=""``: no ``res-`` part).
 
     ``main_seed_offset`` changes the main task's data only (the localizer's
     stays the same bits); ``condition_rename`` maps (subject, condition) to
@@ -148,7 +150,7 @@ def write_dataset(root, n_subjects=3, sessions=("1", "2"), runs_per_session=2, n
     (raw / "dataset_description.json").write_text(json.dumps({"Name": "lanterns (simulated)", "BIDSVersion": "1.8.0"}))
     (deriv / "dataset_description.json").parent.mkdir(parents=True, exist_ok=True)
     (deriv / "dataset_description.json").write_text(json.dumps({"Name": "prep", "BIDSVersion": "1.8.0", "DatasetType": "derivative"}))
-    atlas_path = root / "atlas" / f"space-{SPACE}_atlas.nii.gz"
+    atlas_path = root / "atlas" / f"space-{space}_atlas.nii.gz"
     _write_nifti(atlas_path, atlas_labels(), dtype=np.int16)
     names = {1: "ember_L", 2: "ember_R", 3: "glow_L", 4: "glow_R"}
     pd.DataFrame({"index": list(names), "name": list(names.values())}).to_csv(root / "atlas" / "atlas_labels.tsv", sep="\t", index=False)
@@ -190,8 +192,9 @@ def write_dataset(root, n_subjects=3, sessions=("1", "2"), runs_per_session=2, n
                     bold = series.T.reshape(GRID + (total,), order="F")
                     stem = (f"sub-{subject}/func/sub-{subject}_task-{task}_run-{run}" if session is None else
                             f"sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}")
-                    _write_nifti(deriv / f"{stem}_space-{SPACE}_res-{RES}_desc-preproc_bold.nii.gz", bold)
-                    _write_nifti(deriv / f"{stem}_space-{SPACE}_res-{RES}_desc-brain_mask.nii.gz",
+                    entities = f"_space-{space}" + (f"_res-{res}" if res else "")
+                    _write_nifti(deriv / f"{stem}{entities}_desc-preproc_bold.nii.gz", bold)
+                    _write_nifti(deriv / f"{stem}{entities}_desc-brain_mask.nii.gz",
                                  brain().astype(np.uint8), dtype=np.uint8)
                     confounds = pd.DataFrame(motion, columns=list(MOTION))
                     for component in range(N_COMPONENTS):

@@ -346,7 +346,7 @@ def example_config(name, written, **changes):
         config["dataset"].update({"atlas_image": str(written["atlas_image"]), "atlas_labels": str(written["atlas_labels"])})
     for roi in config["rois"]:
         if "image" in roi:
-            roi["image"] = str(Path(written["raw"]).parent / "rois" / Path(roi["image"]).name)
+            roi["image"] = str(Path(written["raw"]).parent / "rois" / Path(roi["image"]).name)  # keeps {subject}
     for dotted, value in changes.items():
         node, *parts = dotted.split(".")
         target = config[node]
@@ -389,3 +389,17 @@ def test_decoding_inside_the_roi_the_same_task_defined_is_refused(dataset):
     with pytest.raises(InputError) as excinfo:
         build_study(validate(config, path="s.yaml"), path="s.yaml")
     assert "circular" in excinfo.value.problem and excinfo.value.field == "analyses[1].rois"
+
+
+def test_native_example_reads_each_subjects_own_roi_image(tmp_path):
+    written = simulated.write_dataset(tmp_path, n_subjects=2, sessions=None, runs_per_session=2, subject_rois=True, space="T1w", res="")
+    config = validate(example_config("native_space_subject_rois.yaml", written), path="native.yaml")
+    study = build_study(config, path="native.yaml")
+    for subject in ("01", "02"):
+        inputs = study_plan.job_inputs(study, "roi_mask", {"subject": subject, "roi": "ember"})
+        assert inputs["image"] == str(tmp_path / "rois" / f"sub-{subject}_ember.nii.gz")
+    (tmp_path / "rois" / "sub-02_ember.nii.gz").unlink()
+    with pytest.raises(InputError) as excinfo:
+        build_study(config, path="native.yaml")
+    assert excinfo.value.field == "rois[0].image" and "subject(s) 02" in excinfo.value.problem
+    assert excinfo.value.file.endswith("sub-02_ember.nii.gz")

@@ -17,6 +17,7 @@ through both.
 """
 
 import difflib
+import os
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Callable
@@ -571,9 +572,26 @@ def build_study(config, path="the study config"):
     analyses = _build_analyses(config, list(rois), searchlight_names)
     check_events(config, plan.runs + plan.localizer_runs, path)
     _check_task_pairing(config, plan, path, searchlight_names)
+    _check_subject_images(config, plan.subjects, path)
     return Study(config=config, config_file=str(path), subjects=plan.subjects, runs=plan.runs, rois=rois, analyses=analyses,
                  searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])),
                  localizer_runs=plan.localizer_runs)
+
+
+def _check_subject_images(config, subjects, path):
+    """An ROI image with {subject} in its path exists for every subject (else one message naming the first missing file)."""
+    for index, roi in enumerate(config["rois"]):
+        image = roi.get("image") or roi.get("localizer", {}).get("within", {}).get("image")
+        if not image or "{subject}" not in image:
+            continue
+        missing = [subject for subject in subjects if not os.path.isfile(image.replace("{subject}", subject))]
+        if missing:
+            key = f"rois[{index}].image" if "image" in roi else f"rois[{index}].localizer.within.image"
+            raise InputError(image.replace("{subject}", missing[0]), key,
+                             f"no ROI image for subject(s) {', '.join(missing[:8])}{' ...' if len(missing) > 8 else ''} "
+                             f"({len(subjects) - len(missing)} of {len(subjects)} subjects have one)",
+                             "write each subject's ROI image where the path says ({subject} is the label without sub-), "
+                             "or exclude the subject with dataset.exclude_subjects")
 
 
 def _check_task_pairing(config, plan, path, searchlight_names):

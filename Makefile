@@ -41,6 +41,15 @@ study: $(STAMP)
 check: $(STAMP)
 	$(BIN)/python -m foldwise.data.check --config $(CONFIG)
 
+# A dry run: validates the study config and lists the jobs it would run, without running any.
+.PHONY: dry-run config-reference
+dry-run: $(STAMP)
+	$(BIN)/snakemake -n --quiet rules --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES)
+
+# Rewrite the README's config reference from config/schema.yaml (tests/test_readme.py checks they agree).
+config-reference: $(STAMP)
+	cd workflow && ../$(BIN)/python -m foldwise.report.config_reference --write ../README.md
+
 test: $(STAMP)
 	$(BIN)/python -m pytest $(PYTEST_ARGS)
 

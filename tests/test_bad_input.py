@@ -702,6 +702,65 @@ def _one_summary_volume(folder):
                                            "schemas. Fix: correct brain_mask.summary_volumes (see the README's config reference)")
 
 
+# -- nothing silently wrong (docs/reliability.md) --
+@case("--config override with an unknown key", "config.apply_overrides via common.smk, before any job")
+def _override_unknown_key(folder):
+    from foldwise.config import apply_overrides
+    return Expectation(lambda: apply_overrides(_study(), ["study={sede: 3}"], "config/study.yaml"),
+                       "--config: study: unknown key 'sede' (did you mean 'seed'?) (passed as 'study={sede: 3}'). "
+                       "Fix: remove or rename it; allowed keys here: name, seed, store_dir")
+
+
+@case("--config override of a list entry the config does not have", "config.apply_overrides via common.smk, before any job")
+def _override_missing_entry(folder):
+    from foldwise.config import apply_overrides
+    return Expectation(lambda: apply_overrides(_study(), ["set=analyses[3].n_permutations=10"], "config/study.yaml"),
+                       "--config: set=analyses[3].n_permutations=10: analyses[3] is not an existing list entry. "
+                       "Fix: index an entry the config file lists, or pass the whole list: --config 'key=[...]'")
+
+
+@case("installed package version differs from the lock", "provenance.environment.check_environment via common.smk, before any job")
+def _package_drift(folder):
+    from foldwise.provenance.environment import check_environment
+    (folder / "lock.txt").write_text("numpy==2.4.6\npandas==3.1.1\n", encoding="utf-8")
+    installed = {"python": "3.11.7", "numpy": "2.4.6", "pandas": "3.1.2"}
+    return Expectation(lambda: check_environment(folder / "lock.txt", installed=installed, environ={}),
+                       f"{FOLDER}/lock.txt: pandas: the environment differs from the lock (pandas 3.1.1 locked, 3.1.2 installed); "
+                       "results would mix versions. Fix: run `make env` to install the locked versions, or set "
+                       "FOLDWISE_PACKAGE_CHANGE=rerun (make ... PACKAGE_CHANGE=rerun) to recompute every job with the installed ones")
+
+
+@case("RepetitionTime given in milliseconds", "bids.read_tr_s (GLM job; make check)")
+def _tr_in_milliseconds(folder):
+    (folder / "bold.json").write_text('{"RepetitionTime": 2000}', encoding="utf-8")
+    return Expectation(lambda: bids.read_tr_s(folder / "bold.json", None, folder / "bold.nii.gz"),
+                       f"{FOLDER}/bold.json: RepetitionTime: 2000 looks like milliseconds (BIDS gives RepetitionTime in seconds). "
+                       "Fix: write it in seconds: 2")
+
+
+@case("input file is a broken symbolic link (annexed content not fetched)", "fileio.load_nifti / read_tsv; bids.discover_runs, before any job")
+def _broken_link(folder):
+    from foldwise.data.fileio import load_nifti
+    os.symlink(folder / ".annex" / "objects" / "missing", folder / "sub-01_bold.nii.gz")
+    return Expectation(lambda: load_nifti(folder / "sub-01_bold.nii.gz", what="BOLD image"),
+                       f"{FOLDER}/sub-01_bold.nii.gz: file: the BOLD image is a symbolic link whose target is missing (its content "
+                       "is not present, as in an annexed dataset whose content was not fetched). Fix: fetch the content "
+                       "(e.g. git annex get on the dataset) or replace the link by the real file")
+
+
+@case("a result changed after its job wrote it", "provenance.runs.finish_run, at the end of every run")
+def _result_changed_after_its_job(folder):
+    from foldwise.provenance.runs import finish_run
+    result = folder / "group.tsv"
+    result.write_text("roi\tmean\nember\t0.9\n", encoding="utf-8")
+    record = {"outputs": [{"name": "table", "path": str(result), "sha256": "0" * 64}]}
+    (folder / "group.json").write_text(json.dumps(record), encoding="utf-8")
+    return Expectation(lambda: finish_run([str(folder / "group.json")], folder / "store"),
+                       f"{FOLDER}/group.tsv: sha256: its content differs from the sha256 its provenance record lists "
+                       f"({FOLDER}/group.json); it was changed after its job wrote it. Fix: delete the file and rerun (its job "
+                       "makes it again), or rerun its job with --forcerun <rule>")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

@@ -203,3 +203,26 @@ def test_no_module_climbs_out_of_the_package_or_cites_a_missing_design_page():
         text = path.read_text(encoding="utf-8")
         assert not re.search(r"parents\[\d\]\s*/\s*[\"']config", text), f"{path} reads a file outside the package"
         assert "DESIGN.md" not in text, f"{path} cites a design page that is not in the repository"
+
+
+def test_every_job_writes_the_contract_columns():
+    """One definition per table: the jobs take their columns from foldwise.contract (the same objects, not copies)."""
+    from foldwise.jobs import decode, decode_gather, glm, group, searchlight_group
+
+    assert glm.TABLE_COLUMNS is contract.PATTERN_TABLE_COLUMNS and decode.TABLE_COLUMNS is contract.PATTERN_TABLE_COLUMNS
+    assert decode.SCORE_COLUMNS is contract.SCORE_COLUMNS and decode_gather.SCORE_COLUMNS is contract.SCORE_COLUMNS
+    assert decode.NULL_COLUMNS is contract.NULL_COLUMNS and decode.CONFUSION_COLUMNS is contract.CONFUSION_COLUMNS
+    assert decode_gather.SUMMARY_COLUMNS is contract.SUMMARY_COLUMNS
+    assert group.TABLE_COLUMNS == list(contract.GROUP_COLUMNS) and group.NULL_COLUMNS == list(contract.GROUP_NULL_COLUMNS)
+    assert searchlight_group.TABLE_COLUMNS is contract.SEARCHLIGHT_GROUP_COLUMNS
+
+
+def test_one_grid_tolerance_and_one_brain_mask_reader():
+    from foldwise.jobs import brain_mask, glm, searchlight_block, searchlight_group, searchlight_merge
+
+    for module in (brain_mask, glm, searchlight_block, searchlight_group):
+        assert module.GRID_TOLERANCE_MM is contract.GRID_TOLERANCE_MM
+    for module in (searchlight_block, searchlight_merge, searchlight_group):
+        assert module.load_brain_mask is contract.read_brain_mask
+    assert not re.search(r"TOLERANCE_MM\s*=\s*[0-9]", "".join(path.read_text(encoding="utf-8")
+                                                             for path in (REPO / "workflow" / "foldwise" / "jobs").glob("*.py")))

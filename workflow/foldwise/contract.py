@@ -13,7 +13,7 @@ from foldwise.data.fileio import load_nifti, read_tsv
 from foldwise.errors import InputError
 
 __all__ = [
-    "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "provenance_path", "log_path", "benchmark_path",
+    "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "cross_directions", "provenance_path", "log_path", "benchmark_path",
     "PATTERN_TABLE_COLUMNS", "SCORE_COLUMNS", "NULL_COLUMNS", "RANKING_COLUMNS", "CONFUSION_COLUMNS", "SUMMARY_COLUMNS",
     "ROI_COUNT_COLUMNS", "GROUP_COLUMNS", "GROUP_NULL_COLUMNS", "SEARCHLIGHT_GROUP_COLUMNS", "SEARCHLIGHT_DIRECTION_COLUMNS",
     "TABLE_COLUMNS", "read_brain_mask", "read_table",
@@ -97,16 +97,32 @@ def benchmark_path(step, identity):
     return f"results/benchmarks/{step}/{identity}.tsv"
 
 
-# -- table columns (every TSV the workflow writes, in column order) -------------------
+def cross_directions(set_names):
+    """The five directions of a cross analysis, in the order of every table and map: A->B, B->A, A<->B, A->A, B->B.
+
+    ``A->B`` trains on set A and tests on set B; ``A<->B`` is the mean of the
+    two; ``A->A`` and ``B->B`` decode within each set.
+
+    >>> cross_directions(["seen", "heard"])
+    ('seen->heard', 'heard->seen', 'seen<->heard', 'seen->seen', 'heard->heard')
+    """
+    first, second = set_names
+    return (f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}", f"{first}->{first}", f"{second}->{second}")
+
+
+# -- table columns (every TSV the workflow writes, in column order; jobs import them from here) ---
 PATTERN_TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
 SCORE_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "fold", "test_runs", "n_train", "n_test",
-                 "accuracy", "balanced_accuracy")
+                 "accuracy", "balanced_accuracy", "p_perm", "p_min", "n_relabelings", "null_exact")
 NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation", "balanced_accuracy", "accuracy")
 RANKING_COLUMNS = ("fold", "rank", "voxel_index", "i", "j", "k", "score")  # cross analyses: train_set first
 CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
-SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy", "balanced_accuracy", "chance")
+SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy", "balanced_accuracy", "chance",
+                   "p_perm", "p_min", "n_relabelings", "null_exact")
 ROI_COUNT_COLUMNS = ("subject", "roi", "n_voxels", "min_voxels")
-GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low", "ci_high")  # leading columns
+GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low", "ci_high", "effect_size", "t",
+                 "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global", "prevalence_gamma0", "prevalence_p_majority",
+                 "prevalence_p_global_fwe", "prevalence_gamma0_fwe", "prevalence_gamma0_max", "n_used", "subject_p_min", "family")
 GROUP_NULL_COLUMNS = ("roi", "direction", "n_voxels", "draw", "mean")
 SEARCHLIGHT_DIRECTION_COLUMNS = ("volume", "direction")
 SEARCHLIGHT_GROUP_COLUMNS = ("analysis", "direction", "n_subjects", "n_voxels", "chance", "n_permutations", "n_draws", "alpha",

@@ -31,6 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from foldwise import contract
 from foldwise.decoding import classifiers as clf
 from foldwise.errors import InputError
 from foldwise.decoding.folds import held_out_runs, make_folds
@@ -369,10 +370,7 @@ def confusion_counts(true_labels, predicted, n_classes):
     return np.bincount(truth * n_classes + guess, minlength=n_classes * n_classes).reshape(n_classes, n_classes)
 
 
-def cross_directions(set_names):
-    """The five cross-decoding directions in reporting order: A->B, B->A, A<->B, A->A, B->B."""
-    first, second = set_names
-    return (f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}", f"{first}->{first}", f"{second}->{second}")
+cross_directions = contract.cross_directions  # the direction names are part of the data contract
 
 
 # -- options ------------------------------------------------------------------------

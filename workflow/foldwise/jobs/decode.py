@@ -16,7 +16,7 @@ null); the random voxel orders of selection ``none`` come from
 import numpy as np
 import pandas as pd
 
-from foldwise.contract import GRID_TOLERANCE_MM
+from foldwise.contract import CONFUSION_COLUMNS, GRID_TOLERANCE_MM, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import subject_p
 from foldwise.errors import InputError
@@ -36,12 +36,7 @@ __all__ = [
     "run",
 ]
 
-TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
-SCORE_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "fold", "test_runs", "n_train", "n_test",
-                 "accuracy", "balanced_accuracy", "p_perm", "p_min", "n_relabelings", "null_exact")
-NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation", "balanced_accuracy", "accuracy")
-RANKING_COLUMNS = ("fold", "rank", "voxel_index", "i", "j", "k", "score")
-CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
+TABLE_COLUMNS = PATTERN_TABLE_COLUMNS  # the columns of every table: defined once, in the data contract
 _RUN_SEPARATOR = "+"  # joins the held-out runs of a fold in test_runs
 
 

@@ -10,15 +10,12 @@ number of folds, and chance = 1 / number of classes.
 import numpy as np
 import pandas as pd
 
-from foldwise.decoding.curves import cross_directions
+from foldwise.contract import SCORE_COLUMNS, SUMMARY_COLUMNS, cross_directions
 from foldwise.errors import InputError
 from foldwise.data.fileio import read_tsv, write_tsv
-from foldwise.jobs.decode import SCORE_COLUMNS
 
 __all__ = ["SUMMARY_COLUMNS", "gather_scores", "summarise_scores", "run"]
 
-SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy", "balanced_accuracy", "chance",
-                   "p_perm", "p_min", "n_relabelings", "null_exact")
 
 
 def _directions(analysis):

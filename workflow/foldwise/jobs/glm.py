@@ -9,12 +9,13 @@ from foldwise.data.bids import (confound_table_columns, count_flagged_initial_vo
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_tsv
 from foldwise.glm.estimate import estimate_patterns
+from foldwise import contract
 from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
 from foldwise.masks.build import same_grid
 
 __all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_labels", "design_figure"]
 
-TABLE_COLUMNS = ("volume", "subject", "session", "run_id", "condition", "trial_index", "onset_s")
+TABLE_COLUMNS = contract.PATTERN_TABLE_COLUMNS  # defined once, in the data contract
 _MAX_LABELS = 24
 
 

@@ -14,6 +14,7 @@ import pandas as pd
 
 # Absolute imports on purpose: foldwise.provenance.hashing.module_closure (the rule's code
 # hash) follows ``from .x`` and ``from foldwise.x`` but not ``from ..x``.
+from foldwise import contract
 from foldwise.stats import group as group_stats
 from foldwise.errors import InputError
 from foldwise.data.fileio import gunzip_bytes, write_text_atomic, write_tsv
@@ -25,12 +26,9 @@ SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_use
                    "accuracy", "balanced_accuracy", "chance")
 SUBJECT_NULL_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "permutation",
                         "balanced_accuracy", "accuracy")
-TABLE_COLUMNS = ["analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low",
-                 "ci_high", "effect_size", "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global",
-                 "prevalence_gamma0", "prevalence_p_majority", "prevalence_p_global_fwe", "prevalence_gamma0_fwe",
-                 "prevalence_gamma0_max", "n_used", "subject_p_min", "family"]
+TABLE_COLUMNS = list(contract.GROUP_COLUMNS)  # the written columns: defined once, in the data contract
 FAMILIES = ("per_direction", "all_directions", "all_analyses")
-NULL_COLUMNS = ["roi", "direction", "n_voxels", "draw", "mean"]
+NULL_COLUMNS = list(contract.GROUP_NULL_COLUMNS)
 
 _KEY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels")
 _CHANCE_TOLERANCE = 1e-6  # chance levels travel as 7-digit text

@@ -35,13 +35,12 @@ from foldwise.provenance.hashing import seed_from
 from foldwise.searchlight.engine import analysis_outline
 from foldwise.stats.maps import group_permutation_maps, tfce
 from foldwise.masks.build import same_grid
-from foldwise.jobs.searchlight_block import GRID_TOLERANCE_MM, load_brain_mask
+from foldwise.contract import GRID_TOLERANCE_MM, SEARCHLIGHT_GROUP_COLUMNS
+from foldwise.contract import read_brain_mask as load_brain_mask
 
 __all__ = ["run", "TABLE_COLUMNS"]
 
-TABLE_COLUMNS = ("analysis", "direction", "n_subjects", "n_voxels", "chance", "n_permutations", "n_draws", "alpha",
-                 "n_voxels_p_below_alpha", "n_voxels_p_fwe_below_alpha", "peak_accuracy", "peak_i", "peak_j", "peak_k",
-                 "peak_p", "peak_p_fwe")
+TABLE_COLUMNS = SEARCHLIGHT_GROUP_COLUMNS  # defined once, in the data contract
 # Null maps enhanced per scipy.ndimage.label call (memory: this many brain-grid volumes).
 _TFCE_BATCH = 64
 

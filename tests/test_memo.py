@@ -159,3 +159,47 @@ def test_parallel_writers_of_one_entry_leave_one_complete_entry(tmp_path):
     record = json.loads(Path(entry / "entry.json").read_text())
     assert record["files"][0]["sha256"] == hash_file(source) == hash_file(entry / "0")
     assert os.listdir(tmp_path / "store" / "incoming") == []
+
+
+def test_in_process_jobs_match_job_processes_and_fail_without_ending_the_process(tmp_path, monkeypatch, capsys):
+    # run_in_process (a rule's run: block inside Snakemake) must give the same outputs and record as run_job,
+    # and bad input must raise (Snakemake then marks the job failed) instead of calling sys.exit.
+    import threading
+
+    from foldwise.provenance.memo import JobFailed, run_in_process
+
+    monkeypatch.chdir(tmp_path)
+    _double.calls = 0
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    by_process = _fake_smk(tmp_path / "a", {"times": 2})
+    run_job(by_process, step="double", job=_double)
+    smk = _fake_smk(tmp_path / "b", {"times": 2})
+    results = []
+    # Two jobs in two threads at once, as Snakemake runs them: each log holds only its own job's lines.
+    second = _fake_smk(tmp_path / "b", {"times": 3})
+    second.output = _Named(doubled=str(tmp_path / "b" / "out" / "tripled.txt"), provenance=str(tmp_path / "b" / "prov" / "job3.json"))
+    second.log = [str(tmp_path / "b" / "logs" / "job3.log")]
+    threads = [threading.Thread(target=lambda s=s: results.append(run_in_process("double", _double, s.input, s.output, s.params,
+                                                                                  s.wildcards, s.log, s.config)))
+               for s in (smk, second)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert Path(smk.output.doubled).read_bytes() == Path(by_process.output.doubled).read_bytes() == b"alphaalpha"
+    assert Path(second.output.doubled).read_text() == "alpha" * 3
+    first_record = json.loads(Path(by_process.output.provenance).read_text())
+    record = json.loads(Path(smk.output.provenance).read_text())
+    assert record["key"] == first_record["key"] and record["outputs"][0]["sha256"] == first_record["outputs"][0]["sha256"]
+    assert record["cpu_time_s"] >= 0
+    for log_path, other_key in ((smk.log[0], json.loads(Path(second.output.provenance).read_text())["key"]), (second.log[0], record["key"])):
+        assert other_key not in Path(log_path).read_text()
+
+    def refuse(inputs, outputs, settings, log):
+        raise InputError("in.txt", "times", "not a number", "give a whole number")
+
+    broken = _fake_smk(tmp_path / "b", {"times": "x"})
+    with pytest.raises(JobFailed, match="in.txt: times: not a number"):
+        run_in_process("double", refuse, broken.input, broken.output, broken.params, broken.wildcards, broken.log, broken.config)
+    assert "foldwise: in.txt: times: not a number" in capsys.readouterr().err

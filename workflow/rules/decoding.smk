@@ -1,5 +1,7 @@
 # Per subject x analysis x ROI: fold-aware selection, decoding curves and the
 # permutation null (one job); per subject x analysis: the gathered tables.
+from foldwise.jobs import decode_gather as decode_gather_job
+from foldwise.provenance.memo import run_in_process
 
 
 rule decode:
@@ -38,7 +40,7 @@ rule decode_gather:
     resources:
         mem_mb=500,
         runtime=5,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/decode_gather.py"
+    # Inside Snakemake's process (no conda: here; run: takes none): a job process of
+    # its own would spend more CPU starting Python and importing than the step takes.
+    run:
+        run_in_process("decode_gather", decode_gather_job.run, input, output, params, wildcards, log, config)

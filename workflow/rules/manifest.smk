@@ -1,4 +1,6 @@
 # The manifest: every output file with its sha256 and the job that made it.
+from foldwise.jobs import manifest as manifest_job
+from foldwise.provenance.memo import run_in_process
 
 
 rule manifest:
@@ -15,7 +17,7 @@ rule manifest:
     resources:
         mem_mb=500,
         runtime=5,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/manifest.py"
+    # Inside Snakemake's process (no conda: here; run: takes none): a job process of
+    # its own would spend more CPU starting Python and importing than the step takes.
+    run:
+        run_in_process("manifest", manifest_job.run, input, output, params, wildcards, log, config)

@@ -1,4 +1,7 @@
 # Per subject x ROI: the ROI mask on the subject's grid; per subject: the counts table.
+from foldwise.jobs import roi_counts as roi_counts_job
+from foldwise.jobs import roi_mask as roi_mask_job
+from foldwise.provenance.memo import run_in_process
 
 
 rule roi_mask:
@@ -15,10 +18,10 @@ rule roi_mask:
     resources:
         mem_mb=1000,
         runtime=5,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/roi_mask.py"
+    # Inside Snakemake's process (no conda: here; run: takes none): a job process of
+    # its own would spend more CPU starting Python and importing than the step takes.
+    run:
+        run_in_process("roi_mask", roi_mask_job.run, input, output, params, wildcards, log, config)
 
 
 rule roi_counts:
@@ -35,7 +38,7 @@ rule roi_counts:
     resources:
         mem_mb=500,
         runtime=5,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/roi_counts.py"
+    # Inside Snakemake's process (no conda: here; run: takes none): a job process of
+    # its own would spend more CPU starting Python and importing than the step takes.
+    run:
+        run_in_process("roi_counts", roi_counts_job.run, input, output, params, wildcards, log, config)

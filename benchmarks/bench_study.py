@@ -194,7 +194,7 @@ def study_config(shape, demo_root):
         "dataset": {"source": "bids", "bids_root": os.path.join(demo_root, "bids"),
                     "atlas_image": os.path.join(demo_root, "atlas", "atlas.nii.gz"),
                     "atlas_labels": os.path.join(demo_root, "atlas", "atlas_labels.tsv"), "confounds": CONFOUNDS},
-        "glm": {"noise_model": "ar1", "statistic": "t", "pattern_mode": "per_condition"},
+        "glm": {"serial_correlation": "ar1_whiten", "statistic": "t", "pattern_mode": "per_condition"},
         "rois": copy.deepcopy(ROIS),
         "analyses": [
             {"name": "shape", "kind": "within", "classes": {"round": ["seen_round"], "square": ["seen_square"], "star": ["seen_star"]},

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Callable
 
+from foldwise import contract
 from foldwise.data import check as dataset_check
 from foldwise.data import demo
 from foldwise.errors import InputError
@@ -44,16 +45,7 @@ __all__ = [
     "cross_directions",
 ]
 
-def cross_directions(set_names):
-    """The five directions of a cross analysis, in the order of every table and map.
-
-    ``a->b`` (train on a, test on b), ``b->a``, ``a<->b`` (their mean),
-    ``a->a`` and ``b->b`` (within each set, leave-one-run-out).
-    Same order as :func:`foldwise.decoding.curves.cross_directions`, which the
-    jobs use (tests/test_study.py checks that they agree).
-    """
-    first, second = set_names
-    return (f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}", f"{first}->{first}", f"{second}->{second}")
+cross_directions = contract.cross_directions  # the order of every table and map (one definition)
 
 
 # -- analysis kinds ------------------------------------------------------------

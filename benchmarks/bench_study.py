@@ -224,6 +224,11 @@ def provenance_records(folder):
     return records
 
 
+def record_stamps(folder):
+    """Provenance record -> mtime_ns: a job that ran (computed or restored) rewrote its record."""
+    return {path: os.stat(path).st_mtime_ns for path in glob.glob(os.path.join(folder, "results", "provenance", "*", "*.json"))}
+
+
 def script_rule(argv0):
     """The rule of a job process from Snakemake's temporary script name (``tmpXXXX.<script>.py``), else a label."""
     name = os.path.basename(argv0)
@@ -261,11 +266,12 @@ def measure_study(label, tree, data_root, demo_root, shape, scratch, cores, read
     print(f"bench_study: [{label}] the study from empty results ...", flush=True)
     wall_s, cpu_s, processes = run_snakemake(tree, folder, study_path, scratch, cores)
     records = provenance_records(folder)
+    before = record_stamps(folder)
     write_text(study_path, yaml.safe_dump(one_roi_changed(study), sort_keys=False))
     print(f"bench_study: [{label}] one-ROI change ...", flush=True)
-    roi_wall_s, roi_cpu_s, roi_processes = run_snakemake(tree, folder, study_path, scratch, cores)
-    roi_jobs = sum(1 for process in roi_processes if script_rule(process["argv0"]) not in ("snakemake",) and
-                   not script_rule(process["argv0"]).startswith("other"))
+    roi_wall_s, roi_cpu_s, _ = run_snakemake(tree, folder, study_path, scratch, cores)
+    after = record_stamps(folder)
+    roi_jobs = sum(1 for path, stamp in after.items() if before.get(path) != stamp)
     result = {"label": label, "wall_s": wall_s, "cpu_s": cpu_s, "records": records, "processes": processes,
               "roi_wall_s": roi_wall_s, "roi_cpu_s": roi_cpu_s, "roi_jobs": roi_jobs, "cores": cores}
     shutil.rmtree(folder, ignore_errors=True)
@@ -309,14 +315,20 @@ def report_study(result, reads_s):
     print(f"{'rule':16s} {'jobs':>5s} {'in-job CPU s':>13s} {'in-job wall s':>14s} {'process CPU s':>14s} {'fixed CPU/job s':>16s}")
     for rule in sorted(table, key=lambda name: -table[name]["proc_cpu_s"]):
         row = table[rule]
-        fixed = ((row["proc_cpu_s"] - row["in_cpu_s"]) / row["jobs"]) if (row["jobs"] and row["has_cpu"]) else float("nan")
+        if row["jobs"] and not row["procs"]:
+            fixed = f"{'in-process':>16s}"  # a run: block in Snakemake's own process: its cost is in the snakemake row
+        elif row["jobs"] and row["has_cpu"]:
+            fixed = f"{(row['proc_cpu_s'] - row['in_cpu_s']) / row['jobs']:16.2f}"
+        else:
+            fixed = f"{'':>16s}"
         in_cpu = f"{row['in_cpu_s']:13.1f}" if row["has_cpu"] and row["jobs"] else f"{'n/a':>13s}"
-        print(f"{rule:16s} {row['jobs'] or row['procs']:5d} {in_cpu} {row['in_wall_s']:14.1f} {row['proc_cpu_s']:14.1f} {fixed:16.2f}")
+        print(f"{rule:16s} {row['jobs'] or row['procs']:5d} {in_cpu} {row['in_wall_s']:14.1f} {row['proc_cpu_s']:14.1f} {fixed}")
     jobs_cpu_s = sum(row["proc_cpu_s"] for name, row in table.items() if name != "snakemake")
     total_in_cpu = f"{in_cpu_s:13.1f}" if has_cpu else f"{'n/a':>13s}"
     all_processes_s = jobs_cpu_s + table.get("snakemake", {}).get("proc_cpu_s", 0.0)
     print(f"{'total':16s} {len(records):5d} {total_in_cpu} {in_wall_s:14.1f} {all_processes_s:14.1f}")
-    print(f"  (process CPU of 'snakemake': the scheduler process itself; n/a: this tree's records hold no cpu_time_s)")
+    print("  (process CPU of 'snakemake': the scheduler process itself, with the jobs it runs in-process; "
+          "n/a: this tree's records hold no cpu_time_s)")
     print(f"\n  wall {result['wall_s']:.1f} s, CPU {result['cpu_s']:.1f} s (Snakemake + every job, getrusage of children)")
     print(f"  read floor (every BOLD file once, nibabel float32): {floor_s:.1f} s CPU over {len(reads_s)} files")
     print(f"  total CPU / read floor          {result['cpu_s'] / floor_s:6.2f}   {verdict(result['cpu_s'] / floor_s, TARGET_CPU_PER_READ)}")
@@ -350,8 +362,8 @@ def report_study(result, reads_s):
         median = statistics.median(mask_ratios)
         print(f"  brain mask in-job {'CPU' if has_cpu else 'WALL'} / reads of the subject's runs: median {median:.3f}, "
               f"max {max(mask_ratios):.3f}   {verdict(median, TARGET_MASK_PER_READ)} (median)")
-    print(f"  one-ROI change: wall {result['roi_wall_s']:.1f} s, CPU {result['roi_cpu_s']:.1f} s, {result['roi_jobs']} job processes"
-          f"   {verdict(result['roi_wall_s'], TARGET_ROI_CHANGE_STUDY_S)} (wall; full shape only)")
+    print(f"  one-ROI change: wall {result['roi_wall_s']:.1f} s, CPU {result['roi_cpu_s']:.1f} s, {result['roi_jobs']} jobs ran"
+          f"   {verdict(result['roi_wall_s'], TARGET_ROI_CHANGE_STUDY_S)} (wall; the target is for the full shape)")
 
 
 def report_demo(result):

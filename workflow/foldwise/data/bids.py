@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, read_tsv
+from foldwise.data.fileio import load_nifti, missing_file_error, read_tsv
 
 __all__ = [
     "PLACEHOLDERS",
@@ -453,6 +453,9 @@ def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None,
         if not main_task:
             entry["task"] = task
         entry.update(run_files(raw_root, patterns, task, subject, session, run, derivatives_root=derivatives_root, space=space, res=res))
+        for name, value in entry.items():  # an annexed file without content is a broken link: say so before any job
+            if isinstance(value, (str, os.PathLike)) and os.path.islink(value) and not os.path.exists(value):
+                raise missing_file_error(value, f"{name} file")
         runs.append(entry)
     runs.sort(key=lambda entry: (_natural_key(entry["subject"]), _natural_key(entry["session"]), _natural_key(entry["run"])))
     return runs
@@ -508,6 +511,9 @@ def _header_tr_s(header):
     return None  # hz, ppm, rads: pixdim[4] is not a time step here
 
 
+_MAX_TR_S = 100.0  # a RepetitionTime above this is read as milliseconds given by mistake
+
+
 def read_tr_s(sidecar_path, header, bold_path):
     """The repetition time in seconds, from the sidecar, checked against the header.
 
@@ -552,11 +558,15 @@ def read_tr_s(sidecar_path, header, bold_path):
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value) or value <= 0:
         raise InputError(sidecar_path, "RepetitionTime", f"expected a positive number of seconds, got {value!r}",
                          "give RepetitionTime in seconds, e.g. 2.0")
+    if value > _MAX_TR_S:  # no fMRI run has a TR of minutes: this is milliseconds (common practice, no source)
+        raise InputError(sidecar_path, "RepetitionTime", f"{value!r} looks like milliseconds (BIDS gives RepetitionTime in seconds)",
+                         f"write it in seconds: {value / 1000:g}")
     tr_s = float(value)
     header_tr_s = _header_tr_s(header)
     if header_tr_s is not None and abs(header_tr_s - tr_s) > _TR_TOLERANCE_S:
         raise InputError(sidecar_path, "RepetitionTime",
-                         f"the sidecar says {tr_s:g} s but the header of {bold_path} (pixdim[4]) says {header_tr_s:g} s",
+                         f"the sidecar says {tr_s:g} s but the header of {bold_path} (pixdim[4]) says {header_tr_s:g} s"
+                         + (" (the header's value looks like milliseconds with xyzt_units in seconds)" if header_tr_s > _MAX_TR_S else ""),
                          "correct whichever is wrong (RepetitionTime in the sidecar or pixdim[4]/xyzt_units in the image)")
     return tr_s
 

@@ -28,6 +28,7 @@ except ImportError:  # pragma: no cover - exercised only where isal is absent
     _fast_gzip = None
 
 __all__ = [
+    "missing_file_error",
     "check_output_folder",
     "atomic_path",
     "write_bytes_atomic",
@@ -46,6 +47,20 @@ __all__ = [
 
 # Seven significant digits: float32 round-trips through text at this width.
 FLOAT_FORMAT = "%.7g"
+
+
+def missing_file_error(path, what="file"):
+    """The InputError for an input that is not there: a broken symbolic link says so (content not present).
+
+    In an annexed dataset (git-annex) every file is a symbolic link into the
+    annex, and a file whose content was never fetched is a link to nothing:
+    "does not exist" would send the user looking for a file they can see.
+    """
+    if os.path.islink(path) and not os.path.exists(path):
+        return InputError(path, "file", f"the {what} is a symbolic link whose target is missing (its content is not present, "
+                          "as in an annexed dataset whose content was not fetched)",
+                          "fetch the content (e.g. git annex get on the dataset) or replace the link by the real file")
+    return InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
 
 
 def check_output_folder(path, field="results folder"):
@@ -178,7 +193,7 @@ def read_tsv(path, required_columns=(), what="table", text_columns=TEXT_COLUMNS)
     """
     path = Path(path)
     if not path.is_file():
-        raise InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
+        raise missing_file_error(path, what)
     try:
         overlong = _first_overlong_row(path)
         if overlong is not None:
@@ -234,7 +249,7 @@ def load_nifti(path, what="image"):
     """
     path = Path(path)
     if not path.is_file():
-        raise InputError(path, "file", f"the {what} does not exist", "create it or correct the path in the config")
+        raise missing_file_error(path, what)
     data = path.read_bytes()
     try:
         if str(path).endswith(".gz"):

@@ -216,6 +216,9 @@ def run(inputs, outputs, params, log):
     n_scans = bold.shape[3]
     tr_s = read_tr_s(inputs["sidecar"], header, inputs["bold"])
     events = read_events(inputs["events"], n_scans, tr_s, params.get("condition_column", "trial_type"))
+    n_unlabelled = int(events.attrs.get("n_unlabelled", 0))  # rows without a condition: counted, never dropped silently
+    (log.warning if n_unlabelled else log.info)("sub-%s %s: %d events row(s) dropped for an n/a or empty %s", subject, run_id,
+                                                 n_unlabelled, params.get("condition_column", "trial_type"))
     confound_names, confounds, n_drop = run_nuisance(inputs.get("confounds"), list(params.get("confounds") or []),
                                                      params.get("drop_initial_volumes", 0), n_scans)
     mask = _load_mask(inputs["mask"], bold.shape[:3], affine)

@@ -56,11 +56,11 @@ CONDITIONS = ["seen_round", "seen_square", "seen_star", "heard_round"]
 TRIALS_PER_CONDITION = 15
 CONFOUNDS = ["trans_x", "trans_y", "trans_z", "rot_x", "rot_y", "rot_z"]
 MODES = {
-    "per-condition OLS": {"pattern_mode": "per_condition", "noise_model": "ols"},
-    "per-condition AR(1)": {"pattern_mode": "per_condition", "noise_model": "ar1"},
-    "LSA AR(1), 60 trials": {"pattern_mode": "lsa", "noise_model": "ar1"},
-    "LSS OLS, 60 trials": {"pattern_mode": "lss", "noise_model": "ols"},
-    "LSS AR(1), 60 trials": {"pattern_mode": "lss", "noise_model": "ar1"},
+    "per-condition OLS": {"pattern_mode": "per_condition", "serial_correlation": "ignore"},
+    "per-condition AR(1)": {"pattern_mode": "per_condition", "serial_correlation": "ar1_whiten"},
+    "LSA AR(1), 60 trials": {"pattern_mode": "lsa", "serial_correlation": "ar1_whiten"},
+    "LSS OLS, 60 trials": {"pattern_mode": "lss", "serial_correlation": "ignore"},
+    "LSS AR(1), 60 trials": {"pattern_mode": "lss", "serial_correlation": "ar1_whiten"},
 }
 TARGETS = {"per-condition OLS": 0.8, "per-condition AR(1)": 1.0, "LSS OLS, 60 trials": 1.0, "LSS AR(1), 60 trials": 1.0}
 _LOG = logging.getLogger("bench_glm")
@@ -116,7 +116,7 @@ def write_run(folder, rng, zero_background=False):
 
 
 def _params(mode):
-    glm = {"hrf_derivatives": "none", "highpass_s": 128.0, "statistic": "t", "conditions": CONDITIONS, "oversampling": 16,
+    glm = {"hrf_derivatives": "none", "highpass_s": 128.0, "statistic": "t", "conditions": CONDITIONS, "hrf_steps_per_scan": 16,
            **MODES[mode]}
     return {"glm": glm, "confounds": CONFOUNDS, "subject": "01", "session": None, "run_id": "run-01", "seed": 20261201}
 

@@ -761,6 +761,13 @@ def _result_changed_after_its_job(folder):
                        "makes it again), or rerun its job with --forcerun <rule>")
 
 
+@case("a GLM key under its old name (glm.noise_model, glm.oversampling)", "config.validate, before any job")
+def _renamed_glm_key(folder):
+    study = _study(**{"glm": {"noise_model": "ar1"}})
+    return Expectation(_validating(study), "config/study.yaml: glm.noise_model: renamed to glm.serial_correlation (ols is now "
+                                           "ignore; ar1 is now ar1_whiten). Fix: write serial_correlation: ar1_whiten under glm: instead")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

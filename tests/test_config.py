@@ -18,7 +18,7 @@ def demo():
 
 def test_demo_config_validates_and_fills_nested_defaults(demo):
     study = validate(demo)
-    assert study["glm"]["oversampling"] == 16
+    assert study["glm"]["hrf_steps_per_scan"] == 16
     assert study["analyses"][0]["voxel_counts"] == [10, 25, 50, 100, 200, 400, "all"]
     assert study["analyses"][0]["folds"] == {"scheme": "leave_one_run_out", "n_groups": 2}
     assert study["rois"][0]["min_voxels"] == 10
@@ -94,5 +94,5 @@ def test_schema_documents_a_default_for_every_optional_scalar():
 
     walk(schema, "")
     # ROI and analysis definitions are alternatives (labels | image | sphere; classes | sets), not defaults.
-    allowed = {".rois[].image", ".rois[].threshold"}
+    allowed = {".rois[].image", ".rois[].threshold", ".analyses[].geometry.models[].tsv"}  # a geometry model: differ_in | tsv
     assert sorted(set(missing) - allowed) == []

@@ -30,8 +30,8 @@ PATTERNS = {
     "confounds": "sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}_desc-confounds_timeseries.tsv",
     "brain_mask": "sub-{subject}/ses-{session}/func/sub-{subject}_ses-{session}_task-{task}_run-{run}_space-{space}_res-{res}_desc-brain_mask.nii.gz",
 }
-GLM = {"hrf_derivatives": "none", "highpass_s": 128.0, "noise_model": "ols", "pattern_mode": "per_condition", "statistic": "t",
-       "conditions": [], "oversampling": 16}
+GLM = {"hrf_derivatives": "none", "highpass_s": 128.0, "serial_correlation": "ignore", "pattern_mode": "per_condition", "statistic": "t",
+       "conditions": [], "hrf_steps_per_scan": 16}
 SELECTORS = ["trans_x", "rot_z", "spike_vol*", {"prefix": "noise_comp_", "first": 3}]
 
 

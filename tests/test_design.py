@@ -199,7 +199,7 @@ def test_design_is_deterministic():
     ({"n_scans": 1}, "n_scans"),
     ({"tr_s": -2.0}, "tr_s"),
     ({"highpass_s": 0}, "glm.highpass_s"),
-    ({"oversampling": 0}, "glm.oversampling"),
+    ({"oversampling": 0}, "glm.hrf_steps_per_scan"),
 ])
 def test_build_design_bad_input_names_the_field(overrides, field):
     with pytest.raises(InputError) as excinfo:

@@ -67,8 +67,8 @@ def _data(rng, design, n_voxels, rho=0.0):
     return design.matrix @ betas + _ar1_noise(rng, rho, design.matrix.shape[0], n_voxels)
 
 
-SETTINGS = {"hrf_derivatives": "none", "highpass_s": 100.0, "noise_model": "ols", "pattern_mode": "per_condition",
-            "statistic": "t", "conditions": [], "oversampling": 16}
+SETTINGS = {"hrf_derivatives": "none", "highpass_s": 100.0, "serial_correlation": "ignore", "pattern_mode": "per_condition",
+            "statistic": "t", "conditions": [], "hrf_steps_per_scan": 16}
 
 
 # ---------------------------------------------------------------- OLS
@@ -317,7 +317,7 @@ def test_lss_ar1_in_estimate_patterns_whitens_with_per_condition_coefficients():
     events = _lantern_events(rng)
     lss_design = _design(events, mode="lss")
     bold = _data(rng, lss_design, 10, rho=0.4)
-    estimate = estimate_patterns(bold, events, TR_S, {**SETTINGS, "noise_model": "ar1", "pattern_mode": "lss",
+    estimate = estimate_patterns(bold, events, TR_S, {**SETTINGS, "serial_correlation": "ar1_whiten", "pattern_mode": "lss",
                                                       "conditions": CONDITIONS}, None, ())
     per_condition = _design(events).matrix
     residuals = bold - per_condition @ np.linalg.lstsq(per_condition, bold, rcond=None)[0]
@@ -425,13 +425,13 @@ def test_estimate_patterns_conditions_rows_and_statistics():
 
 
 @pytest.mark.parametrize("change, field", [
-    ({"noise_model": "ar2"}, "glm.noise_model"),
+    ({"serial_correlation": "ar2"}, "glm.serial_correlation"),
     ({"statistic": "z"}, "glm.statistic"),
     ({"pattern_mode": "lsx"}, "glm.pattern_mode"),
     ({"hrf_derivatives": "both"}, "glm.hrf_derivatives"),
     ({"highpass_s": -1.0}, "glm.highpass_s"),
     ({"conditions": ["heard_moon"]}, "trial_type"),
-    ({"oversampling": 0}, "glm.oversampling"),
+    ({"hrf_steps_per_scan": 0}, "glm.hrf_steps_per_scan"),
     ({"smoothing_mm": 4}, "glm"),
 ])
 def test_estimate_patterns_bad_settings(change, field):
@@ -452,7 +452,7 @@ def test_constant_voxel_gets_zero_t_rather_than_nan():
     bold = _data(rng, _design(events), 3)
     bold[:, 1] = 500.0  # a constant voxel inside the mask
     for mode in ("per_condition", "lss"):
-        estimate = estimate_patterns(bold, events, TR_S, {**SETTINGS, "pattern_mode": mode, "noise_model": "ar1"}, None, ())
+        estimate = estimate_patterns(bold, events, TR_S, {**SETTINGS, "pattern_mode": mode, "serial_correlation": "ar1_whiten"}, None, ())
         assert np.all(np.isfinite(estimate.patterns))
         np.testing.assert_array_equal(estimate.patterns[:, 1], 0.0)
         assert np.all(estimate.patterns[:, 0] != 0.0)
@@ -497,7 +497,7 @@ def _outputs(folder):
 
 
 def _params(**glm_changes):
-    return {"glm": {**SETTINGS, "noise_model": "ar1", **glm_changes}, "confounds": ["trans_x", "rot_z"], "subject": "01",
+    return {"glm": {**SETTINGS, "serial_correlation": "ar1_whiten", **glm_changes}, "confounds": ["trans_x", "rot_z"], "subject": "01",
             "session": None, "run_id": "run-01", "seed": 20261201}
 
 
@@ -532,7 +532,7 @@ def test_job_writes_the_contract_outputs(tmp_path):
     assert tuple(design.columns) == expected.design.names
     np.testing.assert_allclose(design.to_numpy(), expected.design.matrix, rtol=1e-6, atol=1e-7)
     image = matplotlib.image.imread(outputs["design_png"])
-    assert image.shape[:2] == (300, 400)
+    assert image.shape[:2] == (900, 1200)  # 4 x 3 inches at 300 dpi
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == sorted(Path(p).name for p in outputs.values())
 
 
@@ -556,7 +556,7 @@ def test_job_warns_about_a_condition_absent_from_the_run(tmp_path, caplog):
     inputs, _, _ = _write_run(tmp_path / "in", rng, conditions=["seen_round", "seen_star"])
     outputs = _outputs(tmp_path / "out")
     with caplog.at_level(logging.WARNING, logger="test_glm_job"):
-        glm_job.run(inputs, outputs, _params(conditions=CONDITIONS, noise_model="ols", statistic="beta"),
+        glm_job.run(inputs, outputs, _params(conditions=CONDITIONS, serial_correlation="ignore", statistic="beta"),
                     logging.getLogger("test_glm_job"))
     assert "seen_square" in caplog.text and "run-01" in caplog.text
     table = pd.read_csv(outputs["table"], sep="\t")
@@ -582,8 +582,8 @@ def test_job_names_the_events_file_when_no_condition_occurs(tmp_path):
         glm_job.run(inputs, _outputs(tmp_path / "out"), _params(conditions=["heard_moon"]), logging.getLogger("test_glm_job"))
     assert excinfo.value.file == inputs["events"] and excinfo.value.field == "trial_type"
     with pytest.raises(InputError) as excinfo:
-        glm_job.run(inputs, _outputs(tmp_path / "out"), _params(noise_model="ar3"), logging.getLogger("test_glm_job"))
-    assert excinfo.value.field == "glm.noise_model"
+        glm_job.run(inputs, _outputs(tmp_path / "out"), _params(serial_correlation="ar3"), logging.getLogger("test_glm_job"))
+    assert excinfo.value.field == "glm.serial_correlation"
 
 
 def test_design_labels_name_condition_blocks_of_trial_wise_designs():

@@ -91,9 +91,9 @@ def test_basis_spans_the_canonical_form_and_its_analytic_derivatives():
 @pytest.mark.parametrize("kwargs, field", [
     ({"tr_s": 0.0, "oversampling": 16}, "tr_s"),
     ({"tr_s": float("nan"), "oversampling": 16}, "tr_s"),
-    ({"tr_s": 2.0, "oversampling": 0}, "glm.oversampling"),
-    ({"tr_s": 2.0, "oversampling": 2.5}, "glm.oversampling"),
-    ({"tr_s": 2.0, "oversampling": True}, "glm.oversampling"),
+    ({"tr_s": 2.0, "oversampling": 0}, "glm.hrf_steps_per_scan"),
+    ({"tr_s": 2.0, "oversampling": 2.5}, "glm.hrf_steps_per_scan"),
+    ({"tr_s": 2.0, "oversampling": True}, "glm.hrf_steps_per_scan"),
     ({"tr_s": 2.0, "oversampling": 16, "derivatives": "dispersion"}, "glm.hrf_derivatives"),
     ({"tr_s": 2.0, "oversampling": 16, "duration_s": -3.0}, "duration_s"),
 ])

@@ -62,11 +62,11 @@ READERS = {
     "demo.signal_to_noise": {"demo_dataset", "report"},
     "glm.hrf_derivatives": {"glm", "report"},
     "glm.highpass_s": {"glm", "report"},
-    "glm.noise_model": {"glm", "report"},
+    "glm.serial_correlation": {"glm", "report"},
     "glm.pattern_mode": {"glm", "report"},
     "glm.statistic": {"glm", "report"},
     "glm.conditions": {"glm", "report"},
-    "glm.oversampling": {"glm", "report"},
+    "glm.hrf_steps_per_scan": {"glm", "report"},
     "brain_mask.mean_fraction": {"brain_mask", "report"},
     "brain_mask.summary_volumes": {"brain_mask", "report"},
     "rois[i].name": ROI_STEPS,
@@ -131,7 +131,7 @@ SPECIAL = {
     "report.confusion_n_voxels": 50,
 }
 _ENUMS = {  # another valid choice of each enum key
-    "glm.hrf_derivatives": "temporal", "glm.noise_model": "ols", "glm.pattern_mode": "lss", "glm.statistic": "beta",
+    "glm.hrf_derivatives": "temporal", "glm.serial_correlation": "ignore", "glm.pattern_mode": "lss", "glm.statistic": "beta",
     "analyses[i].selection": "f", "analyses[i].classifier": "logistic_l2", "analyses[i].folds.scheme": "run_groups",
     "searchlight.classifier": "gaussian_nb", "group.fwe_method": "min_p", "group.family": "all_directions",
 }

@@ -42,9 +42,9 @@ def test_a_nested_override_is_merged_before_validation():
 
 def test_dotted_overrides_through_set_reach_nested_keys_and_list_entries():
     # Snakemake's own parser refuses 'study.seed=3' before the workflow starts; `set=` (make ... SET='...') carries them.
-    study = apply_overrides(load_yaml(DEMO_CONFIG), ["set=study.seed=5 analyses[0].n_permutations=30 glm.noise_model=ols"],
+    study = apply_overrides(load_yaml(DEMO_CONFIG), ["set=study.seed=5 analyses[0].n_permutations=30 glm.serial_correlation=ignore"],
                             "config/config.yaml")
-    assert (study["study"]["seed"], study["analyses"][0]["n_permutations"], study["glm"]["noise_model"]) == (5, 30, "ols")
+    assert (study["study"]["seed"], study["analyses"][0]["n_permutations"], study["glm"]["serial_correlation"]) == (5, 30, "ignore")
 
 
 def test_a_quoted_override_stays_text():

@@ -32,7 +32,7 @@ def test_per_trial_patterns_run_end_to_end(tmp_path):
     # The matrix of STYLE.md: per-run betas (test_incremental), per-trial betas (here), cross-decoding (both).
     workdir = copy_repository(tmp_path / "repo")
     study = json.loads(json.dumps(TINY_STUDY))
-    study["glm"] = {"pattern_mode": "lss", "noise_model": "ar1", "statistic": "beta"}
+    study["glm"] = {"pattern_mode": "lss", "serial_correlation": "ar1_whiten", "statistic": "beta"}
     study["analyses"] = [study["analyses"][0]]
     study["analyses"][0]["classifier"] = "shrinkage_lda"
     write_study(workdir, study)

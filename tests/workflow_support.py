@@ -16,7 +16,7 @@ TINY_STUDY = {
     "study": {"name": "tiny", "seed": 7},
     "dataset": {"source": "demo", "confounds": ["trans_x", "trans_y", "trans_z", "rot_x", "rot_y", "rot_z"]},
     "demo": {"n_subjects": 3, "n_runs": 3, "grid_shape": [16, 18, 12], "trials_per_condition_per_run": 2},
-    "glm": {"noise_model": "ols"},
+    "glm": {"serial_correlation": "ignore"},
     "rois": [{"name": "ember", "labels": ["ember_L", "ember_R"]}, {"name": "glow", "labels": ["glow_L", "glow_R"]},
              {"name": "hush", "labels": ["hush_L", "hush_R"]}],
     "analyses": [

@@ -107,6 +107,26 @@ def _describe(error, schema_root):
     return path, error.message, f"correct {path} (see the README's config reference)"
 
 
+#: Keys renamed in this release: old dotted key -> (new dotted key, {old value: new value}). A config with an old
+#: key is refused with the new name, so no study silently falls back to a default.
+RENAMED_KEYS = {
+    "glm.noise_model": ("glm.serial_correlation", {"ols": "ignore", "ar1": "ar1_whiten"}),
+    "glm.oversampling": ("glm.hrf_steps_per_scan", {}),
+}
+
+
+def _check_renamed(config, path):
+    for old, (new, values) in RENAMED_KEYS.items():
+        section, key = old.split(".", 1)
+        node = config.get(section) if isinstance(config, dict) else None
+        if isinstance(node, dict) and key in node:
+            value = node[key]
+            written = f"{new.split('.', 1)[1]}: {values.get(value, value)}" if isinstance(value, (str, int)) else new
+            mapping = "; ".join(f"{before} is now {after}" for before, after in values.items())
+            raise InputError(path, old, f"renamed to {new}" + (f" ({mapping})" if mapping else ""),
+                             f"write {written} under {section}: instead")
+
+
 def validate(config, path="config/config.yaml", schema_path=SCHEMA_PATH):
     """Validate a config dict against the schema, fill defaults, check references.
 
@@ -133,6 +153,7 @@ def validate(config, path="config/config.yaml", schema_path=SCHEMA_PATH):
         written = "null" if key is None else str(key).lower() if isinstance(key, bool) else str(key)
         raise InputError(path, where, f"the key {written} is not text (YAML reads unquoted numbers, true/false and null as values)",
                          f"quote the key ('{written}':) or rename it")
+    _check_renamed(config, path)
     filled = copy.deepcopy(config)
     errors = sorted(_Validator(schema).iter_errors(filled), key=lambda e: (len(e.absolute_path), key_path(e.absolute_path)))
     if errors:

@@ -392,7 +392,7 @@ def _demo_settings(study, wildcards):
 def _localizer_settings(study):
     """What a localizer ROI's own GLM reads: the GLM's design keys and the dataset's nuisance keys."""
     glm, dataset = study.config["glm"], study.config["dataset"]
-    return {"glm": {key: glm[key] for key in ("hrf_derivatives", "highpass_s", "oversampling")}, "confounds": dataset["confounds"],
+    return {"glm": {key: glm[key] for key in ("hrf_derivatives", "highpass_s", "hrf_steps_per_scan")}, "confounds": dataset["confounds"],
             "drop_initial_volumes": dataset["drop_initial_volumes"], "condition_column": dataset["condition_column"]}
 
 

@@ -23,6 +23,7 @@ from foldwise.glm.hrf import DERIVATIVE_CHOICES
 
 __all__ = [
     "NOISE_MODELS",
+    "SERIAL_CORRELATION_CHOICES",
     "STATISTICS",
     "GLM_SETTING_KEYS",
     "AR1_LIMIT",
@@ -41,11 +42,15 @@ __all__ = [
     "estimate_patterns",
 ]
 
-#: Accepted values of ``glm.noise_model`` and ``glm.statistic``.
+#: Estimators of :func:`fit_lss` (OLS, or AR(1) prewhitening).
 NOISE_MODELS = ("ols", "ar1")
+#: Accepted values of ``glm.serial_correlation``, and the estimator each selects: residuals taken as
+#: independent over scans (OLS), or AR(1) prewhitening.
+SERIAL_CORRELATION_CHOICES = {"ignore": "ols", "ar1_whiten": "ar1"}
 STATISTICS = ("beta", "t")
 #: The keys of the ``glm`` config section that :func:`estimate_patterns` reads.
-GLM_SETTING_KEYS = ("hrf_derivatives", "highpass_s", "noise_model", "pattern_mode", "statistic", "conditions", "oversampling")
+GLM_SETTING_KEYS = ("hrf_derivatives", "highpass_s", "serial_correlation", "pattern_mode", "statistic", "conditions",
+                    "hrf_steps_per_scan")
 #: Estimated AR(1) coefficients are clipped to [-AR1_LIMIT, AR1_LIMIT]: the
 #: whitening filter then stays well conditioned (1 / sqrt(1 - rho^2) <= 2.3);
 #: common practice, no source.
@@ -875,7 +880,7 @@ def _check_settings(glm_settings):
         problem = "; ".join(part for part in (f"missing key(s) {missing}" if missing else "",
                                               f"unknown key(s) {unknown}" if unknown else "") if part)
         raise InputError(None, "glm", problem, f"give exactly the keys {', '.join(GLM_SETTING_KEYS)} (the config schema fills defaults)")
-    choices = {"noise_model": NOISE_MODELS, "statistic": STATISTICS, "pattern_mode": PATTERN_MODES,
+    choices = {"serial_correlation": tuple(SERIAL_CORRELATION_CHOICES), "statistic": STATISTICS, "pattern_mode": PATTERN_MODES,
                "hrf_derivatives": DERIVATIVE_CHOICES}
     for key, allowed in choices.items():
         if glm_settings[key] not in allowed:
@@ -896,8 +901,8 @@ def estimate_patterns(bold_2d, events, tr_s, glm_settings, confounds, confound_n
         Repetition time in seconds.
     glm_settings : dict
         The ``glm`` config keys: ``hrf_derivatives``, ``highpass_s``,
-        ``noise_model``, ``pattern_mode``, ``statistic``, ``conditions``,
-        ``oversampling``.
+        ``serial_correlation``, ``pattern_mode``, ``statistic``, ``conditions``,
+        ``hrf_steps_per_scan``.
     confounds : array_like or None
         ``(n_scans, n_confounds)``.
     confound_names : sequence of str
@@ -925,13 +930,13 @@ def estimate_patterns(bold_2d, events, tr_s, glm_settings, confounds, confound_n
         raise InputError(None, "bold_2d", f"need a (scans x voxels) array (got shape {bold.shape})", "pass the masked BOLD data")
     design_arguments = dict(events=events, n_scans=bold.shape[0], tr_s=tr_s, conditions=list(settings["conditions"]),
                             hrf_derivatives=settings["hrf_derivatives"], highpass_s=settings["highpass_s"],
-                            confounds=confounds, confound_names=confound_names, oversampling=settings["oversampling"])
+                            confounds=confounds, confound_names=confound_names, oversampling=settings["hrf_steps_per_scan"])
     design = build_design(pattern_mode=settings["pattern_mode"], **design_arguments)
     if design.pattern_columns.size == 0:
         raise InputError(None, "trial_type", f"none of the conditions {list(settings['conditions'])} occurs in this run",
                          "check glm.conditions against the trial types of the events file")
     with_t = settings["statistic"] == "t"
-    noise_model = settings["noise_model"]
+    noise_model = SERIAL_CORRELATION_CHOICES[settings["serial_correlation"]]
     if settings["pattern_mode"] == "lss":
         rho_design = None
         if noise_model == "ar1":

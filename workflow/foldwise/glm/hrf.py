@@ -177,7 +177,8 @@ def hrf_basis(tr_s, oversampling, derivatives="none", duration_s=HRF_DURATION_S)
         raise InputError(None, "tr_s", f"the repetition time must be a positive number of seconds (got {tr_s!r})",
                          "set RepetitionTime in the BOLD sidecar")
     if isinstance(oversampling, bool) or not isinstance(oversampling, (int, np.integer)) or oversampling < 1:
-        raise InputError(None, "glm.oversampling", f"must be an integer >= 1 (got {oversampling!r})", "set glm.oversampling to e.g. 16")
+        raise InputError(None, "glm.hrf_steps_per_scan", f"must be an integer >= 1 (got {oversampling!r})",
+                         "set glm.hrf_steps_per_scan to e.g. 16")
     if derivatives not in DERIVATIVE_CHOICES:
         raise InputError(None, "glm.hrf_derivatives", f"unknown choice {derivatives!r}", f"use one of {', '.join(DERIVATIVE_CHOICES)}")
     if not (np.isscalar(duration_s) and np.isfinite(duration_s) and duration_s > 0):

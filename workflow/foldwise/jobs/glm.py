@@ -95,7 +95,7 @@ def design_labels(design):
 
 
 def design_figure(matrix, labels, title):
-    """A small grey image of the design, each column scaled to its largest magnitude.
+    """A small image of the design: one row per regressor over the scans, on a diverging scale (zero in white).
 
     Parameters
     ----------
@@ -109,19 +109,20 @@ def design_figure(matrix, labels, title):
     Returns
     -------
     matplotlib.figure.Figure
-        4 x 3 inches; built without pyplot, so no global figure state (the
-        Agg canvas renders it when saved).
+        4 x 3 inches; regressor names stay horizontal beside their row. Built
+        without pyplot, so no global figure state (the Agg canvas renders it
+        when saved).
     """
     values = np.asarray(matrix, dtype=np.float64)
     scale = np.max(np.abs(values), axis=0)
-    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0)
+    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0).T
     figure = Figure(figsize=(4, 3))
-    axes = figure.add_axes((0.12, 0.32, 0.85, 0.58))
-    axes.imshow(shown, aspect="auto", cmap="gray", interpolation="nearest", vmin=-1, vmax=1)
-    axes.set_xticks([position for position, _ in labels])
-    axes.set_xticklabels([text for _, text in labels], rotation=90, fontsize=4)
-    axes.tick_params(axis="y", labelsize=5)
-    axes.set_ylabel("scan", fontsize=6)
+    axes = figure.add_axes((0.36, 0.14, 0.6, 0.76))
+    axes.imshow(shown, aspect="auto", cmap="BrBG", interpolation="nearest", vmin=-1, vmax=1)
+    axes.set_yticks([position for position, _ in labels])
+    axes.set_yticklabels([text for _, text in labels], fontsize=4)
+    axes.tick_params(axis="x", labelsize=5)
+    axes.set_xlabel("scan", fontsize=6)
     axes.set_title(title, fontsize=7)
     return figure
 

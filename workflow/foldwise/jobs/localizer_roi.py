@@ -33,7 +33,7 @@ def localizer_model(runs, brain_flat, settings, log):
     brain_flat : ndarray of bool
         The brain mask, flattened in NIfTI (Fortran) order.
     settings : dict
-        ``glm`` (``hrf_derivatives``, ``highpass_s``, ``oversampling``),
+        ``glm`` (``hrf_derivatives``, ``highpass_s``, ``hrf_steps_per_scan``),
         ``confounds``, ``drop_initial_volumes``, ``condition_column``.
     log : logging.Logger
 
@@ -68,7 +68,7 @@ def localizer_model(runs, brain_flat, settings, log):
         del bold
         data, events, confounds, confound_names = drop_initial(data, events, confounds, confound_names, n_drop, tr_s)
         design = build_design(events, data.shape[0], tr_s, [], "per_condition", glm["hrf_derivatives"], glm["highpass_s"],
-                              confounds, confound_names, glm["oversampling"])
+                              confounds, confound_names, glm["hrf_steps_per_scan"])
         event_columns = [design.names[j] for j in design.pattern_blocks.ravel()]
         conditions += [name for name in event_columns if name not in conditions]
         matrices.append(design.matrix)

@@ -284,7 +284,7 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
         ("runs", runs_text),
         ("repetition time (s)", ", ".join(f"{value:g}" for value in repetition_times)),
         ("voxel size (mm)", " x ".join(f"{value:g}" for value in voxel_size_mm)),
-        ("GLM", f"noise model {glm.get('noise_model')}, patterns {glm.get('pattern_mode')}, statistic "
+        ("GLM", f"serial correlation {glm.get('serial_correlation')}, patterns {glm.get('pattern_mode')}, statistic "
                 f"{glm.get('statistic')}, high-pass cutoff {glm.get('highpass_s')} s, HRF derivatives {glm.get('hrf_derivatives')}"),
         ("ROIs", _text_list(roi["name"] for roi in study["rois"])),
         ("analyses", _text_list(f"{a['name']} ({a['kind']})" for a in study["analyses"])),

@@ -19,6 +19,7 @@ from foldwise.stats import group as group_stats
 from foldwise.errors import InputError
 from foldwise.data.fileio import gunzip_bytes, write_text_atomic, write_tsv
 from foldwise.provenance.hashing import seed_from
+from foldwise.report.page import format_p  # one way to print a p-value: at its floor, with its resolution
 
 __all__ = ["run", "SUMMARY_COLUMNS", "SUBJECT_NULL_COLUMNS", "TABLE_COLUMNS", "NULL_COLUMNS"]
 
@@ -435,7 +436,7 @@ def _summary_text(name, analysis, table, directions, n_subjects, n_draws, alpha,
                 gamma = "n/a" if pd.isna(row.prevalence_gamma0) else f"{row.prevalence_gamma0:.3f}"
                 gamma_fwe = "n/a" if pd.isna(row.prevalence_gamma0_fwe) else f"{row.prevalence_gamma0_fwe:.3f}"
                 lines.append(f"  roi {row.roi}, n_voxels {row.n_voxels}: mean {row.mean:.4f} (chance {row.chance:.4f}), "
-                             f"effect size {row.effect_size:.2f}, p_fwe {row.p_fwe:.4g}, prevalence gamma0 {gamma} "
+                             f"effect size {row.effect_size:.2f}, p_fwe {format_p(row.p_fwe, n_draws)}, prevalence gamma0 {gamma} "
                              f"(family-wise {gamma_fwe})")
     lines.append("Reading: a group test on accuracies speaks about the mean over subjects (is the population-average "
                  "accuracy above chance?), not about how many subjects show the effect; that is what prevalence "

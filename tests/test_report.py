@@ -309,7 +309,9 @@ def test_module_examples_hold():
     # The docstring examples are part of the contract (run as doctests).
     from foldwise.report import page, summary
 
-    for module, least in ((report, 25), (page, 8), (summary, 3)):
+    from foldwise.report import terminal
+
+    for module, least in ((report, 25), (page, 8), (summary, 3), (terminal, 2)):
         result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
         assert result.attempted >= least and result.failed == 0, module.__name__
 

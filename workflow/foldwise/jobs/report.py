@@ -23,6 +23,7 @@ import pandas as pd
 from foldwise.report import figures as page
 from foldwise.report import page as html_page
 from foldwise.report.summary import answer_sentences
+from foldwise.report.terminal import job_warnings
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
 from foldwise.provenance.hashing import hash_object
@@ -663,20 +664,8 @@ SECTIONS = (_summary_section, _results_section, _maps_section, _quality_section,
 
 
 def _read_warnings(job_logs):
-    """(job, message) for every WARNING line of the jobs' logs, in plan order.
-
-    ``job_logs`` lists ``[step, wildcards text, log path]``; a missing log
-    (a job not run in this tree) is skipped.
-    """
-    found = []
-    for step, label, path in job_logs:
-        try:
-            lines = Path(path).read_text(encoding="utf-8", errors="replace").splitlines()
-        except OSError:
-            continue
-        job = f"{step} {label}".strip()
-        found += [(job, line[len("WARNING "):]) for line in lines if line.startswith("WARNING ")]
-    return found
+    """(job, message) for every WARNING line of the jobs' logs, in plan order (see foldwise.report.terminal)."""
+    return job_warnings(job_logs)
 
 
 def _searchlight_inputs(inputs, study):

@@ -1,0 +1,52 @@
+"""The run's last lines on the terminal: the warnings counted from the jobs' logs, and where the report is.
+
+``workflow/rules/common.smk`` prints the group summaries and then
+:func:`closing_lines` when the run succeeds; the report's Warnings section
+lists the same warnings (:func:`job_warnings`), so the two agree.
+"""
+
+from pathlib import Path
+
+__all__ = ["job_warnings", "closing_lines"]
+
+
+def job_warnings(job_logs):
+    """``(job, message)`` for every WARNING line of the jobs' logs, in plan order.
+
+    Parameters
+    ----------
+    job_logs : sequence of (str, str, str)
+        ``[step, wildcards in words, log file]`` (``foldwise.plan.report_job_logs``);
+        a log that does not exist (a job not run in this tree) is skipped.
+
+    Returns
+    -------
+    list of (str, str)
+    """
+    found = []
+    for step, label, path in job_logs:
+        try:
+            lines = Path(path).read_text(encoding="utf-8", errors="replace").splitlines()
+        except OSError:
+            continue
+        job = f"{step} {label}".strip()
+        found += [(job, line[len("WARNING "):]) for line in lines if line.startswith("WARNING ")]
+    return found
+
+
+def closing_lines(n_warnings, report_path):
+    """The last lines of a successful run: the warning count, then the report's path (always the last line).
+
+    Examples
+    --------
+    >>> closing_lines(0, "results/report/index.html")
+    ['foldwise: no warnings.', 'foldwise: report: results/report/index.html']
+    >>> closing_lines(3, "results/report/index.html")[0]
+    "foldwise: 3 warnings (each job's log under results/logs/; all of them in the report's Warnings section)."
+    """
+    if n_warnings:
+        count = (f"foldwise: {n_warnings} warning{'s' if n_warnings != 1 else ''} (each job's log under results/logs/; "
+                 "all of them in the report's Warnings section).")
+    else:
+        count = "foldwise: no warnings."
+    return [count, f"foldwise: report: {report_path}"]

@@ -19,7 +19,7 @@ ifdef PACKAGE_CHANGE
 export FOLDWISE_PACKAGE_CHANGE := $(PACKAGE_CHANGE)
 endif
 
-.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean store-check store-clean
+.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean store-check store-clean calibrate
 
 $(STAMP): requirements/lock.txt pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -36,6 +36,10 @@ demo: $(STAMP)
 # A study of your own: make check CONFIG=config/my_study.yaml, then make study CONFIG=config/my_study.yaml
 study: $(STAMP)
 	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES)
+
+# The design self-check: every decoding analysis on noise of the study's own design (docs/inference.md); not part of `make demo`.
+calibrate: $(STAMP)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES) -- calibration
 
 # What the dataset holds per subject, and every configured condition some subject lacks (reads headers only).
 check: $(STAMP)

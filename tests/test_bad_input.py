@@ -768,6 +768,79 @@ def _renamed_glm_key(folder):
                                            "ignore; ar1 is now ar1_whiten). Fix: write serial_correlation: ar1_whiten under glm: instead")
 
 
+# -- derivatives datasets, several tasks, localizer ROIs (docs/datasets.md) --
+def _simulated_study(folder, example, **layout):
+    """A shipped example config pointed at a small simulated derivatives dataset written in ``folder``."""
+    sys.path.insert(0, str(REPO / "tests"))
+    import derivatives_support as simulated
+    import yaml
+
+    written = simulated.write_dataset(folder, n_subjects=2, **layout)
+    config = yaml.safe_load((REPO / "config" / "examples" / example).read_text(encoding="utf-8"))
+    config["dataset"].update({"bids_root": str(written["raw"]), "derivatives_root": str(written["derivatives"])})
+    if "atlas_image" in config["dataset"]:
+        config["dataset"].update({"atlas_image": str(written["atlas_image"]), "atlas_labels": str(written["atlas_labels"])})
+    for roi in config["rois"]:
+        if "image" in roi:
+            roi["image"] = str(folder / "rois" / Path(roi["image"]).name)
+    return config, written
+
+
+def _building(config):
+    from foldwise.study import build_study
+    return lambda: build_study(validate(config, path="config/study.yaml"), path="config/study.yaml")
+
+
+@case("too few confound columns for {prefix, first}", "bids.select_confound_columns (GLM job)")
+def _too_few_components(folder):
+    return Expectation(lambda: bids.select_confound_columns(["trans_x", "noise_comp_00"], [{"prefix": "noise_comp_", "first": 3}],
+                                                            folder / "c.tsv"),
+                       f"{FOLDER}/c.tsv: dataset.confounds: first 3 of noise_comp_* asks for 3 columns but the table has 1 starting "
+                       "with 'noise_comp_'. Fix: lower 'first' or correct the prefix")
+
+
+@case("dropping more initial volumes than a run has", "jobs.glm.run_nuisance (GLM job)")
+def _drop_too_many(folder):
+    from foldwise.jobs.glm import run_nuisance
+    return Expectation(lambda: run_nuisance(None, [], 5, 6),
+                       "the study config: dataset.drop_initial_volumes: dropping 5 initial volumes leaves fewer than 2 of the run's 6. "
+                       "Fix: lower dataset.drop_initial_volumes (or check the flag columns)")
+
+
+@case("a run of one task without a partner run of the other (cross-task analysis)", "study.build_study, before any job")
+def _unpaired_task_runs(folder):
+    config, written = _simulated_study(folder, "sessions_localizer.yaml", sessions=("1",), runs_per_session=2)
+    config["analyses"][0]["folds"] = {"scheme": "leave_one_run_out"}
+    for path in Path(written["derivatives"]).glob("sub-02/ses-1/func/*task-beacon_run-2_*bold.nii.gz"):
+        path.unlink()
+    return Expectation(_building(config),
+                       "config/study.yaml: analyses[1].set_tasks: subject 02: run ses-1_run-2 has a run for set 'lanterns' but none for "
+                       "set 'beacon' (1 unpaired run(s)): a fold holds out one run of each task together, so train and test runs stay "
+                       "independent. Fix: give both tasks the same run labels (run-1, run-2, ... in each session), or use folds.scheme "
+                       "leave_one_session_out with both tasks in every session")
+
+
+@case("decoding a localizer task inside the ROI it defined (circular)", "study.build_study, before any job")
+def _circular_localizer(folder):
+    config, _ = _simulated_study(folder, "sessions_localizer.yaml", sessions=("1",), runs_per_session=2)
+    config["analyses"][1]["rois"] = ["beam"]
+    return Expectation(_building(config),
+                       "config/study.yaml: analyses[1].rois: analysis 'lit_from_shape' decodes task beacon's patterns inside ROI beam, "
+                       "which was defined from that task's runs (circular: the selection saw the decoded data). Fix: leave beam out of "
+                       "this analysis's rois, or define beam from another task")
+
+
+@case("a subject without its own ROI image ({subject} in rois[].image)", "study.build_study, before any job")
+def _missing_subject_roi(folder):
+    config, _ = _simulated_study(folder, "native_space_subject_rois.yaml", sessions=None, runs_per_session=2, subject_rois=True,
+                                 space="T1w", res="")
+    (folder / "rois" / "sub-02_ember.nii.gz").unlink()
+    return Expectation(_building(config),
+                       f"{FOLDER}/rois/sub-02_ember.nii.gz: rois[0].image: no ROI image for subject(s) 02 (1 of 2 subjects have one). "
+                       "Fix: write each subject's ROI image where the path says ({subject} is the label without sub-), or exclude the "
+                       "subject with dataset.exclude_subjects")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

@@ -6,6 +6,8 @@ for the band of the variance ratio), scipy.stats.binom (the 99% interval of a re
 are the invented lanterns demo's: 4 runs, 3 shapes, one pattern per shape, run and (for cross-decoding) set.
 """
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -111,3 +113,65 @@ def test_calibration_rows_count_and_bound_each_test(null_records):
         assert set(row) == set(calibration.CALIBRATION_COLUMNS)
         assert row["rate"] == pytest.approx(row["n_rejections"] / row["n_tests"])
         assert row["within_bounds"] == (row["n_rejections"] <= row["bound_high"] * row["n_tests"] + 1e-9)
+
+
+# -- the calibrate step (job) ----------------------------------------------------------------
+def _write_subject_tables(folder, subject, n_runs=4, conditions=("seen_round", "seen_square", "seen_star", "heard_round",
+                                                                   "heard_square", "heard_star")):
+    import pandas as pd
+
+    from foldwise.data.fileio import write_tsv
+
+    paths = []
+    for run in range(1, n_runs + 1):
+        path = folder / "results" / "patterns" / f"sub-{subject}" / f"sub-{subject}_run-{run}_patterns.tsv"
+        path.parent.mkdir(parents=True, exist_ok=True)
+        write_tsv(path, pd.DataFrame({"volume": range(len(conditions)), "subject": subject, "session": "n/a", "run_id": f"run-{run}",
+                                      "condition": list(conditions), "trial_index": range(len(conditions)),
+                                      "onset_s": [10.0 * i for i in range(len(conditions))]}))
+        paths.append(str(path))
+    counts = folder / "results" / "masks" / f"sub-{subject}" / f"sub-{subject}_roi_counts.tsv"
+    counts.parent.mkdir(parents=True, exist_ok=True)
+    write_tsv(counts, pd.DataFrame({"subject": [subject] * 2, "roi": ["ember", "glow"], "n_voxels": [40, 25], "min_voxels": [10, 10]}))
+    return paths, str(counts)
+
+
+@pytest.mark.slow  # renders the figure twice (about 10 s on a busy machine)
+def test_calibrate_job_runs_the_studys_design_on_noise_and_writes_table_figure_summary(tmp_path):
+    import logging
+
+    import pandas as pd
+
+    from foldwise.jobs import calibrate as calibrate_job
+
+    tables, counts = [], []
+    for subject in ("01", "02", "03", "04"):
+        subject_tables, subject_counts = _write_subject_tables(tmp_path, subject)
+        tables += subject_tables
+        counts.append(subject_counts)
+    analysis = {"name": "shape_seen_heard", "kind": "cross", "rois": ["ember", "glow"], "voxel_counts": [10, "all"],
+                "sets": {"seen": {"round": "seen_round", "square": "seen_square", "star": "seen_star"},
+                         "heard": {"round": "heard_round", "square": "heard_square", "star": "heard_star"}},
+                "classifier": "linear_svm", "selection": "signal", "demean_patterns": False, "svm_c": 1.0, "logistic_c": 1.0,
+                "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "n_permutations": 30}
+    outputs = {"table": str(tmp_path / "cal.tsv"), "figure": str(tmp_path / "cal.png"), "summary": str(tmp_path / "cal.txt")}
+    params = {"analysis": analysis, "subjects": ["01", "02", "03", "04"], "seed": 7,
+              "group": {"n_draws": 10000, "alpha": 0.05, "prevalence": True, "fwe_method": "standardised", "family": "per_direction"},
+              "calibrate": {"n_studies": 6, "n_draws": 100, "classifier": "correlation_centroid"}}
+    calibrate_job.run({"tables": tables, "roi_counts": counts}, outputs, params, logging.getLogger("test"))
+    table = pd.read_csv(outputs["table"], sep="\t")
+    assert list(table.columns) == list(calibration.CALIBRATION_COLUMNS)
+    subject_rows = table[table["test"] == "subject p"]
+    # per direction: 6 studies x 4 subjects x 2 ROIs x 2 counts subject-level tests
+    assert set(subject_rows["n_tests"]) == {6 * 4 * 2 * 2} and len(subject_rows) == 5 * 2
+    fwe = table[table["test"] == "group p_fwe (any in family)"]
+    assert set(fwe["direction"]) == {"seen->heard", "heard->seen", "seen<->heard", "seen->seen", "heard->heard"}
+    assert set(fwe["n_tests"]) == {6}
+    assert (subject_rows["level"] < subject_rows["alpha"]).all()  # discrete accuracies: attainable level below alpha
+    with open(outputs["summary"], encoding="utf-8") as handle:
+        summary = handle.read()
+    assert "this check used correlation_centroid" in summary and "research use only" in summary
+    assert Path(outputs["figure"]).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    first = {name: Path(path).read_bytes() for name, path in outputs.items() if name != "summary"}
+    calibrate_job.run({"tables": tables, "roi_counts": counts}, outputs, params, logging.getLogger("test"))
+    assert first == {name: Path(path).read_bytes() for name, path in outputs.items() if name != "summary"}  # deterministic

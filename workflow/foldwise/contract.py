@@ -58,6 +58,10 @@ TEMPLATES = {
     "group_table": f"{_GROUP_STEM}_group.tsv",
     "group_null": f"{_GROUP_STEM}_group_null.tsv.gz",
     "group_summary": f"{_GROUP_STEM}_summary.txt",
+    # the design self-check (make calibrate; off the default target)
+    "calibration_table": "results/calibration/{analysis}_calibration.tsv",
+    "calibration_figure": "results/calibration/{analysis}_calibration.png",
+    "calibration_summary": "results/calibration/{analysis}_calibration.txt",
     "searchlight_block_scores": f"{_SEARCHLIGHT_BLOCK}_scores.npy",
     "searchlight_block_null": f"{_SEARCHLIGHT_BLOCK}_null.npy",
     "searchlight_map": f"{_SEARCHLIGHT_SUBJECT}_map.nii.gz",

@@ -17,7 +17,7 @@ from foldwise.errors import InputError
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
            "step_outputs", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
-           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES"]
+           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets"]
 
 
 @dataclass(frozen=True)
@@ -147,6 +147,7 @@ STEPS = {
                                                                 confusion="decode_confusion")),
     "decode_gather": Step("{analysis}_sub-{subject}", _named(scores="subject_scores", summary="subject_summary")),
     "group": Step("{analysis}", _named(table="group_table", null="group_null", summary="group_summary")),
+    "calibrate": Step("{analysis}", _named(table="calibration_table", figure="calibration_figure", summary="calibration_summary")),
     "searchlight_block": Step("{analysis}_sub-{subject}_block-{block}", _named(scores="searchlight_block_scores",
                                                                                null="searchlight_block_null")),
     "searchlight_merge": Step("{analysis}_sub-{subject}", _named(map="searchlight_map", directions="searchlight_directions",
@@ -280,6 +281,17 @@ def _group_inputs(study, w):
             "nulls": [contract.fill("decode_null", analysis=analysis.name, subject=s, roi=roi) for s in study.subjects for roi in analysis.rois]}
 
 
+def _calibrate_inputs(study, w):
+    return {"tables": [path for s in study.subjects for path in _subject_patterns(study, s, "patterns_table")],
+            "roi_counts": [contract.fill("roi_counts", subject=s) for s in study.subjects]}
+
+
+def calibration_targets(study):
+    """The design self-check's outputs of every decoding analysis (``make calibrate``; not part of the default target)."""
+    return [path for name, analysis in study.analyses.items() if "group" in analysis.steps
+            for path in job_output_files(study, "calibrate", {"analysis": name})]
+
+
 def _searchlight_block_inputs(study, w):
     return {"patterns": _subject_patterns(study, w["subject"], "patterns_image"),
             "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": contract.fill("brain_mask", subject=w["subject"])}
@@ -350,6 +362,7 @@ JOB_INPUTS = {
     "decode": _decode_inputs,
     "decode_gather": lambda study, w: {"scores": [contract.fill("decode_scores", roi=roi, **w) for roi in study.analyses[w["analysis"]].rois]},
     "group": _group_inputs,
+    "calibrate": _calibrate_inputs,
     "searchlight_block": _searchlight_block_inputs,
     "searchlight_merge": _searchlight_merge_inputs,
     "searchlight_group": _searchlight_group_inputs,

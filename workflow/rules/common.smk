@@ -83,6 +83,11 @@ def all_job_outputs():
     return plan.all_job_outputs(MODEL)
 
 
+def calibration_targets():
+    """The design self-check's outputs (make calibrate), off the default target."""
+    return plan.calibration_targets(MODEL)
+
+
 def all_provenance_records():
     """Every job's provenance record: the manifest is built from them."""
     return plan.all_provenance_records(MODEL)

@@ -263,8 +263,10 @@ def pair_runs_across_tasks(run_labels, set_index, set_names=("A", "B"), scheme="
             lacking.append((unit, [set_names[number] for number in sorted(present)]))
     if lacking:
         unit, has = lacking[0]
-        raise InputError(None, "folds", f"run {unit} has runs of set {has[0]!r}'s task only ({len(lacking)} unpaired run(s)): "
-                                        "a fold needs one run of each task, so train and test runs stay independent",
+        other = [name for name in set_names if name not in has]
+        raise InputError(None, "folds", f"run {unit} has a run for set {has[0]!r} but none for set {other[0]!r} "
+                                        f"({len(lacking)} unpaired run(s)): a fold holds out one run of each task together, "
+                                        "so train and test runs stay independent",
                          "give both tasks the same run labels (run-1, run-2, ... in each session), or use folds.scheme "
                          "leave_one_session_out with both tasks in every session")
     return units.astype(str)

@@ -31,6 +31,7 @@ __all__ = [
     "RANKING_COLUMNS",
     "CONFUSION_COLUMNS",
     "permutation_rng",
+    "pattern_runs",
     "read_roi_patterns",
     "analysis_labels",
     "run",
@@ -81,6 +82,12 @@ def _read_mask(path):
     if not inside.any():
         raise InputError(path, "data", "the ROI mask is empty", "check the ROI definition (labels, image or sphere) against the data")
     return inside, image.affine
+
+
+def pattern_runs(table):
+    """The run of every row of a pattern table: ``<session>_<run_id>`` when there are sessions, else ``run_id``."""
+    return [str(run) if pd.isna(session) or str(run).startswith(f"{session}_") else f"{session}_{run}"
+            for session, run in zip(table["session"], table["run_id"])]
 
 
 def read_roi_patterns(pattern_paths, table_paths, mask_path, subject):
@@ -138,10 +145,7 @@ def read_roi_patterns(pattern_paths, table_paths, mask_path, subject):
         roi_data = data[inside].T  # (n_volumes, n_voxels), voxels in C order of the mask
         if not np.all(np.isfinite(roi_data)):
             raise InputError(image_path, "data", "the patterns hold NaN or infinite values inside the ROI", "re-estimate the patterns or shrink the ROI")
-        sessions = table["session"]
-        runs = [str(run) if pd.isna(session) or str(run).startswith(f"{session}_") else f"{session}_{run}"
-                for session, run in zip(sessions, table["run_id"])]
-        table = table.assign(run=runs, source=str(table_path), condition=table["condition"].astype(str))
+        table = table.assign(run=pattern_runs(table), source=str(table_path), condition=table["condition"].astype(str))
         blocks.append(roi_data)
         tables.append(table)
     table = pd.concat(tables, ignore_index=True)

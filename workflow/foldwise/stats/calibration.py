@@ -26,6 +26,10 @@ Public names:
 ``attainable_level``        the exact rejection probability a discrete null allows at alpha
 ``group_false_positives``   rejections of each group test on disjoint null groups
 ``calibration_rows``        one table row per test, direction and alpha
+``SubjectDesign``           one subject's design of an analysis (the calibrate step)
+``noise_study``             a whole study on noise: every subject x ROI, then the group tests
+``merge_counts``            add one noise study's rejection counts to a total
+``study_calibration_rows``  the calibrate step's table rows
 """
 
 from dataclasses import dataclass, field
@@ -47,6 +51,10 @@ __all__ = [
     "group_false_positives",
     "calibration_rows",
     "CALIBRATION_COLUMNS",
+    "SubjectDesign",
+    "noise_study",
+    "merge_counts",
+    "study_calibration_rows",
 ]
 
 CALIBRATION_COLUMNS = ("analysis", "test", "direction", "alpha", "level", "n_tests", "n_rejections", "rate", "bound_low", "bound_high",
@@ -304,4 +312,162 @@ def calibration_rows(analysis, records, group_counts, alphas, level=0.99):
                              "n_tests": n_tests, "n_rejections": rejections, "rate": rejections / n_tests, "bound_low": low / n_tests,
                              "bound_high": high / n_tests, "within_bounds": bool(rejections <= high),
                              "variance_ratio": ratio})
+    return rows
+
+
+# -- a whole study on noise (the calibrate step) ------------------------------------------------
+@dataclass(frozen=True)
+class SubjectDesign:
+    """One subject's design of an analysis: what its noise patterns must look like.
+
+    Attributes
+    ----------
+    labels : ndarray of int, shape (n_patterns,)
+    runs : ndarray, shape (n_patterns,)
+    folds : list of (train_idx, test_idx)
+    roi_sizes : dict of str to int
+        Voxels of each ROI of the analysis in this subject.
+    set_index : ndarray of int or None
+    """
+
+    labels: np.ndarray
+    runs: np.ndarray
+    folds: list
+    roi_sizes: dict
+    set_index: np.ndarray | None = None
+
+
+def _empty_counts():
+    return {"n_tests": 0, "n_rejections": 0, "level_sum": 0.0}
+
+
+def noise_study(subjects, rois, voxel_counts, options, n_permutations, set_names, chance, alphas, group, rng_of):
+    """Run one whole study on noise: every subject x ROI decoded, then the group tests; count rejections.
+
+    Parameters
+    ----------
+    subjects : list of SubjectDesign
+    rois : list of str
+    voxel_counts : list
+    options : dict
+        Keywords of :func:`foldwise.decoding.curves.decode_curve` without
+        ``folds`` (``classifier``, ``selection``, ``demean_patterns``,
+        ``svm_c``, ``logistic_c``, ``n_classes``).
+    n_permutations : int
+    set_names : tuple or None
+        The two sets of a cross analysis (None: within).
+    chance : float
+    alphas : sequence of float
+    group : dict
+        ``n_draws``, ``prevalence``, ``fwe_method``, ``family``
+        (``per_direction`` or one family), ``n_analyses`` (Bonferroni factor).
+    rng_of : callable
+        ``rng_of(kind, subject_index)`` returns the generator for ``"noise"``
+        (the patterns), ``"permutation"`` (the relabelings, shared by the
+        subject's ROIs, as in the decode step) and ``"group"`` (subject index -1).
+
+    Returns
+    -------
+    dict of (test, direction, alpha) to dict
+        ``n_tests``, ``n_rejections`` and ``level_sum`` (the summed rejection
+        probability a calibrated test has: alpha, or the attainable level of
+        the subject-level tests).
+    """
+    observed, nulls, exact_flags, directions, cells = [], [], [], None, None
+    for index, subject in enumerate(subjects):
+        noise = rng_of("noise", index)
+        subject_observed, subject_null, subject_cells = [], [], []
+        for roi in rois:
+            patterns = noise.standard_normal((subject.labels.size, int(subject.roi_sizes[roi])))
+            permutation = rng_of("permutation", index)  # one stream per subject: the same relabelings in every ROI
+            common = dict(options, folds=subject.folds, n_permutations=n_permutations, rng=permutation)
+            if subject.set_index is None:
+                result = decode_curve(patterns, subject.labels, subject.runs, list(voxel_counts), **common)
+            else:
+                result = decode_cross(patterns, subject.labels, subject.set_index, subject.runs, list(voxel_counts),
+                                      set_names=tuple(set_names), **common)
+            for direction, scores in result.directions.items():
+                subject_observed.append(scores.balanced_accuracy.mean(axis=0))
+                subject_null.append(scores.null_balanced_accuracy)
+                subject_cells += [(roi, direction, str(count)) for count in voxel_counts]
+            exact = result.null_exact
+        observed.append(np.concatenate(subject_observed))
+        nulls.append(np.concatenate(subject_null, axis=1))
+        exact_flags.append(exact)
+        cells = subject_cells
+    directions = list(dict.fromkeys(cell[1] for cell in cells))
+    counts = {}
+
+    def add(test, direction, alpha, n_tests, rejections, level_sum):
+        entry = counts.setdefault((test, direction, alpha), _empty_counts())
+        entry["n_tests"] += int(n_tests)
+        entry["n_rejections"] += int(rejections)
+        entry["level_sum"] += float(level_sum)
+
+    cell_direction = np.array([cell[1] for cell in cells])
+    for index in range(len(subjects)):
+        p_values = subject_p(observed[index], nulls[index], exact_flags[index])
+        for alpha in alphas:
+            level = attainable_level(observed[index], nulls[index], exact_flags[index], alpha)
+            for direction in directions:
+                members = cell_direction == direction
+                add("subject p", direction, alpha, members.sum(), np.sum(p_values[members] <= alpha), level[members].sum())
+    n_null = {null.shape[0] for null in nulls}
+    if len(subjects) < group_stats.MIN_SUBJECTS or len(n_null) != 1:
+        return counts
+    scores = np.stack(observed)
+    subject_nulls = np.stack(nulls)
+    if group["family"] == "per_direction":
+        families = np.array([directions.index(direction) for direction in cell_direction])
+    else:
+        families = np.zeros(len(cells), dtype=np.int64)
+    columns, _ = group_stats.group_statistics(scores, np.full(len(cells), chance), subject_nulls, families, rng_of("group", -1),
+                                              int(group["n_draws"]), float(max(alphas)), prevalence=bool(group["prevalence"]),
+                                              fwe_method=group["fwe_method"])
+    factor = int(group.get("n_analyses", 1))
+    for alpha in alphas:
+        for direction in directions:
+            members = cell_direction == direction
+            for name in ("p_perm", "p_t", "p_wilcoxon", "prevalence_p_global"):
+                values = columns[name][members]
+                if np.all(np.isnan(values)):
+                    continue
+                add(f"group {name}", direction, alpha, members.sum(), np.sum(values <= alpha), alpha * members.sum())
+        family_names = directions if group["family"] == "per_direction" else ["all directions"]
+        for family_index, family_name in enumerate(family_names):
+            members = families == (family_index if group["family"] == "per_direction" else 0)
+            for name in ("p_fwe", "prevalence_p_global_fwe"):
+                values = np.minimum(1.0, columns[name][members] * factor)
+                if np.all(np.isnan(values)):
+                    continue
+                add(f"group {name} (any in family)", family_name, alpha, 1, np.any(values <= alpha), alpha)
+    return counts
+
+
+def merge_counts(total, counts):
+    """Add one study's :func:`noise_study` counts to a running total (in place); returns the total."""
+    for key, entry in counts.items():
+        into = total.setdefault(key, _empty_counts())
+        for name in into:
+            into[name] += entry[name]
+    return total
+
+
+def study_calibration_rows(analysis, total, level=0.99):
+    """Rows of the calibration table from summed :func:`noise_study` counts.
+
+    The bounds are the binomial ``level`` interval around the rate a
+    calibrated test has (alpha for the group tests; the mean attainable level
+    of the discrete null for the subject-level p). ``within_bounds`` is true
+    when the count is at most the upper bound (a conservative test is
+    within); ``variance_ratio`` is not computed here (NaN).
+    """
+    rows = []
+    for (test, direction, alpha), entry in sorted(total.items(), key=lambda item: (item[0][0], item[0][1], -item[0][2])):
+        n_tests = entry["n_tests"]
+        nominal = entry["level_sum"] / n_tests
+        low, high = binomial_bounds(n_tests, nominal, level)
+        rows.append({"analysis": analysis, "test": test, "direction": direction, "alpha": alpha, "level": nominal, "n_tests": n_tests,
+                     "n_rejections": entry["n_rejections"], "rate": entry["n_rejections"] / n_tests, "bound_low": low / n_tests,
+                     "bound_high": high / n_tests, "within_bounds": bool(entry["n_rejections"] <= high), "variance_ratio": np.nan})
     return rows

@@ -1,0 +1,5 @@
+"""Snakemake script of rule `calibrate`: runs foldwise.jobs.calibrate through the content memo."""
+from foldwise.jobs import calibrate
+from foldwise.provenance.memo import run_job
+
+run_job(snakemake, step="calibrate", job=calibrate.run)  # noqa: F821 (snakemake is injected by Snakemake)

@@ -226,3 +226,14 @@ def test_one_grid_tolerance_and_one_brain_mask_reader():
         assert module.load_brain_mask is contract.read_brain_mask
     assert not re.search(r"TOLERANCE_MM\s*=\s*[0-9]", "".join(path.read_text(encoding="utf-8")
                                                              for path in (REPO / "workflow" / "foldwise" / "jobs").glob("*.py")))
+
+
+def test_the_searchlight_refuses_a_kind_it_cannot_map(monkeypatch):
+    from foldwise.study import check_meaning
+
+    monkeypatch.setitem(ANALYSIS_KINDS, "pairs", AnalysisKind("pairs", outline=lambda entry: ((), None, ()), condition_keys=lambda entry: [],
+                                                              check=lambda entry, where, path: None, searchlight=False))
+    config = validate(copy.deepcopy(LANTERNS), path=CONFIG)
+    config["analyses"][1]["kind"] = "pairs"
+    with pytest.raises(InputError, match=r"searchlight\.analyses: analysis 'carry' is of kind 'pairs', which the searchlight does not map"):
+        check_meaning(config, CONFIG)

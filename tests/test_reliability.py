@@ -5,8 +5,6 @@ One test (or a few) per finding; each failed on the code before these guards
 end-to-end tests share one tiny demo run (marked e2e and slow).
 """
 
-import copy
-import errno
 import json
 import os
 import shutil
@@ -19,7 +17,6 @@ from types import SimpleNamespace
 
 import pandas as pd
 import pytest
-import yaml
 
 from foldwise.config import apply_overrides, load_yaml
 from foldwise.errors import InputError
@@ -308,11 +305,11 @@ def two_studies(tmp_path_factory):
     return repository
 
 
-def _make(repository, *options):
-    completed = subprocess.run([sys.executable, "-m", "foldwise.provenance.bundle", "make", "--config", "config/study.yaml", *options],
-                               cwd=repository, capture_output=True, text=True, env=workflow_environment(repository))
-    assert completed.returncode == 0, completed.stderr
-    return completed
+def _make(repository, capsys, include_images=False):
+    """make_bundle in this process (as `make bundle CONFIG=config/study.yaml` runs it); returns what it printed on stderr."""
+    capsys.readouterr()
+    bundle.make_bundle(repository, include_images=include_images, config_path="config/study.yaml")
+    return capsys.readouterr().err
 
 
 def _unpack(repository, destination):
@@ -321,63 +318,65 @@ def _unpack(repository, destination):
     return destination / "tiny-bundle"
 
 
-def test_a_bundle_made_after_two_studies_holds_only_the_second(two_studies, tmp_path):
+def test_a_bundle_made_after_two_studies_holds_only_the_second(two_studies, tmp_path, capsys):
     # Before: everything under results/group, results/report and results/provenance was bundled, the earlier study's too.
-    made = _make(two_studies)
+    warned = _make(two_studies, capsys)
     unpacked = _unpack(two_studies, tmp_path)
     names = {path.relative_to(unpacked).as_posix() for path in unpacked.rglob("*") if path.is_file()}
     assert "results/group/shape/shape_group.tsv" not in names and "results/provenance/group/shape.json" not in names
     assert {"results/group/carry/carry_group.tsv", "results/decoding/carry/sub-01_scores.tsv", "results/provenance/group/carry.json",
             "results/provenance/manifest/study.json", "results/manifest.tsv", "requirements/lock.txt"} <= names
     # The untracked study config is bundled, with a warning, and the README names it for verify.
-    assert "config/study.yaml" in names and "config/study.yaml is not tracked by git" in made.stderr
+    assert "config/study.yaml" in names and "config/study.yaml is not tracked by git" in warned
     readme = (unpacked / "REVIEW/README.md").read_text()
     assert "make verify CONFIG=config/study.yaml" in readme and "was not committed" in readme
 
 
-def test_the_bundled_report_leaves_participant_figures_out_unless_asked(two_studies, tmp_path):
+def test_the_bundled_report_leaves_participant_figures_out_unless_asked(two_studies, tmp_path, capsys):
     # Before: the bundled report embedded slices of every subject's mean BOLD image by default.
-    _make(two_studies)
+    _make(two_studies, capsys)
     unpacked = _unpack(two_studies, tmp_path / "plain")
     page = (unpacked / "REVIEW/report.html").read_text()
     assert "MEANBOLD" not in page and "RESVAR" not in page and "data:curve" in page
     assert not (unpacked / "results/report/index.html").exists()
     assert not (unpacked / "results/report/figures/sub-01_masks.png").exists()
     assert "mean BOLD slices" in (unpacked / "REVIEW/README.md").read_text()
-    _make(two_studies, "--include-images")
+    _make(two_studies, capsys, include_images=True)
     unpacked = _unpack(two_studies, tmp_path / "images")
     assert "MEANBOLD" in (unpacked / "results/report/index.html").read_text()
 
 
-def _verify(unpacked, *options):
-    return subprocess.run([sys.executable, "-m", "foldwise.provenance.bundle", "verify", *options], cwd=unpacked,
-                          capture_output=True, text=True, env=workflow_environment(unpacked))
+def _verify(unpacked, capsys, config_path="config/study.yaml"):
+    """verify --check-only in this process; returns (exit code, what it printed)."""
+    capsys.readouterr()
+    code = bundle.verify(unpacked, recompute=False, config_path=config_path)
+    return code, capsys.readouterr().out
 
 
-def test_verify_refuses_a_tampered_provenance_record(two_studies, tmp_path):
+def test_verify_refuses_a_tampered_provenance_record(two_studies, tmp_path, capsys):
     # Before: make verify checked outputs only; a record edited to claim 1,000 permutations and another numpy passed.
-    _make(two_studies)
+    _make(two_studies, capsys)
     unpacked = _unpack(two_studies, tmp_path)
-    assert _verify(unpacked, "--check-only", "--config", "config/study.yaml").returncode == 0
+    assert _verify(unpacked, capsys)[0] == 0
     path = unpacked / "results/provenance/group/carry.json"
     record = json.loads(path.read_text())
     record["settings"]["n_permutations"] = 1000
     path.write_text(json.dumps(record))
-    tampered = _verify(unpacked, "--check-only", "--config", "config/study.yaml")
-    assert tampered.returncode == 1 and "results/provenance/group/carry.json" in tampered.stdout and "memo key" in tampered.stdout
+    code, printed = _verify(unpacked, capsys)
+    assert code == 1 and "results/provenance/group/carry.json" in printed and "memo key" in printed
     record["versions"]["numpy"] = "1.26.0"
     record["key"] = bundle._record_key(record)  # even with a consistent key the version claim fails against the lock
     path.write_text(json.dumps(record))
-    tampered = _verify(unpacked, "--check-only", "--config", "config/study.yaml")
-    assert tampered.returncode == 1 and "claims numpy 1.26.0" in tampered.stdout
+    code, printed = _verify(unpacked, capsys)
+    assert code == 1 and "claims numpy 1.26.0" in printed
 
 
-def test_verify_names_the_bundles_config(two_studies, tmp_path):
+def test_verify_names_the_bundles_config(two_studies, tmp_path, capsys):
     # Before: the README told reviewers to run plain `make verify`, which verifies the demo study instead.
-    _make(two_studies)
+    _make(two_studies, capsys)
     unpacked = _unpack(two_studies, tmp_path)
-    wrong = _verify(unpacked, "--check-only")
-    assert wrong.returncode == 2 and "make verify CONFIG=config/study.yaml" in wrong.stdout
+    code, printed = _verify(unpacked, capsys, config_path="config/config.yaml")
+    assert code == 2 and "make verify CONFIG=config/study.yaml" in printed
 
 
 # -- 6. privacy ------------------------------------------------------------------------------------------

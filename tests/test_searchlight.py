@@ -442,7 +442,7 @@ def test_blobs_light_up_where_they_carry_information_and_the_null_voxels_do_not_
     assert mean[0, 0, 0].tolist() == [0.0] * 5 and p_fwe[0, 0, 0].tolist() == [1.0] * 5
     table = pd.read_csv(lantern_study["group_outputs"]["table"], sep="\t")
     row = table.set_index("direction").loc["seen->heard"]
-    assert row["n_subjects"] == 4 and row["n_voxels"] == int(mask.sum()) and row["chance"] == pytest.approx(1 / 3)
+    assert row["n_subjects"] == 4 and row["n_brain_voxels"] == int(mask.sum()) and row["chance"] == pytest.approx(1 / 3)
     assert (row["peak_i"], row["peak_j"], row["peak_k"]) in {tuple(v) for v in np.argwhere(ember | _dilate(ember))}
     assert row["n_voxels_p_fwe_below_alpha"] == int((p_fwe[..., seen_heard] < 0.05).sum())
     # TFCE (26-connectivity) also finds ember's shared code and nothing far from the blobs. TFCE lends a true

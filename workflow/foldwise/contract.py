@@ -129,7 +129,7 @@ GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chan
                  "prevalence_p_global_fwe", "prevalence_gamma0_fwe", "prevalence_gamma0_max", "n_used", "subject_p_min", "family")
 GROUP_NULL_COLUMNS = ("roi", "direction", "n_voxels", "draw", "mean")
 SEARCHLIGHT_DIRECTION_COLUMNS = ("volume", "direction")
-SEARCHLIGHT_GROUP_COLUMNS = ("analysis", "direction", "n_subjects", "n_voxels", "chance", "n_permutations", "n_draws", "alpha",
+SEARCHLIGHT_GROUP_COLUMNS = ("analysis", "direction", "n_subjects", "n_brain_voxels", "chance", "n_permutations", "n_draws", "alpha",
                              "n_voxels_p_below_alpha", "n_voxels_p_fwe_below_alpha", "peak_accuracy", "peak_i", "peak_j", "peak_k",
                              "peak_p", "peak_p_fwe")
 

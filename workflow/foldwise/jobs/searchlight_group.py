@@ -174,7 +174,7 @@ def run(inputs, outputs, params, log):
     rows = []
     for direction, name in enumerate(directions):
         peak = int(np.argmax(mean[:, direction]))  # the first voxel in C order on ties
-        row = {"analysis": analysis["name"], "direction": name, "n_subjects": n_subjects, "n_voxels": n_voxels, "chance": chance,
+        row = {"analysis": analysis["name"], "direction": name, "n_subjects": n_subjects, "n_brain_voxels": n_voxels, "chance": chance,
                "n_permutations": n_permutations, "n_draws": n_draws if tested else 0, "alpha": alpha,
                "n_voxels_p_below_alpha": int((p_value[:, direction] < alpha).sum()) if tested else np.nan,
                "n_voxels_p_fwe_below_alpha": int((p_fwe[:, direction] < alpha).sum()) if tested else np.nan,

@@ -13,6 +13,7 @@ include: "workflow/rules/decoding.smk"
 include: "workflow/rules/group.smk"
 include: "workflow/rules/calibrate.smk"
 include: "workflow/rules/searchlight.smk"
+include: "workflow/rules/geometry.smk"
 include: "workflow/rules/report.smk"
 include: "workflow/rules/manifest.smk"
 

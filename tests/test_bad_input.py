@@ -702,6 +702,44 @@ def _one_summary_volume(folder):
                                            "schemas. Fix: correct brain_mask.summary_volumes (see the README's config reference)")
 
 
+# -- geometry analyses (docs/geometry.md) --
+_LANTERN_CONDITIONS = ["seen_round", "seen_square", "seen_star", "heard_round", "heard_square", "heard_star"]
+
+
+def _geometry_study(models, **extra):
+    features = {c: {"modality": c.split("_")[0], "shape": c.split("_")[1]} for c in _LANTERN_CONDITIONS}
+    entry = {"name": "lantern_geometry", "kind": "geometry", **extra,
+             "geometry": {"conditions": _LANTERN_CONDITIONS[:3], "features": features, "models": models}}
+    study = _study()
+    study["analyses"].append(entry)
+    return study
+
+
+@case("geometry model that separates no condition pairs", "geometry.wiring.check via config.validate, before any job")
+def _flat_geometry_model(folder):
+    # Among the three seen conditions the modality never differs: the model is constant and correlates with nothing.
+    return Expectation(_validating(_geometry_study([{"name": "modality", "differ_in": ["modality"]}])),
+                       "config/study.yaml: analyses[1].geometry.models[0] (modality): the model gives every condition pair the same dissimilarity. "
+                       "Fix: change differ_in / only_for so the model separates some pairs from others")
+
+
+@case("geometry model matrix (TSV) not symmetric", "geometry.models.read_model_tsv via config.validate, before any job")
+def _asymmetric_geometry_model(folder):
+    path = folder / "model.tsv"
+    path.write_text("condition\tseen_round\tseen_square\tseen_star\nseen_round\t0\t1\t2\nseen_square\t1\t0\t3\n"
+                    "seen_star\t2\t4\t0\n", encoding="utf-8")
+    return Expectation(_validating(_geometry_study([{"name": "custom", "tsv": str(path)}])),
+                       f"{FOLDER}/model.tsv: analyses[1].geometry.models[0].tsv: the matrix is not finite, symmetric with a zero diagonal. "
+                       "Fix: give a dissimilarity matrix")
+
+
+@case("geometry analysis that also names decoding classes", "geometry.wiring.check via config.validate, before any job")
+def _geometry_with_classes(folder):
+    study = _geometry_study([{"name": "shape", "differ_in": ["shape"]}], classes={"a": ["seen_round"], "b": ["seen_star"]})
+    return Expectation(_validating(study), "config/study.yaml: analyses[1].classes: a 'geometry' analysis takes 'geometry', "
+                                           "not 'classes'. Fix: remove 'classes'")
+
+
 # -- nothing silently wrong (docs/reliability.md) --
 @case("--config override with an unknown key", "config.apply_overrides via common.smk, before any job")
 def _override_unknown_key(folder):

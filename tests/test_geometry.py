@@ -334,3 +334,105 @@ def test_searchlight_distances_equal_the_roi_estimator_on_each_sphere():
         roi = distances.crossvalidated_distances(patterns[:, :, voxels], noise.fold_noise("univariate", [r[:, voxels] for r in residuals]))
         np.testing.assert_allclose(searchlight_geometry.sphere_distances(patterns, spheres, inverse_variance)[centre], roi, atol=1e-12)
         np.testing.assert_allclose(fits[centre], compare.kendall_tau_a(roi, model_set)[0], atol=1e-12)
+
+
+def test_classical_mds_recovers_planar_points():
+    rng = np.random.default_rng(15)
+    points = rng.standard_normal((6, 2))
+    squared = ((points[:, None] - points[None]) ** 2).sum(axis=2)
+    coordinates = distances.classical_mds(squared)
+    # Source: Torgerson 1952 -- points in the plane are recovered up to rotation, so their distances are exact.
+    np.testing.assert_allclose(((coordinates[:, None] - coordinates[None]) ** 2).sum(axis=2), squared, atol=1e-10)
+
+
+# -- the demo (end to end) -----------------------------------------------------
+
+@pytest.mark.e2e
+@pytest.mark.slow
+def test_demo_geometry_matches_the_simulators_ground_truth(tmp_path):
+    """ember fits shape, glow shape_within_seen (best), hush no model; p_fwe at the config's alpha."""
+    import json
+
+    import pandas as pd
+    from workflow_support import copy_repository, snakemake
+
+    workdir = copy_repository(tmp_path / "repo")
+    target = "results/geometry/lantern_geometry/lantern_geometry_group.tsv"
+    snakemake(workdir, target, "results/demo/ground_truth.json", config="config/config.yaml")
+    table = pd.read_csv(workdir / target, sep="\t")
+    truth = json.loads((workdir / "results/demo/ground_truth.json").read_text())["rois"]
+    alpha = 0.05
+    for roi, expected in truth.items():
+        rows = table[table["roi"] == roi].set_index("model")
+        best = expected["geometry"]["best_model"]
+        # Source: the simulator's ground truth (data/demo.py expected_geometry).
+        if best is None:
+            assert (rows["p_fwe"] > alpha).all(), rows
+        else:
+            assert rows.loc[best, "p_fwe"] <= alpha and rows["mean"].idxmax() == best, rows
+    assert (workdir / "results/geometry/lantern_geometry/lantern_geometry_fits.png").stat().st_size > 0
+
+
+def test_univariate_weights_from_sums_equal_fold_noise():
+    rng = np.random.default_rng(16)
+    _, residuals = _runs(rng, n_scans=9)
+    sums = np.stack([np.einsum("ij,ij->j", r, r) for r in residuals])
+    # Source: fold_noise("univariate") (itself checked against the brute-force loop above).
+    np.testing.assert_allclose(noise.univariate_weights(sums, [9] * 5), noise.fold_noise("univariate", residuals).inverse_variance,
+                               rtol=1e-12)
+
+
+# -- the jobs (files in, files out) ----------------------------------------------
+
+def _geometry_entry(**changes):
+    features = {c: {"modality": c.split("_")[0], "shape": c.split("_")[1]} for c in LANTERNS}
+    geometry = {"conditions": LANTERNS, "features": features, "distance": "crossnobis", "noise_normalisation": "multivariate",
+                "comparison": "kendall_tau_a", "models": [{"name": "shape", "differ_in": ["shape"]},
+                                                          {"name": "modality", "differ_in": ["modality"]}], **changes}
+    return {"name": "geo", "kind": "geometry", "rois": ["ember", "hush"], "geometry": geometry}
+
+
+def test_subject_and_group_jobs_write_the_documented_tables(tmp_path):
+    import json
+    import logging
+
+    import pandas as pd
+
+    from foldwise import contract
+    from foldwise.jobs import geometry_group, geometry_patterns, geometry_subject
+
+    rng = np.random.default_rng(17)
+    log = logging.getLogger("test_geometry")
+    shape_code = {s: rng.standard_normal(20) for s in ("round", "square", "star")}
+    analysis = _geometry_entry()
+    fits, distances_paths = [], []
+    for subject in ("01", "02", "03", "04"):
+        folder = tmp_path / subject
+        folder.mkdir()
+        truth = np.stack([np.r_[shape_code[c.split("_")[1]], np.zeros(20)] for c in LANTERNS])  # ember: shape code; hush: nothing
+        betas = truth[None] + 0.5 * rng.standard_normal((4, 6, 40))
+        residuals = rng.standard_normal((4 * 30, 40))
+        inputs = {"betas": str(folder / "b.npy"), "residuals": str(folder / "r.npy"), "index": str(folder / "i.json")}
+        geometry_patterns.save_npy(inputs["betas"], betas)
+        geometry_patterns.save_npy(inputs["residuals"], residuals.astype(np.float32))
+        (folder / "i.json").write_text(json.dumps({"n_scans": [30] * 4, "conditions": LANTERNS,
+                                                   "rois": {"ember": list(range(20)), "hush": list(range(20, 40))}}))
+        outputs = {key: str(folder / f"{key}.tsv") for key in ("distances", "matrices", "fits")}
+        geometry_subject.run(inputs, outputs, {"analysis": analysis, "subject": subject}, log)
+        fits.append(outputs["fits"])
+        distances_paths.append(outputs["distances"])
+        table = contract.read_table("geometry_distances", outputs["distances"])
+        assert len(table) == 2 * 15 and list(table.columns) == list(contract.GEOMETRY_DISTANCE_COLUMNS)
+        square = pd.read_csv(outputs["matrices"], sep="\t")
+        assert square.shape == (12, 4 + 6)
+    out = {key: str(tmp_path / f"group_{key}") for key in ("table", "pairwise", "mean_matrices", "ceilings", "summary")}
+    out.update({key: str(tmp_path / f"{key}.png") for key in ("matrix_png", "mds_png", "fits_png")})
+    geometry_group.run({"fits": fits, "distances": distances_paths}, out,
+                       {"analysis": analysis, "subjects": ["01", "02", "03", "04"], "group": {"n_draws": 1000, "alpha": 0.05},
+                        "seed": 1}, log)
+    group = contract.read_table("geometry_group_table", out["table"]).set_index(["roi", "model"])
+    assert bool(group.loc[("ember", "shape"), "exact"]) and group.loc[("ember", "shape"), "n_flips"] == 16
+    assert group.loc[("ember", "shape"), "mean"] > 0.2  # the simulated shape code
+    assert len(contract.read_table("geometry_pairwise", out["pairwise"])) == 2
+    with open(out["summary"], encoding="utf-8") as handle:
+        assert "geometry geo: crossnobis, multivariate" in handle.read()

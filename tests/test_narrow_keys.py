@@ -95,6 +95,10 @@ READERS = {
     "group.prevalence": {"group", "report"},
     "group.fwe_method": {"group", "report"},
     "group.family": {"group", "report"},
+    # the design self-check (make calibrate) is off the default target: no planned job reads its keys but the report
+    "calibrate.n_studies": {"report"},
+    "calibrate.n_draws": {"report"},
+    "calibrate.classifier": {"report"},
     "searchlight.enabled": SEARCHLIGHT | {"report"},
     "searchlight.analyses": SEARCHLIGHT | {"report"},
     "searchlight.radius_mm": {"searchlight_block", "report"},
@@ -129,6 +133,7 @@ SPECIAL = {
     "analyses[i].voxel_counts": [10, 50, "all"],
     "searchlight.analyses": ["shape", "shape_seen_heard"],
     "report.confusion_n_voxels": 50,
+    "calibrate.classifier": "shrinkage_lda",
 }
 _ENUMS = {  # another valid choice of each enum key
     "glm.hrf_derivatives": "temporal", "glm.serial_correlation": "ignore", "glm.pattern_mode": "lss", "glm.statistic": "beta",

@@ -73,6 +73,28 @@ TEMPLATES = {
     "searchlight_tfce": f"{_SEARCHLIGHT_GROUP}_tfce.nii.gz",
     "searchlight_p_tfce": f"{_SEARCHLIGHT_GROUP}_p_tfce.nii.gz",
     "searchlight_group_table": f"{_SEARCHLIGHT_GROUP}_group.tsv",
+    # geometry analyses (docs/geometry.md)
+    "geometry_betas": "results/patterns/sub-{subject}/sub-{subject}_geometry_betas.npy",
+    "geometry_residuals": "results/patterns/sub-{subject}/sub-{subject}_geometry_residuals.npy",
+    "geometry_index": "results/patterns/sub-{subject}/sub-{subject}_geometry_index.json",
+    "geometry_distances": "results/geometry/{analysis}/sub-{subject}/sub-{subject}_distances.tsv",
+    "geometry_matrices": "results/geometry/{analysis}/sub-{subject}/sub-{subject}_matrices.tsv",
+    "geometry_fits": "results/geometry/{analysis}/sub-{subject}/sub-{subject}_fits.tsv",
+    "geometry_group_table": "results/geometry/{analysis}/{analysis}_group.tsv",
+    "geometry_pairwise": "results/geometry/{analysis}/{analysis}_pairwise.tsv",
+    "geometry_mean_matrices": "results/geometry/{analysis}/{analysis}_mean_matrices.tsv",
+    "geometry_noise_ceilings": "results/geometry/{analysis}/{analysis}_noise_ceilings.tsv",
+    "geometry_summary": "results/geometry/{analysis}/{analysis}_summary.txt",
+    "geometry_matrix_figure": "results/geometry/{analysis}/{analysis}_matrices.png",
+    "geometry_mds_figure": "results/geometry/{analysis}/{analysis}_mds.png",
+    "geometry_fits_figure": "results/geometry/{analysis}/{analysis}_fits.png",
+    "geometry_searchlight_map": "results/geometry/{analysis}/sub-{subject}/sub-{subject}_searchlight_fits.nii.gz",
+    "geometry_searchlight_models": "results/geometry/{analysis}/sub-{subject}/sub-{subject}_searchlight_models.tsv",
+    "geometry_searchlight_mean": "results/geometry/{analysis}/{analysis}_searchlight_mean.nii.gz",
+    "geometry_searchlight_p": "results/geometry/{analysis}/{analysis}_searchlight_p.nii.gz",
+    "geometry_searchlight_p_fwe": "results/geometry/{analysis}/{analysis}_searchlight_p_fwe.nii.gz",
+    "geometry_searchlight_table": "results/geometry/{analysis}/{analysis}_searchlight_group.tsv",
+    "geometry_searchlight_figure": "results/geometry/{analysis}/{analysis}_searchlight.png",
     "report_html": "results/report/index.html",
     "report_figures_dir": "results/report/figures",
     "manifest": "results/manifest.tsv",
@@ -133,6 +155,16 @@ SEARCHLIGHT_GROUP_COLUMNS = ("analysis", "direction", "n_subjects", "n_brain_vox
                              "n_voxels_p_below_alpha", "n_voxels_p_fwe_below_alpha", "peak_accuracy", "peak_i", "peak_j", "peak_k",
                              "peak_p", "peak_p_fwe")
 
+# geometry analyses (docs/geometry.md)
+GEOMETRY_DISTANCE_COLUMNS = ("subject", "analysis", "roi", "n_voxels", "distance", "noise_normalisation", "condition_a", "condition_b",
+                             "dissimilarity")
+GEOMETRY_FIT_COLUMNS = ("subject", "analysis", "roi", "n_voxels", "model", "comparison", "fit")
+GEOMETRY_GROUP_COLUMNS = ("analysis", "roi", "model", "comparison", "n_subjects", "mean", "sem", "ci_low", "ci_high", "t", "p_t",
+                          "p_wilcoxon", "p_signflip", "p_fwe", "n_flips", "exact", "noise_ceiling_lower", "noise_ceiling_upper")
+GEOMETRY_PAIRWISE_COLUMNS = ("analysis", "roi", "model_a", "model_b", "comparison", "n_subjects", "mean_difference", "t", "p_signflip",
+                             "p_fwe", "p_wilcoxon")
+GEOMETRY_CEILING_COLUMNS = ("analysis", "roi", "comparison", "n_subjects", "lower", "upper")
+
 # artefact name -> (columns a reader requires, what the table is called in messages)
 TABLE_COLUMNS = {
     "patterns_table": (PATTERN_TABLE_COLUMNS, "pattern table"),
@@ -145,6 +177,11 @@ TABLE_COLUMNS = {
     "group_null": (GROUP_NULL_COLUMNS, "group null table"),
     "searchlight_directions": (SEARCHLIGHT_DIRECTION_COLUMNS, "searchlight direction table"),
     "searchlight_group_table": (SEARCHLIGHT_GROUP_COLUMNS, "searchlight group table"),
+    "geometry_distances": (GEOMETRY_DISTANCE_COLUMNS, "geometry distance table"),
+    "geometry_fits": (GEOMETRY_FIT_COLUMNS, "geometry model-fit table"),
+    "geometry_group_table": (GEOMETRY_GROUP_COLUMNS, "geometry group table"),
+    "geometry_pairwise": (GEOMETRY_PAIRWISE_COLUMNS, "geometry pairwise table"),
+    "geometry_noise_ceilings": (GEOMETRY_CEILING_COLUMNS, "geometry noise-ceiling table"),
 }
 
 

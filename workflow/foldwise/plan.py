@@ -14,6 +14,7 @@ from foldwise.data import bids
 from foldwise.data import demo
 from foldwise.data.check import study_tasks
 from foldwise.errors import InputError
+from foldwise.geometry import wiring as geometry_wiring
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
            "step_outputs", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
@@ -156,6 +157,7 @@ STEPS = {
     "report": Step("study", _report_outputs),
     "manifest": Step("study", _named(manifest="manifest")),
 }
+STEPS.update({step: Step(identity, outputs) for step, (identity, outputs) in geometry_wiring.STEP_OUTPUTS.items()})
 
 
 def step_outputs(study, step):
@@ -187,6 +189,7 @@ def planned_jobs(study):
             jobs += [("decode_gather", {"analysis": name, "subject": subject}) for subject in subjects]
         if "group" in steps:
             jobs += [("group", {"analysis": name})]
+    jobs += geometry_wiring.planned_jobs(study)  # geometry analyses: their own steps (foldwise.geometry.wiring)
     for name in study.searchlight_analyses:
         jobs += [("searchlight_block", {"analysis": name, "subject": subject, "block": str(block)})
                  for subject in subjects for block in study.searchlight_blocks]
@@ -320,6 +323,7 @@ def report_input_index(study):
     """
     subjects = study.subjects
     first_runs = {subject: study.runs_of(subject)[0]["run_id"] for subject in subjects}
+    decoding = {name: analysis for name, analysis in study.analyses.items() if "group" in analysis.steps}  # geometry analyses: below
 
     def record(name, **fields):
         return {"path": contract.fill(name, **fields), **fields}
@@ -333,16 +337,23 @@ def report_input_index(study):
         "roi_masks": [record("roi_mask", subject=s, roi=roi) for s in subjects for roi in study.rois],
         "roi_counts": [record("roi_counts", subject=s) for s in subjects],
         "resvar": [record("residual_variance", subject=subjects[0], run_id=first_runs[subjects[0]])],
-        "summaries": [record("subject_summary", analysis=name, subject=s) for name in study.analyses for s in subjects],
+        "summaries": [record("subject_summary", analysis=name, subject=s) for name in decoding for s in subjects],
         "confusions": [record("decode_confusion", analysis=name, subject=s, roi=roi)
-                       for name, analysis in study.analyses.items() for s in subjects for roi in analysis.rois],
-        "group_tables": [record("group_table", analysis=name) for name in study.analyses],
+                       for name, analysis in decoding.items() for s in subjects for roi in analysis.rois],
+        "group_tables": [record("group_table", analysis=name) for name in decoding],
     }
     if study.searchlight_analyses:
         index["searchlight_means"] = [record("searchlight_mean", analysis=name) for name in study.searchlight_analyses]
         index["searchlight_p_fwe"] = [record("searchlight_p_fwe", analysis=name) for name in study.searchlight_analyses]
         index["searchlight_directions"] = [record("searchlight_directions", analysis=name, subject=subjects[0])
                                            for name in study.searchlight_analyses]
+    geometry = [analysis.name for analysis in geometry_wiring.geometry_analyses(study)]
+    if geometry:
+        for key in ("geometry_group_table", "geometry_summary", "geometry_matrix_figure", "geometry_mds_figure", "geometry_fits_figure"):
+            index[key] = [record(key, analysis=name) for name in geometry]
+        mapped = [analysis.name for analysis in geometry_wiring.geometry_analyses(study) if analysis.entry["geometry"]["searchlight"]]
+        if mapped:
+            index["geometry_searchlight_figure"] = [record("geometry_searchlight_figure", analysis=name) for name in mapped]
     if study.is_demo:
         index["ground_truth"] = [{"path": contract.TEMPLATES["demo_truth"]}]
     return index
@@ -369,6 +380,7 @@ JOB_INPUTS = {
     "report": _report_inputs,
     "manifest": lambda study, w: {"records": all_provenance_records(study)},
 }
+JOB_INPUTS.update(geometry_wiring.JOB_INPUTS)
 
 
 JOB_SOURCES = []  # functions study -> [(step, wildcards)] of registered steps, planned before the report

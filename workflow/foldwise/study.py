@@ -26,6 +26,7 @@ from foldwise import contract
 from foldwise.data import check as dataset_check
 from foldwise.data import demo
 from foldwise.errors import InputError
+from foldwise.geometry import wiring as geometry_wiring
 from foldwise.plan import plan_study
 
 __all__ = [
@@ -142,6 +143,8 @@ def _cross_check(entry, where, path):
 
 register_analysis_kind(AnalysisKind("within", _within_outline, _within_conditions, _within_check))
 register_analysis_kind(AnalysisKind("cross", _cross_outline, _cross_conditions, _cross_check))
+register_analysis_kind(AnalysisKind(geometry_wiring.KIND, geometry_wiring.outline, geometry_wiring.condition_keys, geometry_wiring.check,
+                                    steps=geometry_wiring.STEPS, searchlight=False))
 
 
 # -- ROI kinds -------------------------------------------------------------------
@@ -442,6 +445,7 @@ STEP_SETTINGS = {
                                            "group": {key: study.config["group"][key] for key in ("n_draws", "alpha")}},
     "manifest": lambda study, w: {},
 }
+STEP_SETTINGS.update(geometry_wiring.STEP_SETTINGS)
 
 
 # -- building the model (every check of meaning, once) ------------------------------

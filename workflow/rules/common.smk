@@ -98,3 +98,6 @@ def print_group_summaries():
         path = contract.fill("group_summary", analysis=name)
         if os.path.isfile(path):
             print(open(path, encoding="utf-8").read().rstrip())
+    for path in plan.geometry_wiring.group_summary_paths(MODEL):  # geometry analyses
+        if os.path.isfile(path):
+            print(open(path, encoding="utf-8").read().rstrip())

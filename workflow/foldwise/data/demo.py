@@ -275,6 +275,32 @@ def expected_decoding(code):
             "modality": code == "seen_only"}
 
 
+def expected_geometry(code):
+    """What a geometry analysis of the six conditions should find in a region with this code.
+
+    Returns
+    -------
+    dict
+        ``alike`` -- the condition pairs whose noise-free patterns are equal
+        (their cross-validated distance is 0 in expectation; every other pair
+        of an ember or glow region differs); ``best_model`` -- which of the
+        demo's models (config/config.yaml, analysis lantern_geometry) matches
+        that structure exactly: ``shape`` (pairs alike when the shape
+        matches), ``shape_within_seen`` (seen shapes apart, heard conditions
+        alike) or None (hush: every condition evokes the same pattern, so
+        no model should fit).
+    """
+    if code not in ("shared", "seen_only", "none"):
+        raise InputError(None, "code", f"unknown region code {code!r}", "use shared, seen_only or none")
+    if code == "shared":
+        alike = [[f"seen_{shape}", f"heard_{shape}"] for shape in SHAPES]
+    elif code == "seen_only":
+        alike = [[f"heard_{a}", f"heard_{b}"] for i, a in enumerate(SHAPES) for b in SHAPES[i + 1:]]
+    else:
+        alike = [[a, b] for i, a in enumerate(CONDITIONS) for b in CONDITIONS[i + 1:]]
+    return {"alike": alike, "best_model": {"shared": "shape", "seen_only": "shape_within_seen", "none": None}[code]}
+
+
 def subject_patterns(brain, labels, informative, signal_to_noise, rng):
     """One subject's response patterns, baseline, noise level and effect size.
 
@@ -563,7 +589,8 @@ def write_demo_study(bids_root, patterns, demo_settings, seed, task, confound_na
         regions[name] = {"index": index, "code": code, "n_voxels": int((labels == index).sum()),
                          "n_informative": int(informative[name].sum()), "informative_voxels": _voxel_list(informative[name]),
                          "decodes": expected_decoding(code)}
-    families = {family: {"labels": [f"{family}_L", f"{family}_R"], "code": code, "decodes": expected_decoding(code)}
+    families = {family: {"labels": [f"{family}_L", f"{family}_R"], "code": code, "decodes": expected_decoding(code),
+                         "geometry": expected_geometry(code)}
                 for family, code in REGION_CODES.items()}
     write_json(ground_truth_path, {
         "invented": True,

@@ -10,7 +10,7 @@ import numpy as np
 from foldwise.errors import InputError
 
 __all__ = ["DISTANCES", "BIASED_DISTANCES", "condition_pairs", "square_form", "condition_patterns",
-           "crossvalidated_distances", "correlation_distances", "distances"]
+           "crossvalidated_distances", "correlation_distances", "distances", "classical_mds"]
 
 #: ``crossnobis`` (with noise normalisation) and ``euclidean_cv`` (without) are
 #: cross-validated and unbiased; ``correlation`` is not cross-validated and
@@ -165,3 +165,36 @@ def distances(run_patterns, distance, noise=None):
     if distance == "crossnobis":
         return crossvalidated_distances(run_patterns, noise)
     _fail("distance", f"unknown distance {distance!r}", f"use one of {', '.join(DISTANCES)}")
+
+
+def classical_mds(squared_dissimilarities, n_dimensions=2):
+    """Coordinates whose squared Euclidean distances best match a squared-dissimilarity matrix.
+
+    Parameters
+    ----------
+    squared_dissimilarities : array_like, shape (n, n)
+        Symmetric, zero diagonal; crossnobis and cross-validated Euclidean
+        estimates are squared distances already (negative estimates allowed).
+    n_dimensions : int
+
+    Returns
+    -------
+    ndarray, shape (n, n_dimensions)
+        Zero where the doubly centred matrix has no positive eigenvalue.
+
+    Notes
+    -----
+    Classical (Torgerson 1952, Psychometrika 17:401-419) scaling:
+    ``B = -1/2 J D J`` with the centring matrix ``J``; coordinates are the
+    leading eigenvectors scaled by the square roots of their eigenvalues.
+    """
+    values = np.asarray(squared_dissimilarities, dtype=np.float64)
+    n = values.shape[0]
+    centring = np.eye(n) - 1.0 / n
+    inner = -0.5 * centring @ values @ centring
+    eigenvalues, eigenvectors = np.linalg.eigh((inner + inner.T) / 2)
+    order = np.argsort(eigenvalues)[::-1][:n_dimensions]
+    # Fix each axis' sign (largest entry positive) so the figure is the same on every machine.
+    vectors = eigenvectors[:, order]
+    vectors *= np.where(vectors[np.argmax(np.abs(vectors), axis=0), np.arange(vectors.shape[1])] < 0, -1.0, 1.0)
+    return vectors * np.sqrt(np.maximum(eigenvalues[order], 0.0))

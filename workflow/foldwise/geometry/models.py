@@ -91,14 +91,14 @@ def read_model_tsv(path, conditions, field="models.tsv"):
     return square[rows, columns]
 
 
-def model_vectors(conditions, features, models, file="the study config"):
+def model_vectors(conditions, features, models, file="the study config", field="models"):
     """Every configured model as a ``(n_models, n_pairs)`` array (names in config order).
 
     A model must vary over the pairs: a constant model correlates with nothing.
     """
     vectors = []
     for index, model in enumerate(models):
-        where = f"models[{index}]"
+        where = f"{field}[{index}]"
         if model.get("tsv"):
             vector = read_model_tsv(model["tsv"], conditions, field=f"{where}.tsv")
         else:

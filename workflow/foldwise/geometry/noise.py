@@ -23,7 +23,7 @@ from scipy import linalg
 
 from foldwise.errors import InputError
 
-__all__ = ["NORMALISATIONS", "ledoit_wolf_covariance", "ledoit_wolf_from_gram", "FoldNoise", "fold_noise"]
+__all__ = ["NORMALISATIONS", "ledoit_wolf_covariance", "ledoit_wolf_from_gram", "FoldNoise", "fold_noise", "univariate_weights"]
 
 NORMALISATIONS = ("none", "univariate", "multivariate")
 
@@ -219,3 +219,28 @@ def _woodbury(training, block, shrinkage, mu):
     inner = block.copy()
     inner[np.diag_indices_from(inner)] += a_value / b_value
     return ("sample", (training, _cholesky(inner), a_value))
+
+
+def univariate_weights(squared_sums, n_scans):
+    """Fold-wise inverse residual variances from each run's residual sum of squares per voxel.
+
+    Parameters
+    ----------
+    squared_sums : array_like, shape (n_runs, n_voxels)
+        ``sum_t r_t^2`` of each run's residuals.
+    n_scans : array_like, shape (n_runs,)
+
+    Returns
+    -------
+    ndarray, shape (n_runs, n_voxels)
+        Row ``k``: ``1 / s_k^2`` with ``s_k^2`` the mean squared residual over
+        the scans of every run but ``k`` (the same as ``fold_noise("univariate",
+        ...)``, from sums only, so a whole brain never holds every scan);
+        0 where a voxel has no residual variance (it then adds nothing).
+    """
+    sums = np.asarray(squared_sums, dtype=np.float64)
+    scans = np.asarray(n_scans, dtype=np.float64)
+    n_runs = sums.shape[0]
+    variance = np.stack([np.sum(np.concatenate([sums[:fold], sums[fold + 1:]]), axis=0) for fold in range(n_runs)])
+    variance /= (scans.sum() - scans)[:, None]
+    return np.divide(1.0, variance, out=np.zeros_like(variance), where=variance > 0)

@@ -22,6 +22,7 @@ import pandas as pd
 # follows ``from foldwise.x`` imports.
 from foldwise.report import figures as page
 from foldwise.report import page as html_page
+from foldwise.report import geometry_section
 from foldwise.report.summary import answer_sentences
 from foldwise.report.terminal import job_warnings
 from foldwise.errors import InputError
@@ -454,7 +455,7 @@ def run(inputs, outputs, params, log):
     """
     study, subjects, runs = _check_params(params)
     catalogue = _check_outputs(outputs, study, subjects)
-    analyses = {analysis["name"]: analysis for analysis in study["analyses"]}
+    analyses = {analysis["name"]: analysis for analysis in study["analyses"] if analysis["kind"] != "geometry"}  # decoding analyses
     roi_names = [roi["name"] for roi in study["rois"]]
     alpha = float(study.get("group", {}).get("alpha", 0.05))
     config_file = display_path(params.get("config_file"))  # never an absolute path in the report
@@ -508,7 +509,7 @@ def run(inputs, outputs, params, log):
                "catalogue": catalogue, "blocks": blocks, "clusters": data["clusters"], "warnings": warnings,
                "n_draws": int(study.get("group", {}).get("n_draws", 0)) or None,
                "repetition_times": repetition_times, "voxel_size_mm": voxel_size_mm, "config_file": config_file,
-               "versions": versions, "records": records}
+               "versions": versions, "records": records, "geometry": geometry_section.read(inputs)}
     sections = [section(context) for section in SECTIONS]
     title = f"foldwise study report: {study.get('study', {}).get('name', 'study')}"
     write_text_atomic(outputs["html"], html_page.render_page(title, [section for section in sections if section]))
@@ -659,7 +660,7 @@ def _provenance_page_section(context):
 
 
 #: The page's sections in order: the answer, results, maps, quality checks, warnings, then how it was done.
-SECTIONS = (_summary_section, _results_section, _maps_section, _quality_section, _warnings_section,
+SECTIONS = (_summary_section, _results_section, _maps_section, geometry_section.section, _quality_section, _warnings_section,
             _cautions_page_section, _methods_section, _provenance_page_section)
 
 

@@ -156,6 +156,8 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
                         "paths": paths, "caption": CAPTIONS[caption], "category": category})
 
     for analysis in study_config["analyses"]:
+        if analysis["kind"] == "geometry":  # figures of their own (report/geometry_figures.py, written by geometry_group)
+            continue
         name = analysis["name"]
         curve_caption = "curve_cross" if analysis["kind"] == "cross" else "curve_within"
         for roi in analysis_rois(study_config, analysis):

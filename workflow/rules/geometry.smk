@@ -1,0 +1,113 @@
+# Geometry analyses (docs/geometry.md): per subject the betas and residuals of the
+# geometry ROIs' voxels; per analysis x subject the dissimilarities and model
+# fits; per analysis the group tests, noise ceilings and figures.
+
+
+rule geometry_patterns:
+    input:
+        unpack(inputs_of("geometry_patterns")),
+    output:
+        **outputs_of("geometry_patterns"),
+    params:
+        settings=settings_of("geometry_patterns"),
+        code=step_code("geometry_patterns.py"),
+    log:
+        log_of("geometry_patterns"),
+    benchmark:
+        benchmark_of("geometry_patterns")
+    threads: 1
+    resources:
+        mem_mb=3000,
+        runtime=20,
+    conda:
+        "../envs/foldwise.yaml"
+    script:
+        "../scripts/geometry_patterns.py"
+
+
+rule geometry_subject:
+    input:
+        unpack(inputs_of("geometry_subject")),
+    output:
+        **outputs_of("geometry_subject"),
+    params:
+        settings=settings_of("geometry_subject"),
+        code=step_code("geometry_subject.py"),
+    log:
+        log_of("geometry_subject"),
+    benchmark:
+        benchmark_of("geometry_subject")
+    threads: 1
+    resources:
+        mem_mb=2000,
+        runtime=20,
+    conda:
+        "../envs/foldwise.yaml"
+    script:
+        "../scripts/geometry_subject.py"
+
+
+rule geometry_group:
+    input:
+        unpack(inputs_of("geometry_group")),
+    output:
+        **outputs_of("geometry_group"),
+    params:
+        settings=settings_of("geometry_group"),
+        code=step_code("geometry_group.py"),
+    log:
+        log_of("geometry_group"),
+    benchmark:
+        benchmark_of("geometry_group")
+    threads: 1
+    resources:
+        mem_mb=2000,
+        runtime=10,
+    conda:
+        "../envs/foldwise.yaml"
+    script:
+        "../scripts/geometry_group.py"
+
+
+rule geometry_searchlight:
+    input:
+        unpack(inputs_of("geometry_searchlight")),
+    output:
+        **outputs_of("geometry_searchlight"),
+    params:
+        settings=settings_of("geometry_searchlight"),
+        code=step_code("geometry_searchlight.py"),
+    log:
+        log_of("geometry_searchlight"),
+    benchmark:
+        benchmark_of("geometry_searchlight")
+    threads: 1
+    resources:
+        mem_mb=4000,
+        runtime=60,
+    conda:
+        "../envs/foldwise.yaml"
+    script:
+        "../scripts/geometry_searchlight.py"
+
+
+rule geometry_searchlight_group:
+    input:
+        unpack(inputs_of("geometry_searchlight_group")),
+    output:
+        **outputs_of("geometry_searchlight_group"),
+    params:
+        settings=settings_of("geometry_searchlight_group"),
+        code=step_code("geometry_searchlight_group.py"),
+    log:
+        log_of("geometry_searchlight_group"),
+    benchmark:
+        benchmark_of("geometry_searchlight_group")
+    threads: 1
+    resources:
+        mem_mb=4000,
+        runtime=30,
+    conda:
+        "../envs/foldwise.yaml"
+    script:
+        "../scripts/geometry_searchlight_group.py"

@@ -420,6 +420,12 @@ def _group_settings(study, wildcards):
     return settings
 
 
+def _calibrate_settings(study, wildcards):
+    settings = _group_settings(study, wildcards)
+    settings["calibrate"] = study.config["calibrate"]
+    return settings
+
+
 STEP_SETTINGS = {
     "demo_dataset": _demo_settings,
     "brain_mask": lambda study, w: {"brain_mask": study.config["brain_mask"], "subject": w["subject"]},
@@ -432,6 +438,7 @@ STEP_SETTINGS = {
                                 **({"pattern_tasks": study.pattern_tasks(w["analysis"])} if study.pattern_tasks(w["analysis"]) else {})},
     "decode_gather": _decode_gather_settings,
     "group": _group_settings,
+    "calibrate": _calibrate_settings,
     "searchlight_block": lambda study, w: {"searchlight": study.searchlight_method("searchlight_block"),
                                            "analysis": study.searchlight_analysis(w["analysis"], "searchlight_block"),
                                            "subject": w["subject"], "block": int(w["block"]), "seed": study.seed},

@@ -811,9 +811,14 @@ def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True,
 
     Notes
     -----
-    Model ``k`` (Mumford et al. 2012, NeuroImage 59:2636-2643) holds trial
-    ``k``, the other trials of its condition as one regressor, each other
-    condition as one regressor, and the nuisance columns. By the
+    Model ``k`` holds trial ``k``, the other trials of its condition as one
+    regressor, each other condition as one regressor, and the nuisance
+    columns: the "LSS-N" form (N = one regressor per condition for the other
+    trials), named so by Abdulrahman & Henson 2016 (NeuroImage 125:756-766).
+    Mumford et al. 2012 (NeuroImage 59:2636-2643) introduced least-squares-
+    separate with all other trials in a single regressor (the "LSS-1" form);
+    the per-condition variant appears in Turner et al. 2012 (NeuroImage
+    62:1429-1438). Attributions from memory. By the
     Frisch-Waugh-Lovell theorem the trial coefficients and their covariance
     equal those of the regression of the nuisance-residualised data on the
     nuisance-residualised trial regressors. All of those lie in the span of

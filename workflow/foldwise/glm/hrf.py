@@ -29,8 +29,11 @@ DISPERSION_STEP = 0.01
 DERIVATIVE_CHOICES = ("none", "temporal", "temporal_dispersion")
 
 # Double-gamma parameters: response shape 6, undershoot shape 16, both scale
-# 1 s, undershoot ratio 1/6 (Friston et al. 1998; Glover 1999; values from
-# memory of the published canonical form).
+# 1 s, undershoot ratio 1/6: the canonical values popularised by Friston et
+# al. 1998 (NeuroImage 7:30-40) and used as the standard form since (values
+# from memory). Glover 1999 (NeuroImage 9:416-429) parameterises his
+# difference of gamma-like functions differently (powers and widths fitted to
+# measured responses, different numbers); his form is not what is used here.
 _PEAK_SHAPE = 6.0
 _UNDERSHOOT_SHAPE = 16.0
 _UNDERSHOOT_RATIO = 1.0 / 6.0

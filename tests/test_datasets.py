@@ -443,3 +443,35 @@ def test_example_config_runs_end_to_end(tmp_path, example, layout):
             assert mask.sum() == 30 and overlap == 30
         scores = pd.read_csv(results / "decoding" / "lit_from_shape" / "sub-01_summary.tsv", sep="\t")
         assert len(scores) > 0
+
+
+def test_make_check_prints_each_subject_and_stops_on_a_misspelt_condition(tmp_path, capsys):
+    # `make check CONFIG=...` runs foldwise.data.check.main: the overview, exit 0; a misspelling: the message, exit 1.
+    written = simulated.write_dataset(tmp_path / "data", n_subjects=2, sessions=("1", "2"))
+    config_path = tmp_path / "study.yaml"
+    config_path.write_text(yaml.safe_dump(example_config("sessions_localizer.yaml", written)), encoding="utf-8")
+    assert dataset_check.main(["--config", str(config_path)]) == 0
+    printed = capsys.readouterr().out
+    assert "lanterns,beacon" in printed.replace("beacon,lanterns", "lanterns,beacon") and "1,2" in printed
+    assert "2 subject(s), 16 run(s): every configured condition found" in printed
+    config = example_config("sessions_localizer.yaml", written)
+    config["rois"][1]["localizer"]["contrast"] = {"lti": 1, "dark": -1}
+    config_path.write_text(yaml.safe_dump(config), encoding="utf-8")
+    assert dataset_check.main(["--config", str(config_path)]) == 1
+    error = capsys.readouterr().err
+    assert "rois[1].localizer.contrast" in error and "has no event 'lti' of task 'beacon' (did you mean 'lit'?)" in error
+
+
+@pytest.mark.e2e
+def test_a_misspelt_condition_stops_the_workflow_before_any_job(tmp_path):
+    from workflow_support import copy_repository, snakemake
+
+    work = copy_repository(tmp_path / "repo")
+    simulated.write_dataset(work / "data" / "lanterns", n_subjects=2, sessions=("1", "2"),
+                            condition_rename={("02", "seen_square"): "seen_sqare"})
+    completed = snakemake(work, "--dry-run", config="config/examples/sessions_localizer.yaml", check=False)
+    assert completed.returncode != 0
+    message = completed.stdout + completed.stderr
+    assert "analyses[0].classes.square: subject 02 has no event 'seen_square' of task 'lanterns' (did you mean 'seen_sqare'" in message
+    assert message.count("has no event") == 1  # named by two analyses, reported once
+    assert not (work / "results" / "patterns").exists()  # no job ran

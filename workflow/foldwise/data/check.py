@@ -195,9 +195,12 @@ def missing_conditions(surveys, required):
     for survey in surveys:
         by_subject.setdefault(survey.subject, []).append(survey)
     claimed = {condition for condition, _, _ in required}
+    first_use = {}
+    for condition, where, task in required:  # a condition named twice (two analyses) is reported once, where first named
+        first_use.setdefault((condition, task), where)
     problems = []
     for subject, own in by_subject.items():
-        for condition, where, task in required:
+        for (condition, task), where in first_use.items():
             of_task = [survey for survey in own if survey.task == task] if task else own
             if not of_task:
                 problems.append({"subject": subject, "condition": condition, "where": where, "task": task, "did_you_mean": [],
@@ -305,7 +308,8 @@ def main(argv=None):
         if study["dataset"]["source"] == "demo":
             print("dataset.source is demo: the dataset is simulated by the workflow; nothing to check before it exists")
             return 0
-        runs = plan_study(study, path=arguments.config).runs
+        planned = plan_study(study, path=arguments.config)
+        runs = planned.runs + planned.localizer_runs
         table = check_dataset(study, runs, arguments.config)
     except InputError as error:
         print(f"foldwise: {error}", file=sys.stderr)

@@ -645,3 +645,23 @@ def test_job_warns_when_a_subjects_design_cannot_reach_alpha(tmp_path, caplog):
     table = pd.read_csv(outputs["table"], sep="\t")
     assert np.allclose(table["subject_p_min"], 0.125)
     assert "relabelings" in Path(outputs["summary"]).read_text(encoding="utf-8")
+
+
+def test_job_takes_subjects_whose_nulls_differ_in_size(tmp_path):
+    # Subject 01's design has 8 distinct relabelings, listed exactly; the others drew 30. Each subject's picks stay
+    # within its own null (checked by drawing with the per-subject counts), and the job runs.
+    inputs = _write_study(tmp_path, seed=10)
+    for path in inputs["nulls"][:2]:  # subject 01, both ROIs
+        frame = pd.read_csv(path, sep="\t", dtype={"subject": str, "n_voxels": str})
+        write_tsv(path, frame[frame["permutation"] <= 8])
+    outputs = _outputs(tmp_path)
+    group_job.run(inputs, outputs, _params(), LOG)
+    table = pd.read_csv(outputs["table"], sep="\t")
+    assert table["p_fwe"].notna().all()
+    picks = group.draw_indices(np.random.default_rng(0), np.array([8, 30, 30, 30, 30]), 5, 20_000)
+    assert picks[:, 0].max() == 7 and picks[:, 1:].max() == 29
+    # uniform within each subject's own count (chi-square against scipy.stats.chisquare's uniform expectation)
+    assert stats.chisquare(np.bincount(picks[:, 0], minlength=8)).pvalue > 0.001
+    # equal counts give the same stream as a plain integer count
+    np.testing.assert_array_equal(group.draw_indices(np.random.default_rng(1), np.array([30] * 5), 5, 10),
+                                  group.draw_indices(np.random.default_rng(1), 30, 5, 10))

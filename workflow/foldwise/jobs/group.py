@@ -292,13 +292,20 @@ def _subject_nulls(paths, name, cells, subjects):
         raise InputError(where, "subject, roi", f"no permutation null for subject/ROI {_short_list(missing)}"
                          + (" (this file has no permutations)" if where else ""), _RERUN_FIX)
     counts = {key: int(piece[1].max()) + 1 for key, piece in pieces.items() if key is not None}
-    n_permutations = counts[wanted[0]]
-    differing = [f"{subject}/{roi}: {count}" for (subject, roi), count in counts.items() if count != n_permutations]
+    # One subject's ROIs share its relabelings, so they hold equally many; subjects may differ (a design with
+    # few distinct relabelings lists all of them, fewer than requested).
+    per_subject = {}
+    for (subject, roi), count in counts.items():
+        per_subject.setdefault(subject, {})[roi] = count
+    differing = [f"{subject}/{roi}: {count}" for subject, by_roi in per_subject.items() for roi, count in by_roi.items()
+                 if len(set(by_roi.values())) > 1]
     if differing:
-        raise InputError(None, "permutation", f"subjects/ROIs have different numbers of permutations (the first, "
-                         f"{wanted[0][0]}/{wanted[0][1]}, has {n_permutations}; {_short_list(differing)})", _RERUN_FIX)
-    nulls = np.empty((len(subjects), n_permutations, len(cells)))
+        raise InputError(None, "permutation", f"the ROIs of a subject have different numbers of permutations "
+                         f"({_short_list(differing)})", _RERUN_FIX)
+    n_choices = np.array([next(iter(per_subject[subject].values())) for subject in subjects], dtype=np.int64)
+    nulls = np.empty((len(subjects), int(n_choices.max()), len(cells)))
     for (subject, roi), (columns, permutation, values, path) in ((k, v) for k, v in pieces.items() if k is not None):
+        n_permutations = int(n_choices[subject_row[subject]])
         n_roi_cells = len(cells_of_roi[roi])
         local = np.full(len(cells), -1, dtype=np.int64)  # study cell index -> index within this ROI
         local[list(cells_of_roi[roi].values())] = np.arange(n_roi_cells)
@@ -307,7 +314,9 @@ def _subject_nulls(paths, name, cells, subjects):
             raise InputError(path, "permutation", f"every cell needs each permutation 1..{n_permutations} exactly once "
                              f"({n_roi_cells} cells, {flat.size} rows)", _RERUN_FIX)
         nulls[subject_row[subject], permutation, columns] = values
-    return nulls
+    for row, count in enumerate(n_choices):  # rows beyond a subject's own count are never drawn; keep them finite
+        nulls[row, count:] = nulls[row, :1]
+    return nulls, n_choices
 
 
 def _optional_column(subject_frames, cells, column):
@@ -482,6 +491,7 @@ def run(inputs, outputs, params, log):
     n_used = _optional_column(subject_frames, cells, "n_used")
     subject_p_min = _optional_column(subject_frames, cells, "p_min")
     notes = []
+    n_choices = None
     keep, renamed, dropped = _duplicate_counts(cells, n_used)
     for roi, counts in dropped.items():
         message = (f"ROI {roi}: voxel count(s) {', '.join(map(str, counts))} reach the ROI's size in every subject; "
@@ -504,6 +514,8 @@ def run(inputs, outputs, params, log):
         subject_nulls = None
     else:
         subject_nulls = _subject_nulls(nulls, name, cells, subjects)
+        if subject_nulls is not None:
+            subject_nulls, n_choices = subject_nulls
         if subject_nulls is None:
             message = "no permutation null (n_permutations is 0): p_perm, p_fwe and prevalence columns are n/a"
             log.warning(message)
@@ -519,7 +531,7 @@ def run(inputs, outputs, params, log):
     families, family_names = _families(cells, directions, family)
     rng = np.random.default_rng(seed_from(params["seed"], "group", name))
     columns, null_mean = group_stats.group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha,
-                                                       prevalence=prevalence, fwe_method=fwe_method)
+                                                       prevalence=prevalence, fwe_method=fwe_method, n_choices=n_choices)
     if n_analyses > 1:  # one family over the study's analyses: Bonferroni over the analyses' own maxima
         for column in ("p_fwe", "prevalence_p_global_fwe"):
             columns[column] = np.minimum(1.0, columns[column] * n_analyses)

@@ -243,8 +243,10 @@ def draw_indices(rng, n_choices, n_subjects, n_draws):
     Parameters
     ----------
     rng : numpy.random.Generator
-    n_choices : int
-        How many null values each subject offers (its permutations).
+    n_choices : int or array_like of int, shape (n_subjects,)
+        How many null values each subject offers (its permutations); one
+        count per subject when they differ (an exactly enumerated small
+        space lists fewer relabelings than requested).
     n_subjects : int
     n_draws : int
 
@@ -262,9 +264,19 @@ def draw_indices(rng, n_choices, n_subjects, n_draws):
     if not isinstance(rng, np.random.Generator):
         _fail("rng", f"expected a numpy.random.Generator, got {type(rng).__name__}",
               "pass np.random.default_rng(seed)")
+    if np.ndim(n_choices) == 1:
+        per_subject = np.asarray(n_choices)
+        if per_subject.shape != (n_subjects,) or not np.issubdtype(per_subject.dtype, np.integer) or per_subject.min() < 1:
+            _fail("n_choices", f"expected {n_subjects} positive integers, got {per_subject.tolist()}", "pass one count per subject")
+        if np.all(per_subject == per_subject[0]):
+            n_choices = int(per_subject[0])
     for name, value in (("n_choices", n_choices), ("n_subjects", n_subjects), ("n_draws", n_draws)):
+        if np.ndim(value) == 1:
+            continue
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
             _fail(name, f"must be a positive integer, got {value!r}", f"pass {name} >= 1")
+    if np.ndim(n_choices) == 1:  # uniform picks in [0, n_choices[s]) per subject column
+        return rng.integers(0, np.asarray(n_choices, dtype=np.int64)[np.newaxis, :], size=(int(n_draws), int(n_subjects)), dtype=np.int64)
     return rng.integers(0, int(n_choices), size=(int(n_draws), int(n_subjects)), dtype=np.int64)
 
 
@@ -716,7 +728,8 @@ def prevalence_bound(p_global, n_subjects, alpha):
     return np.where(p_global <= alpha, bound, np.nan)
 
 
-def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha, prevalence=True, fwe_method="standardised"):
+def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha, prevalence=True, fwe_method="standardised",
+                     n_choices=None):
     """Every group statistic of one analysis, per cell.
 
     Parameters
@@ -739,6 +752,9 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
     fwe_method : {"standardised", "min_p"}
         How cells are put on one scale before the family's maximum
         (:func:`family_wise_p`).
+    n_choices : array_like of int, shape (n_subjects,), optional
+        Null rows of each subject when they differ (the rest of its rows are
+        padding, never drawn); default every row of every subject.
 
     Returns
     -------
@@ -781,7 +797,7 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
     if subject_nulls.shape[0] != n_subjects or subject_nulls.shape[2] != n_cells:
         _fail("subject_nulls", f"shape {subject_nulls.shape} does not match scores {scores.shape}",
               "pass one (permutations x cells) null per subject, cells as in scores")
-    n_permutations = subject_nulls.shape[1]
+    n_permutations = subject_nulls.shape[1] if n_choices is None else np.asarray(n_choices, dtype=np.int64)
     indices = draw_indices(rng, n_permutations, n_subjects, n_draws)
     null_mean = group_mean_null(subject_nulls, indices)
     observed_mean = columns["mean"]
@@ -790,7 +806,7 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
     if prevalence:
         # Choice 0 is the neutral (actual) labeling, as in Allefeld et al. (2016).
         labelings = np.concatenate([scores[:, None, :], subject_nulls], axis=1)
-        prevalence_indices = draw_indices(rng, n_permutations + 1, n_subjects, n_draws)
+        prevalence_indices = draw_indices(rng, n_permutations + 1, n_subjects, n_draws)  # choice 0 the actual labeling
         null_minimum = group_minimum_null(labelings, prevalence_indices)
         observed_minimum = scores.min(axis=0)
         p_global = permutation_p(observed_minimum, null_minimum)

@@ -428,6 +428,7 @@ def report_job_logs(study):
 def report_settings(study):
     """What the report reads: the whole validated config (the page shows it), subjects, runs, the planned jobs and their logs."""
     return {"study": study.config, "subjects": list(study.subjects), "config_file": study.config_file,
+            "overrides": list(study.overrides),  # --config entries merged into the config: the page names them
             "planned_jobs": planned_output_counts(study),
             "runs": {subject: [run["run_id"] for run in study.runs_of(subject)] for subject in study.subjects},
             "job_logs": report_job_logs(study)}

@@ -313,6 +313,7 @@ class Study:
     searchlight_analyses: tuple
     searchlight_blocks: tuple
     localizer_runs: tuple = ()  # runs of tasks read by localizer ROIs only (no GLM job of their own)
+    overrides: tuple = ()  # the --config entries merged into the config (foldwise.config.apply_overrides), as typed
 
     @property
     def sessions(self):
@@ -547,7 +548,7 @@ def _build_analyses(config, roi_names, searchlight_names):
     return analyses
 
 
-def build_study(config, path="the study config"):
+def build_study(config, path="the study config", overrides=()):
     """Build the :class:`Study` of a validated config, before any job.
 
     The config-only checks ran in :func:`check_meaning` (called by
@@ -561,6 +562,8 @@ def build_study(config, path="the study config"):
         The output of :func:`foldwise.config.validate` (defaults filled).
     path : str
         The config file, named in every message.
+    overrides : sequence of str
+        The ``--config`` entries already merged into ``config``, kept for the report.
 
     Raises
     ------
@@ -578,7 +581,7 @@ def build_study(config, path="the study config"):
     _check_subject_images(config, plan.subjects, path)
     return Study(config=config, config_file=str(path), subjects=plan.subjects, runs=plan.runs, rois=rois, analyses=analyses,
                  searchlight_analyses=searchlight_names, searchlight_blocks=tuple(range(searchlight["n_blocks"])),
-                 localizer_runs=plan.localizer_runs)
+                 localizer_runs=plan.localizer_runs, overrides=tuple(str(entry) for entry in overrides))
 
 
 def _check_subject_images(config, subjects, path):

@@ -28,7 +28,7 @@ try:
     check_environment(os.path.join(workflow.basedir, "requirements", "lock.txt"))
     check_output_folder("results", "results folder")
     check_output_folder(STUDY["study"]["store_dir"], "study.store_dir")
-    MODEL = build_study(STUDY, path=CONFIG_FILE)  # every check of meaning, before any job
+    MODEL = build_study(STUDY, path=CONFIG_FILE, overrides=OVERRIDES)  # every check of meaning, before any job
 except InputError as error:
     raise WorkflowError(f"foldwise: {error}") from None
 config.clear()

@@ -268,7 +268,7 @@ def _paragraph(text):
     return f"<p>{html.escape(text)}</p>"
 
 
-def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file, versions):
+def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_mm, config_file, versions, overrides=()):
     run_counts = sorted({len(runs[subject]) for subject in subjects})
     first_runs = runs[subjects[0]]
     if all(runs[subject] == first_runs for subject in subjects):
@@ -291,6 +291,7 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
         ("ROIs", _text_list(roi["name"] for roi in study["rois"])),
         ("analyses", _text_list(f"{a['name']} ({a['kind']})" for a in study["analyses"])),
         ("config file", display_path(config_file) or "given with --configfile"),
+        ("command-line overrides (--config, merged before validation)", ", ".join(overrides) or "none"),
         ("config hash (sha256 of the validated config)", hash_object(study)),
         ("versions", ", ".join(f"{name} {version}" for name, version in versions)),
     ]
@@ -509,7 +510,8 @@ def run(inputs, outputs, params, log):
                "catalogue": catalogue, "blocks": blocks, "clusters": data["clusters"], "warnings": warnings,
                "n_draws": int(study.get("group", {}).get("n_draws", 0)) or None,
                "repetition_times": repetition_times, "voxel_size_mm": voxel_size_mm, "config_file": config_file,
-               "versions": versions, "records": records, "geometry": geometry_section.read(inputs)}
+               "versions": versions, "records": records, "geometry": geometry_section.read(inputs),
+               "overrides": [str(entry) for entry in params.get("overrides") or []]}
     sections = [section(context) for section in SECTIONS]
     title = f"foldwise study report: {study.get('study', {}).get('name', 'study')}"
     write_text_atomic(outputs["html"], html_page.render_page(title, [section for section in sections if section]))
@@ -651,7 +653,7 @@ def _cautions_page_section(context):
 def _methods_section(context):
     return ("study", "Study and methods", _study_section(
         context["study"], context["subjects"], context["runs"], context["trials"], context["repetition_times"],
-        context["voxel_size_mm"], context["config_file"], context["versions"]), ())
+        context["voxel_size_mm"], context["config_file"], context["versions"], context["overrides"]), ())
 
 
 def _provenance_page_section(context):

@@ -509,6 +509,8 @@ def _run_job(smk, step, job, in_process=False):
         "restored_from_memo": restored,
         "code_hash": code,
         "settings": _without_absolute_paths(settings),
+        # True when paths were reduced for privacy: the key then cannot be recomputed from the record (make verify)
+        "settings_reduced": _without_absolute_paths(settings) != settings,
         "inputs": [{"name": name, "path": relative_path(path), "sha256": digest}
                    for name, paths in sorted(inputs.items())
                    for path, digest in zip([paths] if isinstance(paths, str) else paths, input_hashes[name])],

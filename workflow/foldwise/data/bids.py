@@ -47,6 +47,7 @@ __all__ = [
     "select_confound_columns",
     "count_flagged_initial_volumes",
     "confound_table_columns",
+    "matches_confound_selectors",
     "DERIVED_PATTERNS",
     "near_pattern_message",
 ]
@@ -798,6 +799,30 @@ def select_confound_columns(available, selectors, path=None):
             picked = [selector]
         chosen += [column for column in picked if column not in chosen]
     return chosen
+
+
+def matches_confound_selectors(name, selectors):
+    """Whether a design column is one of the confounds ``selectors`` pick (see :func:`select_confound_columns`).
+
+    A design holds only the columns the selectors chose for its run, so a
+    column counts when it equals a name selector or starts with a
+    ``prefix*`` or ``{prefix, first}`` selector's prefix.
+
+    Examples
+    --------
+    >>> [matches_confound_selectors(n, ["trans_x", "spike_*", {"prefix": "comp_", "first": 2}]) for n in ("trans_x", "spike_3", "comp_1", "seen")]
+    [True, True, True, False]
+    """
+    for selector in selectors:
+        if isinstance(selector, dict):
+            if name.startswith(str(selector["prefix"])):
+                return True
+        elif selector.endswith("*"):
+            if name.startswith(selector[:-1]):
+                return True
+        elif name == selector:
+            return True
+    return False
 
 
 def confound_table_columns(path):

@@ -552,7 +552,8 @@ def write_demo_study(bids_root, patterns, demo_settings, seed, task, confound_na
         paths written (``bold``, ``events``, ``sidecar``, ``confounds``).
     """
     settings = check_settings(demo_settings)
-    unknown = [name for name in confound_names if name not in CONFOUND_COLUMNS]
+    # Prefix and first-k selectors pick among the written columns at GLM time; names must be columns the demo writes.
+    unknown = [name for name in confound_names if isinstance(name, str) and not name.endswith("*") and name not in CONFOUND_COLUMNS]
     if unknown:
         raise InputError("the study config", "dataset.confounds", f"the demo writes no column {', '.join(map(repr, unknown))}",
                          f"use columns of {', '.join(CONFOUND_COLUMNS)}")

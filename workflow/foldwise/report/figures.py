@@ -610,8 +610,9 @@ def regressor_kinds(names, confound_names=()):
     ----------
     names : sequence of str
         Design columns as the GLM stage writes them.
-    confound_names : sequence of str
-        The study's confound columns.
+    confound_names : sequence of str or dict
+        The study's confound selectors (``dataset.confounds``: names,
+        ``prefix*`` or ``{prefix, first}``).
 
     Returns
     -------
@@ -623,14 +624,14 @@ def regressor_kinds(names, confound_names=()):
     >>> regressor_kinds(["seen_round", "seen_round_dtime", "lowfreq_cos_01", "trans_x", "intercept"], ["trans_x"])
     ['events', 'HRF derivatives', 'low-frequency cosines', 'confounds', 'intercept']
     """
+    from foldwise.data.bids import matches_confound_selectors
     from foldwise.glm.design import DERIVATIVE_SUFFIXES, DRIFT_PREFIX
 
-    confounds = set(confound_names)
     kinds = []
     for name in names:
         if name == "intercept":
             kinds.append("intercept")
-        elif name in confounds:
+        elif matches_confound_selectors(name, confound_names):
             kinds.append("confounds")
         elif name.startswith(DRIFT_PREFIX):
             kinds.append("low-frequency cosines")

@@ -116,6 +116,45 @@ NOT_PERTURBED = {
                         "(decode reads it as pattern_tasks, the GLM runs of the task are scheduled)",
 }
 
+# Geometry analyses (analyses[2] of the demo) run their own steps (foldwise.geometry.wiring):
+# geometry_patterns (and geometry_searchlight, on the whole brain) refit the GLM per subject, so they
+# read the data and GLM keys (not glm.pattern_mode or glm.statistic: always betas per condition); the
+# others read the analysis's own entry; none reads the decoding keys that the schema fills in for
+# every analysis. The geometry searchlight is switched by geometry.searchlight and shares only
+# searchlight.radius_mm with the decoding searchlight.
+GEOMETRY_SEARCHLIGHT = {"geometry_searchlight", "geometry_searchlight_group"}
+GEOMETRY = {"geometry_patterns", "geometry_subject", "geometry_group"} | GEOMETRY_SEARCHLIGHT
+_GEOMETRY_ENTRY = {"geometry_subject", "geometry_group", "report"} | GEOMETRY_SEARCHLIGHT
+for _key in ("dataset.subjects", "dataset.exclude_subjects", "demo.n_subjects"):
+    READERS[_key] = READERS[_key] | GEOMETRY
+READERS["rois[i].name"] = READERS["rois[i].name"] | (GEOMETRY - GEOMETRY_SEARCHLIGHT)
+for _key in ("dataset.bids_root", "dataset.task", "dataset.confounds", "dataset.condition_column", "dataset.drop_initial_volumes",
+             "dataset.patterns.bold", "dataset.patterns.events", "dataset.patterns.sidecar", "dataset.patterns.confounds", "demo.n_runs"):
+    READERS[_key] = READERS[_key] | {"geometry_patterns", "geometry_searchlight"}
+for _key in [key for key in READERS if key.startswith("glm.") and key not in ("glm.pattern_mode", "glm.statistic")]:
+    READERS[_key] = READERS[_key] | {"geometry_patterns", "geometry_searchlight"}
+for _key in ("study.seed", "group.n_draws", "group.alpha"):
+    READERS[_key] = READERS[_key] | {"geometry_group", "geometry_searchlight_group"}
+READERS["searchlight.radius_mm"] = READERS["searchlight.radius_mm"] | {"geometry_searchlight"}
+READERS.update({
+    "analyses[2].name": _GEOMETRY_ENTRY,
+    "analyses[2].rois": {"geometry_patterns", "geometry_subject", "geometry_group", "report"},
+    "analyses[2].geometry.conditions": GEOMETRY | {"report"},
+    "analyses[i].geometry.models[i].name": _GEOMETRY_ENTRY,
+    "analyses[i].geometry.models[i].differ_in": _GEOMETRY_ENTRY,
+    "analyses[i].geometry.models[i].only_for.modality": _GEOMETRY_ENTRY,
+    "analyses[2].geometry.distance": _GEOMETRY_ENTRY,
+    "analyses[2].geometry.noise_normalisation": _GEOMETRY_ENTRY,
+    "analyses[2].geometry.comparison": _GEOMETRY_ENTRY,
+    "analyses[2].geometry.searchlight": GEOMETRY_SEARCHLIGHT | {"report"},
+    **{f"analyses[2].geometry.features.{condition}.{feature}": _GEOMETRY_ENTRY
+       for condition in ("seen_round", "seen_square", "seen_star", "heard_round", "heard_square", "heard_star")
+       for feature in ("modality", "shape")},
+    **{f"analyses[2].{key}": {"report"} for key in ("n_permutations", "voxel_counts", "selection", "classifier", "svm_c", "logistic_c",
+                                                     "demean_patterns", "folds.scheme", "folds.n_groups")},
+})
+NOT_PERTURBED["analyses[2].kind"] = "a geometry entry has no classes or sets to turn into another kind: tests/test_geometry.py refuses the mix"
+
 # Perturbed values that need more than "another value of the same type".
 SPECIAL = {
     "study.name": "another-study",
@@ -135,10 +174,13 @@ SPECIAL = {
     "report.confusion_n_voxels": 50,
     "calibrate.classifier": "shrinkage_lda",
 }
+SPECIAL.update({"analyses[i].geometry.models[i].differ_in": ["shape", "modality"], "analyses[i].geometry.models[i].only_for.modality": ["heard"]})
 _ENUMS = {  # another valid choice of each enum key
     "glm.hrf_derivatives": "temporal", "glm.serial_correlation": "ignore", "glm.pattern_mode": "lss", "glm.statistic": "beta",
     "analyses[i].selection": "f", "analyses[i].classifier": "logistic_l2", "analyses[i].folds.scheme": "run_groups",
     "searchlight.classifier": "gaussian_nb", "group.fwe_method": "min_p", "group.family": "all_directions",
+    "analyses[i].geometry.distance": "euclidean_cv", "analyses[i].geometry.noise_normalisation": "univariate",
+    "analyses[i].geometry.comparison": "spearman",
 }
 
 

@@ -94,5 +94,8 @@ def test_schema_documents_a_default_for_every_optional_scalar():
 
     walk(schema, "")
     # ROI and analysis definitions are alternatives (labels | image | sphere; classes | sets), not defaults.
-    allowed = {".rois[].image", ".rois[].threshold", ".analyses[].geometry.models[].tsv"}  # a geometry model: differ_in | tsv
+    allowed = {".rois[].image", ".rois[].threshold", ".analyses[].geometry.models[].tsv",  # a geometry model: differ_in | tsv
+               # a localizer ROI is sized by top_k or t_threshold (one of them, no default); its constraint is labels | image | sphere
+               ".rois[].localizer.top_k", ".rois[].localizer.t_threshold", ".rois[].localizer.within.image",
+               ".rois[].localizer.within.threshold"}
     assert sorted(set(missing) - allowed) == []

@@ -879,6 +879,23 @@ def _missing_subject_roi(folder):
                        "subject with dataset.exclude_subjects")
 
 
+@case("geometry voxel-count sweep with correlation distance", "geometry.wiring.check via config.validate, before any job")
+def _geometry_sweep_without_cross_validation(folder):
+    study = _geometry_study([{"name": "shape", "differ_in": ["shape"]}])
+    study["analyses"][1]["geometry"].update({"conditions": _LANTERN_CONDITIONS, "distance": "correlation", "voxel_counts": [10, "all"]})
+    return Expectation(_validating(study), "config/study.yaml: analyses[1].geometry.voxel_counts: a voxel-count sweep needs a "
+                                           "cross-validated distance (correlation distance is computed on every run at once, so no "
+                                           "run is left to test the choice on). Fix: use distance crossnobis or euclidean_cv, or "
+                                           "voxel_counts [all]")
+
+
+@case("geometry voxel counts out of order", "geometry.wiring.check via config.validate, before any job")
+def _geometry_counts_out_of_order(folder):
+    study = _geometry_study([{"name": "shape", "differ_in": ["shape"]}])
+    study["analyses"][1]["geometry"].update({"conditions": _LANTERN_CONDITIONS, "voxel_counts": [50, 10]})
+    return Expectation(_validating(study), "config/study.yaml: analyses[1].geometry.voxel_counts: counts [50, 10] are not "
+                                           "increasing. Fix: list the counts from small to large ('all' last)")
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

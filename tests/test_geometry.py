@@ -382,6 +382,63 @@ def test_univariate_weights_from_sums_equal_fold_noise():
                                rtol=1e-12)
 
 
+# -- voxel-count sweep ----------------------------------------------------------
+
+def test_sweep_at_every_voxel_equals_the_unselected_estimate():
+    rng = np.random.default_rng(18)
+    patterns, residuals = _runs(rng, n_scans=8)
+    for kind in ("none", "univariate", "multivariate"):
+        swept, used = distances.swept_distances(patterns, residuals, kind, [30, "all"])
+        reference = distances.crossvalidated_distances(patterns, noise.fold_noise(kind, None if kind == "none" else residuals, 30))
+        # Source: the unselected estimator (itself checked against the brute-force loop) -- selection of every voxel changes nothing.
+        np.testing.assert_allclose(swept, np.stack([reference, reference]), rtol=1e-10, atol=1e-12)
+        assert used.tolist() == [30, 30]
+
+
+def test_swept_multivariate_equals_brute_force_with_per_fold_voxels():
+    rng = np.random.default_rng(19)
+    patterns, residuals = _runs(rng, n_scans=12)
+    swept, used = distances.swept_distances(patterns, residuals, "multivariate", [7])
+    selections = distances.fold_selections(patterns, [7])[0]
+    pairs = list(itertools.combinations(range(4), 2))
+    expected = np.zeros(len(pairs))
+    for k, voxels in enumerate(selections):
+        # Source: scikit-learn LedoitWolf of fold k's training residuals on fold k's voxels; loop over training runs and pairs.
+        weight = np.linalg.inv(LedoitWolf(assume_centered=True).fit(_training(residuals, k)[:, voxels]).covariance_)
+        for p, (i, j) in enumerate(pairs):
+            test = patterns[k, i, voxels] - patterns[k, j, voxels]
+            train = np.mean([patterns[m, i, voxels] - patterns[m, j, voxels] for m in range(5) if m != k], axis=0)
+            expected[p] += train @ weight @ test / 7
+    np.testing.assert_allclose(swept[0], expected / 5, rtol=1e-9, atol=1e-12)
+    assert used.tolist() == [7]
+
+
+def test_voxel_choice_never_sees_the_test_run():
+    """Leak test: replacing the test run's patterns changes nothing in its own fold's choice of voxels."""
+    rng = np.random.default_rng(20)
+    patterns, _ = _runs(rng)
+    before = distances.fold_selections(patterns, [5, 12])
+    for fold in range(patterns.shape[0]):
+        changed = patterns.copy()
+        changed[fold] = rng.standard_normal(changed[fold].shape) * 10
+        after = distances.fold_selections(changed, [5, 12])
+        for count in range(2):
+            assert np.array_equal(before[count][fold], after[count][fold])
+            assert any(not np.array_equal(before[count][other], after[count][other]) for other in range(5) if other != fold)
+
+
+def test_sweep_stays_unbiased_on_noise():
+    rng = np.random.default_rng(21)
+    estimates = []
+    for _ in range(300):
+        patterns = rng.standard_normal((4, 3, 25)) + rng.standard_normal(25) * 2  # a shared response, no condition differs
+        residuals = [rng.standard_normal((10, 25)) for _ in range(4)]
+        estimates.append(distances.swept_distances(patterns, residuals, "univariate", [5])[0][0])
+    estimates = np.array(estimates)
+    # Source: unbiasedness -- selecting on the training runs leaves the mean at 0 (within 3.5 standard errors).
+    assert np.all(np.abs(estimates.mean(axis=0)) < 3.5 * estimates.std(axis=0, ddof=1) / np.sqrt(len(estimates)))
+
+
 # -- the jobs (files in, files out) ----------------------------------------------
 
 def _geometry_entry(**changes):
@@ -392,7 +449,8 @@ def _geometry_entry(**changes):
     return {"name": "geo", "kind": "geometry", "rois": ["ember", "hush"], "geometry": geometry}
 
 
-def test_subject_and_group_jobs_write_the_documented_tables(tmp_path):
+@pytest.mark.parametrize("counts", [["all"], [5, "all"]])
+def test_subject_and_group_jobs_write_the_documented_tables(tmp_path, counts):
     import json
     import logging
 
@@ -404,7 +462,7 @@ def test_subject_and_group_jobs_write_the_documented_tables(tmp_path):
     rng = np.random.default_rng(17)
     log = logging.getLogger("test_geometry")
     shape_code = {s: rng.standard_normal(20) for s in ("round", "square", "star")}
-    analysis = _geometry_entry()
+    analysis = _geometry_entry(voxel_counts=counts)
     fits, distances_paths = [], []
     for subject in ("01", "02", "03", "04"):
         folder = tmp_path / subject
@@ -422,17 +480,20 @@ def test_subject_and_group_jobs_write_the_documented_tables(tmp_path):
         fits.append(outputs["fits"])
         distances_paths.append(outputs["distances"])
         table = contract.read_table("geometry_distances", outputs["distances"])
-        assert len(table) == 2 * 15 and list(table.columns) == list(contract.GEOMETRY_DISTANCE_COLUMNS)
+        assert len(table) == 2 * len(counts) * 15 and list(table.columns) == list(contract.GEOMETRY_DISTANCE_COLUMNS)
+        assert sorted(set(table["n_used"])) == sorted({5, 20} if len(counts) == 2 else {20})
         square = pd.read_csv(outputs["matrices"], sep="\t")
-        assert square.shape == (12, 4 + 6)
+        assert square.shape == (2 * len(counts) * 6, 6 + 6)
     out = {key: str(tmp_path / f"group_{key}") for key in ("table", "pairwise", "mean_matrices", "ceilings", "summary")}
     out.update({key: str(tmp_path / f"{key}.png") for key in ("matrix_png", "mds_png", "fits_png")})
     geometry_group.run({"fits": fits, "distances": distances_paths}, out,
                        {"analysis": analysis, "subjects": ["01", "02", "03", "04"], "group": {"n_draws": 1000, "alpha": 0.05},
                         "seed": 1}, log)
-    group = contract.read_table("geometry_group_table", out["table"]).set_index(["roi", "model"])
+    group = contract.read_table("geometry_group_table", out["table"])
+    assert sorted(set(group["n_voxels"].astype(str))) == sorted(map(str, counts))
+    group = group[group["n_voxels"].astype(str) == "all"].set_index(["roi", "model"])
     assert bool(group.loc[("ember", "shape"), "exact"]) and group.loc[("ember", "shape"), "n_flips"] == 16
     assert group.loc[("ember", "shape"), "mean"] > 0.2  # the simulated shape code
-    assert len(contract.read_table("geometry_pairwise", out["pairwise"])) == 2
+    assert len(contract.read_table("geometry_pairwise", out["pairwise"])) == 2 * len(counts)
     with open(out["summary"], encoding="utf-8") as handle:
         assert "geometry geo: crossnobis, multivariate" in handle.read()

@@ -147,6 +147,7 @@ READERS.update({
     "analyses[2].geometry.noise_normalisation": _GEOMETRY_ENTRY,
     "analyses[2].geometry.comparison": _GEOMETRY_ENTRY,
     "analyses[2].geometry.searchlight": GEOMETRY_SEARCHLIGHT | {"report"},
+    "analyses[2].geometry.voxel_counts": {"geometry_subject", "geometry_group", "report"},  # the searchlight uses whole spheres
     **{f"analyses[2].geometry.features.{condition}.{feature}": _GEOMETRY_ENTRY
        for condition in ("seen_round", "seen_square", "seen_star", "heard_round", "heard_square", "heard_star")
        for feature in ("modality", "shape")},
@@ -174,7 +175,7 @@ SPECIAL = {
     "report.confusion_n_voxels": 50,
     "calibrate.classifier": "shrinkage_lda",
 }
-SPECIAL.update({"analyses[i].geometry.models[i].differ_in": ["shape", "modality"], "analyses[i].geometry.models[i].only_for.modality": ["heard"]})
+SPECIAL.update({"analyses[i].geometry.voxel_counts": [25, "all"], "analyses[i].geometry.models[i].differ_in": ["shape", "modality"], "analyses[i].geometry.models[i].only_for.modality": ["heard"]})
 _ENUMS = {  # another valid choice of each enum key
     "glm.hrf_derivatives": "temporal", "glm.serial_correlation": "ignore", "glm.pattern_mode": "lss", "glm.statistic": "beta",
     "analyses[i].selection": "f", "analyses[i].classifier": "logistic_l2", "analyses[i].folds.scheme": "run_groups",

@@ -156,14 +156,14 @@ SEARCHLIGHT_GROUP_COLUMNS = ("analysis", "direction", "n_subjects", "n_brain_vox
                              "peak_p", "peak_p_fwe")
 
 # geometry analyses (docs/geometry.md)
-GEOMETRY_DISTANCE_COLUMNS = ("subject", "analysis", "roi", "n_voxels", "distance", "noise_normalisation", "condition_a", "condition_b",
+GEOMETRY_DISTANCE_COLUMNS = ("subject", "analysis", "roi", "n_voxels", "n_used", "distance", "noise_normalisation", "condition_a", "condition_b",
                              "dissimilarity")
-GEOMETRY_FIT_COLUMNS = ("subject", "analysis", "roi", "n_voxels", "model", "comparison", "fit")
-GEOMETRY_GROUP_COLUMNS = ("analysis", "roi", "model", "comparison", "n_subjects", "mean", "sem", "ci_low", "ci_high", "t", "p_t",
+GEOMETRY_FIT_COLUMNS = ("subject", "analysis", "roi", "n_voxels", "n_used", "model", "comparison", "fit")
+GEOMETRY_GROUP_COLUMNS = ("analysis", "roi", "n_voxels", "model", "comparison", "n_subjects", "mean", "sem", "ci_low", "ci_high", "t", "p_t",
                           "p_wilcoxon", "p_signflip", "p_fwe", "n_flips", "exact", "noise_ceiling_lower", "noise_ceiling_upper")
-GEOMETRY_PAIRWISE_COLUMNS = ("analysis", "roi", "model_a", "model_b", "comparison", "n_subjects", "mean_difference", "t", "p_signflip",
+GEOMETRY_PAIRWISE_COLUMNS = ("analysis", "roi", "n_voxels", "model_a", "model_b", "comparison", "n_subjects", "mean_difference", "t", "p_signflip",
                              "p_fwe", "p_wilcoxon")
-GEOMETRY_CEILING_COLUMNS = ("analysis", "roi", "comparison", "n_subjects", "lower", "upper")
+GEOMETRY_CEILING_COLUMNS = ("analysis", "roi", "n_voxels", "comparison", "n_subjects", "lower", "upper")
 
 # artefact name -> (columns a reader requires, what the table is called in messages)
 TABLE_COLUMNS = {

@@ -10,7 +10,8 @@ import numpy as np
 from foldwise.errors import InputError
 
 __all__ = ["DISTANCES", "BIASED_DISTANCES", "condition_pairs", "square_form", "condition_patterns",
-           "crossvalidated_distances", "correlation_distances", "distances", "classical_mds"]
+           "crossvalidated_distances", "correlation_distances", "distances", "classical_mds", "fold_selections",
+           "swept_distances"]
 
 #: ``crossnobis`` (with noise normalisation) and ``euclidean_cv`` (without) are
 #: cross-validated and unbiased; ``correlation`` is not cross-validated and
@@ -198,3 +199,79 @@ def classical_mds(squared_dissimilarities, n_dimensions=2):
     vectors = eigenvectors[:, order]
     vectors *= np.where(vectors[np.argmax(np.abs(vectors), axis=0), np.arange(vectors.shape[1])] < 0, -1.0, 1.0)
     return vectors * np.sqrt(np.maximum(eigenvalues[order], 0.0))
+
+
+def fold_selections(run_patterns, counts):
+    """The voxels each leave-one-run-out fold keeps for each voxel count, chosen from the other runs only.
+
+    Parameters
+    ----------
+    run_patterns : array_like, shape (n_runs, n_conditions, n_voxels)
+    counts : sequence of int or "all"
+
+    Returns
+    -------
+    list (per count) of list (per fold) of ndarray of int64
+        Fold ``k``'s voxels: the top ``count`` by the label-free signal score
+        (:func:`foldwise.decoding.selection.signal_scores`, |t| of the
+        response to every condition) of the patterns of every run but ``k``;
+        every voxel for ``"all"`` or a count at or above the ROI's size.
+
+    Notes
+    -----
+    The test run's patterns never enter its own fold's choice, so the
+    distance of fold ``k`` multiplies the training runs' differences with a
+    test-run difference whose noise played no part in picking the voxels:
+    under no true difference the estimate stays 0 in expectation.
+    """
+    from foldwise.decoding.selection import rank_voxels, signal_scores  # decoding's ranking, one definition
+
+    values = _check_run_patterns(run_patterns)
+    n_runs, _, n_voxels = values.shape
+    rankings = [rank_voxels(signal_scores(np.concatenate([values[:k], values[k + 1:]]).reshape(-1, n_voxels)))
+                for k in range(n_runs)]
+    out = []
+    for count in counts:
+        size = n_voxels if count == "all" else min(int(count), n_voxels)
+        out.append([np.sort(ranking[:size]) for ranking in rankings])
+    return out
+
+
+def swept_distances(run_patterns, residual_runs, kind, counts):
+    """Cross-validated distances at every voxel count, voxels chosen fold by fold (:func:`fold_selections`).
+
+    Parameters
+    ----------
+    run_patterns : array_like, shape (n_runs, n_conditions, n_voxels)
+    residual_runs : list of ndarray or None
+        Per run ``(n_scans, n_voxels)`` residuals (not needed for ``none``).
+    kind : {"none", "univariate", "multivariate"}
+        Noise normalisation, estimated per fold from the training runs'
+        residuals of that fold's voxels.
+    counts : sequence of int or "all"
+
+    Returns
+    -------
+    distances : ndarray, shape (n_counts, n_pairs)
+        ``1/R sum_k  mean_{m != k}(delta_m[v_k])' W_k delta_k[v_k] / |v_k|``.
+    n_used : ndarray of int, shape (n_counts,)
+        Voxels per fold (the same in every fold).
+    """
+    from foldwise.geometry.noise import fold_noise
+
+    values = _check_run_patterns(run_patterns)
+    n_runs, n_conditions, _ = values.shape
+    rows, columns = condition_pairs(n_conditions)
+    differences = values[:, rows] - values[:, columns]
+    total = differences.sum(axis=0)
+    selections = fold_selections(values, counts)
+    out = np.zeros((len(counts), rows.size))
+    used = np.zeros(len(counts), dtype=np.int64)
+    for c, per_fold in enumerate(selections):
+        for fold, voxels in enumerate(per_fold):
+            noise = fold_noise(kind, None if kind == "none" else [run[:, voxels] for run in residual_runs], voxels.size, only_fold=fold)
+            training_mean = (total[:, voxels] - differences[fold][:, voxels]) / (n_runs - 1)
+            out[c] += np.einsum("pv,pv->p", training_mean, noise.apply(fold, differences[fold][:, voxels])) / voxels.size
+        out[c] /= n_runs
+        used[c] = per_fold[0].size
+    return out, used

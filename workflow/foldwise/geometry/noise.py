@@ -131,7 +131,7 @@ def _split_runs(residuals, n_voxels):
     return arrays
 
 
-def fold_noise(kind, residuals=None, n_voxels=None):
+def fold_noise(kind, residuals=None, n_voxels=None, only_fold=None):
     """The noise weighting of every leave-one-run-out fold.
 
     Parameters
@@ -142,6 +142,9 @@ def fold_noise(kind, residuals=None, n_voxels=None):
         needed for ``none``).
     n_voxels : int, optional
         Number of voxels (checked against the residuals).
+    only_fold : int, optional
+        Prepare this fold's weighting only (the others are left empty), for
+        a voxel set chosen per fold.
 
     Returns
     -------
@@ -182,6 +185,9 @@ def fold_noise(kind, residuals=None, n_voxels=None):
     if scans.sum() - scans.min() <= width:
         gram = stacked @ stacked.T
         for fold in range(n_runs):
+            if only_fold is not None and fold != only_fold:
+                factors.append(None)
+                continue
             keep = np.r_[0:bounds[fold], bounds[fold + 1]:bounds[-1]]
             block = gram[np.ix_(keep, keep)]
             shrinkage, mu = ledoit_wolf_from_gram(block, width)
@@ -190,6 +196,9 @@ def fold_noise(kind, residuals=None, n_voxels=None):
         grams = [run.T @ run for run in runs]
         squared_norms = [np.einsum("ij,ij->i", run, run) for run in runs]
         for fold in range(n_runs):
+            if only_fold is not None and fold != only_fold:
+                factors.append(None)
+                continue
             training_gram = np.sum(grams[:fold] + grams[fold + 1:], axis=0)
             norms = np.concatenate(squared_norms[:fold] + squared_norms[fold + 1:])
             shrinkage, mu = _ledoit_wolf_terms(norms, np.einsum("ij,ij->", training_gram, training_gram), width)

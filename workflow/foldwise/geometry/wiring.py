@@ -51,6 +51,14 @@ def check(entry, where, path):
     if repeated:
         raise InputError(path, f"{where}.geometry.models", f"model name '{repeated[0]}' is used twice", "give each model a unique name")
     model_vectors(geometry["conditions"], geometry.get("features") or {}, geometry["models"], file=path, field=f"{where}.geometry.models")
+    counts = list(geometry.get("voxel_counts") or ["all"])
+    if counts != ["all"] and geometry.get("distance", "crossnobis") == "correlation":
+        raise InputError(path, f"{where}.geometry.voxel_counts", "a voxel-count sweep needs a cross-validated distance "
+                         "(correlation distance is computed on every run at once, so no run is left to test the choice on)",
+                         "use distance crossnobis or euclidean_cv, or voxel_counts [all]")
+    numbers = [count for count in counts if count != "all"]
+    if numbers != sorted(numbers) or ("all" in counts and counts[-1] != "all"):
+        raise InputError(path, f"{where}.geometry.voxel_counts", f"counts {counts} are not increasing", "list the counts from small to large ('all' last)")
 
 
 def geometry_analyses(study):
@@ -178,7 +186,8 @@ def _patterns_settings(study, w):
 
 def _analysis_view(analysis, searchlight=False):
     """What the steps of one analysis read: its name, ROIs and geometry entry (the searchlight switch only for the searchlight)."""
-    geometry = {key: value for key, value in _plain(analysis.entry["geometry"]).items() if searchlight or key != "searchlight"}
+    geometry = {key: value for key, value in _plain(analysis.entry["geometry"]).items()
+                if (key != "voxel_counts" if searchlight else key != "searchlight")}  # the searchlight uses every sphere voxel
     view = {"name": analysis.name, "kind": analysis.kind, "geometry": geometry}
     if not searchlight:
         view["rois"] = list(analysis.rois)

@@ -9,7 +9,7 @@ from foldwise.contract import GEOMETRY_DISTANCE_COLUMNS, GEOMETRY_FIT_COLUMNS
 from foldwise.data.fileio import write_tsv
 from foldwise.errors import InputError
 from foldwise.geometry.compare import compare
-from foldwise.geometry.distances import condition_pairs, distances, square_form
+from foldwise.geometry.distances import condition_pairs, distances, square_form, swept_distances
 from foldwise.geometry.models import model_vectors
 from foldwise.geometry.noise import fold_noise
 from foldwise.geometry.wiring import effective_normalisation
@@ -29,25 +29,34 @@ def _load(inputs):
 
 
 def roi_geometry(run_patterns, residual_runs, geometry, models):
-    """Dissimilarities and model fits of one ROI (arrays in, arrays out).
+    """Dissimilarities and model fits of one ROI at every voxel count (arrays in, arrays out).
 
     Parameters
     ----------
     run_patterns : ndarray, shape (n_runs, n_conditions, n_voxels)
     residual_runs : list of ndarray, each (n_scans_r, n_voxels)
     geometry : dict
-        The analysis' ``geometry`` entry (``distance``, ``noise_normalisation``, ``comparison``).
+        The analysis' ``geometry`` entry (``distance``, ``noise_normalisation``,
+        ``comparison``, ``voxel_counts``).
     models : ndarray, shape (n_models, n_pairs)
 
     Returns
     -------
-    dissimilarity : ndarray, shape (n_pairs,)
-    fits : ndarray, shape (n_models,)
+    dissimilarity : ndarray, shape (n_counts, n_pairs)
+    fits : ndarray, shape (n_counts, n_models)
+    n_used : ndarray of int, shape (n_counts,)
+        Voxels used per fold.
     """
+    counts = list(geometry.get("voxel_counts") or ["all"])
     normalisation = effective_normalisation(geometry)
-    noise = fold_noise(normalisation, residual_runs if normalisation != "none" else None, run_patterns.shape[2])
-    dissimilarity = distances(run_patterns, geometry["distance"], noise)
-    return dissimilarity, compare(dissimilarity, models, geometry["comparison"])[0]
+    n_voxels = run_patterns.shape[2]
+    if counts == ["all"]:  # no selection: one weighting per fold for every pair (the fast path)
+        noise = fold_noise(normalisation, residual_runs if normalisation != "none" else None, n_voxels)
+        dissimilarity = distances(run_patterns, geometry["distance"], noise)[None, :]
+        used = np.array([n_voxels])
+    else:
+        dissimilarity, used = swept_distances(run_patterns, residual_runs, normalisation, counts)
+    return dissimilarity, compare(dissimilarity, models, geometry["comparison"]), used
 
 
 def run(inputs, outputs, settings, log):
@@ -66,19 +75,22 @@ def run(inputs, outputs, settings, log):
     rows, columns = condition_pairs(len(conditions))
     normalisation = effective_normalisation(geometry)
     long_rows, square_rows, fit_rows = [], [], []
+    counts = list(geometry.get("voxel_counts") or ["all"])
     for roi in analysis["rois"]:
         voxels = np.asarray(index["rois"][roi], dtype=np.int64)
         run_patterns = betas[:, chosen][:, :, voxels]
         residual_runs = [residuals[start:end][:, voxels].astype(np.float64) for start, end in zip(bounds[:-1], bounds[1:])]
-        dissimilarity, fits = roi_geometry(run_patterns, residual_runs, geometry, models)
-        for pair, (a, b) in enumerate(zip(rows, columns)):
-            long_rows.append((subject, analysis["name"], roi, voxels.size, geometry["distance"], normalisation, conditions[a], conditions[b],
-                              dissimilarity[pair]))
-        for condition, values in zip(conditions, square_form(dissimilarity, len(conditions))):
-            square_rows.append([subject, analysis["name"], roi, condition, *values])
-        for name, fit in zip(model_names, fits):
-            fit_rows.append((subject, analysis["name"], roi, voxels.size, name, geometry["comparison"], fit))
-        log.info("sub-%s %s: %d voxels, fits %s", subject, roi, voxels.size, ", ".join(f"{n}={f:.3f}" for n, f in zip(model_names, fits)))
+        dissimilarity, fits, used = roi_geometry(run_patterns, residual_runs, geometry, models)
+        for c, count in enumerate(counts):
+            for pair, (a, b) in enumerate(zip(rows, columns)):
+                long_rows.append((subject, analysis["name"], roi, count, used[c], geometry["distance"], normalisation, conditions[a],
+                                  conditions[b], dissimilarity[c, pair]))
+            for condition, values in zip(conditions, square_form(dissimilarity[c], len(conditions))):
+                square_rows.append([subject, analysis["name"], roi, count, used[c], condition, *values])
+            for name, fit in zip(model_names, fits[c]):
+                fit_rows.append((subject, analysis["name"], roi, count, used[c], name, geometry["comparison"], fit))
+            log.info("sub-%s %s, %s voxels (%d used): fits %s", subject, roi, count, used[c],
+                     ", ".join(f"{n}={f:.3f}" for n, f in zip(model_names, fits[c])))
     write_tsv(outputs["distances"], pd.DataFrame(long_rows, columns=list(GEOMETRY_DISTANCE_COLUMNS)))
-    write_tsv(outputs["matrices"], pd.DataFrame(square_rows, columns=["subject", "analysis", "roi", "condition", *conditions]))
+    write_tsv(outputs["matrices"], pd.DataFrame(square_rows, columns=["subject", "analysis", "roi", "n_voxels", "n_used", "condition", *conditions]))
     write_tsv(outputs["fits"], pd.DataFrame(fit_rows, columns=list(GEOMETRY_FIT_COLUMNS)))

@@ -82,11 +82,11 @@ def section(context):
         parts.append(f"<pre>{html.escape(analysis['summary'])}</pre>")
         for key, (path, png) in analysis["figures"].items():
             parts.append(_figure(path, png, _CAPTIONS[key]))
-        rows = [[row.roi, row.model, html_page.format_number(row.mean), f"{html_page.format_number(row.ci_low)} .. "
+        rows = [[row.roi, str(row.n_voxels), row.model, html_page.format_number(row.mean), f"{html_page.format_number(row.ci_low)} .. "
                  f"{html_page.format_number(row.ci_high)}", html_page.format_p(row.p_signflip), html_page.format_p(row.p_fwe),
                  f"{html_page.format_number(row.noise_ceiling_lower)} .. {html_page.format_number(row.noise_ceiling_upper)}"]
                 for row in table.itertuples(index=False)]
-        parts.append(html_page.html_table(["ROI", "model", f"mean fit ({table['comparison'].iloc[0]})", "95 % CI", "p (sign flips)",
+        parts.append(html_page.html_table(["ROI", "voxels", "model", f"mean fit ({table['comparison'].iloc[0]})", "95 % CI", "p (sign flips)",
                                            "p_fwe", "noise ceiling"], rows,
-                                          caption="Model fits against 0, one-sided; p_fwe over every model x ROI."))
+                                          caption="Model fits against 0, one-sided; p_fwe over every model x ROI x voxel count."))
     return ("geometry", "Representational geometry", "".join(parts), entries)

@@ -665,3 +665,11 @@ def test_job_takes_subjects_whose_nulls_differ_in_size(tmp_path):
     # equal counts give the same stream as a plain integer count
     np.testing.assert_array_equal(group.draw_indices(np.random.default_rng(1), np.array([30] * 5), 5, 10),
                                   group.draw_indices(np.random.default_rng(1), 30, 5, 10))
+
+
+def test_job_says_nothing_about_relabelings_without_a_p_min_column(tmp_path, caplog):
+    inputs = _write_study(tmp_path, seed=11)
+    outputs = _outputs(tmp_path)
+    with caplog.at_level(logging.WARNING, logger="test_group"):
+        group_job.run(inputs, outputs, _params(), LOG)
+    assert not any("relabelings" in record.getMessage() for record in caplog.records)

@@ -500,7 +500,8 @@ def run(inputs, outputs, params, log):
         notes.append("Note: " + message + ".")
     worst_p_min = np.nanmax(np.where(np.isnan(subject_p_min), -np.inf, subject_p_min), axis=0)
     worst_p_min = np.where(np.isfinite(worst_p_min), worst_p_min, np.nan)
-    coarse = [subjects[row] for row in range(len(subjects)) if np.nanmin(np.append(subject_p_min[row], np.inf)) > alpha]
+    coarse = [subjects[row] for row in range(len(subjects))
+              if np.isfinite(subject_p_min[row]).any() and np.nanmin(subject_p_min[row]) > alpha]  # no p_min column: nothing to say
     if coarse:
         message = (f"subject(s) {_short_list(coarse)}: the design allows so few distinct relabelings that no "
                    f"subject-level p can reach alpha {alpha:g} (see subject_p_min)")

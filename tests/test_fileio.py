@@ -64,3 +64,54 @@ def test_interrupted_write_leaves_nothing_that_looks_finished(tmp_path):
             raise RuntimeError("killed")
     assert not target.exists()
     assert os.listdir(tmp_path) == []
+
+
+@pytest.mark.parametrize("name", ["functional.nii", "example4d.nii.gz", "example_nifti2.nii.gz"])
+def test_float32_data_equals_nibabel_on_files_nibabel_ships(name):
+    # Source: nibabel's own test images (functional.nii: int16 with scl_slope 0.0754 and scl_inter 3100.76;
+    # example4d: unscaled int16; example_nifti2: NIfTI-2), read by nibabel's get_fdata(dtype=float32).
+    from pathlib import Path as _Path
+
+    import nibabel
+
+    path = _Path(nibabel.__file__).parent / "tests" / "data" / name
+    if not path.is_file():
+        pytest.skip(f"nibabel's test data are not installed ({name})")
+    expected = nibabel.load(path).get_fdata(dtype=np.float32)
+    from foldwise.data.fileio import float32_data as _float32_data
+
+    got = _float32_data(load_nifti(path, float32=False))
+    assert got.dtype == np.float32 and np.array_equal(got, expected)
+
+
+@pytest.mark.parametrize("dtype, slope, inter", [(np.int16, 0.37, 12.5), (np.int16, 1.0, -3.0), (np.uint8, 1.0, 0.0),
+                                                 (np.int32, 1e-3, 7.0), (np.float32, 1.0, 0.0)])
+def test_float32_data_equals_nibabel_bit_for_bit(tmp_path, dtype, slope, inter):
+    # Reference: nibabel's get_fdata(dtype=float32) on the same file (scaled in float64, then cast).
+    import nibabel
+
+    rng = np.random.default_rng(5)
+    stored = rng.integers(0, 200, size=(7, 5, 4, 300)).astype(dtype)
+    image = nibabel.Nifti1Image(stored, np.eye(4))
+    image.header.set_slope_inter(slope, inter)
+    path = tmp_path / "bold.nii.gz"
+    nibabel.save(image, path)
+    expected = nibabel.load(path).get_fdata(dtype=np.float32)
+    from foldwise.data.fileio import float32_data as _float32_data
+
+    got = _float32_data(load_nifti(path, float32=False))
+    assert np.array_equal(got, expected)
+
+
+def test_load_nifti_without_float32_still_finds_a_truncated_file(tmp_path):
+    import gzip
+
+    import nibabel
+
+    path = tmp_path / "bold.nii.gz"
+    nibabel.save(nibabel.Nifti1Image(np.ones((4, 4, 4, 10), dtype=np.int16), np.eye(4)), path)
+    raw = gzip.decompress(path.read_bytes())
+    cut = tmp_path / "cut.nii.gz"
+    cut.write_bytes(gzip.compress(raw[:-100]))  # a complete gzip stream holding too few values
+    with pytest.raises(InputError, match="truncated"):
+        load_nifti(cut, float32=False)

@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, missing_file_error, read_tsv
+from foldwise.data.fileio import float32_data, load_nifti, missing_file_error, read_tsv
 
 __all__ = [
     "PLACEHOLDERS",
@@ -484,11 +484,11 @@ def load_bold(path):
     InputError
         If the file is missing, truncated, not NIfTI, or not 4D.
     """
-    image = load_nifti(path, what="BOLD image")
+    image = load_nifti(path, what="BOLD image", float32=False)
     if len(image.shape) != 4:
         raise InputError(path, "dim", f"expected a 4D BOLD time series, got an image of shape {tuple(image.shape)}",
                          "point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
-    data = image.get_fdata(caching="unchanged", dtype=np.float32)
+    data = float32_data(image)  # get_fdata's values, several times faster for integer files
     return data, np.asarray(image.affine, dtype=np.float64), image.header
 
 

@@ -40,6 +40,7 @@ __all__ = [
     "gunzip_bytes",
     "save_nifti",
     "load_nifti",
+    "float32_data",
     "save_figure",
     "FLOAT_FORMAT",
     "TEXT_COLUMNS",
@@ -234,8 +235,19 @@ def save_nifti(path, data, affine, header=None, dtype=np.float32):
     write_bytes_atomic(path, gzip_bytes(raw) if str(path).endswith(".gz") else raw)
 
 
-def load_nifti(path, what="image"):
+def load_nifti(path, what="image", float32=True):
     """Load a NIfTI file fully into memory, decoding gzip with the fast decoder.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    what : str
+        What the file is, for messages.
+    float32 : bool
+        Also compute the float32 data (``get_fdata``), kept in the image for
+        the caller; False leaves that to the caller (:func:`float32_data`
+        does it faster for integer files), the stored values are still read
+        and checked for truncation.
 
     Returns
     -------
@@ -256,11 +268,59 @@ def load_nifti(path, what="image"):
             data = gunzip_bytes(data)
         image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
         image = image_class.from_bytes(data)
-        image.get_fdata(caching="fill", dtype=np.float32)  # force a full read (truncation shows here); kept for the caller
+        if float32:
+            image.get_fdata(caching="fill", dtype=np.float32)  # force a full read (truncation shows here); kept for the caller
+        else:
+            image.dataobj.get_unscaled()  # the stored values: truncation shows here too
     except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
         raise InputError(path, "content", f"the {what} is truncated or not a NIfTI file ({type(error).__name__}: {error})",
                          "re-export or re-copy the file") from None
     return image
+
+
+# Volumes scaled at a time by float32_data: small enough for the float64
+# temporaries to stay in cache, large enough for few Python steps.
+_SCALING_BLOCK_VALUES = 1 << 20
+
+
+def float32_data(image):
+    """``image.get_fdata(dtype=np.float32)``, bit for bit, with far less memory traffic for integer files.
+
+    nibabel scales stored integers in float64 (``value * scl_slope +
+    scl_inter``) over the whole array, then casts to float32: two full-size
+    float64 temporaries, about 0.5-1 s of CPU for a 60,000-voxel, 180-volume
+    int16 run. The same float64 arithmetic and cast, a block of volumes at a
+    time, gives the identical float32 values in a fraction of that
+    (tests/test_fileio.py checks equality against nibabel on scaled int16,
+    uint8 and unscaled files). Float files go through nibabel unchanged.
+
+    Parameters
+    ----------
+    image : nibabel.Nifti1Image or nibabel.Nifti2Image
+        An image whose data live in an array proxy (as :func:`load_nifti` returns).
+
+    Returns
+    -------
+    ndarray of float32, the image's shape (Fortran order, as nibabel returns it)
+    """
+    proxy = image.dataobj
+    stored = np.asanyarray(proxy.get_unscaled()) if hasattr(proxy, "get_unscaled") else None
+    # Integers of up to 32 bits are exact in float64, so a block's arithmetic is nibabel's; others go through nibabel.
+    if stored is None or stored.dtype.kind not in "iu" or stored.dtype.itemsize > 4 or stored.ndim != 4:
+        return image.get_fdata(caching="unchanged", dtype=np.float32)
+    slope, inter = np.float64(proxy.slope), np.float64(proxy.inter)
+    if not (np.isfinite(slope) and np.isfinite(inter) and np.isfinite(abs(slope) * 2.0**32 + abs(inter))):  # nibabel widens then
+        return image.get_fdata(caching="unchanged", dtype=np.float32)
+    result = np.empty(stored.shape, dtype=np.float32, order="F")
+    step = max(1, _SCALING_BLOCK_VALUES // max(1, int(np.prod(stored.shape[:3]))))
+    for start in range(0, stored.shape[3], step):
+        block = stored[..., start:start + step].astype(np.float64)
+        if slope != 1.0:
+            block *= slope
+        if inter != 0.0:
+            block += inter
+        result[..., start:start + step] = block
+    return result
 
 
 def save_figure(figure, path):

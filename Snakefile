@@ -28,6 +28,7 @@ rule all:
 onsuccess:
     finish_run(all_provenance_records(), STUDY["study"]["store_dir"])  # every output against its provenance record
     print_group_summaries()
+    print_closing_lines()  # the warning count, then the report's path, last
 
 
 onerror:

@@ -1,6 +1,7 @@
 """The workflow as a whole: lint, config errors before any job, and the demo against its ground truth."""
 
 import json
+import re
 
 import pandas as pd
 import pytest
@@ -49,7 +50,16 @@ def demo_results(tmp_path_factory):
     """The default demo study (config/config.yaml), run once."""
     workdir = copy_repository(tmp_path_factory.mktemp("demo") / "repo")
     completed = snakemake(workdir, config="config/config.yaml")
+    _DEMO_STDOUT.append(completed.stdout)
     return workdir, completed.stdout + completed.stderr
+
+
+_DEMO_STDOUT = []
+
+
+@pytest.fixture(scope="module")
+def demo_stdout(demo_results):
+    return _DEMO_STDOUT[-1]
 
 
 def _group(workdir, analysis):
@@ -87,3 +97,21 @@ def test_demo_prints_what_survives_and_writes_every_stage(demo_results):
     for subject in subjects:
         for run in range(1, 5):
             assert (workdir / f"results/patterns/sub-{subject}/sub-{subject}_run-{run:02d}_patterns.nii.gz").is_file()
+
+
+@pytest.mark.slow
+def test_demo_terminal_is_short_and_ends_with_the_report_path(demo_results):
+    # The profile's quiet options hide the per-job blocks (the default target's input list ran to 34,280 characters).
+    _, output = demo_results
+    lines = output.splitlines()
+    assert max(len(line) for line in lines) <= 300, max(lines, key=len)[:200]
+    assert len(lines) < 600
+    assert any(re.search(r"\b\d+ of \d+ steps \(\d+%\) done", line) for line in lines)  # the progress stays
+
+
+@pytest.mark.slow
+def test_demo_stdout_ends_with_the_warning_count_and_the_report_path(demo_stdout):
+    lines = [line for line in demo_stdout.splitlines() if line.strip()]
+    assert lines[-1] == "foldwise: report: results/report/index.html"
+    assert re.fullmatch(r"foldwise: (no warnings\.|\d+ warnings? \(.*\)\.)", lines[-2])
+

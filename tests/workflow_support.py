@@ -65,7 +65,7 @@ def snakemake(workdir, *arguments, config="config/study.yaml", cores=2, check=Tr
 
 def scheduled_jobs(workdir, config="config/study.yaml"):
     """The (rule, wildcards) pairs a dry run would execute, parsed from ``snakemake -n``."""
-    completed = snakemake(workdir, "--dry-run", config=config)
+    completed = snakemake(workdir, "--dry-run", "--quiet", "host", config=config)  # the profile hides the rule blocks; show them
     jobs, rule = [], None
     for line in (completed.stdout + completed.stderr).splitlines():
         stripped = line.strip()

@@ -93,11 +93,20 @@ def all_provenance_records():
     return plan.all_provenance_records(MODEL)
 
 
+def print_closing_lines():
+    """The run's last lines: how many warnings the jobs logged, then the report's path (the last line)."""
+    from foldwise.report.terminal import closing_lines, job_warnings
+
+    for line in closing_lines(len(job_warnings(plan.report_job_logs(MODEL))), contract.TEMPLATES["report_html"]):
+        print(line)
+
+
 def print_group_summaries():
+    from foldwise.report.terminal import fit_lines  # summary lines wrapped for the terminal
     for name in MODEL.analyses:
         path = contract.fill("group_summary", analysis=name)
         if os.path.isfile(path):
-            print(open(path, encoding="utf-8").read().rstrip())
+            print(fit_lines(open(path, encoding="utf-8").read()))
     for path in plan.geometry_wiring.group_summary_paths(MODEL):  # geometry analyses
         if os.path.isfile(path):
-            print(open(path, encoding="utf-8").read().rstrip())
+            print(fit_lines(open(path, encoding="utf-8").read()))

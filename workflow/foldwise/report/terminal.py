@@ -5,9 +5,13 @@
 lists the same warnings (:func:`job_warnings`), so the two agree.
 """
 
+import textwrap
 from pathlib import Path
 
-__all__ = ["job_warnings", "closing_lines"]
+__all__ = ["job_warnings", "closing_lines", "fit_lines"]
+
+#: Longest line printed at the end of a run (characters); longer summary lines are wrapped.
+TERMINAL_WIDTH = 120
 
 
 def job_warnings(job_logs):
@@ -50,3 +54,24 @@ def closing_lines(n_warnings, report_path):
     else:
         count = "foldwise: no warnings."
     return [count, f"foldwise: report: {report_path}"]
+
+
+def fit_lines(text, width=TERMINAL_WIDTH):
+    """``text`` with every line longer than ``width`` wrapped, continuation lines indented two more spaces.
+
+    Examples
+    --------
+    >>> print(fit_lines("  roi ember: " + "word " * 5, width=20))
+      roi ember: word
+        word word word
+        word
+    """
+    lines = []
+    for line in text.rstrip().splitlines():
+        if len(line) <= width:
+            lines.append(line)
+            continue
+        indent = line[: len(line) - len(line.lstrip())]
+        lines += textwrap.wrap(line.strip(), width=width, initial_indent=indent, subsequent_indent=indent + "  ",
+                               break_long_words=False, break_on_hyphens=False)
+    return "\n".join(lines)

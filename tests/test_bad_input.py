@@ -896,6 +896,27 @@ def _geometry_counts_out_of_order(folder):
     return Expectation(_validating(study), "config/study.yaml: analyses[1].geometry.voxel_counts: counts [50, 10] are not "
                                            "increasing. Fix: list the counts from small to large ('all' last)")
 
+@case("glm.conditions naming none of a run's trial types", "data.check.check_dataset (make check, and at the start of every run, before any job)")
+def _glm_conditions_miss_a_run(folder):
+    from foldwise.data.check import check_dataset
+    study = validate(_study(**{"dataset": {"source": "bids", "bids_root": str(folder / "bids")},
+                               "glm": {"conditions": ["seen_round", "seen_square", "seen_star"]}}), path="config/study.yaml")
+    runs = []
+    for run, labels in (("1", ("seen_round", "seen_square", "seen_star")), ("2", ("dim_round", "dim_square", "dim_star"))):
+        stem = folder / "bids" / "sub-01" / "func" / f"sub-01_task-lanterns_run-{run}"
+        stem.parent.mkdir(parents=True, exist_ok=True)
+        save_nifti(f"{stem}_bold.nii.gz", np.zeros(GRID + (10,), dtype=np.float32), AFFINE)
+        Path(f"{stem}_bold.json").write_text('{"RepetitionTime": 1.0}', encoding="utf-8")
+        Path(f"{stem}_events.tsv").write_text("onset\tduration\ttrial_type\n" + "".join(f"{2 * i}\t1\t{name}\n" for i, name in enumerate(labels)),
+                                              encoding="utf-8")
+        runs.append({"subject": "01", "session": None, "run_id": f"run-{run}", "bold": f"{stem}_bold.nii.gz",
+                     "events": f"{stem}_events.tsv", "sidecar": f"{stem}_bold.json"})
+    return Expectation(lambda: check_dataset(study, runs, "config/study.yaml"),
+                       f"{FOLDER}/bids/sub-01/func/sub-01_task-lanterns_run-2_events.tsv: glm.conditions: none of the listed conditions "
+                       "(seen_round, seen_square, seen_star) occurs in this run of task 'lanterns' (its trial types: dim_round, dim_square, "
+                       "dim_star). Fix: list the conditions of every decoded task in glm.conditions, or leave it empty (every trial type)")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

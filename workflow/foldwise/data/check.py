@@ -283,6 +283,15 @@ def check_dataset(study, runs, config_path="the study config", surveys=None):
         raise InputError(first["events"], first["where"], "; ".join(parts) + more,
                          f"correct the condition name in {config_path} or in the subject's events files "
                          "(or leave the subject out with dataset.exclude_subjects)")
+    modelled = set(study["glm"].get("conditions") or [])
+    if modelled:  # the GLM of a run none of whose trial types is listed would stop at job time
+        decoded = {task for task, role in study_tasks(study).items() if role == "patterns"}
+        for survey in surveys:
+            if survey.task in decoded and not modelled & set(survey.trial_types):
+                raise InputError(survey.events, "glm.conditions", f"none of the listed conditions ({', '.join(sorted(modelled))}) occurs "
+                                                                  f"in this run of task {survey.task!r} (its trial types: "
+                                                                  f"{', '.join(survey.trial_types[:8])})",
+                                 "list the conditions of every decoded task in glm.conditions, or leave it empty (every trial type)")
     grids = {}
     for survey in surveys:
         grids.setdefault(survey.subject, set()).add((survey.grid, survey.voxel_mm))

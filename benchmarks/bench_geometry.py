@@ -12,12 +12,19 @@
 2. Geometry searchlight of one subject: ~60,000 brain voxels, 123-voxel
    spheres (radius 3 voxels), 8 runs x 6 conditions, univariate noise
    normalisation, 3 models. Target: <= 60 s.
+3. Calibration of the group tests on null studies (``--null-studies``, default
+   1,000): every subject's patterns are noise (no condition differs) with
+   correlated voxels; the whole chain (crossnobis with Ledoit-Wolf
+   normalisation, tau-a fits, sign-flip test with max-statistic FWE over
+   ROIs x models, pairwise comparisons) must reject at most alpha of the
+   time: the rates are printed with their binomial 99 % interval.
 
 All times come from this one run; the table prints their ratios.
 
 Run: .venv/bin/python benchmarks/bench_geometry.py
 """
 
+import argparse
 import itertools
 import os
 import time
@@ -26,6 +33,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import numpy as np  # noqa: E402
+from scipy import stats  # noqa: E402
 from sklearn.covariance import LedoitWolf  # noqa: E402
 
 from foldwise.geometry import compare, distances, inference, models, noise  # noqa: E402
@@ -99,7 +107,62 @@ def _brain():
     return ((((grid - centre) / radii) ** 2).sum(axis=1) <= 1.0).reshape(GRID)
 
 
+def searchlight_glm_s(n_brain, rng, n_runs=N_RUNS, n_scans=N_SCANS, tr_s=2.0):
+    """Seconds of the geometry searchlight job's GLM refit (betas per condition + residual sums) on n_brain voxels."""
+    import pandas as pd
+
+    from foldwise.config import load_yaml, validate
+    from foldwise.geometry.residuals import glm_residuals
+    from foldwise.glm.estimate import estimate_patterns
+
+    glm = validate(load_yaml("config/config.yaml"), path="config/config.yaml")["glm"]
+    glm = {**glm, "pattern_mode": "per_condition", "statistic": "beta"}
+    onsets = np.arange(6 * 4) * (n_scans * tr_s - 40) / 24 + 10
+    events = pd.DataFrame({"onset": onsets, "duration": 2.0, "trial_type": np.tile(CONDITIONS, 4)})
+    start = time.perf_counter()
+    for _ in range(n_runs):
+        bold = (100 + rng.standard_normal((n_scans, n_brain))).astype(np.float32)
+        estimate = estimate_patterns(bold, events, tr_s, glm, None, [])
+        residuals = glm_residuals(estimate.design.matrix, bold, estimate.rho)
+        np.einsum("ij,ij->j", residuals, residuals)
+    return time.perf_counter() - start
+
+
+def null_calibration(n_studies, n_subjects=10, n_rois=3, n_voxels=40, n_runs=4, n_scans=30, alpha=0.05, seed=7):
+    """False-positive rates of the geometry group tests on null studies (see the module docstring)."""
+    rng = np.random.default_rng(seed)
+    model_set = models.model_vectors(CONDITIONS, FEATURES, MODELS)
+    mixes = [np.eye(n_voxels) + 0.3 * rng.standard_normal((n_voxels, n_voxels)) / np.sqrt(n_voxels) for _ in range(n_rois)]
+    any_fit, any_pair, cell = 0, 0, 0
+    for _ in range(n_studies):
+        fits = np.empty((n_subjects, n_rois, model_set.shape[0]))
+        for s in range(n_subjects):
+            for r in range(n_rois):
+                common = rng.standard_normal(n_voxels)  # a response shared by every condition: no condition differs
+                patterns = common + rng.standard_normal((n_runs, len(CONDITIONS), n_voxels)) @ mixes[r]
+                residuals = [rng.standard_normal((n_scans, n_voxels)) @ mixes[r] for _ in range(n_runs)]
+                d = distances.crossvalidated_distances(patterns, noise.fold_noise("multivariate", residuals))
+                fits[s, r] = compare.kendall_tau_a(d, model_set)[0]
+        flips, _ = inference.sign_flips(n_subjects, 1000, rng)
+        tested = inference.signflip_test(fits.reshape(n_subjects, -1), flips)
+        differences, _ = inference.pairwise_differences(fits, [m["name"] for m in MODELS])
+        paired = inference.signflip_test(differences.reshape(n_subjects, -1), flips, two_sided=True)
+        any_fit += np.any(tested["p_fwe"] <= alpha)
+        any_pair += np.any(paired["p_fwe"] <= alpha)
+        cell += tested["p"][0] <= alpha
+    low, high = stats.binom.ppf([0.005, 0.995], n_studies, alpha) / n_studies
+    print(f"null calibration: {n_studies} null studies x {n_subjects} subjects x {n_rois} ROIs x {model_set.shape[0]} models "
+          f"(crossnobis, multivariate, tau-a), alpha {alpha}; binomial 99% interval {low:.3f}..{high:.3f}")
+    for label, count in (("model fit > 0, any cell, p_fwe", any_fit), ("model vs model, any pair, p_fwe", any_pair),
+                         ("model fit > 0, one cell, uncorrected p", cell)):
+        rate = count / n_studies
+        print(f"  {label:<40} {rate:.3f}  {'within' if low <= rate <= high else 'OUTSIDE'}")
+
+
 def main():
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--null-studies", type=int, default=1000)
+    arguments = parser.parse_args()
     rng = np.random.default_rng(20261203)
     model_set = models.model_vectors(CONDITIONS, FEATURES, MODELS)
     patterns, residuals = _subject(rng)
@@ -139,8 +202,13 @@ def main():
     start = time.perf_counter()
     fits = sphere_model_fits(brain_patterns, spheres, model_set, "kendall_tau_a", inverse_variance)
     searchlight_s = time.perf_counter() - start
+    glm_s = searchlight_glm_s(n_brain, rng)
     print(f"searchlight: {n_brain} voxels, spheres of {int(spheres.sizes.max())} voxels (median {int(np.median(spheres.sizes))}), "
-          f"{fits.shape[1]} models, univariate: {searchlight_s:.2f} s per subject (target <= 60 s)")
+          f"{fits.shape[1]} models, univariate: distances and fits {searchlight_s:.2f} s + GLM refit of {N_RUNS} runs x {N_SCANS} scans "
+          f"{glm_s:.2f} s = {searchlight_s + glm_s:.2f} s per subject (target <= 60 s)")
+    start = time.perf_counter()
+    null_calibration(arguments.null_studies)
+    print(f"  ({time.perf_counter() - start:.0f} s)")
 
 
 if __name__ == "__main__":

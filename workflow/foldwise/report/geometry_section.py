@@ -8,7 +8,6 @@ sections through :func:`section` and :func:`read`.
 import base64
 import html
 
-import pandas as pd
 
 from foldwise import contract
 from foldwise.report import page as html_page

@@ -86,7 +86,8 @@ def _figure(table, path, name):
 
     rows = table.reset_index(drop=True)
     # small and plain: the figure is saved at 300 dpi (fileio.save_figure), so every inch costs render time
-    figure, axes = pyplot.subplots(1, len(ALPHAS), figsize=(3.6 * len(ALPHAS), 0.16 * len(rows) / len(ALPHAS) + 1.2), squeeze=False)
+    height_in = 0.16 * len(rows) / len(ALPHAS) + 1.4
+    figure, axes = pyplot.subplots(1, len(ALPHAS), figsize=(3.6 * len(ALPHAS), height_in), squeeze=False)
     for axis, alpha in zip(axes[0], ALPHAS):
         part = rows[rows["alpha"] == alpha].reset_index(drop=True)
         positions = np.arange(len(part))[::-1]
@@ -104,7 +105,8 @@ def _figure(table, path, name):
         axis.set_title(f"alpha {alpha:g}", fontsize=8)
     axes[0][0].legend(fontsize=5, loc="lower right")
     figure.suptitle(f"Design self-check of {name}: every test on noise shaped like the study", fontsize=8)
-    figure.subplots_adjust(left=0.32, right=0.98, wspace=0.08, bottom=0.08, top=0.92)
+    # margins in inches (title and axis label), whatever the number of rows
+    figure.subplots_adjust(left=0.32, right=0.98, wspace=0.08, bottom=0.45 / height_in, top=1 - 0.55 / height_in)
     save_figure(figure, path)
     pyplot.close(figure)
 

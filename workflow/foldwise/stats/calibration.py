@@ -460,7 +460,11 @@ def study_calibration_rows(analysis, total, level=0.99):
     calibrated test has (alpha for the group tests; the mean attainable level
     of the discrete null for the subject-level p). ``within_bounds`` is true
     when the count is at most the upper bound (a conservative test is
-    within); ``variance_ratio`` is not computed here (NaN).
+    within); ``variance_ratio`` is not computed here (NaN). Cell-wise rows
+    count every ROI x count of every noise study; the cells of one study are
+    correlated (nested voxel counts), so their spread exceeds the binomial
+    one and the bounds are a guide there; the family-wise rows count one
+    test per study and are exact binomial bounds.
     """
     rows = []
     for (test, direction, alpha), entry in sorted(total.items(), key=lambda item: (item[0][0], item[0][1], -item[0][2])):

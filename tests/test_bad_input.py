@@ -526,7 +526,8 @@ def _condition_nowhere(folder):
 def _group_of_one(folder):
     counts = ("10", "all")
     write_tsv(folder / "sub-01_summary.tsv", pd.DataFrame(
-        [{"subject": "01", "analysis": "shape", "roi": "ember", "direction": "within", "n_voxels": count, "n_used": 10,
+        [{"subject": "01", "analysis": "shape", "roi": "ember", "direction": "within", "n_voxels": count,
+          "n_used": 10 if count == "10" else 57,  # an ROI larger than the count (else "10" would be the ROI's "all")
           "n_folds": 2, "accuracy": 0.5, "balanced_accuracy": 0.5, "chance": 1 / 3} for count in counts]))
     write_tsv(folder / "sub-01_roi-ember_null.tsv.gz", pd.DataFrame(
         [{"subject": "01", "analysis": "shape", "roi": "ember", "direction": "within", "n_voxels": count, "permutation": number,

@@ -382,6 +382,7 @@ def parse_arguments(argv):
     parser.add_argument("--runs", type=int, help="override the shape's runs per subject")
     parser.add_argument("--grid", type=int, nargs=3, help="override the shape's grid")
     parser.add_argument("--permutations", type=int, help="override the shape's permutations")
+    parser.add_argument("--trials", type=int, help="override the shape's trials per condition per run (8: about 180 volumes)")
     parser.add_argument("--cores", type=int, default=2)
     parser.add_argument("--data", help="keep the simulated dataset in this folder (reused when it exists)")
     parser.add_argument("--rev", default="HEAD", help="the commit measured (default HEAD: committed code only)")
@@ -396,7 +397,7 @@ def main(argv):
     arguments = parse_arguments(argv)
     shape = dict(SHAPES["small" if arguments.small else "full"])
     for key, value in (("n_subjects", arguments.subjects), ("n_runs", arguments.runs), ("grid_shape", arguments.grid),
-                       ("n_permutations", arguments.permutations)):
+                       ("n_permutations", arguments.permutations), ("trials_per_condition_per_run", arguments.trials)):
         if value is not None:
             shape[key] = list(value) if key == "grid_shape" else value
     load_1min = os.getloadavg()[0]

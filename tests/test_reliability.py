@@ -498,3 +498,34 @@ def test_e2e_results_hold_no_absolute_path_and_a_stray_part_file_is_gone(base_ru
         if path.is_file() and path.suffix in (".html", ".json", ".tsv", ".txt", ".svg", ".log"):
             text = path.read_text(errors="replace")
             assert not any(needle in text for needle in needles), path
+
+
+def test_a_second_verify_never_overwrites_the_bundled_evidence(two_studies, tmp_path, capsys, monkeypatch):
+    # Before: verify moved the bundled results aside on every call, so a second verify replaced them by its own recomputation.
+    _make(two_studies, capsys)
+    unpacked = _unpack(two_studies, tmp_path)
+    evidence = {path.relative_to(unpacked).as_posix(): path.read_bytes() for path in (unpacked / "results").rglob("*") if path.is_file()}
+    written = {"text": None}
+
+    made = [path.relative_to(two_studies).as_posix() for path in (two_studies / "results").rglob("*")
+            if path.is_file() and "bundle" not in path.parts]
+
+    def recompute(command, cwd, env):  # stands in for Snakemake: writes every output and record again
+        assert env["FOLDWISE_MEMO"] == "off" and "--forceall" in command
+        for relative in made:
+            target = Path(cwd) / relative
+            target.parent.mkdir(parents=True, exist_ok=True)
+            data = (two_studies / relative).read_bytes()
+            target.write_bytes(written["text"] if written["text"] is not None and relative.endswith("carry_group.tsv") else data)
+        return subprocess.CompletedProcess(command, 0)
+
+    monkeypatch.setattr(bundle.subprocess, "run", recompute)
+    assert bundle.verify(unpacked, recompute=True, config_path="config/study.yaml") == 0
+    kept = unpacked / "REVIEW" / "bundled"
+    written["text"] = b"roi\tmean\nember\t0.7\n"  # the second recomputation differs
+    assert bundle.verify(unpacked, recompute=True, config_path="config/study.yaml") == 1
+    assert "MISMATCH: results/group/carry/carry_group.tsv" in capsys.readouterr().out
+    for relative, data in evidence.items():
+        if relative != "results/manifest.tsv":  # the reference manifest is REVIEW/manifest.tsv
+            assert (kept / relative).read_bytes() == data, relative
+    assert (unpacked / "REVIEW/manifest.tsv").read_bytes() == evidence["results/manifest.tsv"]

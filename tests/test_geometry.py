@@ -498,3 +498,21 @@ def test_subject_and_group_jobs_write_the_documented_tables(tmp_path, counts):
     assert len(contract.read_table("geometry_pairwise", out["pairwise"])) == 2 * len(counts)
     with open(out["summary"], encoding="utf-8") as handle:
         assert "geometry geo: crossnobis, multivariate" in handle.read()
+
+
+def test_geometry_kind_in_the_study_model_and_the_plan():
+    from foldwise import plan
+    from foldwise.config import load_yaml, validate
+    from foldwise.study import build_study
+
+    study = build_study(validate(load_yaml("config/config.yaml"), path="config/config.yaml"), path="config/config.yaml")
+    analysis = study.analyses["lantern_geometry"]
+    assert analysis.kind == "geometry" and analysis.class_names == tuple(LANTERNS) and analysis.rois == ("ember", "glow", "hush")
+    steps = [step for step, _ in plan.planned_jobs(study)]
+    n_subjects = len(study.subjects)
+    assert {step: steps.count(step) for step in set(steps) if step.startswith("geometry")} == {
+        "geometry_patterns": n_subjects, "geometry_subject": n_subjects, "geometry_group": 1,
+        "geometry_searchlight": n_subjects, "geometry_searchlight_group": 1}
+    # No decoding job for a geometry analysis, and the report reads its group table and figures.
+    assert not [w for step, w in plan.planned_jobs(study) if step == "decode" and w["analysis"] == "lantern_geometry"]
+    assert "geometry_group_table" in plan.report_input_index(study)

@@ -918,6 +918,44 @@ def _glm_conditions_miss_a_run(folder):
                        "dim_star). Fix: list the conditions of every decoded task in glm.conditions, or leave it empty (every trial type)")
 
 
+# -- the study model (foldwise.study): checks of meaning, before any job ----------------------------
+_CROSS = {"name": "carry", "kind": "cross", "sets": {"seen": {"round": "seen_round", "square": "seen_square"},
+                                                    "heard": {"round": "heard_round", "square": "heard_square"}}}
+
+
+@case("a condition misspelt in the config (in no subject's events; the searchlight's analysis too)",
+      "study.build_study (data.check over the demo's conditions), before any job")
+def _misspelt_condition_in_config(folder):
+    from foldwise.study import build_study
+
+    study = _study(**{"analyses.0.classes": {"round": ["seen_round", "seen_rond"], "square": ["seen_square"]}})
+    study["searchlight"] = {"enabled": True, "analyses": ["shape"]}
+    # seen_round is named by the config already, so the unclaimed trial types are offered first (data.check's did-you-mean)
+    problems = "; ".join(f"subject {subject} has no event 'seen_rond' of task 'lanterns' (did you mean 'seen_star' or 'heard_round'?)"
+                         for subject in ("01", "02", "03"))
+    return Expectation(lambda: build_study(validate(study, path="config/study.yaml"), path="config/study.yaml"),
+                       f"results/demo/bids/sub-01/func/sub-01_task-lanterns_run-01_events.tsv: analyses[0].classes.round: {problems}. "
+                       "Fix: correct the condition name in config/study.yaml or in the subject's events files "
+                       "(or leave the subject out with dataset.exclude_subjects)")
+
+
+@case("a condition used by both sets of a cross analysis", "study.check_meaning via config.validate, before any job")
+def _condition_in_both_sets(folder):
+    study = _study()
+    study["analyses"].append(copy.deepcopy(_CROSS))
+    study["analyses"][1]["sets"]["heard"]["round"] = "seen_round"
+    return Expectation(_validating(study), "config/study.yaml: analyses[1].sets: condition 'seen_round' is used by both sets. "
+                                           "Fix: give each set its own conditions")
+
+
+@case("searchlight names an analysis that does not exist", "study.check_meaning via config.validate, before any job")
+def _unknown_searchlight_analysis(folder):
+    study = _study()
+    study["searchlight"] = {"enabled": True, "analyses": ["shap"]}
+    return Expectation(_validating(study), "config/study.yaml: searchlight.analyses: unknown analysis 'shap' (did you mean 'shape'?). "
+                                           "Fix: use one of shape")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

@@ -32,6 +32,7 @@ __all__ = [
     "check_output_folder",
     "atomic_path",
     "write_bytes_atomic",
+    "save_npy",
     "write_text_atomic",
     "write_json",
     "write_tsv",
@@ -124,6 +125,13 @@ def write_bytes_atomic(path, data):
             handle.write(data)
             handle.flush()
             os.fsync(handle.fileno())
+
+
+def save_npy(path, array):
+    """Write an array as .npy atomically (serialised in memory first, no pickles)."""
+    buffer = io.BytesIO()
+    np.save(buffer, np.ascontiguousarray(array), allow_pickle=False)
+    write_bytes_atomic(path, buffer.getvalue())
 
 
 def write_text_atomic(path, text):

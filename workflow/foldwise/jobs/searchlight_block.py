@@ -20,12 +20,10 @@ so permutation ``k`` is the same relabeling in every block and the merged
 null is a joint null over the brain.
 """
 
-import io
-
 import numpy as np
 
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, read_tsv, write_bytes_atomic
+from foldwise.data.fileio import load_nifti, read_tsv, save_npy
 from foldwise.provenance.hashing import seed_from
 from foldwise.contract import GRID_TOLERANCE_MM
 from foldwise.contract import read_brain_mask as load_brain_mask  # the one brain-mask reader
@@ -35,13 +33,6 @@ from foldwise.searchlight.engine import SEARCHLIGHT_CLASSIFIERS, block_centres, 
 __all__ = ["run", "GRID_TOLERANCE_MM", "load_brain_mask", "load_subject_patterns", "save_npy"]
 
 _TABLE_COLUMNS = ("volume", "condition", "run_id")
-
-
-def save_npy(path, array):
-    """Write an array as .npy atomically (serialised in memory first)."""
-    buffer = io.BytesIO()
-    np.save(buffer, np.ascontiguousarray(array), allow_pickle=False)
-    write_bytes_atomic(path, buffer.getvalue())
 
 
 def load_subject_patterns(pattern_paths, table_paths, mask, affine):

@@ -19,10 +19,9 @@ import numpy as np
 import pandas as pd
 
 from foldwise.errors import InputError
-from foldwise.data.fileio import save_nifti, write_tsv
+from foldwise.data.fileio import save_npy, save_nifti, write_tsv
 from foldwise.searchlight.engine import analysis_outline, block_centres
 from foldwise.contract import read_brain_mask as load_brain_mask
-from foldwise.jobs.searchlight_block import save_npy
 
 __all__ = ["run"]
 

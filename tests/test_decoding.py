@@ -675,3 +675,39 @@ def test_noise_predictions_do_not_pile_onto_the_majority_class(classifier):
         result = decoding.decode_curve(rng.standard_normal((labels.size, 20)), labels, runs, ["all"], classifier=classifier)
         shares.append(np.mean(result.directions["within"].predictions[0] == 0))
     assert abs(np.mean(shares) - 0.5) < 0.1, np.mean(shares)
+
+
+# -- the relabeling space (decoding/permutations.py) ---------------------------------------
+def test_relabeling_space_and_enumeration_equal_brute_force():
+    # Brute force (itertools): every within-block permutation of the labels, collected as distinct vectors.
+    import itertools
+
+    from foldwise.decoding import permutations
+
+    for labels, blocks in (
+            (np.array([0, 0, 1, 0, 1, 1, 2]), np.array([0, 0, 0, 1, 1, 1, 1])),  # unequal classes: no renaming symmetry
+            (np.array([0, 1, 1, 0, 0, 1]), np.array([0, 0, 1, 1, 2, 2])),  # one pattern per class and block: 2**3 / 2
+            (np.array([0, 0, 1, 1, 1, 0, 1, 0]), np.array([0, 0, 0, 0, 1, 1, 1, 1]))):  # two per class and block: 6*6 / 2
+        members = [np.flatnonzero(blocks == block) for block in np.unique(blocks)]
+        vectors = set()
+        for orders in itertools.product(*(itertools.permutations(m) for m in members)):
+            vector = labels.copy()
+            for m, order in zip(members, orders):
+                vector[m] = labels[list(order)]
+            vectors.add(tuple(vector))
+        space = permutations.relabeling_space(labels, blocks)
+        assert space.n_arrangements == len(vectors)
+        if space.renaming_invariant:  # vectors that differ only by renaming the classes count once
+            def canonical(vector):  # classes renamed in order of first appearance
+                first = {}
+                for value in vector:
+                    first.setdefault(value, len(first))
+                return tuple(first[value] for value in vector)
+
+            assert space.n_distinct == len({canonical(v) for v in vectors}) == len(vectors) // 2
+        else:
+            assert space.n_distinct == len(vectors)
+        listed = permutations.enumerate_relabelings(labels, blocks)
+        np.testing.assert_array_equal(listed[0], labels)
+        assert len({tuple(row) for row in listed}) == len(listed) == space.n_enumerated
+        assert {tuple(row) for row in listed} <= vectors

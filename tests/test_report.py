@@ -533,8 +533,8 @@ def test_page_embeds_every_png_and_loads_nothing_else(built):
 
 
 def test_rerun_gives_byte_identical_files(tmp_path):
-    # A smaller study (one ROI, the cross analysis, two subjects) keeps the test fast; inputs are built once.
-    study = dict(STUDY, rois=STUDY["rois"][:1], analyses=STUDY["analyses"][1:])
+    # A smaller study (one ROI, the within analysis, two subjects) keeps the test fast; inputs are built once.
+    study = dict(STUDY, rois=STUDY["rois"][:1], analyses=STUDY["analyses"][:1])
     inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=SUBJECTS[:2])
     first, second = outputs_for(tmp_path / "first", study, SUBJECTS[:2]), outputs_for(tmp_path / "second", study, SUBJECTS[:2])
     report_job.run(inputs, first, params, _quiet_log())

@@ -867,3 +867,67 @@ def test_every_contents_anchor_resolves_in_the_browser(printed):
     ids = {attributes["id"] for _, attributes in parsed.elements if "id" in attributes}
     links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and "href" in attributes]
     assert len(links) >= 15 and all(link[1:] in ids for link in links)
+
+
+# -- searchlight maps: clusters and the figure ---------------------------------------------------------
+
+def _flood_clusters(mask):
+    """Connected components (26-neighbourhood) by a plain breadth-first search: the brute-force reference."""
+    labels, count = np.zeros(mask.shape, dtype=int), 0
+    for start in zip(*np.nonzero(mask)):
+        if labels[start]:
+            continue
+        count += 1
+        labels[start], queue = count, [start]
+        while queue:
+            i, j, k = queue.pop()
+            for di in (-1, 0, 1):
+                for dj in (-1, 0, 1):
+                    for dk in (-1, 0, 1):
+                        near = (i + di, j + dj, k + dk)
+                        if all(0 <= near[a] < mask.shape[a] for a in range(3)) and mask[near] and not labels[near]:
+                            labels[near] = count
+                            queue.append(near)
+    return labels, count
+
+
+def test_searchlight_clusters_match_a_brute_force_search_and_give_peaks_in_mm():
+    rng = np.random.default_rng(11)
+    shape = (9, 8, 7)
+    p_fwe = np.where(rng.random(shape) < 0.12, 0.01, 0.5)[..., None]
+    margin = rng.normal(0.1, 0.05, shape)[..., None]
+    affine = np.array([[-2.0, 0, 0, 40], [0, 2.0, 0, -30], [0, 0, 2.5, -10], [0, 0, 0, 1]])
+    table = report.searchlight_clusters(margin, p_fwe, ["within"], affine, 0.05)
+    labels, count = _flood_clusters(p_fwe[..., 0] < 0.05)
+    sizes = sorted(np.bincount(labels.ravel())[1:].tolist(), reverse=True)
+    assert len(table) == count and table["n_voxels_cluster"].tolist() == sizes
+    assert np.allclose(table["volume_mm3"], np.array(sizes) * 10.0)  # |det| = 2 x 2 x 2.5 mm
+    largest = table.iloc[0]
+    members = [tuple(index) for index in np.argwhere(labels == np.bincount(labels.ravel())[1:].argmax() + 1)]
+    peak = max(members, key=lambda index: margin[index + (0,)])
+    # Source: nibabel.affines.apply_affine (voxel index to world mm).
+    assert np.allclose([largest.peak_x_mm, largest.peak_y_mm, largest.peak_z_mm], nib.affines.apply_affine(affine, peak))
+    assert largest.peak_margin == pytest.approx(margin[peak + (0,)]) and largest.peak_p_fwe == 0.01
+
+
+def test_searchlight_figure_uses_the_same_slices_for_every_direction_and_marks_the_sides():
+    rng = np.random.default_rng(12)
+    shape = (10, 12, 8)
+    brain = np.zeros(shape, dtype=bool)
+    brain[1:9, 1:11, 1:7] = True
+    margin = rng.normal(0.0, 0.05, shape + (2,))
+    p_fwe = np.ones(shape + (2,))
+    p_fwe[2:4, 3:5, 2:4, 0] = 0.01  # only the first direction has significant voxels
+    figure = report.searchlight_figure(margin, p_fwe, ["seen->heard", "heard->seen"], rng.random(shape), brain,
+                                       _affine(), 0.05, "maps")
+    titles = [axes.get_title() for axes in figure.axes if axes.get_title()]
+    first = [title.split(": ", 1)[1] for title in titles if title.startswith("seen->heard")]
+    second = [title.split(": ", 1)[1] for title in titles if title.startswith("heard->seen")]
+    assert first == second and len(first) == 3  # the same planes in both rows
+    texts = [text.get_text() for axes in figure.axes for text in axes.texts]
+    assert texts.count("L") == texts.count("R") == 4  # coronal and axial panels of both rows
+    overlays = {axes.get_title(): np.ma.masked_invalid(axes.get_images()[1].get_array()) for axes in figure.axes
+                if axes.get_title() and len(axes.get_images()) == 2}
+    # Thresholded: the second direction has no voxel below alpha, so its overlay is empty; the first shows some.
+    assert all(np.ma.count(array) == 0 for title, array in overlays.items() if title.startswith("heard->seen"))
+    assert sum(np.ma.count(array) for title, array in overlays.items() if title.startswith("seen->heard")) > 0

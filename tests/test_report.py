@@ -931,3 +931,22 @@ def test_searchlight_figure_uses_the_same_slices_for_every_direction_and_marks_t
     # Thresholded: the second direction has no voxel below alpha, so its overlay is empty; the first shows some.
     assert all(np.ma.count(array) == 0 for title, array in overlays.items() if title.startswith("heard->seen"))
     assert sum(np.ma.count(array) for title, array in overlays.items() if title.startswith("seen->heard")) > 0
+
+
+def test_group_confusion_is_the_mean_of_scikit_learns_row_normalised_matrices():
+    from sklearn.metrics import confusion_matrix as sklearn_confusion
+
+    rng = np.random.default_rng(13)
+    counts, references = [], []
+    for _ in range(4):
+        true = rng.integers(0, 3, 40)
+        predicted = np.where(rng.random(40) < 0.6, true, rng.integers(0, 3, 40))
+        counts.append(sklearn_confusion(true, predicted, labels=[0, 1, 2]))
+        # Source: scikit-learn's confusion_matrix(normalize="true"): each true class's row divided by its total.
+        references.append(sklearn_confusion(true, predicted, labels=[0, 1, 2], normalize="true"))
+    shares = report.group_confusion(counts)
+    np.testing.assert_allclose(shares, np.mean(references, axis=0))
+    np.testing.assert_allclose(shares.sum(axis=1), 1.0)
+    # A class one subject never tested is averaged over the subjects that did.
+    counts[0][2] = 0
+    np.testing.assert_allclose(report.group_confusion(counts)[2], np.mean([r[2] for r in references[1:]], axis=0))

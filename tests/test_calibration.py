@@ -175,3 +175,28 @@ def test_calibrate_job_runs_the_studys_design_on_noise_and_writes_table_figure_s
     first = {name: Path(path).read_bytes() for name, path in outputs.items() if name != "summary"}
     calibrate_job.run({"tables": tables, "roi_counts": counts}, outputs, params, logging.getLogger("test"))
     assert first == {name: Path(path).read_bytes() for name, path in outputs.items() if name != "summary"}  # deterministic
+
+
+@pytest.mark.e2e
+@pytest.mark.slow
+def test_make_calibrate_runs_the_tiny_study_off_the_default_target(tmp_path):
+    # The `calibration` target (make calibrate) on the tiny demo study: GLM and ROIs, no decoding of the real data;
+    # the default target does not include it.
+    import json
+
+    import pandas as pd
+
+    from workflow_support import TINY_STUDY, copy_repository, snakemake, write_study
+
+    workdir = copy_repository(tmp_path / "repo")
+    study = json.loads(json.dumps(TINY_STUDY))
+    study["calibrate"] = {"n_studies": 20, "n_draws": 200}
+    write_study(workdir, study)
+    assert "calibrate" not in snakemake(workdir, "--dry-run").stdout.split("Job stats:")[-1].split("Reasons")[0]
+    snakemake(workdir, "--", "calibration")  # the target after --, as the Makefile passes it
+    assert not (workdir / "results" / "decoding").exists()
+    for name in ("shape", "carry"):
+        table = pd.read_csv(workdir / f"results/calibration/{name}_calibration.tsv", sep="\t")
+        assert list(table.columns) == list(calibration.CALIBRATION_COLUMNS) and len(table)
+        assert (workdir / f"results/calibration/{name}_calibration.png").is_file()
+        assert "20 noise studies of 3 subjects x 3 ROIs" in (workdir / f"results/calibration/{name}_calibration.txt").read_text()

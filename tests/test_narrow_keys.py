@@ -173,7 +173,7 @@ SPECIAL = {
     "analyses[i].voxel_counts": [10, 50, "all"],
     "searchlight.analyses": ["shape", "shape_seen_heard"],
     "report.confusion_n_voxels": 50,
-    "calibrate.classifier": "shrinkage_lda",
+    "calibrate.classifier": "gaussian_nb",
 }
 SPECIAL.update({"analyses[i].geometry.voxel_counts": [25, "all"], "analyses[i].geometry.models[i].differ_in": ["shape", "modality"], "analyses[i].geometry.models[i].only_for.modality": ["heard"]})
 _ENUMS = {  # another valid choice of each enum key
@@ -312,7 +312,9 @@ def test_changing_a_key_reruns_exactly_its_readers(demo, path):
     node = raw
     for part in path:
         node = node[part]
-    changed = _changed_steps(before, _plan_fingerprint(_perturb(raw, path, _perturbed_value(path, node))))
+    perturbed = _perturb(raw, path, _perturbed_value(path, node))
+    assert perturbed != raw, f"{_text(path)}: the perturbation leaves the config as it was; give it another value in SPECIAL or _ENUMS"
+    changed = _changed_steps(before, _plan_fingerprint(perturbed))
     assert changed == READERS[pattern], (f"{_text(path)}: reruns {sorted(changed)}; declared readers {sorted(READERS[pattern])} "
                                          f"(extra: {sorted(changed - READERS[pattern])}, missing: {sorted(READERS[pattern] - changed)})")
 

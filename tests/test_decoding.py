@@ -711,3 +711,14 @@ def test_relabeling_space_and_enumeration_equal_brute_force():
         np.testing.assert_array_equal(listed[0], labels)
         assert len({tuple(row) for row in listed}) == len(listed) == space.n_enumerated
         assert {tuple(row) for row in listed} <= vectors
+
+
+def test_huge_relabeling_spaces_stay_finite_in_the_tables():
+    # 20 runs x 60 trials of 3 classes: about 10**500 relabelings, beyond float range (Python ints hold it exactly).
+    from foldwise.decoding import permutations
+
+    labels, blocks = np.tile(np.arange(3), 400), np.repeat(np.arange(20), 60)
+    space = permutations.relabeling_space(labels, blocks)
+    assert space.n_distinct > 10**400
+    assert permutations.smallest_p(1000, False, space) == pytest.approx(1 / 1001)
+    assert permutations.count_as_float(space.n_distinct) == float("inf") and permutations.count_as_float(216) == 216.0

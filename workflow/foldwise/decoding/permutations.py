@@ -52,6 +52,7 @@ __all__ = [
     "null_relabelings",
     "smallest_p",
     "subject_p",
+    "count_as_float",
 ]
 
 
@@ -295,8 +296,13 @@ def smallest_p(n_null, exact, space):
     """
     if n_null == 0:
         return float("nan")
-    floor = 1.0 / space.n_distinct
+    floor = 1.0 / space.n_distinct if space.n_distinct < 10**300 else 0.0  # beyond float range: no floor at all
     return floor if exact else max(1.0 / (1 + n_null), floor)
+
+
+def count_as_float(count):
+    """A relabeling count as a float for a table (``inf`` beyond the float range, e.g. many trials per run)."""
+    return float(count) if count < 10**300 else float("inf")
 
 
 def subject_p(observed, null, exact, tolerance=1e-9):

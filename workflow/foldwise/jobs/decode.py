@@ -18,7 +18,7 @@ import pandas as pd
 
 from foldwise.contract import CONFUSION_COLUMNS, GRID_TOLERANCE_MM, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
-from foldwise.decoding.permutations import subject_p
+from foldwise.decoding.permutations import count_as_float, subject_p
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, write_tsv
 from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks, task_of_run
@@ -280,7 +280,7 @@ def _score_rows(result, subject, name, roi, voxel_counts):
             "accuracy": scores.accuracy.T.ravel(), "balanced_accuracy": scores.balanced_accuracy.T.ravel(),
             # the subject's permutation p of the fold-mean balanced accuracy (one value per count, repeated per fold)
             "p_perm": np.repeat(subject_p(scores.balanced_accuracy.mean(axis=0), scores.null_balanced_accuracy, result.null_exact), n_folds),
-            "p_min": result.p_min, "n_relabelings": float(result.n_relabelings), "null_exact": result.null_exact}))
+            "p_min": result.p_min, "n_relabelings": count_as_float(result.n_relabelings), "null_exact": result.null_exact}))
     return pd.concat(frames, ignore_index=True)[list(SCORE_COLUMNS)]
 
 

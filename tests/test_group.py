@@ -673,3 +673,21 @@ def test_job_says_nothing_about_relabelings_without_a_p_min_column(tmp_path, cap
     with caplog.at_level(logging.WARNING, logger="test_group"):
         group_job.run(inputs, outputs, _params(), LOG)
     assert not any("relabelings" in record.getMessage() for record in caplog.records)
+
+
+def test_job_family_all_analyses_is_bonferroni_over_the_analyses_maxima(tmp_path):
+    inputs = _write_study(tmp_path, seed=12, effect={"ember": 0.06})
+    one, three = _outputs(tmp_path / "one"), _outputs(tmp_path / "three")
+    params = _params()
+    params["group"]["family"] = "all_directions"
+    group_job.run(inputs, one, params, LOG)
+    params = _params()
+    params["group"]["family"] = "all_analyses"
+    params["n_analyses"] = 3
+    group_job.run(inputs, three, params, LOG)
+    single = pd.read_csv(one["table"], sep="\t")
+    study = pd.read_csv(three["table"], sep="\t")
+    # Bonferroni (Dunn 1961) over three analyses: the analysis's own family-wise p times 3, capped at 1
+    np.testing.assert_allclose(study["p_fwe"], np.minimum(1.0, 3 * single["p_fwe"]), rtol=1e-6)
+    assert set(study["family"]) == {"all analyses"}
+    assert "Bonferroni over the study's 3 analyses" in Path(three["summary"]).read_text(encoding="utf-8")

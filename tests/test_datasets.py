@@ -413,6 +413,7 @@ def test_native_example_reads_each_subjects_own_roi_image(tmp_path):
 @pytest.mark.parametrize("example, layout", [
     ("sessions_localizer.yaml", {"sessions": ("1", "2"), "runs_per_session": 2}),
     ("derivatives_standard_space.yaml", {"sessions": None, "runs_per_session": 3}),
+    ("native_space_subject_rois.yaml", {"sessions": None, "runs_per_session": 3, "subject_rois": True, "space": "T1w", "res": ""}),
 ])
 def test_example_config_runs_end_to_end(tmp_path, example, layout):
     import nibabel as nib

@@ -13,8 +13,9 @@ Outputs
     of balanced accuracy minus chance (0 outside the group mask);
     ``p_map``: uncorrected permutation p per voxel (Stelzer, Chen & Turner
     2013); ``p_fwe_map``: family-wise corrected p per voxel by the voxel-wise
-    maximum statistic (Nichols & Holmes 2002), each direction's map one
-    family; p maps are 1 outside the group mask and NaN where no test ran;
+    maximum statistic (Nichols & Holmes 2002) of each voxel's group mean
+    standardised by its own null (:func:`foldwise.stats.maps.group_permutation_maps`),
+    each direction's map one family; p maps are 1 outside the group mask and NaN where no test ran;
     ``table``: TSV, one row per direction (see ``TABLE_COLUMNS``).
     Optional, when the rule declares them: ``tfce_map`` (TFCE of the mean
     map, Smith & Nichols 2009; E = 0.5, H = 2, 26-connectivity) and

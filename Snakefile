@@ -26,7 +26,10 @@ rule all:
 
 
 onsuccess:
-    finish_run(all_provenance_records(), STUDY["study"]["store_dir"])  # every output against its provenance record
+    try:
+        finish_run(all_provenance_records(), STUDY["study"]["store_dir"])  # every output against its provenance record
+    except InputError as error:
+        raise WorkflowError(f"foldwise: {error}") from None
     print_group_summaries()
     print_closing_lines()  # the warning count, then the report's path, last
 

@@ -930,8 +930,8 @@ def _misspelt_condition_in_config(folder):
 
     study = _study(**{"analyses.0.classes": {"round": ["seen_round", "seen_rond"], "square": ["seen_square"]}})
     study["searchlight"] = {"enabled": True, "analyses": ["shape"]}
-    # seen_round is named by the config already, so the unclaimed trial types are offered first (data.check's did-you-mean)
-    problems = "; ".join(f"subject {subject} has no event 'seen_rond' of task 'lanterns' (did you mean 'seen_star' or 'heard_round'?)"
+    # the closest trial type the subject has, though the config names seen_round already (data.check's did-you-mean)
+    problems = "; ".join(f"subject {subject} has no event 'seen_rond' of task 'lanterns' (did you mean 'seen_round'?)"
                          for subject in ("01", "02", "03"))
     return Expectation(lambda: build_study(validate(study, path="config/study.yaml"), path="config/study.yaml"),
                        f"results/demo/bids/sub-01/func/sub-01_task-lanterns_run-01_events.tsv: analyses[0].classes.round: {problems}. "

@@ -188,13 +188,12 @@ def missing_conditions(surveys, required):
     -------
     list of dict
         ``subject``, ``condition``, ``where``, ``task``, ``did_you_mean``
-        (the subject's closest trial types by ``difflib`` similarity, those
-        no config entry names first; maybe empty), ``events`` (the subject's first events file of that task).
+        (the subject's one closest trial type by ``difflib`` similarity,
+        maybe empty), ``events`` (the subject's first events file of that task).
     """
     by_subject = {}
     for survey in surveys:
         by_subject.setdefault(survey.subject, []).append(survey)
-    claimed = {condition for condition, _, _ in required}
     first_use = {}
     for condition, where, task in required:  # a condition named twice (two analyses) is reported once, where first named
         first_use.setdefault((condition, task), where)
@@ -209,10 +208,9 @@ def missing_conditions(surveys, required):
             present = sorted({label for survey in of_task for label in survey.trial_types})
             if condition in present:
                 continue
-            # Labels no other config entry uses are the likely misspellings: offer those first.
-            unclaimed = [label for label in present if label not in claimed]
-            close = difflib.get_close_matches(condition, unclaimed, n=2, cutoff=_CLOSE_CUTOFF) or \
-                difflib.get_close_matches(condition, present, n=2, cutoff=_CLOSE_CUTOFF)
+            # The one closest trial type the subject has: a misspelt config name (seen_rond) gets the
+            # existing name (seen_round), even when another config entry names that one too.
+            close = difflib.get_close_matches(condition, present, n=1, cutoff=_CLOSE_CUTOFF)
             problems.append({"subject": subject, "condition": condition, "where": where, "task": task, "did_you_mean": close,
                              "events": of_task[0].events})
     return problems

@@ -218,14 +218,28 @@ def test_every_job_writes_the_contract_columns():
 
 
 def test_one_grid_tolerance_and_one_brain_mask_reader():
+    from foldwise.data import patterns
     from foldwise.jobs import brain_mask, glm, searchlight_block, searchlight_group, searchlight_merge
 
-    for module in (brain_mask, glm, searchlight_block, searchlight_group):
+    for module in (brain_mask, glm, searchlight_group, patterns):
         assert module.GRID_TOLERANCE_MM is contract.GRID_TOLERANCE_MM
-    for module in (searchlight_block, searchlight_merge, searchlight_group):
+    for module in (searchlight_merge, searchlight_group):
         assert module.load_brain_mask is contract.read_brain_mask
+    assert searchlight_block.read_brain_mask is contract.read_brain_mask
     assert not re.search(r"TOLERANCE_MM\s*=\s*[0-9]", "".join(path.read_text(encoding="utf-8")
                                                              for path in (REPO / "workflow" / "foldwise" / "jobs").glob("*.py")))
+
+
+def test_one_reader_of_a_subjects_pattern_set():
+    """Decode, the searchlight and the design self-check read patterns through foldwise.data.patterns only."""
+    from foldwise.data import patterns
+    from foldwise.jobs import calibrate, decode, searchlight_block
+
+    assert decode.read_pattern_set is patterns.read_pattern_set and searchlight_block.read_pattern_set is patterns.read_pattern_set
+    assert calibrate.read_pattern_tables is patterns.read_pattern_tables
+    jobs = {path.name: path.read_text(encoding="utf-8") for path in (REPO / "workflow" / "foldwise" / "jobs").glob("*.py")}
+    own_readers = sorted(name for name, text in jobs.items() if re.search(r"what=\"pattern (table|image)\"", text))
+    assert own_readers == [], f"jobs reading pattern files by themselves: {own_readers}"
 
 
 def test_the_searchlight_refuses_a_kind_it_cannot_map(monkeypatch):

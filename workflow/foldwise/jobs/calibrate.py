@@ -21,22 +21,18 @@ import time
 import numpy as np
 import pandas as pd
 
-from foldwise.data.fileio import read_tsv, save_figure, write_text_atomic, write_tsv
+from foldwise.contract import read_table
+from foldwise.data.fileio import save_figure, write_text_atomic, write_tsv
+from foldwise.data.patterns import files_label, plain_subject, read_pattern_tables
 from foldwise.decoding.folds import make_folds
 from foldwise.errors import InputError
-from foldwise.jobs.decode import TABLE_COLUMNS as PATTERN_TABLE_COLUMNS
-from foldwise.jobs.decode import analysis_labels, pattern_runs
+from foldwise.jobs.decode import analysis_labels
 from foldwise.provenance.hashing import seed_from
 from foldwise.stats import calibration
 
 __all__ = ["run", "subject_design", "ALPHAS"]
 
 ALPHAS = (0.05, 0.01)
-
-
-def _plain_subject(value):
-    text = str(value)
-    return text[4:] if text.startswith("sub-") else text
 
 
 def subject_design(analysis, table_paths, roi_sizes, subject):
@@ -51,15 +47,8 @@ def subject_design(analysis, table_paths, roi_sizes, subject):
     roi_sizes : dict of str to int
     subject : str
     """
-    tables = []
-    for path in table_paths:
-        table = read_tsv(path, PATTERN_TABLE_COLUMNS, what="pattern table")
-        tables.append(table.assign(run=pattern_runs(table), condition=table["condition"].astype(str)))
-    table = pd.concat(tables, ignore_index=True)
-    order = table.assign(volume=pd.to_numeric(table["volume"])).sort_values(["run", "volume"], kind="stable").index.to_numpy()
-    table = table.iloc[order].reset_index(drop=True)
-    label = table_paths[0] if len(table_paths) == 1 else f"{table_paths[0]} (and {len(table_paths) - 1} more pattern tables)"
-    keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, label)
+    table = read_pattern_tables(table_paths, subject)  # the one reader of a subject's pattern set, tables only
+    keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, files_label(table_paths))
     runs = table["run"].to_numpy()[keep]
     folds = make_folds(runs, analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2))
     return calibration.SubjectDesign(labels=labels, runs=runs, folds=folds, roi_sizes=roi_sizes, set_index=set_index), class_names, set_names
@@ -68,9 +57,9 @@ def subject_design(analysis, table_paths, roi_sizes, subject):
 def _roi_sizes(paths, rois):
     sizes = {}
     for path in paths:
-        frame = read_tsv(path, ("subject", "roi", "n_voxels"), what="ROI counts table")
+        frame = read_table("roi_counts", path)
         for subject, roi, n_voxels in zip(frame["subject"], frame["roi"], frame["n_voxels"]):
-            sizes.setdefault(_plain_subject(subject), {})[str(roi)] = int(n_voxels)
+            sizes.setdefault(plain_subject(subject), {})[str(roi)] = int(n_voxels)
     for subject, by_roi in sizes.items():
         missing = [roi for roi in rois if roi not in by_roi]
         if missing:
@@ -133,10 +122,10 @@ def run(inputs, outputs, params, log):
     sizes = _roi_sizes(count_paths, rois)
     designs, class_names, set_names = [], None, None
     for subject in subjects:
-        own = [path for path in table_paths if f"/sub-{_plain_subject(subject)}/" in f"/{path}"]
+        own = [path for path in table_paths if f"/sub-{plain_subject(subject)}/" in f"/{path}"]
         if not own:
             raise InputError(None, "tables", f"no pattern table of subject {subject} among the inputs", "pass every subject's tables")
-        design, class_names, set_names = subject_design(analysis, own, sizes[_plain_subject(subject)], subject)
+        design, class_names, set_names = subject_design(analysis, own, sizes[plain_subject(subject)], subject)
         designs.append(design)
     classifier = analysis["classifier"] if settings["classifier"] == "same" else settings["classifier"]
     options = {"classifier": classifier, "selection": analysis["selection"], "demean_patterns": analysis["demean_patterns"],

@@ -16,12 +16,13 @@ null); the random voxel orders of selection ``none`` come from
 import numpy as np
 import pandas as pd
 
-from foldwise.contract import CONFUSION_COLUMNS, GRID_TOLERANCE_MM, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS
+from foldwise.contract import CONFUSION_COLUMNS, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import count_as_float, subject_p
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, read_tsv, write_tsv
-from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks, task_of_run
+from foldwise.data.fileio import load_nifti, write_tsv
+from foldwise.data.patterns import files_label, read_pattern_set
+from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks
 from foldwise.provenance.hashing import seed_from
 
 __all__ = [
@@ -31,8 +32,6 @@ __all__ = [
     "RANKING_COLUMNS",
     "CONFUSION_COLUMNS",
     "permutation_rng",
-    "pattern_runs",
-    "read_roi_patterns",
     "analysis_labels",
     "run",
 ]
@@ -44,16 +43,6 @@ _RUN_SEPARATOR = "+"  # joins the held-out runs of a fold in test_runs
 def permutation_rng(seed, subject, analysis_name):
     """The permutation generator of a subject x analysis: the same for every ROI (no ROI in its identity)."""
     return np.random.default_rng(seed_from(seed, "permutation", subject, analysis_name))
-
-
-def _files_label(paths):
-    paths = [str(path) for path in paths]
-    return paths[0] if len(paths) == 1 else f"{paths[0]} (and {len(paths) - 1} more pattern tables)"
-
-
-def _plain_subject(value):
-    text = str(value)
-    return text[4:] if text.startswith("sub-") else text
 
 
 def _check_params(params):
@@ -84,81 +73,6 @@ def _read_mask(path):
     return inside, image.affine
 
 
-def pattern_runs(table):
-    """The run of every row of a pattern table: ``<session>_<run_id>`` when there are sessions, else ``run_id``."""
-    return [str(run) if pd.isna(session) or str(run).startswith(f"{session}_") else f"{session}_{run}"
-            for session, run in zip(table["session"], table["run_id"])]
-
-
-def read_roi_patterns(pattern_paths, table_paths, mask_path, subject):
-    """The ROI's voxels of every pattern, in a canonical order.
-
-    Parameters
-    ----------
-    pattern_paths, table_paths : list of str
-        Per-run 4D pattern images and their tables, in the same order.
-    mask_path : str
-        The ROI mask (3D, 1 = in ROI) on the same grid.
-    subject : str
-        The subject the files must belong to.
-
-    Returns
-    -------
-    patterns : ndarray, shape (n_patterns, n_voxels)
-        Float64; voxels in C order of the mask; rows sorted by run, then volume.
-    table : pandas.DataFrame
-        The rows of the tables in the same order, with a ``run`` column
-        (``<session>_<run_id>`` when there are sessions) and ``source`` (the table path).
-    coordinates : ndarray of int, shape (n_voxels, 3)
-        Grid indices ``i, j, k`` of the ROI's voxels.
-    """
-    pattern_paths = [pattern_paths] if isinstance(pattern_paths, str) else list(pattern_paths)
-    table_paths = [table_paths] if isinstance(table_paths, str) else list(table_paths)
-    if not pattern_paths or len(pattern_paths) != len(table_paths):
-        raise InputError(None, "inputs", f"{len(pattern_paths)} pattern images but {len(table_paths)} tables",
-                         "pass one table per pattern image, in the same order")
-    inside, mask_affine = _read_mask(mask_path)
-    blocks, tables = [], []
-    for image_path, table_path in zip(pattern_paths, table_paths):
-        table = read_tsv(table_path, TABLE_COLUMNS, what="pattern table")
-        image = load_nifti(image_path, what="pattern image")
-        if image.shape[:3] != inside.shape or len(image.shape) not in (3, 4):
-            raise InputError(image_path, "dim", f"grid {image.shape} does not match the ROI mask's {inside.shape} ({mask_path})",
-                             "make the ROI mask on the subject's pattern grid")
-        if not np.allclose(image.affine, mask_affine, atol=GRID_TOLERANCE_MM):
-            raise InputError(image_path, "affine", f"the image affine differs from the ROI mask's ({mask_path})",
-                             "make the ROI mask on the subject's pattern grid")
-        data = image.get_fdata(dtype=np.float64)
-        data = data[..., np.newaxis] if data.ndim == 3 else data
-        n_volumes = data.shape[3]
-        if len(table) != n_volumes:
-            raise InputError(table_path, "volume", f"{len(table)} rows but {image_path} has {n_volumes} volumes",
-                             "write one table row per pattern volume")
-        volumes = pd.to_numeric(table["volume"], errors="coerce").to_numpy()
-        if not np.array_equal(volumes, np.arange(n_volumes)):
-            raise InputError(table_path, "volume", f"expected 0 .. {n_volumes - 1} in order, got {table['volume'].tolist()[:8]}",
-                             "number the volumes from 0 in file order")
-        subjects = {_plain_subject(value) for value in table["subject"]}
-        if subjects != {_plain_subject(subject)}:
-            raise InputError(table_path, "subject", f"the table belongs to subject(s) {sorted(subjects)}, this job decodes {subject}",
-                             "pass this subject's pattern files only")
-        roi_data = data[inside].T  # (n_volumes, n_voxels), voxels in C order of the mask
-        if not np.all(np.isfinite(roi_data)):
-            raise InputError(image_path, "data", "the patterns hold NaN or infinite values inside the ROI", "re-estimate the patterns or shrink the ROI")
-        table = table.assign(run=pattern_runs(table), source=str(table_path), condition=table["condition"].astype(str))
-        blocks.append(roi_data)
-        tables.append(table)
-    table = pd.concat(tables, ignore_index=True)
-    patterns = np.vstack(blocks)
-    owners = table.groupby("run")["source"].nunique()
-    if (owners > 1).any():
-        run_id = owners.index[int(np.flatnonzero(owners.to_numpy() > 1)[0])]
-        raise InputError(_files_label(table_paths), "run_id", f"run {run_id} appears in more than one pattern table", "pass each run once")
-    # by run, then volume: the order of the input lists does not matter
-    order = table.assign(volume=pd.to_numeric(table["volume"])).sort_values(["run", "volume"], kind="stable").index.to_numpy()
-    return patterns[order], table.iloc[order].reset_index(drop=True), np.argwhere(inside)
-
-
 def analysis_labels(analysis, table, subject, tables_label):
     """Class (and set) of every pattern of the analysis; the other patterns are dropped.
 
@@ -167,7 +81,7 @@ def analysis_labels(analysis, table, subject, tables_label):
     analysis : dict
         The analysis config entry (``classes`` for ``within``, ``sets`` for ``cross``).
     table : pandas.DataFrame
-        From :func:`read_roi_patterns`.
+        The pattern set's table (:func:`foldwise.data.patterns.read_pattern_set`).
     subject : str
     tables_label : str
         Names the pattern tables in errors.
@@ -223,7 +137,7 @@ def analysis_labels(analysis, table, subject, tables_label):
     return keep, labels, set_index, class_names, set_names
 
 
-def keep_task_patterns(keep, labels, set_index, set_names, run_labels, pattern_tasks):
+def keep_task_patterns(keep, labels, set_index, set_names, row_tasks, pattern_tasks):
     """Keep only the patterns whose run belongs to the task of their part of the analysis.
 
     Parameters
@@ -233,8 +147,8 @@ def keep_task_patterns(keep, labels, set_index, set_names, run_labels, pattern_t
     labels, set_index : ndarray
         Of the kept rows (``set_index`` None for a within analysis).
     set_names : list of str or None
-    run_labels : ndarray of str, shape (n_rows,)
-        Every row's run (``task-<label>_`` inside for a run of another task).
+    row_tasks : sequence, shape (n_rows,)
+        Every row's task (the pattern set's ``task`` column: ``None`` for the main task).
     pattern_tasks : dict
         ``{"within": task}`` or ``{set name: task}``; ``None`` is the main task.
 
@@ -244,7 +158,7 @@ def keep_task_patterns(keep, labels, set_index, set_names, run_labels, pattern_t
         Narrowed to the rows of the right task.
     """
     rows = np.flatnonzero(keep)
-    row_tasks = [task_of_run(run) for run in np.asarray(run_labels)[rows]]
+    row_tasks = [row_tasks[row] for row in rows]
     wanted = [pattern_tasks["within"] if set_index is None else pattern_tasks[set_names[number]]
               for number in (set_index if set_index is not None else np.zeros(rows.size, dtype=np.int64))]
     right = np.array([have == want for have, want in zip(row_tasks, wanted)], dtype=bool)
@@ -348,12 +262,14 @@ def run(inputs, outputs, params, log):
     analysis, subject, roi, seed = _check_params(params)
     name = analysis["name"]
     table_paths = [inputs["tables"]] if isinstance(inputs["tables"], str) else list(inputs["tables"])
-    tables_label = _files_label(table_paths)
-    patterns, table, coordinates = read_roi_patterns(inputs["patterns"], table_paths, inputs["mask"], subject)
+    tables_label = files_label(table_paths)
+    inside, mask_affine = _read_mask(inputs["mask"])
+    pattern_set = read_pattern_set(inputs["patterns"], table_paths, subject, inside, mask_affine, inputs["mask"])
+    patterns, table, coordinates = pattern_set.patterns, pattern_set.table, pattern_set.coordinates
     keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, tables_label)
     pattern_tasks = params.get("pattern_tasks")  # an analysis of another task, or sets from two tasks
     if pattern_tasks:
-        keep, labels, set_index = keep_task_patterns(keep, labels, set_index, set_names, table["run"].to_numpy(), pattern_tasks)
+        keep, labels, set_index = keep_task_patterns(keep, labels, set_index, set_names, table["task"].tolist(), pattern_tasks)
     patterns, runs = patterns[keep], table["run"].to_numpy()[keep]
     scheme, n_groups = analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2)
     if pattern_tasks and set_index is not None and len(set(pattern_tasks.values())) == 2:

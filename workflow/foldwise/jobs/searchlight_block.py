@@ -23,63 +23,13 @@ null is a joint null over the brain.
 import numpy as np
 
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, read_tsv, save_npy
+from foldwise.data.fileio import save_npy
+from foldwise.data.patterns import files_label, read_pattern_set  # the one reader of a subject's pattern set
 from foldwise.provenance.hashing import seed_from
-from foldwise.contract import GRID_TOLERANCE_MM
-from foldwise.contract import read_brain_mask as load_brain_mask  # the one brain-mask reader
-from foldwise.masks.build import same_grid
+from foldwise.contract import read_brain_mask  # the one brain-mask reader
 from foldwise.searchlight.engine import SEARCHLIGHT_CLASSIFIERS, block_centres, sample_design, searchlight_scores, sphere_neighbourhoods
 
-__all__ = ["run", "GRID_TOLERANCE_MM", "load_brain_mask", "load_subject_patterns", "save_npy"]
-
-_TABLE_COLUMNS = ("volume", "condition", "run_id")
-
-
-def load_subject_patterns(pattern_paths, table_paths, mask, affine):
-    """All runs' patterns inside the mask, with the condition and run of each.
-
-    Returns
-    -------
-    patterns : ndarray of float64, shape (n_patterns, n_voxels)
-        Brain voxels in C order of the mask.
-    conditions, runs : ndarray of str, shape (n_patterns,)
-    """
-    pattern_paths, table_paths = list(pattern_paths), list(table_paths)
-    if not pattern_paths or len(pattern_paths) != len(table_paths):
-        raise InputError(None, "patterns", f"got {len(pattern_paths)} pattern image(s) and {len(table_paths)} table(s)",
-                         "give one table per pattern image, in the same order")
-    blocks, conditions, runs, seen_runs = [], [], [], {}
-    for image_path, table_path in zip(pattern_paths, table_paths):
-        table = read_tsv(table_path, _TABLE_COLUMNS, what="pattern table")
-        image = load_nifti(image_path, what="pattern image")
-        if not same_grid(image.shape[:3], image.affine, mask.shape, affine, GRID_TOLERANCE_MM):
-            raise InputError(image_path, "affine", f"the patterns' grid {image.shape[:3]} does not match the brain mask's {mask.shape} "
-                             f"(or their voxel centres lie more than {GRID_TOLERANCE_MM} mm apart)", "compute patterns and mask on one grid")
-        data = np.asanyarray(image.dataobj)
-        if data.ndim == 3:
-            data = data[..., np.newaxis]
-        if data.ndim != 4:
-            raise InputError(image_path, "dim", f"expected a 4D pattern image, got shape {data.shape}", "write one volume per pattern")
-        volumes = table["volume"].to_numpy()
-        if len(table) != data.shape[3] or sorted(volumes.tolist()) != list(range(data.shape[3])):
-            raise InputError(table_path, "volume", f"the table lists volumes {volumes.tolist()[:10]} but the image has {data.shape[3]}",
-                             "keep one row per volume, numbered from 0")
-        run_ids = sorted(set(table["run_id"].astype(str)))
-        if len(run_ids) != 1:
-            raise InputError(table_path, "run_id", f"one table must hold one run, got {run_ids}", "write one table per run")
-        if run_ids[0] in seen_runs:
-            raise InputError(table_path, "run_id", f"run {run_ids[0]!r} also appears in {seen_runs[run_ids[0]]}", "give each run one table")
-        seen_runs[run_ids[0]] = str(table_path)
-        order = np.argsort(volumes)
-        inside = np.asarray(data[mask], dtype=np.float64).T  # (n_volumes, n_voxels)
-        if not np.all(np.isfinite(inside)):
-            raise InputError(image_path, "data", "the patterns hold NaN or infinite values inside the brain mask",
-                             "recompute the patterns, or remove those voxels from the brain mask")
-        blocks.append(inside)
-        conditions.append(table["condition"].astype(str).to_numpy()[order])
-        runs.append(np.full(len(table), run_ids[0]))
-    return np.vstack(blocks), np.concatenate(conditions), np.concatenate(runs)
-
+__all__ = ["run"]
 
 def run(inputs, outputs, params, log):
     """Score one block of searchlight centres and its permutation null; see the module docstring."""
@@ -91,9 +41,10 @@ def run(inputs, outputs, params, log):
     n_permutations = settings["n_permutations"]
     if isinstance(n_permutations, bool) or not isinstance(n_permutations, int) or n_permutations < 0:
         raise InputError("config", "searchlight.n_permutations", f"expected an integer >= 0, got {n_permutations!r}", "set it to e.g. 100")
-    mask, affine = load_brain_mask(inputs["mask"])
-    patterns, conditions, runs = load_subject_patterns(inputs["patterns"], inputs["tables"], mask, affine)
-    design = sample_design(conditions, runs, analysis, file=", ".join(map(str, inputs["tables"])))
+    mask, affine = read_brain_mask(inputs["mask"])
+    pattern_set = read_pattern_set(inputs["patterns"], inputs["tables"], subject, mask, affine, inputs["mask"])
+    patterns, table = pattern_set.patterns, pattern_set.table
+    design = sample_design(table["condition"].to_numpy(), table["run"].to_numpy(), analysis, file=files_label(inputs["tables"]))
     if analysis.get("demean_patterns"):
         log.warning("analysis %s: demean_patterns is ignored by the searchlight (it would demean per sphere)", analysis["name"])
     centres = block_centres(int(mask.sum()), settings["n_blocks"], block)

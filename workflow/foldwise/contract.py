@@ -5,6 +5,10 @@ working folder; :func:`fill` turns one into a path. Rules name their outputs
 with these templates, :mod:`foldwise.plan` lists every job's outputs from
 them, and jobs and the report read artefacts through the readers below --
 one reader per artefact, so a check (a grid, a column) is written once.
+A subject's pattern set (every run's pattern image and table, sessions and
+tasks carried) is read by :func:`foldwise.data.patterns.read_pattern_set`
+(tables alone: ``read_pattern_tables``), kept in its own module so that the
+steps that never read patterns do not carry it in their code key.
 """
 
 import numpy as np

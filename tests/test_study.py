@@ -12,6 +12,7 @@ commit 2b945cc with `snakemake -n`).
 import copy
 import re
 
+import numpy as np
 import pytest
 
 from foldwise import contract, plan
@@ -228,6 +229,28 @@ def test_one_grid_tolerance_and_one_brain_mask_reader():
     assert searchlight_block.read_brain_mask is contract.read_brain_mask
     assert not re.search(r"TOLERANCE_MM\s*=\s*[0-9]", "".join(path.read_text(encoding="utf-8")
                                                              for path in (REPO / "workflow" / "foldwise" / "jobs").glob("*.py")))
+
+
+@pytest.mark.parametrize("counts", [[], [0], ["some"], [10, 10], [True], [50, 10, "all"]],
+                         ids=["none", "zero", "text", "repeated", "boolean", "out of order"])
+def test_voxel_counts_are_checked_once_before_any_job(counts):
+    """The schema and the study model are the one check of voxel_counts (the decode job trusts them)."""
+    study = copy.deepcopy(LANTERNS)
+    study["analyses"][0]["voxel_counts"] = counts
+    with pytest.raises(InputError) as excinfo:
+        validate(study, path=CONFIG)
+    assert excinfo.value.field.startswith("analyses[0].voxel_counts") and excinfo.value.file == CONFIG
+
+
+def test_a_voxel_count_and_its_table_cell_convert_one_way_and_back():
+    """Every job writes n_voxels through contract.count_label; the text matches what str() wrote before (bytes unchanged)."""
+    for count in (1, 10, 400, np.int64(25), "all"):
+        assert contract.count_label(count) == str(count)
+        assert contract.parse_count(contract.count_label(count)) == count
+    assert contract.parse_count(" 50 ") == 50 and contract.parse_count(50) == 50
+    sources = "".join(path.read_text(encoding="utf-8") for path in (REPO / "workflow" / "foldwise").rglob("*.py")
+                      if "report" not in path.parts and "geometry" not in path.name)
+    assert not re.search(r"str\(count\) for count in", sources), "a voxel count turned into its cell without contract.count_label"
 
 
 def test_one_reader_of_a_subjects_pattern_set():

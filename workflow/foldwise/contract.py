@@ -20,7 +20,7 @@ __all__ = [
     "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "cross_directions", "provenance_path", "log_path", "benchmark_path",
     "PATTERN_TABLE_COLUMNS", "SCORE_COLUMNS", "NULL_COLUMNS", "RANKING_COLUMNS", "CONFUSION_COLUMNS", "SUMMARY_COLUMNS",
     "ROI_COUNT_COLUMNS", "GROUP_COLUMNS", "GROUP_NULL_COLUMNS", "SEARCHLIGHT_GROUP_COLUMNS", "SEARCHLIGHT_DIRECTION_COLUMNS",
-    "TABLE_COLUMNS", "read_brain_mask", "read_table",
+    "TABLE_COLUMNS", "read_brain_mask", "read_table", "count_label", "parse_count",
 ]
 
 RESULTS = "results"
@@ -138,6 +138,33 @@ def cross_directions(set_names):
     """
     first, second = set_names
     return (f"{first}->{second}", f"{second}->{first}", f"{first}<->{second}", f"{first}->{first}", f"{second}->{second}")
+
+
+# -- voxel counts: the config's form (a whole number or "all") and the tables' n_voxels cell ----------
+def count_label(count):
+    """A voxel count as the text of its ``n_voxels`` table cell: ``10`` -> ``"10"``, ``"all"`` -> ``"all"``.
+
+    The one conversion from the config's counts (checked once, by the schema
+    and the study model) to the tables' cells; :func:`parse_count` reverses it.
+
+    >>> [count_label(count) for count in (10, np.int64(25), "all", "50")]
+    ['10', '25', 'all', '50']
+    """
+    if isinstance(count, str) and count == "all":
+        return count
+    return str(int(count))
+
+
+def parse_count(cell):
+    """A table's ``n_voxels`` cell back to the config's count: ``"10"`` (or ``10``) -> ``10``, ``"all"`` -> ``"all"``.
+
+    >>> [parse_count(cell) for cell in ("10", 25, "all")]
+    [10, 25, 'all']
+    >>> all(parse_count(count_label(count)) == count for count in (1, 400, "all"))
+    True
+    """
+    text = str(cell).strip()
+    return text if text == "all" else int(text)
 
 
 # -- table columns (every TSV the workflow writes, in column order; jobs import them from here) ---

@@ -221,6 +221,9 @@ def resolve_counts(voxel_counts, n_voxels):
     Parameters
     ----------
     voxel_counts : sequence of int or "all"
+        Checked once, before any job (the schema and
+        :func:`foldwise.study.check_meaning`): whole numbers of at least 1
+        or ``"all"``, each once, increasing; trusted here.
     n_voxels : int
         Voxels in the ROI.
 
@@ -237,23 +240,10 @@ def resolve_counts(voxel_counts, n_voxels):
     >>> n_used.tolist(), too_large
     ([10, 300, 300], [500])
     """
-    counts = list(voxel_counts) if not isinstance(voxel_counts, (str, int)) else None
-    if not counts:
-        raise InputError(None, "voxel_counts", f"expected a non-empty list of counts, got {voxel_counts!r}", "list counts such as [10, 100, all]")
     if isinstance(n_voxels, bool) or not isinstance(n_voxels, (int, np.integer)) or n_voxels < 1:
         raise InputError(None, "n_voxels", f"the ROI must hold at least one voxel, got {n_voxels!r}", "check the ROI mask")
-    used, too_large = [], []
-    for count in counts:
-        if count == "all":
-            used.append(int(n_voxels))
-        elif isinstance(count, (int, np.integer)) and not isinstance(count, bool) and count >= 1:
-            used.append(min(int(count), int(n_voxels)))
-            if count > n_voxels:
-                too_large.append(count)
-        else:
-            raise InputError(None, "voxel_counts", f"a count must be a positive integer or 'all', got {count!r}", "fix the analysis's voxel_counts")
-    if len({str(count) for count in counts}) != len(counts):
-        raise InputError(None, "voxel_counts", f"counts repeat: {counts}", "list each count once")
+    used = [int(n_voxels) if count == "all" else min(int(count), int(n_voxels)) for count in voxel_counts]
+    too_large = [count for count in voxel_counts if count != "all" and count > n_voxels]
     return np.asarray(used, dtype=np.int64), too_large
 
 

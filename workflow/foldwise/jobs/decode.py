@@ -16,7 +16,7 @@ null); the random voxel orders of selection ``none`` come from
 import numpy as np
 import pandas as pd
 
-from foldwise.contract import CONFUSION_COLUMNS, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS
+from foldwise.contract import CONFUSION_COLUMNS, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS, count_label
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import count_as_float, subject_p
 from foldwise.errors import InputError
@@ -176,7 +176,7 @@ def _check_sets_in_runs(set_index, runs, set_names, subject, tables_label):
 
 
 def _count_labels(voxel_counts):
-    return [str(count) for count in voxel_counts]
+    return [count_label(count) for count in voxel_counts]
 
 
 def _score_rows(result, subject, name, roi, voxel_counts):

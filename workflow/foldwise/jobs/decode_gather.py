@@ -10,7 +10,7 @@ number of folds, and chance = 1 / number of classes.
 import numpy as np
 import pandas as pd
 
-from foldwise.contract import SCORE_COLUMNS, SUMMARY_COLUMNS, cross_directions
+from foldwise.contract import SCORE_COLUMNS, SUMMARY_COLUMNS, count_label, cross_directions
 from foldwise.errors import InputError
 from foldwise.data.fileio import read_tsv, write_tsv
 
@@ -54,7 +54,7 @@ def gather_scores(frames, paths, analysis, subject):
     """
     name = analysis["name"]
     directions = _directions(analysis)
-    count_order = [str(count) for count in analysis["voxel_counts"]]
+    count_order = [count_label(count) for count in analysis["voxel_counts"]]
     seen_rois = {}
     for frame, path in zip(frames, paths):
         for column, expected in (("analysis", name), ("subject", _plain_subject(subject))):

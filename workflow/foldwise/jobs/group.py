@@ -179,7 +179,7 @@ def _ordered_cells(reference_frame, reference_path, analysis):
     if stray:
         raise InputError(reference_path, "roi", f"ROI(s) {_short_list(stray)} are not among the analysis's ROIs "
                          f"({_short_list(rois)})", _RERUN_FIX)
-    counts = [str(count) for count in analysis.get("voxel_counts") or []] or list(dict.fromkeys(key[2] for key in keys))
+    counts = [contract.count_label(count) for count in analysis.get("voxel_counts") or []] or list(dict.fromkeys(key[2] for key in keys))
     stray = sorted({key[2] for key in keys} - set(counts))
     if stray:
         raise InputError(reference_path, "n_voxels", f"voxel count(s) {_short_list(stray)} are not in the analysis's "
@@ -355,7 +355,7 @@ def _duplicate_counts(cells, n_used):
                 return True
             if reference is not None:  # the ROI's size per subject is the n_used of its 'all' cell
                 return bool(np.array_equal(n_used[:, index], n_used[:, reference]))
-            return bool(np.all(n_used[:, index] < int(count)))  # capped in every subject
+            return bool(np.all(n_used[:, index] < contract.parse_count(count)))  # capped in every subject
 
         whole = [index for index in members if uses_every_voxel(index)]
         if len(whole) < 2 and not (len(whole) == 1 and cells[whole[0]][2] != "all"):

@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import stats
 
+from foldwise.contract import count_label
 from foldwise.decoding.curves import decode_cross, decode_curve
 from foldwise.decoding.permutations import subject_p
 from foldwise.errors import InputError
@@ -389,7 +390,7 @@ def noise_study(subjects, rois, voxel_counts, options, n_permutations, set_names
             for direction, scores in result.directions.items():
                 subject_observed.append(scores.balanced_accuracy.mean(axis=0))
                 subject_null.append(scores.null_balanced_accuracy)
-                subject_cells += [(roi, direction, str(count)) for count in voxel_counts]
+                subject_cells += [(roi, direction, count_label(count)) for count in voxel_counts]
             exact = result.null_exact
         observed.append(np.concatenate(subject_observed))
         nulls.append(np.concatenate(subject_null, axis=1))

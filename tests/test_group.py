@@ -223,10 +223,12 @@ def test_standardised_max_p_equals_brute_force_loop():
     observed = np.array([1.2, 1.9, 3.0, 5.5, -0.4])
     families = np.array([0, 0, 0, 0, 1])
     p_fwe = group.standardised_max_p(observed, null, families, tolerance=0.0)
-    # Source: Westfall & Young (1993) / Nichols & Holmes (2002): standardise each cell by its null's mean and SD
-    # (numpy's population SD), then count draws whose family maximum reaches the observed standardised value.
-    z_null = (null - null.mean(axis=0)) / null.std(axis=0)
-    z_observed = (observed - null.mean(axis=0)) / null.std(axis=0)
+    # Source: Westfall & Young (1993) / Nichols & Holmes (2002): standardise each cell by the mean and SD (numpy's
+    # population SD) of its members, the observed value and the draws, then count draws whose family maximum
+    # reaches the observed standardised value.
+    members = np.vstack([observed, null])
+    z_null = (null - members.mean(axis=0)) / members.std(axis=0)
+    z_observed = (observed - members.mean(axis=0)) / members.std(axis=0)
     for cell in range(5):
         members = np.flatnonzero(families == families[cell])
         count = sum(max(z_null[draw, m] for m in members) >= z_observed[cell] for draw in range(60))
@@ -306,8 +308,9 @@ def test_corrected_prevalence_equals_brute_force_from_the_papers_formulas():
     observed = labelings[:, 0, :].min(axis=0)
     brute_min = np.array([[min(labelings[s, combo[s], c] for s in range(3)) for c in range(2)] for combo in combinations])
     np.testing.assert_allclose(minimum, brute_min)
-    z = (brute_min - brute_min.mean(axis=0)) / brute_min.std(axis=0)
-    z_observed = (observed - brute_min.mean(axis=0)) / brute_min.std(axis=0)
+    members = np.vstack([observed, brute_min])  # the observed and the draws alike
+    z = (brute_min - members.mean(axis=0)) / members.std(axis=0)
+    z_observed = (observed - members.mean(axis=0)) / members.std(axis=0)
     expected = np.array([(1 + sum(row.max() >= z_observed[c] for row in z)) / 28 for c in range(2)])
     p_fwe = group.standardised_max_p(observed, minimum, [0, 0], tolerance=0.0)
     np.testing.assert_allclose(p_fwe, expected)

@@ -268,8 +268,9 @@ def test_group_maps_follow_the_permutation_formulas():
         np.testing.assert_allclose(result["p_fwe"][:, direction],
                                    max_statistic_p(observed[:, direction], null_mean[:, :, direction], np.zeros(n_voxels)))
         # the default: each voxel standardised by its own null (Westfall & Young 1993), written out in numpy
-        z_null = (null_mean[:, :, direction] - null_mean[:, :, direction].mean(axis=0)) / null_mean[:, :, direction].std(axis=0)
-        z_observed = (observed[:, direction] - 1e-6 - null_mean[:, :, direction].mean(axis=0)) / null_mean[:, :, direction].std(axis=0)
+        members = np.vstack([observed[None, :, direction], null_mean[:, :, direction]])  # observed and draws alike
+        z_null = (null_mean[:, :, direction] - members.mean(axis=0)) / members.std(axis=0)
+        z_observed = (observed[:, direction] - 1e-6 - members.mean(axis=0)) / members.std(axis=0)
         direct = (1 + (z_null.max(axis=1)[:, None] >= z_observed[None]).sum(axis=0)) / (1 + n_draws)
         np.testing.assert_allclose(standardised["p_fwe"][:, direction], direct)
         np.testing.assert_allclose(standardised["p_fwe"][:, direction],

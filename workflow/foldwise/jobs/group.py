@@ -489,6 +489,9 @@ def run(inputs, outputs, params, log):
     cells = _ordered_cells(*subject_frames[0], analysis)
     scores, chance = _subject_scores(subject_frames, cells, subjects)
     n_used = _optional_column(subject_frames, cells, "n_used")
+    # subjects whose null lists their whole relabeling space (the actual labeling among its rows)
+    exact = np.array([("null_exact" in frame.columns) and frame["null_exact"].astype(str).str.lower().eq("true").any()
+                      for frame, _ in subject_frames], dtype=bool)
     subject_p_min = _optional_column(subject_frames, cells, "p_min")
     notes = []
     n_choices = None
@@ -532,7 +535,8 @@ def run(inputs, outputs, params, log):
     families, family_names = _families(cells, directions, family)
     rng = np.random.default_rng(seed_from(params["seed"], "group", name))
     columns, null_mean = group_stats.group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha,
-                                                       prevalence=prevalence, fwe_method=fwe_method, n_choices=n_choices)
+                                                       prevalence=prevalence, fwe_method=fwe_method, n_choices=n_choices,
+                                                       exact=exact)
     if n_analyses > 1:  # one family over the study's analyses: Bonferroni over the analyses' own maxima
         for column in ("p_fwe", "prevalence_p_global_fwe"):
             columns[column] = np.minimum(1.0, columns[column] * n_analyses)

@@ -484,8 +484,8 @@ def standardised_max_p(observed, null, families, tolerance=TIE_TOLERANCE):
     Returns
     -------
     ndarray, shape (n_cells,)
-        With ``z = (x - mean_null) / sd_null`` per cell (mean and population
-        SD of the cell's null draws): ``(1 + #{d : max_{c' in family(c)}
+        With ``z = (x - mean) / sd`` per cell (mean and population SD over
+        the observed value and the cell's null draws together): ``(1 + #{d : max_{c' in family(c)}
         z_null[d, c'] >= z_obs[c]}) / (1 + n_draws)``.
 
     Notes
@@ -504,8 +504,11 @@ def standardised_max_p(observed, null, families, tolerance=TIE_TOLERANCE):
     """
     observed, null = _check_observed_null(observed, null)
     families = _check_families(observed, families, tolerance)
-    centre = null.mean(axis=0)
-    spread = null.std(axis=0)
+    # moments over the observed value and the draws alike: a symmetric function of the members, so the observed
+    # value stays exchangeable with the draws after the scaling
+    members = np.vstack([observed[np.newaxis], null])
+    centre = members.mean(axis=0)
+    spread = members.std(axis=0)
     constant = spread <= 0
     safe = np.where(constant, 1.0, spread)
     null_z = np.where(constant, 0.0, (null - centre) / safe)
@@ -729,7 +732,7 @@ def prevalence_bound(p_global, n_subjects, alpha):
 
 
 def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha, prevalence=True, fwe_method="standardised",
-                     n_choices=None):
+                     n_choices=None, exact=None):
     """Every group statistic of one analysis, per cell.
 
     Parameters
@@ -755,6 +758,9 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
     n_choices : array_like of int, shape (n_subjects,), optional
         Null rows of each subject when they differ (the rest of its rows are
         padding, never drawn); default every row of every subject.
+    exact : array_like of bool, shape (n_subjects,), optional
+        Subjects whose null lists their whole relabeling space (the actual
+        labeling among the rows); default none.
 
     Returns
     -------
@@ -798,16 +804,23 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
         _fail("subject_nulls", f"shape {subject_nulls.shape} does not match scores {scores.shape}",
               "pass one (permutations x cells) null per subject, cells as in scores")
     n_permutations = subject_nulls.shape[1] if n_choices is None else np.asarray(n_choices, dtype=np.int64)
-    indices = draw_indices(rng, n_permutations, n_subjects, n_draws)
-    null_mean = group_mean_null(subject_nulls, indices)
+    # Each subject's pool holds its actual labeling (choice 0) beside its relabelings, as a randomization
+    # distribution does: under H0 the actual labeling is one more member of the subject's null, so the observed
+    # group mean is exchangeable with the drawn ones and the p-value (1 + #) / (1 + draws) is exact (Hemerik &
+    # Goeman 2018). A subject whose null lists its whole space already holds the actual labeling: its picks skip choice 0.
+    pool = np.concatenate([scores[:, None, :], subject_nulls], axis=1)
+    listed = np.zeros(n_subjects, dtype=bool) if exact is None else np.asarray(exact, dtype=bool)
+    choices = np.broadcast_to(np.asarray(n_permutations, dtype=np.int64), (n_subjects,)) + (~listed).astype(np.int64)
+    indices = draw_indices(rng, choices if np.any(choices != choices[0]) else int(choices[0]), n_subjects, n_draws)
+    indices = indices + listed.astype(np.int64)[np.newaxis, :]
+    null_mean = group_mean_null(pool, indices)
     observed_mean = columns["mean"]
     columns["p_perm"] = permutation_p(observed_mean, null_mean)
     columns["p_fwe"] = family_wise_p(observed_mean - chance, null_mean - chance, families, fwe_method)
     if prevalence:
-        # Choice 0 is the neutral (actual) labeling, as in Allefeld et al. (2016).
-        labelings = np.concatenate([scores[:, None, :], subject_nulls], axis=1)
-        prevalence_indices = draw_indices(rng, n_permutations + 1, n_subjects, n_draws)  # choice 0 the actual labeling
-        null_minimum = group_minimum_null(labelings, prevalence_indices)
+        # Choice 0 is the neutral (actual) labeling, as in Allefeld et al. (2016); the same pool as above.
+        prevalence_indices = draw_indices(rng, choices if np.any(choices != choices[0]) else int(choices[0]), n_subjects, n_draws)
+        null_minimum = group_minimum_null(pool, prevalence_indices + listed.astype(np.int64)[np.newaxis, :])
         observed_minimum = scores.min(axis=0)
         p_global = permutation_p(observed_minimum, null_minimum)
         columns["prevalence_p_global"] = p_global

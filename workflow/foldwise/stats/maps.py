@@ -121,7 +121,8 @@ def group_permutation_maps(subject_scores, subject_nulls, indices, chance, voxel
             chunk_observed = observed[start:stop, direction]
             at_least[start:stop, direction] = (null_mean >= chunk_observed - tolerance).sum(axis=0)
             if fwe_method == "standardised":  # each voxel on the scale of its own null (ties shifted first, as in group.py)
-                centre, spread = null_mean.mean(axis=0), null_mean.std(axis=0)
+                members = np.vstack([chunk_observed[np.newaxis], null_mean])  # observed and draws alike (symmetric)
+                centre, spread = members.mean(axis=0), members.std(axis=0)
                 constant = spread <= 0
                 safe = np.where(constant, 1.0, spread)
                 scaled_observed = np.where(constant, np.where(chunk_observed - tolerance > centre, np.inf, 0.0),

@@ -364,9 +364,11 @@ def test_sessions_example_plans_localizer_and_cross_task_jobs(dataset):
     glm_runs = [w["run_id"] for step, w in study_plan.planned_jobs(study) if step == "glm" and w["subject"] == "01"]
     assert glm_runs == ["ses-1_run-1", "ses-1_run-2", "ses-2_run-1", "ses-2_run-2",
                         "ses-1_task-beacon_run-1", "ses-1_task-beacon_run-2", "ses-2_task-beacon_run-1", "ses-2_task-beacon_run-2"]
-    inputs = study_plan.job_inputs(study, "roi_mask", {"subject": "01", "roi": "beam"})
+    mask_jobs = [(step, w["roi"]) for step, w in study_plan.planned_jobs(study) if step in ("roi_mask", "localizer_roi") and w["subject"] == "01"]
+    assert ("localizer_roi", "beam") in mask_jobs and ("roi_mask", "beam") not in mask_jobs  # the localizer ROI's own step
+    inputs = study_plan.job_inputs(study, "localizer_roi", {"subject": "01", "roi": "beam"})
     assert len(inputs["bold"]) == 4 and all("task-beacon" in path for path in inputs["bold"] + inputs["events"])
-    settings = study_plan.job_settings(study, "roi_mask", {"subject": "01", "roi": "beam"})
+    settings = study_plan.job_settings(study, "localizer_roi", {"subject": "01", "roi": "beam"})
     assert set(settings) == {"roi", "subject", "glm", "confounds", "drop_initial_volumes", "condition_column"}
     decode = study_plan.job_settings(study, "decode", {"analysis": "lit_from_shape", "subject": "01", "roi": "ember"})
     assert decode["pattern_tasks"] == {"lanterns": None, "beacon": "beacon"}

@@ -253,6 +253,37 @@ def test_a_voxel_count_and_its_table_cell_convert_one_way_and_back():
     assert not re.search(r"str\(count\) for count in", sources), "a voxel count turned into its cell without contract.count_label"
 
 
+def test_the_roi_mask_steps_code_key_leaves_the_glm_out():
+    """A GLM code edit reruns no plain ROI mask: the localizer ROI (which fits a GLM) has a step of its own."""
+    from foldwise.provenance.hashing import module_closure
+
+    scripts = REPO / "workflow" / "scripts"
+    package = REPO / "workflow" / "foldwise"
+
+    def closure(script):
+        return {path.resolve().relative_to(package.resolve()).as_posix() for path in module_closure(str(scripts / script))
+                if package.resolve() in path.resolve().parents}
+
+    roi_mask = closure("roi_mask.py")
+    assert "jobs/roi_mask.py" in roi_mask and "masks/build.py" in roi_mask  # the closure is followed at all
+    assert not {path for path in roi_mask if path.startswith("glm/") or path in ("jobs/glm.py", "jobs/localizer_roi.py",
+                                                                                "masks/localizer.py", "data/bids.py")}
+    localizer = closure("localizer_roi.py")
+    assert {"jobs/localizer_roi.py", "jobs/roi_mask.py", "glm/design.py", "masks/localizer.py"} <= localizer
+
+
+def test_a_localizer_roi_is_planned_by_its_own_step():
+    """The ROI kind names its step and the plan follows it (a real two-task study: tests/test_datasets.py)."""
+    assert ROI_KINDS["localizer"].step == "localizer_roi" and ROI_KINDS["labels"].step == "roi_mask"
+    fake = type("FakeStudy", (), {"subjects": ("01", "02"), "rois": {name: type("R", (), {"step": ROI_KINDS[kind].step})()
+                                                                     for name, kind in (("ember", "labels"), ("beam", "localizer"))}})()
+    assert plan.roi_jobs(fake, "roi_mask") == [("roi_mask", {"subject": s, "roi": "ember"}) for s in ("01", "02")]
+    assert plan.roi_jobs(fake, "localizer_roi") == [("localizer_roi", {"subject": s, "roi": "beam"}) for s in ("01", "02")]
+    assert re.fullmatch(plan.roi_wildcard(fake, "roi_mask"), "ember") and not re.fullmatch(plan.roi_wildcard(fake, "roi_mask"), "beam")
+    assert re.fullmatch(plan.roi_wildcard(fake, "localizer_roi"), "beam")
+    assert re.fullmatch(plan.roi_wildcard(type("NoLocalizer", (), {"rois": {}})(), "localizer_roi"), "beam") is None
+
+
 def test_one_reader_of_a_subjects_pattern_set():
     """Decode, the searchlight and the design self-check read patterns through foldwise.data.patterns only."""
     from foldwise.data import patterns

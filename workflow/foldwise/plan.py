@@ -5,6 +5,7 @@ exist yet when Snakemake builds its DAG); for a BIDS dataset they are found on
 disk with the configured file-name templates.
 """
 
+import re
 from dataclasses import dataclass
 from typing import Callable
 
@@ -106,7 +107,7 @@ class Step:
     outputs: Callable
 
 
-def _named(**names):
+def named_outputs(**names):
     """Outputs by contract name: ``mask="brain_mask"`` -> the contract's template."""
     return lambda study: {output: contract.TEMPLATES[name] for output, name in names.items()}
 
@@ -139,23 +140,23 @@ def _report_outputs(study):
 
 STEPS = {
     "demo_dataset": Step("study", _demo_outputs),
-    "brain_mask": Step("sub-{subject}", _named(mask="brain_mask", mean="brain_mean", summary="brain_summary")),
-    "glm": Step("sub-{subject}_{run_id}", _named(patterns="patterns_image", table="patterns_table", design="design_table",
+    "brain_mask": Step("sub-{subject}", named_outputs(mask="brain_mask", mean="brain_mean", summary="brain_summary")),
+    "glm": Step("sub-{subject}_{run_id}", named_outputs(patterns="patterns_image", table="patterns_table", design="design_table",
                                                  design_png="design_figure", resvar="residual_variance")),
-    "roi_mask": Step("sub-{subject}_roi-{roi}", _named(mask="roi_mask", info="roi_info")),
-    "roi_counts": Step("sub-{subject}", _named(table="roi_counts")),
-    "decode": Step("{analysis}_sub-{subject}_roi-{roi}", _named(scores="decode_scores", null="decode_null", rankings="decode_rankings",
+    "roi_mask": Step("sub-{subject}_roi-{roi}", named_outputs(mask="roi_mask", info="roi_info")),
+    "roi_counts": Step("sub-{subject}", named_outputs(table="roi_counts")),
+    "decode": Step("{analysis}_sub-{subject}_roi-{roi}", named_outputs(scores="decode_scores", null="decode_null", rankings="decode_rankings",
                                                                 confusion="decode_confusion")),
-    "decode_gather": Step("{analysis}_sub-{subject}", _named(scores="subject_scores", summary="subject_summary")),
-    "group": Step("{analysis}", _named(table="group_table", null="group_null", summary="group_summary")),
-    "calibrate": Step("{analysis}", _named(table="calibration_table", figure="calibration_figure", summary="calibration_summary")),
-    "searchlight_block": Step("{analysis}_sub-{subject}_block-{block}", _named(scores="searchlight_block_scores",
+    "decode_gather": Step("{analysis}_sub-{subject}", named_outputs(scores="subject_scores", summary="subject_summary")),
+    "group": Step("{analysis}", named_outputs(table="group_table", null="group_null", summary="group_summary")),
+    "calibrate": Step("{analysis}", named_outputs(table="calibration_table", figure="calibration_figure", summary="calibration_summary")),
+    "searchlight_block": Step("{analysis}_sub-{subject}_block-{block}", named_outputs(scores="searchlight_block_scores",
                                                                                null="searchlight_block_null")),
-    "searchlight_merge": Step("{analysis}_sub-{subject}", _named(map="searchlight_map", directions="searchlight_directions",
+    "searchlight_merge": Step("{analysis}_sub-{subject}", named_outputs(map="searchlight_map", directions="searchlight_directions",
                                                                  null="searchlight_subject_null")),
     "searchlight_group": Step("{analysis}", _searchlight_group_outputs),
     "report": Step("study", _report_outputs),
-    "manifest": Step("study", _named(manifest="manifest")),
+    "manifest": Step("study", named_outputs(manifest="manifest")),
 }
 STEPS.update({step: Step(identity, outputs) for step, (identity, outputs) in geometry_wiring.STEP_OUTPUTS.items()})
 
@@ -179,7 +180,7 @@ def planned_jobs(study):
     jobs = [("demo_dataset", {})] if study.is_demo else []
     jobs += [("brain_mask", {"subject": subject}) for subject in subjects]
     jobs += [("glm", {"subject": run["subject"], "run_id": run["run_id"]}) for run in study.runs]
-    jobs += [("roi_mask", {"subject": subject, "roi": roi}) for subject in subjects for roi in study.rois]
+    jobs += roi_jobs(study, "roi_mask")  # an ROI kind with a step of its own (RoiKind.step) plans its jobs through register_steps
     jobs += [("roi_counts", {"subject": subject}) for subject in subjects]
     for name, analysis in study.analyses.items():
         steps = analysis.steps
@@ -199,6 +200,17 @@ def planned_jobs(study):
         jobs += source(study)
     jobs += [("report", {})]
     return jobs
+
+
+def roi_jobs(study, step):
+    """The ``(step, {subject, roi})`` jobs of the ROIs whose masks ``step`` builds (their kind's ``step``)."""
+    return [(step, {"subject": subject, "roi": roi}) for subject in study.subjects for roi, entry in study.rois.items() if entry.step == step]
+
+
+def roi_wildcard(study, step):
+    """The ``{roi}`` wildcard constraint of a mask-building rule: the names of its ROIs (two rules never claim one mask)."""
+    names = [re.escape(roi) for roi, entry in study.rois.items() if entry.step == step]
+    return "|".join(names) if names else "(?!)"  # (?!) matches nothing: a rule with no ROI of its kind
 
 
 def _fill(template, wildcards):
@@ -260,16 +272,11 @@ def _glm_inputs(study, w):
     return inputs
 
 
-def _roi_mask_inputs(study, w):
+def roi_mask_inputs(study, w):
+    """The brain mask and the files the ROI's kind reads (``RoiKind.inputs``); a kind with its own step adds to these."""
     roi = study.rois[w["roi"]]
     # An ROI image may be one per subject: "{subject}" in its path is this subject's label.
     inputs = {name: path.replace("{subject}", w["subject"]) for name, path in roi.inputs(study.config).items()}
-    if roi.kind == "localizer":  # the localizer's own runs, nothing of the decoded task
-        runs = study.task_runs(w["subject"], roi.entry["localizer"]["task"])
-        inputs.update({name: [run[name] for run in runs] for name in ("bold", "events", "sidecar")})
-        dataset = study.config["dataset"]
-        if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):
-            inputs["confounds"] = [run["confounds"] for run in runs]
     return {"brain_mask": contract.fill("brain_mask", subject=w["subject"]), **inputs}
 
 
@@ -368,7 +375,7 @@ JOB_INPUTS = {
     "demo_dataset": lambda study, w: {},
     "brain_mask": _brain_mask_inputs,
     "glm": _glm_inputs,
-    "roi_mask": _roi_mask_inputs,
+    "roi_mask": roi_mask_inputs,
     "roi_counts": lambda study, w: {"infos": [contract.fill("roi_info", subject=w["subject"], roi=roi) for roi in study.rois]},
     "decode": _decode_inputs,
     "decode_gather": lambda study, w: {"scores": [contract.fill("decode_scores", roi=roi, **w) for roi in study.analyses[w["analysis"]].rois]},
@@ -431,7 +438,7 @@ def report_settings(study):
             "overrides": list(study.overrides),  # --config entries merged into the config: the page names them
             "planned_jobs": planned_output_counts(study),
             "runs": {subject: [run["run_id"] for run in study.runs_of(subject)] for subject in study.subjects},
-            "job_logs": report_job_logs(study)}
+            "job_logs": report_job_logs(study), "input_index": report_input_index(study)}
 
 
 def job_settings(study, step, wildcards):

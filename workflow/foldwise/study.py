@@ -27,6 +27,7 @@ from foldwise.data import check as dataset_check
 from foldwise.data import demo
 from foldwise.errors import InputError
 from foldwise.geometry import wiring as geometry_wiring
+from foldwise import plan as study_plan
 from foldwise.plan import plan_study
 
 __all__ = [
@@ -166,12 +167,18 @@ class RoiKind:
     check : callable
         ``check(entry, where, path, config)``: raises InputError for what the
         schema cannot express.
+    step : str
+        The step that builds the kind's masks (default ``roi_mask``). A kind
+        that needs more than the mask builders (the localizer's own GLM)
+        names a step of its own, registered with ``plan.register_steps``, so
+        that the plain ``roi_mask`` step's code key does not cover its modules.
     """
 
     name: str
     inputs: Callable
     source: Callable
     check: Callable = lambda entry, where, path, config: None
+    step: str = "roi_mask"
 
 
 ROI_KINDS = {}
@@ -212,7 +219,7 @@ def _localizer_check(entry, where, path, config):
 register_roi_kind(RoiKind("localizer", inputs=_localizer_constraint_inputs,
                           source=lambda entry, config: entry["localizer"]["within"].get("image") or
                           (config["dataset"]["atlas_image"] if "labels" in entry["localizer"]["within"] else None),
-                          check=_localizer_check))
+                          check=_localizer_check, step="localizer_roi"))
 
 
 # -- the model -----------------------------------------------------------------------
@@ -228,8 +235,13 @@ class Roi:
     min_voxels: int
 
     def inputs(self, config):
-        """Files the roi_mask job reads besides the brain mask."""
+        """Files the mask's job reads besides the brain mask."""
         return ROI_KINDS[self.kind].inputs(self.entry, config)
+
+    @property
+    def step(self):
+        """The step that builds this ROI's masks (``roi_mask``, or its kind's own step)."""
+        return ROI_KINDS[self.kind].step
 
 
 @dataclass(frozen=True)
@@ -431,8 +443,7 @@ STEP_SETTINGS = {
     "demo_dataset": _demo_settings,
     "brain_mask": lambda study, w: {"brain_mask": study.config["brain_mask"], "subject": w["subject"]},
     "glm": _glm_settings,
-    "roi_mask": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"],
-                                  **(_localizer_settings(study) if study.rois[w["roi"]].kind == "localizer" else {})},
+    "roi_mask": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"]},
     "roi_counts": lambda study, w: {"subject": w["subject"]},
     "decode": lambda study, w: {"analysis": study.analyses[w["analysis"]].method(), "subject": w["subject"], "roi": w["roi"],
                                 "seed": study.seed,
@@ -454,6 +465,26 @@ STEP_SETTINGS = {
     "manifest": lambda study, w: {},
 }
 STEP_SETTINGS.update(geometry_wiring.STEP_SETTINGS)
+
+
+# The localizer ROI kind's own step: its GLM on the localizer runs stays out of the roi_mask step's code key.
+def _localizer_roi_inputs(study, wildcards):
+    """The roi_mask inputs of the ROI (brain mask, constraint files) and the subject's localizer runs; nothing of the decoded task."""
+    roi = study.rois[wildcards["roi"]]
+    runs = study.task_runs(wildcards["subject"], roi.entry["localizer"]["task"])
+    inputs = study_plan.roi_mask_inputs(study, wildcards)
+    inputs.update({name: [run[name] for run in runs] for name in ("bold", "events", "sidecar")})
+    dataset = study.config["dataset"]
+    if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):
+        inputs["confounds"] = [run["confounds"] for run in runs]
+    return inputs
+
+
+study_plan.register_steps(
+    {"localizer_roi": study_plan.Step("sub-{subject}_roi-{roi}", study_plan.named_outputs(mask="roi_mask", info="roi_info"))},
+    {"localizer_roi": _localizer_roi_inputs},
+    {"localizer_roi": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"], **_localizer_settings(study)}},
+    lambda study: study_plan.roi_jobs(study, "localizer_roi"))
 
 
 # -- building the model (every check of meaning, once) ------------------------------

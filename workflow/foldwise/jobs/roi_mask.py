@@ -1,4 +1,9 @@
-"""Job: one subject's mask of one ROI (atlas labels, an image, or a sphere), inside the brain mask."""
+"""Job: one subject's mask of one ROI (atlas labels, an image, or a sphere), inside the brain mask.
+
+A localizer ROI has a step of its own (:mod:`foldwise.jobs.localizer_roi`),
+which reuses :func:`defined_region` for its anatomical constraint; this
+module imports nothing of the GLM, so a GLM edit reruns no plain ROI mask.
+"""
 
 import numpy as np
 
@@ -22,11 +27,9 @@ def _needed(inputs, name, roi):
 def run(inputs, outputs, params, log):
     """Write ``mask`` (uint8 NIfTI on the brain-mask grid) and ``info`` (JSON) for one subject and ROI."""
     entry, subject = params["roi"], params["subject"]
-    if "localizer" in entry:
-        # Imported here: the localizer job reads the constraint through defined_region below.
-        from foldwise.jobs import localizer_roi
-
-        return localizer_roi.run(inputs, outputs, params, log)
+    if "localizer" in entry:  # its own step (foldwise.jobs.localizer_roi), so this step's code key leaves the GLM out
+        raise InputError(None, f"rois[{entry['name']}]", "a localizer ROI is built by the localizer_roi step, not roi_mask",
+                         "plan the ROI's jobs through foldwise.plan (RoiKind.step)")
     name = entry["name"]
     min_voxels = int(entry.get("min_voxels", _DEFAULT_MIN_VOXELS))
     brain, affine = read_brain_mask(inputs["brain_mask"])

@@ -10,9 +10,9 @@ number of folds, and chance = 1 / number of classes.
 import numpy as np
 import pandas as pd
 
-from foldwise.contract import SCORE_COLUMNS, SUMMARY_COLUMNS, count_label, cross_directions
+from foldwise.contract import SCORE_COLUMNS, SUMMARY_COLUMNS, count_label, cross_directions, read_table
 from foldwise.errors import InputError
-from foldwise.data.fileio import read_tsv, write_tsv
+from foldwise.data.fileio import write_tsv
 
 __all__ = ["SUMMARY_COLUMNS", "gather_scores", "summarise_scores", "run"]
 
@@ -133,7 +133,7 @@ def run(inputs, outputs, params, log):
     paths = [paths] if isinstance(paths, str) else list(paths)
     if not paths:
         raise InputError(None, "inputs.scores", "no score tables to gather", "list at least one ROI for the analysis")
-    frames = [read_tsv(path, SCORE_COLUMNS, what="decoding scores") for path in paths]
+    frames = [read_table("decode_scores", path) for path in paths]
     scores = gather_scores(frames, paths, params["analysis"], str(params["subject"]))
     write_tsv(outputs["scores"], scores)
     write_tsv(outputs["summary"], summarise_scores(scores, params["analysis"]))

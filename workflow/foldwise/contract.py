@@ -20,7 +20,7 @@ __all__ = [
     "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "cross_directions", "provenance_path", "log_path", "benchmark_path",
     "PATTERN_TABLE_COLUMNS", "SCORE_COLUMNS", "NULL_COLUMNS", "RANKING_COLUMNS", "CONFUSION_COLUMNS", "SUMMARY_COLUMNS",
     "ROI_COUNT_COLUMNS", "GROUP_COLUMNS", "GROUP_NULL_COLUMNS", "SEARCHLIGHT_GROUP_COLUMNS", "SEARCHLIGHT_DIRECTION_COLUMNS",
-    "TABLE_COLUMNS", "read_brain_mask", "read_table", "count_label", "parse_count",
+    "TABLE_COLUMNS", "read_brain_mask", "read_roi_mask", "read_table", "count_label", "parse_count",
 ]
 
 RESULTS = "results"
@@ -246,3 +246,22 @@ def read_brain_mask(path):
     if not mask.any():
         raise InputError(path, "data", "the brain mask holds no voxel", "check the brain mask step (brain_mask.mean_fraction)")
     return mask, np.asarray(image.affine, dtype=np.float64)
+
+
+def read_roi_mask(path):
+    """One subject's ROI mask as ``(bool array (I, J, K), affine float64 (4, 4))``.
+
+    Refuses a mask that is not 3-D, holds values other than 0 and 1 (the
+    roi_mask step writes exactly those), or holds no voxel.
+    """
+    image = load_nifti(path, what="ROI mask")
+    data = np.asarray(image.dataobj)
+    if data.ndim != 3:
+        raise InputError(path, "dim", f"an ROI mask must be 3-D, got shape {data.shape}", "write the ROI mask as a 3-D image")
+    values = np.unique(data)
+    if not np.isin(values, (0, 1)).all():
+        raise InputError(path, "data", f"an ROI mask holds 0 and 1 only, found {values[:10].tolist()}", "binarise the mask (1 = in ROI)")
+    inside = data == 1
+    if not inside.any():
+        raise InputError(path, "data", "the ROI mask is empty", "check the ROI definition (labels, image or sphere) against the data")
+    return inside, np.asarray(image.affine, dtype=np.float64)

@@ -16,11 +16,11 @@ null); the random voxel orders of selection ``none`` come from
 import numpy as np
 import pandas as pd
 
-from foldwise.contract import CONFUSION_COLUMNS, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS, count_label
+from foldwise.contract import CONFUSION_COLUMNS, NULL_COLUMNS, PATTERN_TABLE_COLUMNS, RANKING_COLUMNS, SCORE_COLUMNS, count_label, read_roi_mask
 from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import count_as_float, subject_p
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, write_tsv
+from foldwise.data.fileio import write_tsv
 from foldwise.data.patterns import files_label, read_pattern_set
 from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks
 from foldwise.provenance.hashing import seed_from
@@ -57,20 +57,6 @@ def _check_params(params):
     if analysis["kind"] not in ("within", "cross"):
         raise InputError(None, f"analyses[{analysis['name']}].kind", f"unknown kind {analysis['kind']!r}", "use within or cross")
     return analysis, str(params["subject"]), str(params["roi"]), int(params["seed"])
-
-
-def _read_mask(path):
-    image = load_nifti(path, what="ROI mask")
-    data = np.asarray(image.dataobj)
-    if data.ndim != 3:
-        raise InputError(path, "dim", f"an ROI mask must be 3-D, got shape {data.shape}", "write the ROI mask as a 3-D image")
-    values = np.unique(data)
-    if not np.isin(values, (0, 1)).all():
-        raise InputError(path, "data", f"an ROI mask holds 0 and 1 only, found {values[:10].tolist()}", "binarise the mask (1 = in ROI)")
-    inside = data == 1
-    if not inside.any():
-        raise InputError(path, "data", "the ROI mask is empty", "check the ROI definition (labels, image or sphere) against the data")
-    return inside, image.affine
 
 
 def analysis_labels(analysis, table, subject, tables_label):
@@ -263,7 +249,7 @@ def run(inputs, outputs, params, log):
     name = analysis["name"]
     table_paths = [inputs["tables"]] if isinstance(inputs["tables"], str) else list(inputs["tables"])
     tables_label = files_label(table_paths)
-    inside, mask_affine = _read_mask(inputs["mask"])
+    inside, mask_affine = read_roi_mask(inputs["mask"])
     pattern_set = read_pattern_set(inputs["patterns"], table_paths, subject, inside, mask_affine, inputs["mask"])
     patterns, table, coordinates = pattern_set.patterns, pattern_set.table, pattern_set.coordinates
     keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, tables_label)

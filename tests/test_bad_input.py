@@ -956,6 +956,25 @@ def _unknown_searchlight_analysis(folder):
                                            "Fix: use one of shape")
 
 
+# -- the pattern set (foldwise.data.patterns: decode, the searchlight, calibrate) ---------------------
+@case("pattern images and the mask on different grids", "data.patterns.read_pattern_set (decode and searchlight jobs)")
+def _patterns_off_the_mask_grid(folder):
+    images, tables = _pattern_runs(folder, [["seen_round", "seen_square"], ["seen_round", "seen_square"]])
+    mask = folder / "roi-ember_mask.nii.gz"
+    shifted = AFFINE.copy()
+    shifted[:3, 3] += 1.5  # half a voxel: another grid of the same shape
+    save_nifti(mask, np.ones(GRID, dtype=np.uint8), shifted, dtype=np.uint8)
+    analysis = {"name": "shape", "kind": "within", "classes": {"round": ["seen_round"], "square": ["seen_square"]}, "selection": "signal",
+                "voxel_counts": [5, "all"], "classifier": "correlation_centroid", "svm_c": 1.0, "logistic_c": 1.0, "demean_patterns": False,
+                "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "n_permutations": 5}
+    outputs = {name: str(folder / "out" / f"{name}.tsv") for name in ("scores", "null", "rankings", "confusion")}
+    return Expectation(lambda: decode_job.run({"patterns": images, "tables": tables, "mask": str(mask)}, outputs,
+                                              {"analysis": analysis, "subject": "01", "roi": "ember", "seed": 3}, LOG),
+                       f"{FOLDER}/sub-01_run-01_patterns.nii.gz: affine: the patterns' voxel centres lie more than 0.001 mm from the "
+                       f"mask's ({FOLDER}/roi-ember_mask.nii.gz): another space or another grid. Fix: compute the patterns and the mask "
+                       "on the subject's one grid")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

@@ -91,7 +91,9 @@ def test_the_reader_refuses_a_repeated_run_another_subject_and_another_grid(tmp_
         read_pattern_tables(tables, "02")
     shifted = AFFINE.copy()
     shifted[0, 3] += 0.01  # 10 times the grid tolerance
-    with pytest.raises(InputError, match="voxel centres lie more than 0.001 mm apart"):
+    with pytest.raises(InputError, match="voxel centres lie more than 0.001 mm from the mask's"):
         read_pattern_set(images, tables, "01", mask, shifted, mask_path)
+    with pytest.raises(InputError, match=r"the pattern image has shape \(6, 5, 4, 8\), the mask .* \(6, 5, 3\)"):
+        read_pattern_set(images, tables, "01", mask[:, :, :3], affine, mask_path)
     with pytest.raises(InputError, match="2 pattern images but 1 tables"):
         read_pattern_set(images, tables[:1], "01", mask, affine, mask_path)

@@ -175,10 +175,12 @@ def read_pattern_set(image_paths, table_paths, subject, mask, affine, mask_path)
     for image_path, table_path in zip(image_paths, table_paths):
         table = _read_run_table(table_path, subject)
         image = load_nifti(image_path, what="pattern image")
-        if len(image.shape) not in (3, 4) or not same_grid(image.shape[:3], image.affine, mask.shape, affine, GRID_TOLERANCE_MM):
-            raise InputError(image_path, "affine", f"the patterns' grid {image.shape[:3]} does not match the mask's {mask.shape} ({mask_path}), "
-                             f"or their voxel centres lie more than {GRID_TOLERANCE_MM} mm apart",
+        if len(image.shape) not in (3, 4) or tuple(image.shape[:3]) != tuple(mask.shape):
+            raise InputError(image_path, "dim", f"the pattern image has shape {tuple(image.shape)}, the mask ({mask_path}) {tuple(mask.shape)}",
                              "compute the patterns and the mask on the subject's one grid")
+        if not same_grid(image.shape[:3], image.affine, mask.shape, affine, GRID_TOLERANCE_MM):
+            raise InputError(image_path, "affine", f"the patterns' voxel centres lie more than {GRID_TOLERANCE_MM:g} mm from the mask's "
+                             f"({mask_path}): another space or another grid", "compute the patterns and the mask on the subject's one grid")
         data = image.get_fdata(dtype=np.float64)
         data = data[..., np.newaxis] if data.ndim == 3 else data
         n_volumes = data.shape[3]

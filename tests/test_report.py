@@ -161,6 +161,8 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
     inputs = {key: [] for key in ("designs", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
                                   "summaries", "confusions", "group_tables", "provenance")}
     roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in study["analyses"]}
+    # The plan's record of every input (foldwise.plan.report_input_index): the report reads fields from it.
+    index = {key: [] for key in ("designs", "means", "brain_masks", "roi_masks", "resvar", "confusions")}
     for subject in subjects:
         masks = root / "masks" / f"sub-{subject}"
         mean, brain, rois = _subject_images(rng)
@@ -168,9 +170,12 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
         save_nifti(masks / f"sub-{subject}_brainmask.nii.gz", brain, affine, dtype=np.uint8)
         inputs["means"].append(str(masks / f"sub-{subject}_mean.nii.gz"))
         inputs["brain_masks"].append(str(masks / f"sub-{subject}_brainmask.nii.gz"))
+        index["means"].append({"path": inputs["means"][-1], "subject": subject})
+        index["brain_masks"].append({"path": inputs["brain_masks"][-1], "subject": subject})
         for roi, mask in rois.items():
             save_nifti(masks / f"sub-{subject}_roi-{roi}_mask.nii.gz", mask, affine, dtype=np.uint8)
             inputs["roi_masks"].append(str(masks / f"sub-{subject}_roi-{roi}_mask.nii.gz"))
+            index["roi_masks"].append({"path": inputs["roi_masks"][-1], "subject": subject, "roi": roi})
         roi_sizes[subject] = {roi: int(mask.sum()) for roi, mask in rois.items()}
         write_tsv(masks / f"sub-{subject}_roi_counts.tsv", pd.DataFrame({
             "subject": subject, "roi": ROI_NAMES, "n_voxels": [roi_sizes[subject][roi] for roi in ROI_NAMES],
@@ -179,10 +184,12 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
         patterns = root / "patterns" / f"sub-{subject}"
         write_tsv(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv", _design(rng))
         inputs["designs"].append(str(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv"))
+        index["designs"].append({"path": inputs["designs"][-1], "subject": subject, "run_id": RUN_IDS[0]})
         if subject == subjects[0]:
             resvar = np.where(brain, rng.gamma(4.0, 25.0, GRID), 0.0)
             save_nifti(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz", resvar, affine)
             inputs["resvar"] = str(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz")
+            index["resvar"] = [{"path": inputs["resvar"], "subject": subject, "run_id": RUN_IDS[0]}]
         for run_index, run_id in enumerate(RUN_IDS):
             func = root / "bids" / f"sub-{subject}" / "func"
             write_tsv(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv", _events(rng, run_index))
@@ -199,6 +206,7 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
                 path = root / "decoding" / name / f"sub-{subject}" / f"sub-{subject}_roi-{roi}_confusion.tsv"
                 write_tsv(path, _confusion(analysis, rng))
                 inputs["confusions"].append(str(path))
+                index["confusions"].append({"path": str(path), "subject": subject, "roi": roi, "analysis": name})
     for analysis in study["analyses"]:
         path = root / "group" / analysis["name"] / f"{analysis['name']}_group.tsv"
         write_tsv(path, _group(analysis, summaries[analysis["name"]], rois))
@@ -216,7 +224,7 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
         "glow": {"decodes": {"shape_seen": True, "shape_heard": False, "modality": True}}}})
     inputs["ground_truth"] = str(root / "demo" / "ground_truth.json")
     params = {"study": study, "subjects": list(subjects), "runs": {subject: list(RUN_IDS) for subject in subjects},
-              "config_file": "config/config.yaml"}
+              "config_file": "config/config.yaml", "input_index": index}
     facts = {"roi_sizes": roi_sizes, "n_jobs": 11, "n_outputs": 3 * 3 + 6 * 5 + 2 * 3}
     return inputs, params, facts
 
@@ -950,3 +958,16 @@ def test_group_confusion_is_the_mean_of_scikit_learns_row_normalised_matrices():
     # A class one subject never tested is averaged over the subjects that did.
     counts[0][2] = 0
     np.testing.assert_allclose(report.group_confusion(counts)[2], np.mean([r[2] for r in references[1:]], axis=0))
+
+
+def test_an_input_the_plan_does_not_list_is_named(built, tmp_path):
+    # Fields come from the plan's records (foldwise.plan.report_input_index), never from parsing file names.
+    stray = tmp_path / "sub-01_roi-ember_confusion.tsv"
+    shutil.copyfile(built["inputs"]["confusions"][0], stray)
+    inputs = dict(built["inputs"], confusions=[str(stray)] + built["inputs"]["confusions"][1:])
+    with pytest.raises(InputError) as caught:
+        report_job.run(inputs, outputs_for(tmp_path / "out"), built["params"], _quiet_log())
+    assert caught.value.file == str(stray) and "not among the report's planned inputs" in caught.value.problem
+    params = {key: value for key, value in built["params"].items() if key != "input_index"}
+    with pytest.raises(InputError, match="report_input_index"):
+        report_job.run(built["inputs"], outputs_for(tmp_path / "out2"), params, _quiet_log())

@@ -12,7 +12,6 @@ import functools
 import html
 import json
 import math
-import re
 from pathlib import Path
 
 import numpy as np
@@ -43,18 +42,6 @@ ROI_COUNT_COLUMNS = ("subject", "roi", "n_voxels", "min_voxels")
 EVENT_COLUMNS = ("onset", "duration", "trial_type")
 
 _RERUN = "rerun the workflow (snakemake rebuilds what is missing or stale)"
-_SUBJECT = r"sub-(?P<subject>[A-Za-z0-9]+)"
-_NIFTI = r"\.nii(\.gz)?"
-_NAME_PATTERNS = {
-    "designs": _SUBJECT + r"_(?P<run_id>.+)_design\.tsv",
-    "brain_masks": _SUBJECT + r"_brainmask" + _NIFTI,
-    "means": _SUBJECT + r"_mean" + _NIFTI,
-    "roi_masks": _SUBJECT + r"_roi-(?P<roi>[A-Za-z0-9]+)_mask" + _NIFTI,
-    "resvar": _SUBJECT + r"_(?P<run_id>.+)_resvar" + _NIFTI,
-    "confusions": _SUBJECT + r"_roi-(?P<roi>[A-Za-z0-9]+)_confusion\.tsv",
-}
-
-
 # -- reading -------------------------------------------------------------------------
 
 def _as_list(value):
@@ -63,18 +50,34 @@ def _as_list(value):
     return [value] if isinstance(value, (str, Path)) else list(value)
 
 
-def _name_fields(path, input_name):
-    match = re.fullmatch(_NAME_PATTERNS[input_name], Path(path).name)
-    if match is None:
-        raise InputError(path, "file name", f"the {input_name} input does not follow the pattern {_NAME_PATTERNS[input_name]}",
-                         "pass the files the workflow writes (see the data contract, foldwise.contract)")
-    return match.groupdict()
+def _field_reader(input_index):
+    """A function ``(path, input name) -> {subject, run_id, roi, analysis}`` from the plan's input records.
+
+    The plan (``foldwise.plan.report_input_index``) names the fields of every
+    input file; the report takes them from there instead of parsing file names.
+    """
+    if not isinstance(input_index, dict):
+        raise InputError(None, "params.input_index", "missing: the report needs the plan's record of every input file",
+                         "pass foldwise.plan.report_input_index(study) from the report rule")
+    records = {}
+    for name, entries in input_index.items():
+        for entry in entries:
+            records[(name, str(entry["path"]))] = entry
+
+    def fields_of(path, input_name):
+        record = records.get((input_name, str(path)))
+        if record is None:
+            raise InputError(path, input_name, "the file is not among the report's planned inputs",
+                             "pass the files the plan lists (foldwise.plan.report_input_index)")
+        return record
+
+    return fields_of
 
 
-def _by_subject(paths, input_name, subjects):
+def _by_subject(paths, input_name, subjects, fields_of):
     found = {}
     for path in _as_list(paths):
-        subject = _name_fields(path, input_name)["subject"]
+        subject = fields_of(path, input_name)["subject"]
         if subject in found:
             raise InputError(path, "subject", f"a second {input_name} file for subject {subject} (first: {found[subject]})",
                              "pass one file per subject")
@@ -169,14 +172,14 @@ def _read_group_tables(paths, analyses):
     return tables
 
 
-def _read_confusions(paths, analyses):
+def _read_confusions(paths, analyses, fields_of):
     found = {}
     for path in _as_list(paths):
-        fields = _name_fields(path, "confusions")
-        analysis = Path(path).parent.parent.name
+        fields = fields_of(path, "confusions")
+        analysis = fields["analysis"]
         if analysis not in analyses:
-            raise InputError(path, "folder", f"the file is not under results/decoding/<analysis>/sub-<subject>/ of a study "
-                             f"analysis ({', '.join(analyses)})", "pass the confusion files the decoding stage writes")
+            raise InputError(path, "analysis", f"the confusion table is of analysis {analysis!r}, not one of the study's "
+                             f"({', '.join(analyses)})", "pass the confusion files the decoding stage writes")
         frame = read_tsv(path, CONFUSION_COLUMNS, what="confusion table")
         _numeric(frame, "count", path, integer=True)
         found[(analysis, fields["subject"], fields["roi"])] = (frame, str(path))
@@ -468,18 +471,19 @@ def run(inputs, outputs, params, log):
     if not events:
         raise InputError(None, "events", "no events table was given", "pass every run's events TSV")
     trials = page.trials_per_condition(events)
-    designs = _by_subject(inputs.get("designs"), "designs", subjects)
-    brain_masks = _by_subject(inputs.get("brain_masks"), "brain_masks", subjects)
-    means = _by_subject(inputs.get("means"), "means", subjects)
+    fields_of = _field_reader(params.get("input_index"))
+    designs = _by_subject(inputs.get("designs"), "designs", subjects, fields_of)
+    brain_masks = _by_subject(inputs.get("brain_masks"), "brain_masks", subjects, fields_of)
+    means = _by_subject(inputs.get("means"), "means", subjects, fields_of)
     roi_mask_paths = {}
     for path in _as_list(inputs.get("roi_masks")):
-        fields = _name_fields(path, "roi_masks")
+        fields = fields_of(path, "roi_masks")
         roi_mask_paths[(fields["subject"], fields["roi"])] = str(path)
     counts = _roi_counts(inputs.get("roi_counts"), subjects, roi_names)
     roi_mean_voxels = {roi: float(counts.loc[counts["roi"] == roi, "n_voxels"].mean()) for roi in roi_names}
     summaries = _read_summaries(inputs.get("summaries"), list(analyses), subjects)
     group_tables = _read_group_tables(inputs.get("group_tables"), list(analyses))
-    confusions = _read_confusions(inputs.get("confusions"), list(analyses))
+    confusions = _read_confusions(inputs.get("confusions"), list(analyses), fields_of)
     records = [_read_json(path, "provenance record") for path in _as_list(inputs.get("provenance"))]
     if not records and params.get("planned_jobs"):
         # The workflow passes the planned jobs instead of their records: records carry run times, and
@@ -494,7 +498,7 @@ def run(inputs, outputs, params, log):
     data = {"designs": designs, "brain_masks": brain_masks, "means": means, "roi_mask_paths": roi_mask_paths,
             "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "tr_s": tr_s, "analyses": analyses,
             "group_tables": group_tables, "summaries": summaries, "confusions": confusions, "subjects": subjects,
-            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study, "clusters": {},
+            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study, "clusters": {}, "fields_of": fields_of,
             "searchlight": _searchlight_inputs(inputs, study)}
     # Read and check everything first, draw afterwards: bad input stops the job before any drawing.
     specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
@@ -720,7 +724,7 @@ def _design_specification(entry, data, log):
     subject = entry["subject"]
     path = data["designs"][subject]
     design = read_tsv(path, (), what="design matrix")
-    run_id = _name_fields(path, "designs")["run_id"]
+    run_id = data["fields_of"](path, "designs")["run_id"]
     values = design.apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64)
     if values.size == 0 or not np.all(np.isfinite(values)):
         raise InputError(path, "values", "the design matrix is empty or holds a non-number", _RERUN)
@@ -755,7 +759,7 @@ def _resvar_specification(entry, data, log):
         raise InputError(None, "resvar", f"expected one residual variance image, got {len(data['resvar'])}",
                          "pass the first subject's first run")
     path = str(data["resvar"][0])
-    fields = _name_fields(path, "resvar")
+    fields = data["fields_of"](path, "resvar")
     if fields["subject"] != subject:
         raise InputError(path, "subject", f"expected the residual variance of sub-{subject}, got sub-{fields['subject']}",
                          "pass the first subject's first run")

@@ -181,7 +181,7 @@ def read_pattern_set(image_paths, table_paths, subject, mask, affine, mask_path)
         if not same_grid(image.shape[:3], image.affine, mask.shape, affine, GRID_TOLERANCE_MM):
             raise InputError(image_path, "affine", f"the patterns' voxel centres lie more than {GRID_TOLERANCE_MM:g} mm from the mask's "
                              f"({mask_path}): another space or another grid", "compute the patterns and the mask on the subject's one grid")
-        data = image.get_fdata(dtype=np.float64)
+        data = np.asanyarray(image.dataobj)  # as stored (float32 from the GLM step): only the mask's voxels become float64 below
         data = data[..., np.newaxis] if data.ndim == 3 else data
         n_volumes = data.shape[3]
         if len(table) != n_volumes:
@@ -191,7 +191,7 @@ def read_pattern_set(image_paths, table_paths, subject, mask, affine, mask_path)
         if not np.array_equal(volumes, np.arange(n_volumes)):
             raise InputError(table_path, "volume", f"expected 0 .. {n_volumes - 1} in order, got {table['volume'].tolist()[:8]}",
                              "number the volumes from 0 in file order")
-        inside = data[mask].T  # (n_volumes, n_voxels), voxels in C order of the mask
+        inside = np.asarray(data[mask], dtype=np.float64).T  # (n_volumes, n_voxels), voxels in C order of the mask
         if not np.all(np.isfinite(inside)):
             raise InputError(image_path, "data", f"the patterns hold NaN or infinite values inside the mask ({mask_path})",
                              "re-estimate the patterns, or leave those voxels out of the mask")

@@ -148,7 +148,14 @@ def _group(analysis, summaries, rois):
                              "p_t": 0.02, "p_wilcoxon": 0.125, "p_perm": 0.03, "p_fwe": p_fwe,
                              "prevalence_p_global": 0.04 if roi == "ember" else np.nan,
                              "prevalence_gamma0": 0.2 if roi == "ember" else np.nan,
-                             "prevalence_p_majority": 0.3 if roi == "ember" else np.nan})
+                             "prevalence_p_majority": 0.3 if roi == "ember" else np.nan,
+                             "effect_size": (mean - 1 / 3) / values.std(ddof=1),
+                             "prevalence_p_global_fwe": 0.04 if roi == "ember" else np.nan,
+                             "prevalence_gamma0_fwe": 0.1 if roi == "ember" else np.nan,
+                             "prevalence_gamma0_max": 0.37,  # below 0.5: the page must say the majority test cannot succeed
+                             "n_used": str(count) if count != "all" else "40-52",
+                             "subject_p_min": 0.125 if roi == "glow" else 1 / 101,  # glow: above alpha, warned
+                             "family": f"direction {direction}"})
     return pd.DataFrame(rows)
 
 
@@ -650,6 +657,30 @@ def test_results_show_group_tables_with_corrected_p_and_prevalence(built):
     assert "train seen, test heard" not in text
     assert "Demo ground truth for ROI glow" in text
     assert "Okabe & Ito" in text and "balanced accuracy (the mean of the per-class hit rates" in text
+
+
+def test_group_tables_show_effect_size_family_corrected_prevalence_and_p_min_warning(built):
+    headers = _group_headers(built["html"])
+    for header in ("effect size", "prevalence: lower bound (FWE)", "voxels used", "p_fwe (family-wise corrected)"):
+        assert header in headers, header
+    text = _text(built["html"])
+    assert "family of p_fwe: one family per direction" in text
+    assert "Largest prevalence lower bound this design can reach: 0.37 (below 0.5: the majority test cannot succeed" in text
+    # glow rows (subject_p_min 0.125 > alpha 0.05) are warned about, ember rows (1/101) are not
+    analysis = STUDY["analyses"][0]
+    n_glow_rows = len(_directions(analysis)) * len(COUNTS)
+    assert f"Warning: in {n_glow_rows} of {2 * n_glow_rows} rows some subject's smallest attainable permutation p " \
+           "(up to 0.125) exceeds alpha 0.05" in text
+    assert "40-52" in text  # n_used of the 'all' rows, as the group job writes it
+    results_start = text.index("Score: balanced accuracy (the mean")  # the results section's first words
+    assert text.index("Corrected p (p_fwe < 0.05): one family per direction") < results_start  # in the summary box
+    assert text.index("Largest prevalence lower bound this design can reach: 0.37") < results_start
+
+
+def test_family_text_names_each_configured_family():
+    assert report_job.family_text(["direction within", "direction seen->heard"]).startswith("one family per direction")
+    assert report_job.family_text(["all directions"]) == "one family: every ROI x voxel count x direction of the analysis"
+    assert "Bonferroni over the analyses" in report_job.family_text(["all analyses"])
 
 
 def test_confusion_count_fallback_is_stated(built):

@@ -32,9 +32,7 @@ from foldwise.provenance.memo import display_path
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
 from foldwise.provenance.memo import VERSIONED_PACKAGES, package_versions  # noqa: E402 (one list of versioned packages)
-GROUP_COLUMNS = ("analysis", "roi", "direction", "n_voxels", "n_subjects", "chance", "mean", "sem", "ci_low", "ci_high",
-                 "t", "p_t", "p_wilcoxon", "p_perm", "p_fwe", "prevalence_p_global", "prevalence_gamma0",
-                 "prevalence_p_majority")
+from foldwise.contract import GROUP_COLUMNS  # noqa: E402 (the group table's columns, defined once)
 SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy",
                    "balanced_accuracy", "chance")
 CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
@@ -355,12 +353,57 @@ GROUP_PAGE_COLUMNS = (
     ("p_t", "p (t-test, uncorrected)", ""),
     ("p_wilcoxon", "p (Wilcoxon, uncorrected)", ""),
     ("p_perm", "p (permutation, uncorrected)", ""),
-    ("p_fwe", "p_fwe (family-wise corrected)", "maximum statistic over ROIs and voxel counts, per direction"),
+    ("effect_size", "effect size", "standardised effect: group mean minus chance over the SD across subjects"),
+    ("p_fwe", "p_fwe (family-wise corrected)", "maximum statistic over the family named in the caption"),
     ("survives", "survives", "p_fwe below alpha"),
     ("prevalence_p_global", "prevalence: p (global null)", "p of 'no subject has an effect'"),
     ("prevalence_gamma0", "prevalence: lower bound", "the population share with an effect exceeds this, at alpha"),
+    ("prevalence_gamma0_fwe", "prevalence: lower bound (FWE)", "the same bound, family-wise corrected over the family"),
     ("prevalence_p_majority", "prevalence: p (majority)", "p of 'at most half the population has an effect'"),
+    ("n_used", "voxels used", "voxels actually used per subject (a count at or above the ROI size is 'all')"),
 )
+
+
+def family_text(families):
+    """The family of ``p_fwe`` in words, from the group table's ``family`` column.
+
+    Examples
+    --------
+    >>> family_text(["direction within", "direction seen->heard"])
+    'one family per direction (every ROI x voxel count of that direction)'
+    >>> family_text(["all directions"])
+    'one family: every ROI x voxel count x direction of the analysis'
+    """
+    names = sorted({str(name) for name in families if isinstance(name, str) and name})
+    if not names or all(name.startswith("direction ") for name in names):
+        return "one family per direction (every ROI x voxel count of that direction)"
+    if names == ["all directions"]:
+        return "one family: every ROI x voxel count x direction of the analysis"
+    if names == ["all analyses"]:
+        return ("one family over the study: every ROI x voxel count x direction of each analysis, "
+                "Bonferroni over the analyses' maxima")
+    return "families: " + ", ".join(names)
+
+
+def gamma0_max_text(table):
+    """The largest prevalence bound the design can reach, with what it implies for the majority test."""
+    values = pd.to_numeric(table["prevalence_gamma0_max"], errors="coerce").dropna()
+    if values.empty:
+        return ""
+    value = float(values.max())
+    return (f"Largest prevalence lower bound this design can reach: {value:.2f}"
+            + (" (below 0.5: the majority test cannot succeed with these subjects and draws)." if value < 0.5 else "."))
+
+
+def p_min_warning(table, alpha):
+    """A warning where some subject's smallest attainable permutation p exceeds ``alpha`` (or '')."""
+    p_min = pd.to_numeric(table["subject_p_min"], errors="coerce")
+    over = table[p_min > alpha]
+    if over.empty:
+        return ""
+    return (f"Warning: in {len(over)} of {len(table)} rows some subject's smallest attainable permutation p "
+            f"(up to {float(p_min[p_min > alpha].max()):.3g}) exceeds alpha {alpha:g}: that subject's own test "
+            "cannot reach significance there (too few distinct relabelings in its design).")
 
 
 def _group_table(table, alpha, n_draws=None):
@@ -379,7 +422,10 @@ def _group_table(table, alpha, n_draws=None):
                  "p_perm": page.format_p(row.p_perm), "p_fwe": html_page.format_p(row.p_fwe, n_draws),
                  "survives": "yes" if survives else "no", "prevalence_p_global": page.format_p(row.prevalence_p_global),
                  "prevalence_gamma0": page.format_number(row.prevalence_gamma0, 2),
-                 "prevalence_p_majority": page.format_p(row.prevalence_p_majority)}
+                 "prevalence_gamma0_fwe": page.format_number(row.prevalence_gamma0_fwe, 2),
+                 "prevalence_p_majority": page.format_p(row.prevalence_p_majority),
+                 "effect_size": page.format_number(row.effect_size, 2),
+                 "n_used": "n/a" if pd.isna(row.n_used) else str(row.n_used)}
         rows.append([cells[key] for key, _, _ in shown])
         classes.append("survives" if survives else "")
     caption = "Group statistics (one-sided: above chance)"
@@ -387,9 +433,12 @@ def _group_table(table, alpha, n_draws=None):
         caption += f", {int(table['n_subjects'].iloc[0])} subjects"
     if constant["chance"]:
         caption += f", chance {page.format_number(table['chance'].iloc[0])}"
-    caption += f". Rows in bold survive the family-wise correction (p_fwe < {alpha:g})."
-    return html_page.html_table([header for _, header, _ in shown], rows, caption=caption, row_classes=classes,
-                                wide=True, header_titles=[title for _, _, title in shown])
+    caption += (f". Rows in bold survive the family-wise correction (p_fwe < {alpha:g}); family of p_fwe: "
+                f"{family_text(table['family'])}. {gamma0_max_text(table)}")
+    warning = p_min_warning(table, alpha)
+    return (html_page.html_table([header for _, header, _ in shown], rows, caption=caption.strip(), row_classes=classes,
+                                 wide=True, header_titles=[title for _, _, title in shown])
+            + (f"<p class=\"caveat\">{html.escape(warning)}</p>" if warning else ""))
 
 
 def _analysis_text(analysis):
@@ -545,10 +594,16 @@ def _summary_section(context):
                          f"{html.escape(roi)}</a>, <span title=\"{html.escape(html_page.direction_tooltip(direction))}\">"
                          f"{html.escape(direction)}</span>: {html.escape(sentence)}</li>")
         parts.append("</ul>")
+        facts = [f"Corrected p (p_fwe < {alpha:g}): {family_text(table['family'])}.", gamma0_max_text(table),
+                 p_min_warning(table, alpha)]
+        parts.append(_paragraph(" ".join(fact for fact in facts if fact)))
     n_warnings = len(context["warnings"])
-    parts.append(_paragraph(f"Corrected p: family-wise, maximum statistic over every ROI and voxel count of a direction, "
-                            f"alpha {alpha:g}. This run logged {n_warnings} warning{'s' if n_warnings != 1 else ''} "
-                            "(listed under Warnings)."))
+    scale = ("each cell standardised by the mean and SD of its own null first"
+             if context["study"].get("group", {}).get("fwe_method", "standardised") == "standardised"
+             else "each cell entered by its own null p-value, single-step min-p")
+    parts.append(_paragraph(f"Corrected p: family-wise, maximum statistic over the family named above ({scale}), "
+                            f"alpha {alpha:g}. This run logged {n_warnings} "
+                            f"warning{'s' if n_warnings != 1 else ''} (listed under Warnings)."))
     parts.append("<p class=\"caveat\">Research use only, not for clinical decisions. Above chance at the group level "
                  "means the mean accuracy over subjects exceeds chance; it does not say how many people show the effect "
                  "(that is what the prevalence lower bound addresses). See Cautions.</p></div>")

@@ -677,6 +677,14 @@ def test_group_tables_show_effect_size_family_corrected_prevalence_and_p_min_war
     assert text.index("Largest prevalence lower bound this design can reach: 0.37") < results_start
 
 
+def test_methods_say_what_the_family_is_and_how_to_run_the_design_self_check(built):
+    text = _text(built["html"])
+    assert "Family-wise correction (group.family = per_direction): the family is all ROIs and voxel counts of one " \
+           "direction (one family per direction)" in text
+    assert "make calibrate CONFIG=<your config>" in text and "results/calibration/<analysis>_calibration.tsv" in text
+    assert "maximum statistic over all ROIs and voxel counts of one direction (one family per direction)" in text  # cautions
+
+
 def test_family_text_names_each_configured_family():
     assert report_job.family_text(["direction within", "direction seen->heard"]).startswith("one family per direction")
     assert report_job.family_text(["all directions"]) == "one family: every ROI x voxel count x direction of the analysis"

@@ -306,7 +306,37 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
                          "page and figures. Job times and memory use are in results/provenance/ (one JSON record per job)."))
 
 
-def _cautions_section(alpha, dataset_source):
+_FAMILY_WORDS = {
+    "per_direction": "all ROIs and voxel counts of one direction (one family per direction)",
+    "all_directions": "all ROIs, voxel counts and directions of an analysis (one family per analysis)",
+    "all_analyses": "all ROIs, voxel counts and directions of every analysis (one family for the study)",
+}
+
+
+def _inference_text(study):
+    """Methods: what each family is and how to run the design self-check (the report never depends on it)."""
+    group = study.get("group", {})
+    family = group.get("family", "per_direction")
+    scale = ("standardised by the mean and SD of its own null" if group.get("fwe_method", "standardised") == "standardised"
+             else "replaced by its own null p-value (single-step min-p)")
+    return _paragraph(
+        f"Family-wise correction (group.family = {family}): the family is {_FAMILY_WORDS[family]}. Each cell (ROI x "
+        f"voxel count x direction) is first {scale}, so that the widest nulls do not dominate, then the maximum over "
+        "the family gives p_fwe (Nichols & Holmes 2002; Westfall & Young 1993). With per_direction, each direction "
+        "answers its own question and is corrected on its own; all_directions puts every direction of an analysis in "
+        "one family; all_analyses takes each analysis's maximum and applies Bonferroni over the analyses. The "
+        "family-wise corrected prevalence bound is the maximum over the same family of the minimum statistic "
+        "(Allefeld, Görgen & Haynes 2016). A voxel count at or above an ROI's size is reported once, as all, and "
+        "enters the family once.") + _paragraph(
+        "Design self-check: make calibrate CONFIG=<your config> runs this study's own analyses (its subjects' designs, "
+        "folds, voxel counts, classifier and selection) on noise patterns of the same shapes, many times, and writes "
+        "the false-positive rate of every test against alpha with binomial 99% bounds to "
+        "results/calibration/<analysis>_calibration.tsv (with a figure, .png, and a text summary, .txt). It is not "
+        "part of the default run and this page does not depend on it.")
+
+
+def _cautions_section(alpha, dataset_source, family="per_direction"):
+    family = _FAMILY_WORDS[family]
     items = [
         "Research use only. These results are not for clinical or diagnostic decisions about any person.",
         "A group test on accuracies (the t-test, the Wilcoxon test and the permutation test of the group mean) asks "
@@ -315,7 +345,7 @@ def _cautions_section(alpha, dataset_source):
         "is what prevalence inference addresses (Allefeld, Görgen & Haynes 2016, NeuroImage, from memory): the "
         "prevalence bound is the share of the population that, at least, shows the effect.",
         f"The voxel-count sweep tests many counts in many ROIs. The corrected p-value (family-wise, by the maximum "
-        f"statistic over all ROIs and voxel counts of one direction; Nichols & Holmes 2002) accounts for that; the "
+        f"statistic over {family}; Nichols & Holmes 2002) accounts for that; the "
         f"uncorrected p-values do not. Stars in the curves mark corrected p below {alpha:g}. Do not pick the best "
         f"count and report its uncorrected p.",
         "Voxel selection was done inside the training folds: voxels were scored and ranked on the training runs "
@@ -706,13 +736,15 @@ def _warnings_section(context):
 
 def _cautions_page_section(context):
     return ("cautions", "Cautions: how to read these results",
-            _cautions_section(context["alpha"], context["study"]["dataset"]["source"]), ())
+            _cautions_section(context["alpha"], context["study"]["dataset"]["source"],
+                              context["study"].get("group", {}).get("family", "per_direction")), ())
 
 
 def _methods_section(context):
     return ("study", "Study and methods", _study_section(
         context["study"], context["subjects"], context["runs"], context["trials"], context["repetition_times"],
-        context["voxel_size_mm"], context["config_file"], context["versions"], context["overrides"]), ())
+        context["voxel_size_mm"], context["config_file"], context["versions"], context["overrides"])
+        + _inference_text(context["study"]), ())
 
 
 def _provenance_page_section(context):

@@ -6,6 +6,7 @@ The data are the simulated raw + derivatives trees of ``tests/derivatives_suppor
 beside each check.
 """
 
+import json
 import logging
 import sys
 from pathlib import Path
@@ -58,7 +59,8 @@ def test_design_holds_exactly_the_selected_confounds_and_drops_the_initial_volum
     inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"], "confounds": run["confounds"],
               "mask": run["brain_mask"]}
     outputs = {name: str(tmp_path / f"out_{name}{suffix}") for name, suffix in
-               (("patterns", ".nii.gz"), ("table", ".tsv"), ("design", ".tsv"), ("design_png", ".png"), ("resvar", ".nii.gz"))}
+               (("patterns", ".nii.gz"), ("table", ".tsv"), ("design", ".tsv"), ("design_png", ".png"), ("resvar", ".nii.gz"),
+                ("facts", ".json"))}
     params = {"glm": GLM, "confounds": SELECTORS, "subject": run["subject"], "session": run["session"], "run_id": run["run_id"],
               "drop_initial_volumes": drop, "condition_column": "trial_type"}
     glm_job.run(inputs, outputs, params, logging.getLogger("test"))
@@ -77,6 +79,9 @@ def test_design_holds_exactly_the_selected_confounds_and_drops_the_initial_volum
     assert [name for name in written.columns if name in table.columns] == chosen  # exactly the selected confounds
     assert not any(name.startswith("unsteady_") or name.startswith("noise_comp_03") for name in written.columns)
     assert len(written) == n_kept  # the dropped volumes are gone
+    facts = json.loads(Path(outputs["facts"]).read_text())  # what the report's quality table shows for this run
+    assert facts["confounds"] == chosen and facts["n_dropped_initial_volumes"] == simulated.N_UNSTEADY
+    assert facts["n_scans_kept"] == n_kept
     np.testing.assert_allclose(written.to_numpy(), expected.matrix, rtol=1e-6, atol=1e-6)  # TSV keeps 7 significant digits
 
 

@@ -10,6 +10,7 @@ end to end on a tiny invented run written to tmp_path, read back with nibabel.
 """
 
 import dataclasses
+import json
 import logging
 from pathlib import Path
 
@@ -492,7 +493,7 @@ def _write_run(folder, rng, n_scans=80, shape=(6, 5, 4), conditions=CONDITIONS):
 
 def _outputs(folder):
     names = {"patterns": "patterns.nii.gz", "table": "patterns.tsv", "design": "design.tsv", "design_png": "design.png",
-             "resvar": "resvar.nii.gz"}
+             "resvar": "resvar.nii.gz", "facts": "glm.json"}
     return {key: str(folder / name) for key, name in names.items()}
 
 
@@ -533,6 +534,10 @@ def test_job_writes_the_contract_outputs(tmp_path):
     np.testing.assert_allclose(design.to_numpy(), expected.design.matrix, rtol=1e-6, atol=1e-7)
     image = matplotlib.image.imread(outputs["design_png"])
     assert image.shape[:2] == (900, 1200)  # 4 x 3 inches at 300 dpi
+    facts = json.loads(Path(outputs["facts"]).read_text())
+    n_scans = nib.load(inputs["bold"]).shape[3]
+    assert facts == {"subject": "01", "session": "n/a", "run_id": "run-01", "confounds": ["trans_x", "rot_z"],
+                     "n_dropped_initial_volumes": 0, "n_dropped_events_rows": 0, "n_scans_kept": n_scans}
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == sorted(Path(p).name for p in outputs.values())
 
 

@@ -35,6 +35,7 @@ from foldwise.config import validate
 from foldwise.errors import InputError
 from foldwise.data.fileio import save_nifti, write_json, write_tsv
 from foldwise.provenance.hashing import hash_object
+from foldwise.jobs import glm as glm_job
 from foldwise.jobs import report as report_job
 
 REPO = Path(__file__).resolve().parents[1]
@@ -166,10 +167,10 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
     rng = np.random.default_rng(seed)
     affine = _affine()
     inputs = {key: [] for key in ("designs", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
-                                  "summaries", "confusions", "group_tables", "provenance")}
+                                  "summaries", "confusions", "group_tables", "provenance", "glm_facts")}
     roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in study["analyses"]}
     # The plan's record of every input (foldwise.plan.report_input_index): the report reads fields from it.
-    index = {key: [] for key in ("designs", "means", "brain_masks", "roi_masks", "resvar", "confusions")}
+    index = {key: [] for key in ("designs", "means", "brain_masks", "roi_masks", "resvar", "confusions", "glm_facts")}
     for subject in subjects:
         masks = root / "masks" / f"sub-{subject}"
         mean, brain, rois = _subject_images(rng)
@@ -203,6 +204,12 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
             write_json(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json", {"RepetitionTime": TR_S})
             inputs["events"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv"))
             inputs["sidecars"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json"))
+            # what the GLM job records per run (foldwise.jobs.glm.run_facts), varied per run so the table is checkable
+            facts = glm_job.run_facts(subject, None, run_id, ["trans_x", "rot_z"] + [f"spike_{k:02d}" for k in range(run_index)],
+                                      run_index + int(subject), int(subject) % 2, N_SCANS - run_index - int(subject))
+            write_json(patterns / f"sub-{subject}_{run_id}_glm.json", facts)
+            inputs["glm_facts"].append(str(patterns / f"sub-{subject}_{run_id}_glm.json"))
+            index["glm_facts"].append({"path": inputs["glm_facts"][-1], "subject": subject, "run_id": run_id})
         for analysis in study["analyses"]:
             name = analysis["name"]
             frame = _summary(subject, analysis, roi_sizes[subject], rois, rng)
@@ -630,6 +637,21 @@ def test_study_facts_are_on_the_page(built):
         assert f"{name} {metadata.version(name)}" in text  # Source: importlib.metadata
     assert "byte-identical" in text and "results/provenance/" in text
     assert not re.search(r"\b20\d\d-\d\d-\d\d\b|\d\d:\d\d:\d\d", text)  # no date or clock time
+
+
+def test_glm_facts_table_shows_what_the_glm_job_recorded_per_run(built):
+    table = re.search(r"<table[^>]*id=\"glm-facts\".*?</table>", built["html"], flags=re.S).group(0)
+    rows = [[html_module.unescape(re.sub(r"<[^>]+>", "", cell)) for cell in re.findall(r"<td[^>]*>(.*?)</td>", row)]
+            for row in re.findall(r"<tr[^>]*>(.*?)</tr>", table, flags=re.S)]
+    rows = [row for row in rows if row]
+    expected = []
+    for path in built["inputs"]["glm_facts"]:  # the files the GLM job wrote, read back independently
+        facts = json.loads(Path(path).read_text())
+        names = facts["confounds"]
+        expected.append([f"sub-{facts['subject']}", facts["run_id"], f"{len(names)}: {', '.join(names)}",
+                         str(facts["n_dropped_initial_volumes"]), str(facts["n_dropped_events_rows"])])
+    assert rows == expected and len(rows) == len(SUBJECTS) * len(RUN_IDS)
+    assert "Confounds and dropped data per run" in _text(built["html"])
 
 
 def test_roi_counts_table_shows_every_subject_mean_and_minimum(built):

@@ -50,6 +50,7 @@ TEMPLATES = {
     "design_table": f"{_PATTERN_STEM}_design.tsv",
     "design_figure": f"{_PATTERN_STEM}_design.png",
     "residual_variance": f"{_PATTERN_STEM}_resvar.nii.gz",
+    "glm_facts": f"{_PATTERN_STEM}_glm.json",  # per run: confounds used, volumes and events rows dropped
     "roi_mask": "results/masks/sub-{subject}/sub-{subject}_roi-{roi}_mask.nii.gz",
     "roi_info": "results/masks/sub-{subject}/sub-{subject}_roi-{roi}.json",
     "roi_counts": "results/masks/sub-{subject}/sub-{subject}_roi_counts.tsv",

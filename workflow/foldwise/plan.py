@@ -142,7 +142,7 @@ STEPS = {
     "demo_dataset": Step("study", _demo_outputs),
     "brain_mask": Step("sub-{subject}", named_outputs(mask="brain_mask", mean="brain_mean", summary="brain_summary")),
     "glm": Step("sub-{subject}_{run_id}", named_outputs(patterns="patterns_image", table="patterns_table", design="design_table",
-                                                 design_png="design_figure", resvar="residual_variance")),
+                                                 design_png="design_figure", resvar="residual_variance", facts="glm_facts")),
     "roi_mask": Step("sub-{subject}_roi-{roi}", named_outputs(mask="roi_mask", info="roi_info")),
     "roi_counts": Step("sub-{subject}", named_outputs(table="roi_counts")),
     "decode": Step("{analysis}_sub-{subject}_roi-{roi}", named_outputs(scores="decode_scores", null="decode_null", rankings="decode_rankings",
@@ -344,6 +344,7 @@ def report_input_index(study):
         "roi_masks": [record("roi_mask", subject=s, roi=roi) for s in subjects for roi in study.rois],
         "roi_counts": [record("roi_counts", subject=s) for s in subjects],
         "resvar": [record("residual_variance", subject=subjects[0], run_id=first_runs[subjects[0]])],
+        "glm_facts": [record("glm_facts", subject=run["subject"], run_id=run["run_id"]) for run in study.runs],
         "summaries": [record("subject_summary", analysis=name, subject=s) for name in decoding for s in subjects],
         "confusions": [record("decode_confusion", analysis=name, subject=s, roi=roi)
                        for name, analysis in decoding.items() for s in subjects for roi in analysis.rois],

@@ -7,7 +7,7 @@ from matplotlib.figure import Figure
 from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, load_bold, read_confounds, read_events,
                                 read_tr_s, select_confound_columns)
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_tsv
+from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_json, write_tsv
 from foldwise.glm.estimate import estimate_patterns
 from foldwise import contract
 from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
@@ -192,6 +192,19 @@ def drop_initial(bold_2d, events, confounds, confound_names, n_drop, tr_s):
     return bold_2d, events, confounds, list(confound_names)
 
 
+def run_facts(subject, session, run_id, confound_names, n_dropped_volumes, n_dropped_events_rows, n_scans_kept):
+    """What the GLM of one run used and left out, for the report's quality table.
+
+    Examples
+    --------
+    >>> run_facts("01", None, "run-01", ["motion_x"], 2, 1, 98)["n_dropped_initial_volumes"]
+    2
+    """
+    return {"subject": str(subject), "session": "n/a" if session is None else str(session), "run_id": str(run_id),
+            "confounds": [str(name) for name in confound_names], "n_dropped_initial_volumes": int(n_dropped_volumes),
+            "n_dropped_events_rows": int(n_dropped_events_rows), "n_scans_kept": int(n_scans_kept)}
+
+
 def run(inputs, outputs, params, log):
     """Fit the GLM of one run inside the brain mask and write its patterns.
 
@@ -203,7 +216,8 @@ def run(inputs, outputs, params, log):
     outputs : dict
         ``patterns`` (4D float32 NIfTI, zeros outside the mask), ``table``
         (TSV, one row per volume), ``design`` (TSV), ``design_png``,
-        ``resvar`` (3D float32 NIfTI).
+        ``resvar`` (3D float32 NIfTI), ``facts`` (JSON: confounds used,
+        initial volumes and events rows dropped; see :func:`run_facts`).
     params : dict
         ``glm`` (the glm config), ``confounds`` (column names), ``subject``,
         ``session`` (None without sessions), ``run_id``.
@@ -253,5 +267,6 @@ def run(inputs, outputs, params, log):
     }, columns=list(TABLE_COLUMNS))
     write_tsv(outputs["table"], table)
     write_tsv(outputs["design"], pd.DataFrame(estimate.design.matrix, columns=list(estimate.design.names)))
+    write_json(outputs["facts"], run_facts(subject, session, run_id, confound_names, n_drop, n_unlabelled, bold_2d.shape[0]))
     title = f"sub-{subject} {run_id}: {glm_settings['pattern_mode']} design"
     save_figure(design_figure(estimate.design.matrix, design_labels(estimate.design), title), outputs["design_png"])

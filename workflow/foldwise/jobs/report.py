@@ -358,6 +358,41 @@ def _cautions_section(alpha, dataset_source, family="per_direction"):
     return "<div class=\"caution\"><ul>" + "".join(f"<li>{html.escape(item)}</li>" for item in items) + "</ul></div>"
 
 
+_GLM_FACT_KEYS = ("confounds", "n_dropped_initial_volumes", "n_dropped_events_rows")
+
+
+def _read_glm_facts(paths, fields_of):
+    """Per run, what the GLM job recorded (jobs/glm.run_facts): {(subject, run_id): facts}."""
+    facts = {}
+    for path in _as_list(paths):
+        fields = fields_of(path, "glm_facts")
+        record = _read_json(path, "GLM facts of a run")
+        missing = [key for key in _GLM_FACT_KEYS if not isinstance(record, dict) or key not in record]
+        if missing:
+            raise InputError(path, ", ".join(missing), "missing from the GLM facts of the run", _RERUN)
+        facts[(fields["subject"], fields["run_id"])] = record
+    return facts
+
+
+def _glm_facts_table(facts, subjects, runs):
+    """Subject x run: the confounds in the design, initial volumes dropped, events rows dropped (n/a or empty condition)."""
+    rows = []
+    for subject in subjects:
+        for run_id in runs[subject]:
+            record = facts.get((subject, run_id))
+            if record is None:
+                continue
+            names = record["confounds"]
+            confounds = f"{len(names)}: {_text_list(names, 8)}" if names else "none"
+            rows.append([f"sub-{subject}", run_id, confounds, int(record["n_dropped_initial_volumes"]),
+                         int(record["n_dropped_events_rows"])])
+    return html_page.html_table(["subject", "run", "confound columns in the design", "initial volumes dropped",
+                                 "events rows dropped"], rows, table_id="glm-facts", caption=(
+        "What the GLM of each run used: the confound columns that entered its design (after dropping columns that are "
+        "all zero once the initial volumes are cut), the initial volumes left out, and the events rows left out "
+        "because their condition was n/a or empty"))
+
+
 def _roi_count_table(counts, subjects, rois):
     rows = []
     for subject in subjects:
@@ -524,7 +559,8 @@ def run(inputs, outputs, params, log):
         ``designs`` (first run's design TSV per subject), ``events`` and
         ``sidecars`` (every run's), ``brain_masks``, ``means`` and
         ``roi_counts`` (per subject), ``roi_masks`` (per subject x ROI),
-        ``resvar`` (the first subject's first run), ``summaries`` (per
+        ``resvar`` (the first subject's first run), ``glm_facts`` (every
+        run's GLM facts JSON), ``summaries`` (per
         analysis x subject), ``confusions`` (per analysis x subject x ROI),
         ``group_tables`` (per analysis), ``provenance`` (every other job's
         record) and, for the demo, ``ground_truth``.
@@ -559,6 +595,7 @@ def run(inputs, outputs, params, log):
         fields = fields_of(path, "roi_masks")
         roi_mask_paths[(fields["subject"], fields["roi"])] = str(path)
     counts = _roi_counts(inputs.get("roi_counts"), subjects, roi_names)
+    glm_facts = _read_glm_facts(inputs.get("glm_facts"), fields_of)
     roi_mean_voxels = {roi: float(counts.loc[counts["roi"] == roi, "n_voxels"].mean()) for roi in roi_names}
     summaries = _read_summaries(inputs.get("summaries"), list(analyses), subjects)
     group_tables = _read_group_tables(inputs.get("group_tables"), list(analyses))
@@ -590,6 +627,7 @@ def run(inputs, outputs, params, log):
     warnings = _read_warnings(params.get("job_logs") or [])
     context = {"study": study, "subjects": subjects, "runs": runs, "trials": trials, "alpha": alpha, "counts": counts,
                "roi_names": roi_names, "analyses": analyses, "group_tables": group_tables, "truth": truth,
+               "glm_facts": glm_facts,
                "catalogue": catalogue, "blocks": blocks, "clusters": data["clusters"], "warnings": warnings,
                "n_draws": int(study.get("group", {}).get("n_draws", 0)) or None,
                "repetition_times": repetition_times, "voxel_size_mm": voxel_size_mm, "config_file": config_file,
@@ -712,11 +750,14 @@ def _quality_section(context):
                for kind in ("design", "masks", "resvar")}
     inner = ("<h3 id=\"qc-designs\">Design matrices (first run of each subject)</h3><div class=\"gallery\">"
              + figures["design"] + "</div>"
+             + "<h3 id=\"qc-glm-runs\">Confounds and dropped data per run</h3>"
+             + _glm_facts_table(context["glm_facts"], context["subjects"], context["runs"])
              + "<h3 id=\"qc-masks\">Brain and ROI masks</h3>" + figures["masks"]
              + "<h3 id=\"qc-roi-counts\">ROI voxel counts</h3>"
              + _roi_count_table(context["counts"], context["subjects"], context["roi_names"])
              + "<h3 id=\"qc-residual-variance\">GLM residual variance</h3>" + figures["resvar"])
-    entries = [("qc-designs", "Design matrices"), ("qc-masks", "Brain and ROI masks"), ("qc-roi-counts", "ROI voxel counts"),
+    entries = [("qc-designs", "Design matrices"), ("qc-glm-runs", "Confounds and dropped data per run"),
+               ("qc-masks", "Brain and ROI masks"), ("qc-roi-counts", "ROI voxel counts"),
                ("qc-residual-variance", "GLM residual variance")]
     return ("quality-checks", "Quality checks", inner, entries)
 

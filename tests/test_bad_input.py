@@ -38,6 +38,7 @@ from foldwise.data.fileio import check_output_folder, save_nifti, write_text_ato
 from foldwise.jobs import brain_mask as brain_mask_job
 from foldwise.jobs import decode as decode_job
 from foldwise.jobs import group as group_job
+from foldwise.jobs import report as report_job
 from foldwise.jobs import roi_mask as roi_mask_job
 from foldwise.provenance.memo import run_job
 from foldwise.plan import plan_study
@@ -973,6 +974,17 @@ def _patterns_off_the_mask_grid(folder):
                        f"{FOLDER}/sub-01_run-01_patterns.nii.gz: affine: the patterns' voxel centres lie more than 0.001 mm from the "
                        f"mask's ({FOLDER}/roi-ember_mask.nii.gz): another space or another grid. Fix: compute the patterns and the mask "
                        "on the subject's one grid")
+
+
+# -- the report (foldwise.jobs.report) -----------------------------------------------------------
+@case("a run's GLM facts without a field the report shows", "jobs.report (reading every run's GLM facts, before drawing)")
+def _glm_facts_without_a_field(folder):
+    path = str(folder / "sub-01_run-01_glm.json")
+    write_text_atomic(path, json.dumps({"subject": "01", "run_id": "run-01", "confounds": [], "n_dropped_initial_volumes": 0}))
+    fields_of = report_job._field_reader({"glm_facts": [{"path": path, "subject": "01", "run_id": "run-01"}]})
+    return Expectation(lambda: report_job._read_glm_facts([path], fields_of),
+                       f"{FOLDER}/sub-01_run-01_glm.json: n_dropped_events_rows: missing from the GLM facts of the run. Fix: rerun the "
+                       "workflow (snakemake rebuilds what is missing or stale)")
 
 
 # -- the tests -----------------------------------------------------------------------------------

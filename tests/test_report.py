@@ -586,7 +586,7 @@ def test_summary_box_states_what_survives_in_plain_words(built):
     # ember survives at 20 and all voxels (p_fwe 0.01 < alpha), glow nowhere (p_fwe 0.6), in every direction.
     assert "ROI ember, within: above chance after family-wise correction at 2 of 3 voxel counts (20, all)" in text
     assert "ROI glow, within: no voxel count survives family-wise correction (smallest corrected p 0.6" in text
-    assert "ROI ember, seen<->heard: above chance" in text and "prevalence lower bound 0.20" in text
+    assert "ROI ember, seen<->heard: above chance" in text and "prevalence lower bound 0.20 (family-wise corrected 0.10)" in text
     assert "Research use only" in text and "how many people" in text
 
 

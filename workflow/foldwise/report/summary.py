@@ -51,8 +51,9 @@ def answer_sentences(table, alpha, n_draws=None, directions=None, rois=None):
     ----------
     table : pandas.DataFrame
         The analysis's group table (``roi``, ``direction``, ``n_voxels``,
-        ``chance``, ``mean``, ``p_fwe``, ``prevalence_gamma0``; an
-        ``effect_size`` column is used when present).
+        ``chance``, ``mean``, ``p_fwe``, ``prevalence_gamma0``; the
+        ``effect_size`` and ``prevalence_gamma0_fwe`` columns are used when
+        present).
     alpha : float
         Family-wise level.
     n_draws : int, optional
@@ -107,7 +108,9 @@ def answer_sentences(table, alpha, n_draws=None, directions=None, rois=None):
             if "effect_size" in rows.columns and math.isfinite(float(pd.to_numeric(row["effect_size"], errors="coerce"))):
                 text += f", effect size {float(row['effect_size']):.2f}"
             gamma = pd.to_numeric(pd.Series([row.get("prevalence_gamma0")]), errors="coerce").iloc[0]
-            text += (f", prevalence lower bound {gamma:.2f}." if math.isfinite(gamma)
+            gamma_fwe = pd.to_numeric(pd.Series([row.get("prevalence_gamma0_fwe")]), errors="coerce").iloc[0]
+            corrected = f" (family-wise corrected {gamma_fwe:.2f})" if math.isfinite(gamma_fwe) else ""
+            text += (f", prevalence lower bound {gamma:.2f}{corrected}." if math.isfinite(gamma)
                      else ", prevalence: the global null is not rejected.")
             lines.append((roi, direction, True, text))
     return lines

@@ -158,7 +158,6 @@ STEPS = {
     "report": Step("study", _report_outputs),
     "manifest": Step("study", named_outputs(manifest="manifest")),
 }
-STEPS.update({step: Step(identity, outputs) for step, (identity, outputs) in geometry_wiring.STEP_OUTPUTS.items()})
 
 
 def step_outputs(study, step):
@@ -190,14 +189,13 @@ def planned_jobs(study):
             jobs += [("decode_gather", {"analysis": name, "subject": subject}) for subject in subjects]
         if "group" in steps:
             jobs += [("group", {"analysis": name})]
-    jobs += geometry_wiring.planned_jobs(study)  # geometry analyses: their own steps (foldwise.geometry.wiring)
+    for source in JOB_SOURCES:  # steps registered by an analysis or ROI kind (register_steps): geometry analyses, localizer ROIs
+        jobs += source(study)
     for name in study.searchlight_analyses:
         jobs += [("searchlight_block", {"analysis": name, "subject": subject, "block": str(block)})
                  for subject in subjects for block in study.searchlight_blocks]
         jobs += [("searchlight_merge", {"analysis": name, "subject": subject}) for subject in subjects]
         jobs += [("searchlight_group", {"analysis": name})]
-    for source in JOB_SOURCES:  # steps registered by an analysis or ROI kind (register_steps)
-        jobs += source(study)
     jobs += [("report", {})]
     return jobs
 
@@ -388,10 +386,9 @@ JOB_INPUTS = {
     "report": _report_inputs,
     "manifest": lambda study, w: {"records": all_provenance_records(study)},
 }
-JOB_INPUTS.update(geometry_wiring.JOB_INPUTS)
 
 
-JOB_SOURCES = []  # functions study -> [(step, wildcards)] of registered steps, planned before the report
+JOB_SOURCES = []  # functions study -> [(step, wildcards)] of registered steps, planned after the decoding steps, before the searchlight
 
 
 def register_steps(steps, inputs, settings, jobs):

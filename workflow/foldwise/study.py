@@ -464,7 +464,10 @@ STEP_SETTINGS = {
                                            "group": {key: study.config["group"][key] for key in ("n_draws", "alpha")}},
     "manifest": lambda study, w: {},
 }
-STEP_SETTINGS.update(geometry_wiring.STEP_SETTINGS)
+
+# The geometry analysis kind's own steps (foldwise.geometry.wiring), plugged in at one place.
+study_plan.register_steps({step: study_plan.Step(identity, outputs) for step, (identity, outputs) in geometry_wiring.STEP_OUTPUTS.items()},
+                          geometry_wiring.JOB_INPUTS, geometry_wiring.STEP_SETTINGS, geometry_wiring.planned_jobs)
 
 
 # The localizer ROI kind's own step: its GLM on the localizer runs stays out of the roi_mask step's code key.

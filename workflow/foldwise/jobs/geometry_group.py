@@ -72,7 +72,7 @@ def run(inputs, outputs, settings, log):
     models = [model["name"] for model in geometry["models"]]
     if len(subjects) < 2:
         raise InputError("the study config", "dataset.subjects", "group statistics need two or more subjects", "add subjects")
-    counts = [str(count) for count in geometry.get("voxel_counts") or ["all"]]
+    counts = [contract.count_label(count) for count in geometry.get("voxel_counts") or ["all"]]
     groups = [(roi, count) for roi in rois for count in counts]  # the cells of every table: ROI x voxel count
     rows, columns = condition_pairs(len(conditions))
     pair_keys = [f"{conditions[a]}|{conditions[b]}" for a, b in zip(rows, columns)]

@@ -110,3 +110,14 @@ def print_group_summaries():
     for path in plan.geometry_wiring.group_summary_paths(MODEL):  # geometry analyses
         if os.path.isfile(path):
             print(fit_lines(open(path, encoding="utf-8").read()))
+
+
+def report_figure(entry, path):
+    """Every figure's SVG goes into Snakemake's --report with its caption and category; every file is an output."""
+    if not path.endswith(".svg"):
+        return path
+    labels = {"figure": entry["stem"]}
+    labels.update({key: entry[field] for key, field in (("analysis", "analysis"), ("ROI", "roi"), ("subject", "subject"))
+                   if entry[field]})
+    return report(path, caption=os.path.join(workflow.basedir, entry["caption"]), category=entry["category"],
+                  subcategory=entry["analysis"] or (f"sub-{entry['subject']}" if entry["subject"] else "study"), labels=labels)

@@ -378,6 +378,9 @@ def test_sessions_example_plans_localizer_and_cross_task_jobs(dataset):
     decode = study_plan.job_settings(study, "decode", {"analysis": "lit_from_shape", "subject": "01", "roi": "ember"})
     assert decode["pattern_tasks"] == {"lanterns": None, "beacon": "beacon"}
     assert "pattern_tasks" not in study_plan.job_settings(study, "decode", {"analysis": "shape", "subject": "01", "roi": "ember"})
+    # the design self-check reads the same tasks as decoding
+    assert study_plan.job_settings(study, "calibrate", {"analysis": "lit_from_shape"})["pattern_tasks"] == decode["pattern_tasks"]
+    assert "pattern_tasks" not in study_plan.job_settings(study, "calibrate", {"analysis": "shape"})
 
 
 def test_a_task_without_partner_runs_is_refused_before_any_job(tmp_path):

@@ -13,9 +13,9 @@ import pytest
 
 from foldwise.contract import read_brain_mask
 from foldwise.data.fileio import save_nifti, write_tsv
-from foldwise.data.patterns import pattern_run_labels, read_pattern_set, read_pattern_tables
+from foldwise.data.patterns import analysis_task_rows, pattern_run_labels, read_pattern_set, read_pattern_tables
 from foldwise.errors import InputError
-from foldwise.jobs import searchlight_block
+from foldwise.jobs import calibrate, searchlight_block
 
 AFFINE = np.diag([3.0, 3.0, 3.0, 1.0])
 GRID = (6, 5, 4)
@@ -97,3 +97,34 @@ def test_the_reader_refuses_a_repeated_run_another_subject_and_another_grid(tmp_
         read_pattern_set(images, tables, "01", mask[:, :, :3], affine, mask_path)
     with pytest.raises(InputError, match="2 pattern images but 1 tables"):
         read_pattern_set(images, tables[:1], "01", mask, affine, mask_path)
+
+
+def test_another_task_reusing_a_condition_name_stays_out_of_the_searchlight_and_the_self_check(tmp_path):
+    """Rows used to be picked by condition alone: a second task's runs with the same condition names were mixed in."""
+    main_runs = [("n/a", "run-1"), ("n/a", "run-2")]
+    images, tables, mask_path = _write_runs(tmp_path, main_runs + [("n/a", "task-beacon_run-1"), ("n/a", "task-beacon_run-2")])
+    analysis = {"name": "shape", "kind": "within", "classes": {"round": ["seen_round"], "square": ["seen_square"]},
+                "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "svm_c": 1.0, "demean_patterns": False}
+    settings = {"radius_mm": 3.0, "classifier": "correlation_centroid", "n_blocks": 1, "n_permutations": 3}
+    scores = {}
+    for label, count in (("both_tasks", 4), ("main_only", 2)):
+        outputs = {"scores": str(tmp_path / f"{label}_scores.npy"), "null": str(tmp_path / f"{label}_null.npy")}
+        searchlight_block.run({"patterns": images[:count], "tables": tables[:count], "mask": mask_path}, outputs,
+                              {"searchlight": settings, "analysis": analysis, "subject": "01", "block": 0, "seed": 3},
+                              logging.getLogger("test"))
+        scores[label] = (np.load(outputs["scores"]), np.load(outputs["null"]))
+    # the beacon runs change nothing: same scores and null as reading the main task's runs alone
+    np.testing.assert_array_equal(scores["both_tasks"][0], scores["main_only"][0])
+    np.testing.assert_array_equal(scores["both_tasks"][1], scores["main_only"][1])
+    design, _, _ = calibrate.subject_design(analysis, tables, {"ember": 10}, "01")
+    assert sorted(set(design.runs.tolist())) == ["run-1", "run-2"]
+    beacon, _, _ = calibrate.subject_design(analysis, tables, {"ember": 10}, "01", {"within": "beacon"})
+    assert sorted(set(beacon.runs.tolist())) == ["task-beacon_run-1", "task-beacon_run-2"]
+
+
+def test_a_cross_analysis_takes_each_set_from_its_own_task():
+    table = pd.DataFrame({"condition": ["seen_round", "heard_round", "seen_round", "heard_round"],
+                          "task": [None, None, "beacon", "beacon"]})
+    analysis = {"kind": "cross", "sets": {"seen": {"round": "seen_round"}, "heard": {"round": "heard_round"}}}
+    assert analysis_task_rows(table, analysis).tolist() == [True, True, False, False]
+    assert analysis_task_rows(table, analysis, {"seen": None, "heard": "beacon"}).tolist() == [True, False, False, True]

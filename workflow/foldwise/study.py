@@ -436,6 +436,8 @@ def _group_settings(study, wildcards):
 def _calibrate_settings(study, wildcards):
     settings = _group_settings(study, wildcards)
     settings["calibrate"] = study.config["calibrate"]
+    if study.pattern_tasks(wildcards["analysis"]):  # as decode: the task of each part, only when not the main task
+        settings["pattern_tasks"] = study.pattern_tasks(wildcards["analysis"])
     return settings
 
 

@@ -29,7 +29,8 @@ from foldwise.decoding.folds import task_of_run
 from foldwise.errors import InputError
 from foldwise.masks.build import same_grid
 
-__all__ = ["PatternSet", "pattern_run_labels", "plain_subject", "files_label", "read_pattern_tables", "read_pattern_set"]
+__all__ = ["PatternSet", "pattern_run_labels", "plain_subject", "files_label", "read_pattern_tables", "read_pattern_set",
+           "analysis_task_rows"]
 
 
 @dataclass(frozen=True)
@@ -87,6 +88,48 @@ def pattern_run_labels(table):
         session_part = str(session) if str(session).startswith("ses-") else f"ses-{session}"
         labels.append(run if run.startswith(f"{session_part}_") else f"{session_part}_{run}")
     return labels
+
+
+def analysis_task_rows(table, analysis, pattern_tasks=None):
+    """Which rows of a pattern set come from the task an analysis reads for their condition.
+
+    Two tasks may use one condition name; the condition alone does not say
+    which task's runs an analysis decodes, the row's ``task`` does. Decoding,
+    the searchlight and the design self-check all narrow a subject's rows
+    here, before they pick rows by condition.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        A pattern set's table (``condition`` and ``task`` columns, as
+        :func:`read_pattern_tables` returns it).
+    analysis : dict
+        An ``analyses`` entry: ``kind``, and ``sets`` (set -> class -> condition) for ``cross``.
+    pattern_tasks : dict, optional
+        ``{"within": task}`` or ``{set name: task}`` (the study's
+        ``pattern_tasks`` of the analysis); ``None`` is the main task, and
+        so is every part when ``pattern_tasks`` is omitted.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_rows,)
+        True where the row's task is the task of its condition's part of the
+        analysis (for a condition outside a cross analysis's sets: the main task).
+
+    >>> import pandas as pd
+    >>> table = pd.DataFrame({"condition": ["seen", "seen", "heard"], "task": [None, "beacon", None]})
+    >>> analysis_task_rows(table, {"kind": "within"}).tolist()
+    [True, False, True]
+    >>> analysis_task_rows(table, {"kind": "within"}, {"within": "beacon"}).tolist()
+    [False, True, False]
+    """
+    tasks = pattern_tasks or {}
+    part_of = {}
+    if analysis["kind"] == "cross":
+        part_of = {str(condition): set_name for set_name, classes in analysis["sets"].items() for condition in classes.values()}
+    wanted = [tasks.get(part_of.get(condition, "within")) for condition in table["condition"].astype(str)]
+    have = [None if pd.isna(task) else str(task) for task in table["task"]]
+    return np.array([row_task == want for row_task, want in zip(have, wanted)], dtype=bool)
 
 
 def _as_list(paths):

@@ -23,8 +23,8 @@ import pandas as pd
 
 from foldwise.contract import read_table
 from foldwise.data.fileio import save_figure, write_text_atomic, write_tsv
-from foldwise.data.patterns import files_label, plain_subject, read_pattern_tables
-from foldwise.decoding.folds import make_folds
+from foldwise.data.patterns import analysis_task_rows, files_label, plain_subject, read_pattern_tables
+from foldwise.decoding.folds import make_folds, pair_runs_across_tasks
 from foldwise.errors import InputError
 from foldwise.jobs.decode import analysis_labels
 from foldwise.provenance.hashing import seed_from
@@ -35,7 +35,7 @@ __all__ = ["run", "subject_design", "ALPHAS"]
 ALPHAS = (0.05, 0.01)
 
 
-def subject_design(analysis, table_paths, roi_sizes, subject):
+def subject_design(analysis, table_paths, roi_sizes, subject, pattern_tasks=None):
     """One subject's :class:`foldwise.stats.calibration.SubjectDesign` from its pattern tables.
 
     Parameters
@@ -46,11 +46,17 @@ def subject_design(analysis, table_paths, roi_sizes, subject):
         The subject's per-run pattern tables.
     roi_sizes : dict of str to int
     subject : str
+    pattern_tasks : dict, optional
+        The task of each part of the analysis (the study's ``pattern_tasks``); omitted: the main task.
     """
     table = read_pattern_tables(table_paths, subject)  # the one reader of a subject's pattern set, tables only
+    table = table[analysis_task_rows(table, analysis, pattern_tasks)].reset_index(drop=True)  # the analysis's task(s) only
     keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, files_label(table_paths))
     runs = table["run"].to_numpy()[keep]
-    folds = make_folds(runs, analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2))
+    scheme = analysis["folds"].get("scheme", "leave_one_run_out")
+    if pattern_tasks and set_index is not None and len(set(pattern_tasks.values())) == 2:
+        runs = pair_runs_across_tasks(runs, set_index, set_names, scheme)  # as decoding does: run k of each task is one fold unit
+    folds = make_folds(runs, scheme, analysis["folds"].get("n_groups", 2))
     return calibration.SubjectDesign(labels=labels, runs=runs, folds=folds, roi_sizes=roi_sizes, set_index=set_index), class_names, set_names
 
 
@@ -111,7 +117,8 @@ def run(inputs, outputs, params, log):
         ``table`` (TSV), ``figure`` (PNG), ``summary`` (text).
     params : dict
         ``analysis`` (entry with ``rois``), ``subjects``, ``group`` (the study's group settings), ``calibrate``
-        (``n_studies``, ``n_draws``, ``classifier``), ``seed``, and ``n_analyses`` with family ``all_analyses``.
+        (``n_studies``, ``n_draws``, ``classifier``), ``seed``, ``n_analyses`` with family ``all_analyses``, and
+        ``pattern_tasks`` for an analysis of a task other than the main one.
     log : logging.Logger
     """
     analysis, subjects, group, settings = params["analysis"], [str(s) for s in params["subjects"]], params["group"], params["calibrate"]
@@ -125,7 +132,7 @@ def run(inputs, outputs, params, log):
         own = [path for path in table_paths if f"/sub-{plain_subject(subject)}/" in f"/{path}"]
         if not own:
             raise InputError(None, "tables", f"no pattern table of subject {subject} among the inputs", "pass every subject's tables")
-        design, class_names, set_names = subject_design(analysis, own, sizes[plain_subject(subject)], subject)
+        design, class_names, set_names = subject_design(analysis, own, sizes[plain_subject(subject)], subject, params.get("pattern_tasks"))
         designs.append(design)
     classifier = analysis["classifier"] if settings["classifier"] == "same" else settings["classifier"]
     options = {"classifier": classifier, "selection": analysis["selection"], "demean_patterns": analysis["demean_patterns"],

@@ -21,7 +21,7 @@ from foldwise.decoding.curves import decode_cross, decode_curve, resolve_counts
 from foldwise.decoding.permutations import count_as_float, subject_p
 from foldwise.errors import InputError
 from foldwise.data.fileio import write_tsv
-from foldwise.data.patterns import files_label, read_pattern_set
+from foldwise.data.patterns import analysis_task_rows, files_label, read_pattern_set
 from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks
 from foldwise.provenance.hashing import seed_from
 
@@ -123,36 +123,6 @@ def analysis_labels(analysis, table, subject, tables_label):
     return keep, labels, set_index, class_names, set_names
 
 
-def keep_task_patterns(keep, labels, set_index, set_names, row_tasks, pattern_tasks):
-    """Keep only the patterns whose run belongs to the task of their part of the analysis.
-
-    Parameters
-    ----------
-    keep : ndarray of bool, shape (n_rows,)
-        From :func:`analysis_labels`.
-    labels, set_index : ndarray
-        Of the kept rows (``set_index`` None for a within analysis).
-    set_names : list of str or None
-    row_tasks : sequence, shape (n_rows,)
-        Every row's task (the pattern set's ``task`` column: ``None`` for the main task).
-    pattern_tasks : dict
-        ``{"within": task}`` or ``{set name: task}``; ``None`` is the main task.
-
-    Returns
-    -------
-    keep, labels, set_index
-        Narrowed to the rows of the right task.
-    """
-    rows = np.flatnonzero(keep)
-    row_tasks = [row_tasks[row] for row in rows]
-    wanted = [pattern_tasks["within"] if set_index is None else pattern_tasks[set_names[number]]
-              for number in (set_index if set_index is not None else np.zeros(rows.size, dtype=np.int64))]
-    right = np.array([have == want for have, want in zip(row_tasks, wanted)], dtype=bool)
-    keep = keep.copy()
-    keep[rows[~right]] = False
-    return keep, labels[right], None if set_index is None else set_index[right]
-
-
 def _check_sets_in_runs(set_index, runs, set_names, subject, tables_label):
     for set_number, set_name in enumerate(set_names):
         missing = sorted(set(runs.tolist()) - set(runs[set_index == set_number].tolist()))
@@ -251,11 +221,11 @@ def run(inputs, outputs, params, log):
     tables_label = files_label(table_paths)
     inside, mask_affine = read_roi_mask(inputs["mask"])
     pattern_set = read_pattern_set(inputs["patterns"], table_paths, subject, inside, mask_affine, inputs["mask"])
-    patterns, table, coordinates = pattern_set.patterns, pattern_set.table, pattern_set.coordinates
+    pattern_tasks = params.get("pattern_tasks")  # an analysis of another task, or sets from two tasks (absent: the main task)
+    # another task's runs may reuse a condition name: keep the analysis's task(s) before picking by condition
+    of_task = analysis_task_rows(pattern_set.table, analysis, pattern_tasks)
+    patterns, table, coordinates = pattern_set.patterns[of_task], pattern_set.table[of_task].reset_index(drop=True), pattern_set.coordinates
     keep, labels, set_index, class_names, set_names = analysis_labels(analysis, table, subject, tables_label)
-    pattern_tasks = params.get("pattern_tasks")  # an analysis of another task, or sets from two tasks
-    if pattern_tasks:
-        keep, labels, set_index = keep_task_patterns(keep, labels, set_index, set_names, table["task"].tolist(), pattern_tasks)
     patterns, runs = patterns[keep], table["run"].to_numpy()[keep]
     scheme, n_groups = analysis["folds"].get("scheme", "leave_one_run_out"), analysis["folds"].get("n_groups", 2)
     if pattern_tasks and set_index is not None and len(set(pattern_tasks.values())) == 2:

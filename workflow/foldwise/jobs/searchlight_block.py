@@ -24,7 +24,7 @@ import numpy as np
 
 from foldwise.errors import InputError
 from foldwise.data.fileio import save_npy
-from foldwise.data.patterns import files_label, read_pattern_set  # the one reader of a subject's pattern set
+from foldwise.data.patterns import analysis_task_rows, files_label, read_pattern_set  # the one reader of a subject's pattern set
 from foldwise.provenance.hashing import seed_from
 from foldwise.contract import read_brain_mask  # the one brain-mask reader
 from foldwise.searchlight.engine import SEARCHLIGHT_CLASSIFIERS, block_centres, sample_design, searchlight_scores, sphere_neighbourhoods
@@ -43,7 +43,9 @@ def run(inputs, outputs, params, log):
         raise InputError("config", "searchlight.n_permutations", f"expected an integer >= 0, got {n_permutations!r}", "set it to e.g. 100")
     mask, affine = read_brain_mask(inputs["mask"])
     pattern_set = read_pattern_set(inputs["patterns"], inputs["tables"], subject, mask, affine, inputs["mask"])
-    patterns, table = pattern_set.patterns, pattern_set.table
+    # the searchlight maps the main task only (the study refuses other tasks): another task may reuse a condition name
+    of_task = analysis_task_rows(pattern_set.table, analysis)
+    patterns, table = pattern_set.patterns[of_task], pattern_set.table[of_task].reset_index(drop=True)
     design = sample_design(table["condition"].to_numpy(), table["run"].to_numpy(), analysis, file=files_label(inputs["tables"]))
     if analysis.get("demean_patterns"):
         log.warning("analysis %s: demean_patterns is ignored by the searchlight (it would demean per sphere)", analysis["name"])

@@ -32,7 +32,7 @@ from foldwise.provenance.memo import display_path
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
 from foldwise.provenance.memo import VERSIONED_PACKAGES, package_versions  # noqa: E402 (one list of versioned packages)
-from foldwise.contract import GROUP_COLUMNS  # noqa: E402 (the group table's columns, defined once)
+from foldwise.contract import GROUP_COLUMNS, parse_count  # noqa: E402 (the group table's columns, defined once)
 SUMMARY_COLUMNS = ("subject", "analysis", "roi", "direction", "n_voxels", "n_used", "n_folds", "accuracy",
                    "balanced_accuracy", "chance")
 CONFUSION_COLUMNS = ("direction", "n_voxels", "true_class", "predicted_class", "count")
@@ -924,7 +924,7 @@ def _curve_specification(entry, data, log):
                f"chance {chance} (dashed). Stars along the top: family-wise corrected p < {alpha:g}. 'all' (the whole ROI, "
                f"{roi_mean:.1f} voxels on average) comes last, after the dotted line. Open circles: the ROI held fewer "
                "voxels than requested for at least one subject.")
-    dropped = sorted({count for panel in panels for count in panel["dropped"]}, key=int)
+    dropped = sorted({count for panel in panels for count in panel["dropped"]}, key=parse_count)
     if dropped:
         caption += (f" Not drawn: {', '.join(dropped)} voxels, larger than every subject's ROI, so identical to 'all'.")
     if len(panels) > 1:

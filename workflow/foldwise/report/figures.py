@@ -21,6 +21,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import NullLocator
 
+from foldwise.contract import count_label, parse_count
 from foldwise.errors import InputError
 
 __all__ = [
@@ -277,21 +278,20 @@ def voxel_count_positions(counts, roi_mean_voxels):
                          "check the ROI voxel-count tables")
     numbers = {}
     for count in counts:
-        text = str(count)
-        if text == "all":
-            continue
         try:
-            value = int(text)
+            value = parse_count(count)
         except ValueError:
-            raise InputError(None, "n_voxels", f"voxel count {text!r} is neither a whole number nor 'all'",
+            raise InputError(None, "n_voxels", f"voxel count {str(count)!r} is neither a whole number nor 'all'",
                              "rerun the decoding and group stages") from None
+        if value == "all":
+            continue
         if value < 1:
             raise InputError(None, "n_voxels", f"voxel count {value} is below 1", "rerun the decoding and group stages")
-        numbers[text] = float(value)
+        numbers[count_label(value)] = float(value)
     all_position = max(float(roi_mean_voxels), 1.5 * max(numbers.values(), default=0.0))
     positions, labels = [], []
     for count in counts:
-        text = str(count)
+        text = count_label(parse_count(count))
         if text == "all":
             positions.append(all_position)
             labels.append(f"all ({int(round(roi_mean_voxels))})")
@@ -359,7 +359,7 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
         if count not in position:
             continue
         scores[subject_index[str(row.subject)], position[count]] = float(row.balanced_accuracy)
-        if count != "all" and int(row.n_used) < int(count):
+        if count != "all" and int(row.n_used) < parse_count(count):
             capped[position[count]] = True
     p_fwe = column("p_fwe")
     return {
@@ -396,10 +396,10 @@ def choose_confusion_count(configured, available, roi_mean_voxels):
     >>> choose_confusion_count("all", ["10", "all"], 140.0)
     ('all', True)
     """
-    available = [str(count) for count in available]
+    available = [count_label(parse_count(count)) for count in available]
     if not available:
         raise InputError(None, "n_voxels", "no voxel count has confusion matrices", "rerun the decoding stage")
-    wanted = str(configured)
+    wanted = count_label(parse_count(configured))
     if wanted in available:
         return wanted, True
     positions, _ = voxel_count_positions(available, roi_mean_voxels)

@@ -10,6 +10,7 @@ import math
 import numpy as np
 import pandas as pd
 
+from foldwise.contract import count_label, parse_count
 from foldwise.report.page import format_number, format_p
 
 __all__ = ["count_order", "answer_sentences", "survives"]
@@ -35,8 +36,8 @@ def count_order(counts):
     >>> count_order(["all", "100", "20"])
     ['20', '100', 'all']
     """
-    counts = [str(count) for count in dict.fromkeys(str(count) for count in counts)]
-    numbers = sorted((count for count in counts if count != "all"), key=int)
+    counts = list(dict.fromkeys(count_label(parse_count(count)) for count in counts))  # one text per count (contract)
+    numbers = sorted((count for count in counts if count != "all"), key=parse_count)
     return numbers + (["all"] if "all" in counts else [])
 
 

@@ -4,9 +4,9 @@ import io
 
 import numpy as np
 
-from foldwise.contract import GRID_TOLERANCE_MM, read_brain_mask
+from foldwise.contract import GRID_TOLERANCE_MM, read_brain_mask, read_roi_mask
 from foldwise.data.bids import load_bold, read_events, read_tr_s
-from foldwise.data.fileio import load_nifti, write_bytes_atomic, write_json
+from foldwise.data.fileio import write_bytes_atomic, write_json
 from foldwise.errors import InputError
 from foldwise.geometry.residuals import glm_residuals
 from foldwise.glm.estimate import estimate_patterns
@@ -27,11 +27,10 @@ def _roi_columns(brain, affine, roi_paths, roi_names):
     """Union of the ROI masks (Fortran-order flat voxel indices, as the GLM job uses) and each ROI's columns in it."""
     masks = []
     for path in roi_paths:
-        image = load_nifti(path, what="ROI mask")
-        data = np.asarray(image.dataobj)
-        if not same_grid(data.shape[:3], image.affine, brain.shape, affine, GRID_TOLERANCE_MM):
+        inside, roi_affine = read_roi_mask(path)  # the one reader: 3-D, 0/1, not empty
+        if not same_grid(inside.shape, roi_affine, brain.shape, affine, GRID_TOLERANCE_MM):
             raise InputError(path, "affine", "the ROI mask's grid differs from the brain mask's", "rebuild the ROI masks of this subject")
-        masks.append(data.reshape(brain.shape) > 0)
+        masks.append(inside)
     union = np.logical_or.reduce(masks) & brain
     voxels = np.flatnonzero(union.ravel(order="F"))
     position = {voxel: column for column, voxel in enumerate(voxels)}

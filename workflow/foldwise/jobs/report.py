@@ -299,8 +299,8 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
     trial_rows = [(row.condition, row.min_per_run if row.min_per_run == row.max_per_run
                    else f"{row.min_per_run} to {row.max_per_run}", row.runs_with_trials)
                   for row in trials.itertuples(index=False)]
-    return (page.html_table(("item", "value"), rows, caption="The study at a glance")
-            + page.html_table(("condition", "trials per run", "runs with trials"), trial_rows,
+    return (html_page.html_table(("item", "value"), rows, caption="The study at a glance")
+            + html_page.html_table(("condition", "trials per run", "runs with trials"), trial_rows,
                               caption=f"Trials per condition per run (over all {sum(len(r) for r in runs.values())} runs)")
             + _paragraph("This page holds no clock time: the same inputs, config and environment give a byte-identical "
                          "page and figures. Job times and memory use are in results/provenance/ (one JSON record per job)."))
@@ -401,7 +401,7 @@ def _roi_count_table(counts, subjects, rois):
     means = [counts.loc[counts["roi"] == roi, "n_voxels"].mean() for roi in rois]
     rows.append(["mean"] + [f"{value:.1f}" for value in means])
     rows.append(["minimum required"] + [int(counts.loc[counts["roi"] == roi, "min_voxels"].max()) for roi in rois])
-    return page.html_table(["subject"] + [f"ROI {roi} (voxels)" for roi in rois], rows,
+    return html_page.html_table(["subject"] + [f"ROI {roi} (voxels)" for roi in rois], rows,
                            caption="ROI voxel counts per subject (inside the brain mask), with the configured minimum")
 
 
@@ -478,18 +478,18 @@ def _group_table(table, alpha, n_draws=None):
     rows, classes = [], []
     for row in table.itertuples(index=False):
         survives = math.isfinite(float(row.p_fwe)) and float(row.p_fwe) < alpha
-        interval = (f"[{page.format_number(row.ci_low)},\u00a0{page.format_number(row.ci_high)}]"
+        interval = (f"[{html_page.format_number(row.ci_low)},\u00a0{html_page.format_number(row.ci_high)}]"
                     if math.isfinite(float(row.ci_low)) else "n/a")
         cells = {"roi": row.roi, "direction": page.direction_label(str(row.direction)), "n_voxels": row.n_voxels,
-                 "n_subjects": int(row.n_subjects), "chance": page.format_number(row.chance),
-                 "mean": page.format_number(row.mean), "ci": interval, "t": page.format_number(row.t, 2),
-                 "p_t": page.format_p(row.p_t), "p_wilcoxon": page.format_p(row.p_wilcoxon),
-                 "p_perm": page.format_p(row.p_perm), "p_fwe": html_page.format_p(row.p_fwe, n_draws),
-                 "survives": "yes" if survives else "no", "prevalence_p_global": page.format_p(row.prevalence_p_global),
-                 "prevalence_gamma0": page.format_number(row.prevalence_gamma0, 2),
-                 "prevalence_gamma0_fwe": page.format_number(row.prevalence_gamma0_fwe, 2),
-                 "prevalence_p_majority": page.format_p(row.prevalence_p_majority),
-                 "effect_size": page.format_number(row.effect_size, 2),
+                 "n_subjects": int(row.n_subjects), "chance": html_page.format_number(row.chance),
+                 "mean": html_page.format_number(row.mean), "ci": interval, "t": html_page.format_number(row.t, 2),
+                 "p_t": html_page.format_p(row.p_t), "p_wilcoxon": html_page.format_p(row.p_wilcoxon),
+                 "p_perm": html_page.format_p(row.p_perm), "p_fwe": html_page.format_p(row.p_fwe, n_draws),
+                 "survives": "yes" if survives else "no", "prevalence_p_global": html_page.format_p(row.prevalence_p_global),
+                 "prevalence_gamma0": html_page.format_number(row.prevalence_gamma0, 2),
+                 "prevalence_gamma0_fwe": html_page.format_number(row.prevalence_gamma0_fwe, 2),
+                 "prevalence_p_majority": html_page.format_p(row.prevalence_p_majority),
+                 "effect_size": html_page.format_number(row.effect_size, 2),
                  "n_used": "n/a" if pd.isna(row.n_used) else str(row.n_used)}
         rows.append([cells[key] for key, _, _ in shown])
         classes.append("survives" if survives else "")
@@ -497,7 +497,7 @@ def _group_table(table, alpha, n_draws=None):
     if constant["n_subjects"]:
         caption += f", {int(table['n_subjects'].iloc[0])} subjects"
     if constant["chance"]:
-        caption += f", chance {page.format_number(table['chance'].iloc[0])}"
+        caption += f", chance {html_page.format_number(table['chance'].iloc[0])}"
     caption += (f". Rows in bold survive the family-wise correction (p_fwe < {alpha:g}); family of p_fwe: "
                 f"{family_text(table['family'])}. {gamma0_max_text(table)}")
     warning = p_min_warning(table, alpha)
@@ -538,8 +538,8 @@ def _provenance_section(study, config_file, versions, records):
     rows = [list(row) for row in summary.itertuples(index=False)]
     rows.append(["all steps", int(summary["jobs"].sum()), int(summary["output_files"].sum())])
     return (command_html
-            + page.html_table(("package", "version"), versions, caption="Package versions of this run")
-            + page.html_table(("step", "jobs", "output files"), rows,
+            + html_page.html_table(("package", "version"), versions, caption="Package versions of this run")
+            + html_page.html_table(("step", "jobs", "output files"), rows,
                               caption="Jobs before this report, counted from their provenance records")
             + _paragraph("results/manifest.tsv lists every output file with its sha256 and the job that made it; "
                          "results/provenance/ holds one record per job (inputs and outputs with their sha256, settings, "
@@ -713,7 +713,7 @@ def _cluster_table(table):
     if table.empty:
         return _paragraph("No voxel survives the family-wise correction: no cluster to list.")
     rows = [[row.direction, int(row.cluster), int(row.n_voxels_cluster), f"{row.volume_mm3:g}",
-             page.format_number(row.peak_margin), page.format_p(row.peak_p_fwe),
+             html_page.format_number(row.peak_margin), html_page.format_p(row.peak_p_fwe),
              f"{row.peak_x_mm:g}", f"{row.peak_y_mm:g}", f"{row.peak_z_mm:g}"] for row in table.itertuples(index=False)]
     header = ["direction", "cluster", "size (voxels)", "size (mm³)", f"peak {page.SEARCHLIGHT_QUANTITY}",
               "peak p_fwe", "peak x (mm)", "peak y (mm)", "peak z (mm)"]
@@ -918,7 +918,7 @@ def _curve_specification(entry, data, log):
             raise InputError(path, error.field, error.problem, error.fix) from None
         panel["label"] = page.direction_label(direction)
         panels.append(panel)
-    chance = page.format_number(panels[0]["chance"][0])
+    chance = html_page.format_number(panels[0]["chance"][0])
     caption = (f"Balanced accuracy against the number of voxels (log axis) in ROI {roi}: group mean (thick line) with its "
                f"95% confidence interval (band) over {len(panels[0]['subjects'])} subjects, single subjects (thin lines), "
                f"chance {chance} (dashed). Stars along the top: family-wise corrected p < {alpha:g}. 'all' (the whole ROI, "

@@ -7,10 +7,7 @@ colour-blind-safe palette of Okabe & Ito (2008, "Color Universal Design";
 hex values from memory), with labels in words and units on every axis.
 """
 
-import base64
-import html
 import math
-import re
 
 import numpy as np
 import pandas as pd
@@ -55,11 +52,6 @@ __all__ = [
     "searchlight_clusters",
     "reproduce_commands",
     "manifest_summary",
-    "format_number",
-    "format_p",
-    "html_table",
-    "figure_block",
-    "render_page",
 ]
 
 # Okabe & Ito (2008), "Color Universal Design" (hex values from memory).
@@ -1266,146 +1258,3 @@ def manifest_summary(records):
         steps[step] = (jobs + 1, files + len(record["outputs"]))
     return pd.DataFrame({"step": list(steps), "jobs": [value[0] for value in steps.values()],
                          "output_files": [value[1] for value in steps.values()]})
-
-
-# -- HTML ------------------------------------------------------------------------------
-
-def format_number(value, digits=3):
-    """A proportion or statistic with fixed decimals; ``n/a`` for missing values.
-
-    Examples
-    --------
-    >>> format_number(0.41666), format_number(float("nan"))
-    ('0.417', 'n/a')
-    """
-    try:
-        value = float(value)
-    except (TypeError, ValueError):
-        return "n/a"
-    return "n/a" if not math.isfinite(value) else f"{value:.{digits}f}"
-
-
-def format_p(value):
-    """A p-value with three significant digits; ``n/a`` for missing values.
-
-    Examples
-    --------
-    >>> format_p(0.0099009901), format_p(0.5), format_p(None)
-    ('0.0099', '0.5', 'n/a')
-    """
-    try:
-        value = float(value)
-    except (TypeError, ValueError):
-        return "n/a"
-    return "n/a" if not math.isfinite(value) else f"{value:.3g}"
-
-
-def html_table(header, rows, caption=None, row_classes=None, wide=False):
-    """An HTML table of text cells (escaped).
-
-    Parameters
-    ----------
-    header : sequence of str
-    rows : sequence of sequence
-        Cells (converted with ``str``).
-    caption : str, optional
-    row_classes : sequence of str, optional
-        A CSS class per row ("" for none).
-    wide : bool
-        Compact cells and a horizontal scroll bar when the table is wider
-        than the page.
-
-    Returns
-    -------
-    str
-    """
-    parts = ["<div class=\"wide\"><table class=\"compact\">" if wide else "<table>"]
-    if caption:
-        parts.append(f"<caption>{html.escape(caption)}</caption>")
-    parts.append("<thead><tr>" + "".join(f"<th scope=\"col\">{html.escape(str(cell))}</th>" for cell in header)
-                 + "</tr></thead><tbody>")
-    for number, row in enumerate(rows):
-        css = row_classes[number] if row_classes else ""
-        opening = f"<tr class=\"{html.escape(css)}\">" if css else "<tr>"
-        parts.append(opening + "".join(f"<td>{html.escape(str(cell))}</td>" for cell in row) + "</tr>")
-    parts.append("</tbody></table></div>" if wide else "</tbody></table>")
-    return "".join(parts)
-
-
-def figure_block(png_bytes, stem, alt, caption):
-    """One figure: the PNG embedded as a data URI, its caption and its file names.
-
-    Parameters
-    ----------
-    png_bytes : bytes
-    stem : str
-        File stem under ``figures/`` (PNG and SVG).
-    alt : str
-        Text alternative of the image.
-    caption : str
-
-    Returns
-    -------
-    str
-    """
-    if not png_bytes.startswith(b"\x89PNG\r\n\x1a\n"):
-        raise InputError(None, stem, "the figure is not a PNG image", "rerun the report job")
-    data = base64.b64encode(png_bytes).decode("ascii")
-    files = f"figures/{stem}.png, figures/{stem}.svg"
-    return (f"<figure id=\"fig-{html.escape(stem)}\"><img src=\"data:image/png;base64,{data}\" alt=\"{html.escape(alt)}\">"
-            f"<figcaption>{html.escape(caption)} <span class=\"files\">Files: {html.escape(files)}</span></figcaption>"
-            "</figure>")
-
-
-_STYLE = """
-body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, "DejaVu Sans", sans-serif; color: #1a1a1a;
-       background: #ffffff; margin: 0; line-height: 1.45; }
-main { max-width: 1320px; margin: 0 auto; padding: 1rem 1.5rem 3rem; }
-h1 { font-size: 1.7rem; margin-bottom: 0.2rem; }
-h2 { border-bottom: 2px solid #0072B2; padding-bottom: 0.2rem; margin-top: 2.2rem; }
-h3 { margin-top: 1.6rem; }
-nav ul { list-style: none; padding: 0; display: flex; flex-wrap: wrap; gap: 1rem; }
-table { border-collapse: collapse; margin: 0.6rem 0 1rem; font-size: 0.9rem; }
-caption { text-align: left; font-weight: 600; padding: 0.3rem 0; }
-th, td { border: 1px solid #c8c8c8; padding: 0.25rem 0.5rem; text-align: left; vertical-align: top; }
-th { background: #eef3f8; }
-tr.survives td { font-weight: 700; }
-.wide { overflow-x: auto; max-width: 100%; }
-table.compact { font-size: 0.78rem; }
-table.compact th, table.compact td { padding: 0.2rem 0.35rem; }
-figure { margin: 0.8rem 0 1.4rem; }
-figure img { max-width: 100%; height: auto; border: 1px solid #e0e0e0; }
-figcaption { font-size: 0.88rem; color: #333333; max-width: 70rem; }
-.files { color: #555555; font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: 0.8rem; }
-.gallery { display: flex; flex-wrap: wrap; gap: 1rem; align-items: flex-start; }
-.gallery figure { margin: 0; max-width: 46%; }
-.caution { border-left: 5px solid #D55E00; background: #fdf3ec; padding: 0.6rem 1rem; }
-code, pre { font-family: ui-monospace, "DejaVu Sans Mono", monospace; background: #f4f4f4; }
-pre { padding: 0.5rem 0.8rem; overflow-x: auto; }
-"""
-
-
-def render_page(title, sections):
-    """The whole page: a table of contents and the sections, no script, no external resource.
-
-    Parameters
-    ----------
-    title : str
-    sections : sequence of (str, str, str)
-        ``(id, heading, inner HTML)`` per section.
-
-    Returns
-    -------
-    str
-    """
-    for section_id, _, _ in sections:
-        if not re.fullmatch(r"[a-z][a-z0-9-]*", section_id):
-            raise InputError(None, "section id", f"{section_id!r} is not a lower-case identifier", "rename the section")
-    contents = "".join(f"<li><a href=\"#{section_id}\">{html.escape(heading)}</a></li>" for section_id, heading, _ in sections)
-    body = "".join(f"<section id=\"{section_id}\"><h2>{html.escape(heading)}</h2>{inner}</section>"
-                   for section_id, heading, inner in sections)
-    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
-            f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body><main>"
-            f"<h1>{html.escape(title)}</h1><nav aria-label=\"sections\"><ul>{contents}</ul></nav>{body}"
-            "</main></body></html>\n")

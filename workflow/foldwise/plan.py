@@ -19,11 +19,24 @@ from foldwise.geometry import wiring as geometry_wiring
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
            "step_outputs", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
-           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets"]
+           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets", "RunLookup"]
+
+
+class RunLookup:
+    """A subject's runs and one run by id, over the ``runs`` attribute (shared by :class:`StudyPlan` and the study model)."""
+
+    def runs_of(self, subject):
+        return [run for run in self.runs if run["subject"] == subject]
+
+    def run(self, subject, run_id):
+        for run in self.runs:
+            if run["subject"] == subject and run["run_id"] == run_id:
+                return run
+        raise KeyError(f"no run {run_id} for subject {subject}")
 
 
 @dataclass(frozen=True)
-class StudyPlan:
+class StudyPlan(RunLookup):
     """Subjects (after exclusion) and their runs, each a dict of entities and paths.
 
     ``runs`` are the runs whose patterns are estimated (the main task's and
@@ -34,15 +47,6 @@ class StudyPlan:
     subjects: tuple
     runs: tuple
     localizer_runs: tuple = ()
-
-    def runs_of(self, subject):
-        return [run for run in self.runs if run["subject"] == subject]
-
-    def run(self, subject, run_id):
-        for run in self.runs:
-            if run["subject"] == subject and run["run_id"] == run_id:
-                return run
-        raise KeyError(f"no run {run_id} for subject {subject}")
 
 
 def plan_study(study, path="the study config"):

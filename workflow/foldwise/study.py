@@ -294,7 +294,7 @@ def _frozen(value):
 
 
 @dataclass(frozen=True)
-class Study:
+class Study(study_plan.RunLookup):
     """The whole study, built once by :func:`build_study`.
 
     Attributes
@@ -357,15 +357,6 @@ class Study:
     @property
     def is_demo(self):
         return self.config["dataset"]["source"] == "demo"
-
-    def runs_of(self, subject):
-        return [run for run in self.runs if run["subject"] == subject]
-
-    def run(self, subject, run_id):
-        for run in self.runs:
-            if run["subject"] == subject and run["run_id"] == run_id:
-                return run
-        raise KeyError(f"no run {run_id} for subject {subject}")
 
     # -- the exact settings each step reads (a rule's params.settings) -------------
     def searchlight_method(self, step):

@@ -114,6 +114,23 @@ def test_non_estimable_pattern_column_is_an_input_error():
     assert "seen_round" in excinfo.value.field
 
 
+def test_the_ar1_fits_share_one_rule_for_the_noise_coefficients():
+    """fit_ar1 and fit_lss take rho as given, or estimate it from rho_design (default: the design) of the same run."""
+    rng = np.random.default_rng(15)
+    design = _design(_lantern_events(rng), mode="lsa")
+    bold = _data(rng, design, 5, rho=0.3)
+    blocks, groups = design.pattern_blocks, design.pattern_table["condition"]
+    estimated = fit_ar1(design.matrix, bold, design.pattern_columns).rho
+    given = np.full(5, 0.25)
+    np.testing.assert_array_equal(fit_ar1(design.matrix, bold, design.pattern_columns, rho=given).rho, given)
+    np.testing.assert_array_equal(fit_ar1(design.matrix, bold, design.pattern_columns, rho_design=design.matrix).rho, estimated)
+    for fit in (lambda short: fit_ar1(design.matrix, bold, design.pattern_columns, rho_design=short),
+                lambda short: fit_lss(design.matrix, bold, blocks, groups, noise_model="ar1", rho_design=short)):
+        with pytest.raises(InputError) as excinfo:
+            fit(design.matrix[:-1])
+        assert excinfo.value.field == "rho_design"
+
+
 def test_voxel_blocks_do_not_change_results(monkeypatch):
     rng = np.random.default_rng(14)
     design = _design(_lantern_events(rng), mode="lsa")

@@ -540,6 +540,17 @@ def _estimate_rho(rho_design, bold):
     return bin_ar1(rho)
 
 
+def _voxel_rho(design, bold, rho, rho_design):
+    """The AR(1) coefficient of every voxel: ``rho`` checked, or estimated from the residuals of ``rho_design`` (default: ``design``)."""
+    if rho is not None:
+        return _check_rho(rho, bold.shape[1])
+    noise_design = design if rho_design is None else _check_design(rho_design)
+    if noise_design.shape[0] != design.shape[0]:
+        raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
+                         "pass a design of the same run")
+    return _estimate_rho(noise_design, bold)
+
+
 def _check_rho(rho, n_voxels):
     values = np.asarray(rho, dtype=np.float64)
     if values.ndim == 0:
@@ -631,15 +642,7 @@ def fit_ar1(design_matrix, bold_2d, pattern_columns=None, with_t=True, rho=None,
     bold = _check_bold(bold_2d, design.shape[0])
     columns = _check_columns(pattern_columns, design.shape[1], "pattern_columns")
     _check_first_scan(first_scan)
-    n_voxels = bold.shape[1]
-    if rho is None:
-        noise_design = design if rho_design is None else _check_design(rho_design)
-        if noise_design.shape[0] != design.shape[0]:
-            raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
-                             "pass a design of the same run")
-        voxel_rho = _estimate_rho(noise_design, bold)
-    else:
-        voxel_rho = _check_rho(rho, n_voxels)
+    voxel_rho = _voxel_rho(design, bold, rho, rho_design)
     unwhitened = _Factor(design)
     _require_estimable(unwhitened, columns, column_names)
     whitened_factors = {}
@@ -841,7 +844,6 @@ def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True,
         raise InputError(None, "glm.noise_model", f"unknown noise model {noise_model!r}", f"use one of {', '.join(NOISE_MODELS)}")
     if noise_model == "ols" and rho is not None:
         raise InputError(None, "rho", "AR(1) coefficients given with noise_model 'ols'", "pass noise_model='ar1' or no rho")
-    n_voxels = bold.shape[1]
     in_block = np.zeros(design.shape[1], dtype=bool)
     in_block[blocks.ravel()] = True
     nuisance_columns = np.flatnonzero(~in_block)
@@ -849,14 +851,7 @@ def fit_lss(design_matrix, bold_2d, pattern_blocks, pattern_groups, with_t=True,
     condition_sums = _condition_sums(group_index, blocks.shape[1])
     voxel_rho = None
     if noise_model == "ar1":
-        if rho is None:
-            noise_design = design if rho_design is None else _check_design(rho_design)
-            if noise_design.shape[0] != design.shape[0]:
-                raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
-                                 "pass a design of the same run")
-            voxel_rho = _estimate_rho(noise_design, bold)
-        else:
-            voxel_rho = _check_rho(rho, n_voxels)
+        voxel_rho = _voxel_rho(design, bold, rho, rho_design)
     base = _LSSOperator(design, blocks, group_index, selection, condition_sums, nuisance_columns, column_names)
     operators = {None: base}
 

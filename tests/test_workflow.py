@@ -30,7 +30,7 @@ def test_a_bad_config_stops_before_any_job(tmp_path):
 
 @pytest.mark.slow
 def test_per_trial_patterns_run_end_to_end(tmp_path):
-    # The matrix of STYLE.md: per-run betas (test_incremental), per-trial betas (here), cross-decoding (both).
+    # The end-to-end matrix: per-run betas (test_incremental), per-trial betas (here), cross-decoding (both).
     workdir = copy_repository(tmp_path / "repo")
     study = json.loads(json.dumps(TINY_STUDY))
     study["glm"] = {"pattern_mode": "lss", "serial_correlation": "ar1_whiten", "statistic": "beta"}

@@ -7,7 +7,7 @@ from matplotlib.figure import Figure
 from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, load_bold, read_confounds, read_events,
                                 read_tr_s, select_confound_columns)
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, save_figure, save_nifti, write_json, write_tsv
+from foldwise.data.fileio import save_figure, save_nifti, write_json, write_tsv
 from foldwise.glm.estimate import estimate_patterns
 from foldwise import contract
 from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
@@ -20,18 +20,11 @@ _MAX_LABELS = 24
 
 
 def _load_mask(path, shape, affine):
-    image = load_nifti(path, what="brain mask")
-    data = np.asarray(image.dataobj)
-    if data.ndim == 4 and data.shape[3] == 1:
-        data = data[..., 0]
-    if data.ndim != 3:
-        raise InputError(path, "dim", f"expected a 3D brain mask, got shape {data.shape}", "give one 3D mask volume")
-    if not same_grid(data.shape, image.affine, shape, affine, GRID_TOLERANCE_MM):
-        raise InputError(path, "affine", f"the brain mask's grid (shape {data.shape}) differs from the BOLD grid (shape {tuple(shape)})",
+    """The subject's brain mask (the contract's one reader), refused unless it lies on the run's BOLD grid."""
+    mask, mask_affine = contract.read_brain_mask(path)
+    if not same_grid(mask.shape, mask_affine, shape, affine, GRID_TOLERANCE_MM):
+        raise InputError(path, "affine", f"the brain mask's grid (shape {mask.shape}) differs from the BOLD grid (shape {tuple(shape)})",
                          "make the brain mask on this subject's BOLD grid (same shape and affine)")
-    mask = data > 0
-    if not mask.any():
-        raise InputError(path, "mask", "the brain mask holds no voxel", "rebuild the brain mask")
     return mask
 
 

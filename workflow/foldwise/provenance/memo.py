@@ -45,7 +45,7 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import write_json
 from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
-__all__ = ["MemoStore", "memo_key", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "display_path", "forced_jobs",
+__all__ = ["MemoStore", "memo_key", "PartMemo", "part_memo", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "display_path", "forced_jobs",
            "FORCED_JOBS_VARIABLE", "copy_file", "VERSIONED_PACKAGES"]
 
 # The packages that shape the numbers: the memo keys on their versions and the report prints them (one list).
@@ -263,6 +263,90 @@ def package_versions():
         except metadata.PackageNotFoundError:
             versions[name] = None
     return versions
+
+
+class PartMemo:
+    """The memo of the parts of one job: a part whose own inputs did not change is restored, not recomputed.
+
+    A job that computes several independent parts (a run's GLM, an ROI's
+    decoding, a figure) is rerun by Snakemake as a whole when any of its
+    inputs changes; the parts whose *identity* (their settings and the
+    content hashes of their own input files) is unchanged are restored from
+    the store instead. A part's key is sha256 over the step, the step's code
+    and package versions, the part's label and its identity, so a code or
+    package change recomputes every part, as it does every job.
+
+    Obtain the running job's instance with :func:`part_memo`::
+
+        parts = part_memo()
+        identity = {"settings": roi_settings, "mask": parts.file_hash(mask_path)}
+        if not parts.restore("roi-ember", identity, {"summary": path}):
+            ...  # compute and write path
+            parts.store("roi-ember", identity, {"summary": path})
+    """
+
+    def __init__(self, store, step, code, log, use_memo=True, forced=False):
+        self._store = store
+        self._step = step
+        self._code = code
+        self._log = log
+        self._use_memo = use_memo
+        self._forced = forced
+        self._pending = {}  # part label -> warning collector attached at the missed restore
+        self.records = []
+
+    def file_hash(self, path):
+        """sha256 of a file's content (cached by file identity; hashed afresh in a forced job)."""
+        return self._store.content_hash(path, fresh=self._forced)
+
+    def _key(self, part, identity):
+        return hash_object({"step": self._step, "code": self._code, "part": part, "identity": identity})
+
+    def restore(self, part, identity, outputs):
+        """Restore the part's ``outputs`` (name -> path or paths); False if it must be computed.
+
+        Restored files are checked against their stored sha256 and the
+        warnings logged when the part was computed are logged again. After a
+        False, the warnings the job logs until :meth:`store` belong to this part.
+        """
+        key = self._key(part, identity)
+        restored = self._use_memo and not self._forced and self._store.restore(key, outputs, self._log)
+        if restored:
+            for message in self._store.warnings(key):
+                self._log.warning("%s", message)
+            self.records.append({"part": part, "key": key, "restored": True})
+        else:
+            collector = _WarningCollector()
+            self._log.addHandler(collector)
+            self._pending[part] = collector
+        return restored
+
+    def store(self, part, identity, outputs):
+        """Store the part's finished ``outputs`` (a no-op with the memo off)."""
+        key = self._key(part, identity)
+        collector = self._pending.pop(part, None)
+        if collector is not None:
+            self._log.removeHandler(collector)
+        if self._use_memo:
+            self._store.store(key, outputs, {"step": self._step, "part": part,
+                                             "warnings": collector.messages if collector is not None else []})
+        self.records.append({"part": part, "key": key, "restored": False})
+
+    def close(self):
+        for collector in self._pending.values():
+            self._log.removeHandler(collector)
+        self._pending.clear()
+
+
+_CURRENT_PARTS = threading.local()  # the running job's PartMemo: per thread, as jobs run in threads of Snakemake's process
+
+
+def part_memo():
+    """The :class:`PartMemo` of the job running in this thread (inside :func:`run_job` or :func:`run_in_process`)."""
+    parts = getattr(_CURRENT_PARTS, "memo", None)
+    if parts is None:
+        raise RuntimeError("part_memo() is available only inside a job run by run_job or run_in_process")
+    return parts
 
 
 class _WarningCollector(logging.Handler):
@@ -487,9 +571,13 @@ def _run_job(smk, step, job, in_process=False):
         else:
             collected = _WarningCollector()
             log.addHandler(collected)
+            parts = PartMemo(store, step, {"code": code, "versions": versions}, log, use_memo=use_memo, forced=forced)
+            _CURRENT_PARTS.memo = parts
             try:
                 job(inputs, outputs, settings, log)
             finally:
+                _CURRENT_PARTS.memo = None
+                parts.close()
                 log.removeHandler(collected)
             missing = [path for _, _, path in _flatten(outputs) if not os.path.isfile(path)]
             if missing:
@@ -519,6 +607,8 @@ def _run_job(smk, step, job, in_process=False):
                     for name, _, path in _flatten(outputs)],
         "empty_inputs": sorted(name for name, paths in inputs.items() if not isinstance(paths, str) and not paths),  # for the key check
         "versions": versions,
+        # Parts of the job restored or computed (PartMemo); empty when the whole job was restored or has no parts.
+        "parts": [] if restored else parts.records,
         "platform": {"system": platform.system(), "machine": platform.machine()},
         "wall_time_s": round(wall_time_s, 3),
         "cpu_time_s": round(cpu_clock() - cpu_started, 3),

@@ -35,6 +35,7 @@ EVERY_STEP = {"demo_dataset", "brain_mask", "glm", "roi_mask", "roi_counts", "de
 READERS = {
     "study.name": {"report"},
     "study.seed": {"demo_dataset", "decode", "group", "searchlight_block", "searchlight_group", "report"},
+    "study.results_dir": set(),  # every output moves (filled in below: every planned step)
     "study.store_dir": {"report"},  # scripts read the store from Snakemake's config, not params: it holds results, it shapes none
     "dataset.bids_root": {"demo_dataset", "brain_mask", "glm", "report"},
     "dataset.derivatives_root": {"report"},  # unused by a demo study (its files are all under bids_root)
@@ -154,6 +155,8 @@ READERS.update({
     **{f"analyses[2].{key}": {"report"} for key in ("n_permutations", "voxel_counts", "selection", "classifier", "svm_c", "logistic_c",
                                                      "demean_patterns", "folds.scheme", "folds.n_groups")},
 })
+# Another results folder moves every output of every job (foldwise.contract.ResultPaths), and nothing else.
+READERS["study.results_dir"] = EVERY_STEP | GEOMETRY
 NOT_PERTURBED["analyses[2].kind"] = "a geometry entry has no classes or sets to turn into another kind: tests/test_geometry.py refuses the mix"
 
 # Perturbed values that need more than "another value of the same type".
@@ -248,6 +251,10 @@ def _perturb(raw, path, value):
         old = config["analyses"][path[1]]["name"]
         config["analyses"][path[1]]["name"] = old + "x"
         config["searchlight"]["analyses"] = [name + "x" if name == old else name for name in config["searchlight"]["analyses"]]
+    elif text == "study.results_dir":  # a demo keeps its simulated files inside its results folder (foldwise.results_folder)
+        _set(config, path, value)
+        for key in ("bids_root", "atlas_image", "atlas_labels"):
+            config["dataset"][key] = value + config["dataset"][key][len(raw["study"]["results_dir"]):]
     elif re.fullmatch(r"rois\[\d+\]\.name", text):
         _set(config, path, value)
     elif re.fullmatch(r"analyses\[\d+\]\.kind", text):

@@ -18,11 +18,15 @@ from foldwise.errors import InputError
 
 __all__ = [
     "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "cross_directions", "provenance_path", "log_path", "benchmark_path",
+    "ResultPaths", "under_results", "relative_to_results",
     "PATTERN_TABLE_COLUMNS", "SCORE_COLUMNS", "NULL_COLUMNS", "RANKING_COLUMNS", "CONFUSION_COLUMNS", "SUMMARY_COLUMNS",
     "ROI_COUNT_COLUMNS", "GROUP_COLUMNS", "GROUP_NULL_COLUMNS", "SEARCHLIGHT_GROUP_COLUMNS", "SEARCHLIGHT_DIRECTION_COLUMNS",
     "TABLE_COLUMNS", "read_brain_mask", "read_roi_mask", "read_table", "count_label", "parse_count",
 ]
 
+# The default results folder (study.results_dir). Every template below starts
+# with it; a study with another results_dir gets the same paths under its own
+# folder through ResultPaths (the study model's ``paths``), never by editing a template.
 RESULTS = "results"
 
 # Two grids are one grid when their voxel centres agree to within this many mm:
@@ -115,17 +119,79 @@ def fill(name, **wildcards):
     return TEMPLATES[name].format(**wildcards)
 
 
-def provenance_path(step, identity):
-    """Where a job's provenance record goes: results/provenance/<step>/<identity>.json."""
-    return f"results/provenance/{step}/{identity}.json"
+def provenance_path(step, identity, results_dir=RESULTS):
+    """Where a job's provenance record goes: <results_dir>/provenance/<step>/<identity>.json."""
+    return f"{results_dir}/provenance/{step}/{identity}.json"
 
 
-def log_path(step, identity):
-    return f"results/logs/{step}/{identity}.log"
+def log_path(step, identity, results_dir=RESULTS):
+    return f"{results_dir}/logs/{step}/{identity}.log"
 
 
-def benchmark_path(step, identity):
-    return f"results/benchmarks/{step}/{identity}.tsv"
+def benchmark_path(step, identity, results_dir=RESULTS):
+    return f"{results_dir}/benchmarks/{step}/{identity}.tsv"
+
+
+def under_results(path, results_dir):
+    """A path of the default results folder moved under ``results_dir`` (the same path when it is the default).
+
+    >>> under_results("results/masks/sub-{subject}/sub-{subject}_brainmask.nii.gz", "studies/b")
+    'studies/b/masks/sub-{subject}/sub-{subject}_brainmask.nii.gz'
+    """
+    if not path.startswith(RESULTS + "/"):
+        raise ValueError(f"{path!r} is not under the default results folder {RESULTS!r}/")
+    return path if results_dir == RESULTS else results_dir + path[len(RESULTS):]
+
+
+def relative_to_results(name, **wildcards):
+    """The path of artefact ``name`` inside whichever results folder holds it (for matching a path a job was given).
+
+    >>> relative_to_results("group_table", analysis="shape")
+    'group/shape/shape_group.tsv'
+    """
+    return fill(name, **wildcards)[len(RESULTS) + 1:]
+
+
+class ResultPaths:
+    """Every output path of one study, under its results folder (``study.results_dir``).
+
+    The templates are :data:`TEMPLATES` (written once, under the default
+    folder ``results``); this moves them under the study's own folder, so two
+    studies in one checkout never share an output, a provenance record, a log
+    or a run guard.
+
+    >>> paths = ResultPaths("results_b")
+    >>> paths.fill("roi_mask", subject="01", roi="ember")
+    'results_b/masks/sub-01/sub-01_roi-ember_mask.nii.gz'
+    >>> paths.provenance("group", "{analysis}")
+    'results_b/provenance/group/{analysis}.json'
+    """
+
+    def __init__(self, results_dir=RESULTS):
+        self.root = results_dir
+
+    def template(self, name):
+        """Template ``name`` of :data:`TEMPLATES`, wildcards unfilled, under this results folder."""
+        return under_results(TEMPLATES[name], self.root)
+
+    def fill(self, name, **wildcards):
+        return self.template(name).format(**wildcards)
+
+    def provenance(self, step, identity):
+        return provenance_path(step, identity, self.root)
+
+    def log(self, step, identity):
+        return log_path(step, identity, self.root)
+
+    def benchmark(self, step, identity):
+        return benchmark_path(step, identity, self.root)
+
+    def folder(self, *parts):
+        """A folder (or file) of the results folder that no template names: ``folder("provenance")``."""
+        return "/".join((self.root, *parts))
+
+
+assert all(template.startswith(RESULTS + "/") for template in TEMPLATES.values()), "every template starts with the results folder"
 
 
 def cross_directions(set_names):

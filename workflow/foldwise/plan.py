@@ -113,21 +113,21 @@ class Step:
 
 def named_outputs(**names):
     """Outputs by contract name: ``mask="brain_mask"`` -> the contract's template."""
-    return lambda study: {output: contract.TEMPLATES[name] for output, name in names.items()}
+    return lambda study: {output: study.paths.template(name) for output, name in names.items()}
 
 
 def _demo_outputs(study):
     dataset = study.config["dataset"]
     return {"description": f"{dataset['bids_root']}/dataset_description.json", "atlas": dataset["atlas_image"],
-            "atlas_labels": dataset["atlas_labels"], "ground_truth": contract.TEMPLATES["demo_truth"],
+            "atlas_labels": dataset["atlas_labels"], "ground_truth": study.paths.template("demo_truth"),
             "bold": [run["bold"] for run in study.runs], "events": [run["events"] for run in study.runs],
             "sidecars": [run["sidecar"] for run in study.runs], "confounds": [run["confounds"] for run in study.runs]}
 
 
 def _searchlight_group_outputs(study):
     names = ["mean", "p", "p_fwe"] + (["tfce", "p_tfce"] if study.config["searchlight"]["tfce"] else [])
-    outputs = {f"{name}_map": contract.TEMPLATES[f"searchlight_{name}"] for name in names}
-    outputs["table"] = contract.TEMPLATES["searchlight_group_table"]
+    outputs = {f"{name}_map": study.paths.template(f"searchlight_{name}") for name in names}
+    outputs["table"] = study.paths.template("searchlight_group_table")
     return outputs
 
 
@@ -135,11 +135,11 @@ def report_figures(study):
     """The report's figure catalogue (entries with ``paths``), from the report's figure plan."""
     from foldwise.report.figures import figure_catalogue  # late: matplotlib is needed by the report only
 
-    return figure_catalogue(study.config, study.subjects)
+    return figure_catalogue(study.config, study.subjects, study.paths.template("report_figures_dir"))
 
 
 def _report_outputs(study):
-    return {"html": contract.TEMPLATES["report_html"], "figures": [path for entry in report_figures(study) for path in entry["paths"]]}
+    return {"html": study.paths.template("report_html"), "figures": [path for entry in report_figures(study) for path in entry["paths"]]}
 
 
 STEPS = {
@@ -166,15 +166,15 @@ STEPS = {
 
 def step_outputs(study, step):
     """Output templates of a step (wildcards unfilled), its provenance record last."""
-    return {**STEPS[step].outputs(study), "provenance": contract.provenance_path(step, STEPS[step].identity)}
+    return {**STEPS[step].outputs(study), "provenance": study.paths.provenance(step, STEPS[step].identity)}
 
 
-def step_log(step):
-    return contract.log_path(step, STEPS[step].identity)
+def step_log(study, step):
+    return study.paths.log(step, STEPS[step].identity)
 
 
-def step_benchmark(step):
-    return contract.benchmark_path(step, STEPS[step].identity)
+def step_benchmark(study, step):
+    return study.paths.benchmark(step, STEPS[step].identity)
 
 
 def planned_jobs(study):
@@ -254,7 +254,7 @@ def planned_output_counts(study):
 
 # -- inputs of each job --------------------------------------------------------------------
 def _subject_patterns(study, subject, name):
-    return [contract.fill(name, subject=subject, run_id=run["run_id"]) for run in study.runs_of(subject)]
+    return [study.paths.fill(name, subject=subject, run_id=run["run_id"]) for run in study.runs_of(subject)]
 
 
 def _brain_mask_inputs(study, w):
@@ -267,7 +267,7 @@ def _brain_mask_inputs(study, w):
 
 def _glm_inputs(study, w):
     run = study.run(w["subject"], w["run_id"])
-    inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"], "mask": contract.fill("brain_mask", subject=run["subject"])}
+    inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"], "mask": study.paths.fill("brain_mask", subject=run["subject"])}
     dataset = study.config["dataset"]
     if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):  # flagged volumes are read from the confounds
         inputs["confounds"] = run["confounds"]
@@ -279,23 +279,23 @@ def roi_mask_inputs(study, w):
     roi = study.rois[w["roi"]]
     # An ROI image may be one per subject: "{subject}" in its path is this subject's label.
     inputs = {name: path.replace("{subject}", w["subject"]) for name, path in roi.inputs(study.config).items()}
-    return {"brain_mask": contract.fill("brain_mask", subject=w["subject"]), **inputs}
+    return {"brain_mask": study.paths.fill("brain_mask", subject=w["subject"]), **inputs}
 
 
 def _decode_inputs(study, w):
     return {"patterns": _subject_patterns(study, w["subject"], "patterns_image"),
-            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": contract.fill("roi_mask", **w)}
+            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": study.paths.fill("roi_mask", **w)}
 
 
 def _group_inputs(study, w):
     analysis = study.analyses[w["analysis"]]
-    return {"summaries": [contract.fill("subject_summary", analysis=analysis.name, subject=s) for s in study.subjects],
-            "nulls": [contract.fill("decode_null", analysis=analysis.name, subject=s, roi=roi) for s in study.subjects for roi in analysis.rois]}
+    return {"summaries": [study.paths.fill("subject_summary", analysis=analysis.name, subject=s) for s in study.subjects],
+            "nulls": [study.paths.fill("decode_null", analysis=analysis.name, subject=s, roi=roi) for s in study.subjects for roi in analysis.rois]}
 
 
 def _calibrate_inputs(study, w):
     return {"tables": [path for s in study.subjects for path in _subject_patterns(study, s, "patterns_table")],
-            "roi_counts": [contract.fill("roi_counts", subject=s) for s in study.subjects]}
+            "roi_counts": [study.paths.fill("roi_counts", subject=s) for s in study.subjects]}
 
 
 def calibration_targets(study):
@@ -306,21 +306,21 @@ def calibration_targets(study):
 
 def _searchlight_block_inputs(study, w):
     return {"patterns": _subject_patterns(study, w["subject"], "patterns_image"),
-            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": contract.fill("brain_mask", subject=w["subject"])}
+            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": study.paths.fill("brain_mask", subject=w["subject"])}
 
 
 def _searchlight_merge_inputs(study, w):
     blocks = study.searchlight_blocks
-    return {"scores": [contract.fill("searchlight_block_scores", block=block, **w) for block in blocks],
-            "nulls": [contract.fill("searchlight_block_null", block=block, **w) for block in blocks],
-            "mask": contract.fill("brain_mask", subject=w["subject"])}
+    return {"scores": [study.paths.fill("searchlight_block_scores", block=block, **w) for block in blocks],
+            "nulls": [study.paths.fill("searchlight_block_null", block=block, **w) for block in blocks],
+            "mask": study.paths.fill("brain_mask", subject=w["subject"])}
 
 
 def _searchlight_group_inputs(study, w):
     subjects = study.subjects
-    return {"maps": [contract.fill("searchlight_map", analysis=w["analysis"], subject=s) for s in subjects],
-            "nulls": [contract.fill("searchlight_subject_null", analysis=w["analysis"], subject=s) for s in subjects],
-            "masks": [contract.fill("brain_mask", subject=s) for s in subjects]}
+    return {"maps": [study.paths.fill("searchlight_map", analysis=w["analysis"], subject=s) for s in subjects],
+            "nulls": [study.paths.fill("searchlight_subject_null", analysis=w["analysis"], subject=s) for s in subjects],
+            "masks": [study.paths.fill("brain_mask", subject=s) for s in subjects]}
 
 
 def report_input_index(study):
@@ -335,7 +335,7 @@ def report_input_index(study):
     decoding = {name: analysis for name, analysis in study.analyses.items() if "group" in analysis.steps}  # geometry analyses: below
 
     def record(name, **fields):
-        return {"path": contract.fill(name, **fields), **fields}
+        return {"path": study.paths.fill(name, **fields), **fields}
 
     index = {
         "designs": [record("design_table", subject=s, run_id=first_runs[s]) for s in subjects],
@@ -365,7 +365,7 @@ def report_input_index(study):
         if mapped:
             index["geometry_searchlight_figure"] = [record("geometry_searchlight_figure", analysis=name) for name in mapped]
     if study.is_demo:
-        index["ground_truth"] = [{"path": contract.TEMPLATES["demo_truth"]}]
+        index["ground_truth"] = [{"path": study.paths.template("demo_truth")}]
     return index
 
 
@@ -379,9 +379,9 @@ JOB_INPUTS = {
     "brain_mask": _brain_mask_inputs,
     "glm": _glm_inputs,
     "roi_mask": roi_mask_inputs,
-    "roi_counts": lambda study, w: {"infos": [contract.fill("roi_info", subject=w["subject"], roi=roi) for roi in study.rois]},
+    "roi_counts": lambda study, w: {"infos": [study.paths.fill("roi_info", subject=w["subject"], roi=roi) for roi in study.rois]},
     "decode": _decode_inputs,
-    "decode_gather": lambda study, w: {"scores": [contract.fill("decode_scores", roi=roi, **w) for roi in study.analyses[w["analysis"]].rois]},
+    "decode_gather": lambda study, w: {"scores": [study.paths.fill("decode_scores", roi=roi, **w) for roi in study.analyses[w["analysis"]].rois]},
     "group": _group_inputs,
     "calibrate": _calibrate_inputs,
     "searchlight_block": _searchlight_block_inputs,
@@ -430,7 +430,7 @@ def report_job_logs(study):
         if step in ("report", "manifest"):
             continue
         label = " ".join(f"{key}={value}" for key, value in wildcards.items())
-        logs.append([step, label, step_log(step).format(**wildcards)])
+        logs.append([step, label, step_log(study, step).format(**wildcards)])
     return logs
 
 

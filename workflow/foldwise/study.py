@@ -29,6 +29,7 @@ from foldwise.errors import InputError
 from foldwise.geometry import wiring as geometry_wiring
 from foldwise import plan as study_plan
 from foldwise.plan import plan_study
+from foldwise.results_folder import check_results_dir
 
 __all__ = [
     "AnalysisKind",
@@ -358,6 +359,16 @@ class Study(study_plan.RunLookup):
     def is_demo(self):
         return self.config["dataset"]["source"] == "demo"
 
+    @property
+    def results_dir(self):
+        """The study's results folder (``study.results_dir``; checked by :func:`foldwise.results_folder.check_results_dir`)."""
+        return self.config["study"].get("results_dir", contract.RESULTS)
+
+    @property
+    def paths(self):
+        """Every output path of this study, under its results folder (:class:`foldwise.contract.ResultPaths`)."""
+        return contract.ResultPaths(self.results_dir)
+
     # -- the exact settings each step reads (a rule's params.settings) -------------
     def searchlight_method(self, step):
         """The searchlight section's keys one searchlight step reads (never the switch or the analysis list)."""
@@ -511,6 +522,7 @@ def check_meaning(config, path="the study config"):
     :func:`foldwise.config.validate` calls it after the schema, so a config
     that validates is one this model can be built from.
     """
+    check_results_dir(config, path)  # the results folder first: the other messages may name paths under it
     roi_names = [entry["name"] for entry in config["rois"]]
     for repeated in _duplicates(roi_names):
         raise InputError(path, "rois[].name", f"the ROI name '{repeated}' is used twice", "give each ROI a unique name")

@@ -12,6 +12,7 @@ from foldwise.provenance.environment import check_environment, versioned_code
 from foldwise.provenance.runs import finish_run, start_run
 from foldwise.errors import InputError
 from foldwise.data.fileio import check_output_folder
+from foldwise.results_folder import check_results_writable
 from foldwise.provenance.hashing import code_hash
 from foldwise.study import build_study
 
@@ -26,7 +27,7 @@ try:
     OVERRIDES = [entry for entry in workflow.config_settings.config_args or [] if not entry.startswith("config_file=")]
     STUDY = apply_overrides(load_yaml(CONFIG_FILE), OVERRIDES, CONFIG_FILE, workflow.overwrite_configfiles)
     check_environment(os.path.join(workflow.basedir, "requirements", "lock.txt"))
-    check_output_folder("results", "results folder")
+    check_results_writable(STUDY, CONFIG_FILE)  # study.results_dir: every output of this study goes there
     check_output_folder(STUDY["study"]["store_dir"], "study.store_dir")
     MODEL = build_study(STUDY, path=CONFIG_FILE, overrides=OVERRIDES)  # every check of meaning, before any job
 except InputError as error:
@@ -36,10 +37,10 @@ config.update(STUDY)  # scripts read study.store_dir from here
 
 
 onstart:
-    start_run(workflow.dag, "results", STUDY["study"]["store_dir"])  # leftovers of a killed run; forced jobs skip the memo
+    start_run(workflow.dag, MODEL.results_dir, STUDY["study"]["store_dir"])  # leftovers of a killed run; forced jobs skip the memo
 
 SCRIPTS = os.path.join(workflow.basedir, "workflow", "scripts")
-MANIFEST = contract.TEMPLATES["manifest"]
+MANIFEST = MODEL.paths.template("manifest")
 
 wildcard_constraints:
     subject="[A-Za-z0-9]+",
@@ -71,11 +72,11 @@ def step_code(script_name, *modules):
 
 
 def log_of(step):
-    return plan.step_log(step)
+    return plan.step_log(MODEL, step)
 
 
 def benchmark_of(step):
-    return plan.step_benchmark(step)
+    return plan.step_benchmark(MODEL, step)
 
 
 def all_job_outputs():
@@ -97,14 +98,14 @@ def print_closing_lines():
     """The run's last lines: how many warnings the jobs logged, then the report's path (the last line)."""
     from foldwise.report.terminal import closing_lines, job_warnings
 
-    for line in closing_lines(len(job_warnings(plan.report_job_logs(MODEL))), contract.TEMPLATES["report_html"]):
+    for line in closing_lines(len(job_warnings(plan.report_job_logs(MODEL))), MODEL.paths.template("report_html")):
         print(line)
 
 
 def print_group_summaries():
     from foldwise.report.terminal import fit_lines  # summary lines wrapped for the terminal
     for name in MODEL.analyses:
-        path = contract.fill("group_summary", analysis=name)
+        path = MODEL.paths.fill("group_summary", analysis=name)
         if os.path.isfile(path):
             print(fit_lines(open(path, encoding="utf-8").read()))
     for path in plan.geometry_wiring.group_summary_paths(MODEL):  # geometry analyses

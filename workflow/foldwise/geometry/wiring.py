@@ -99,7 +99,7 @@ def planned_jobs(study):
 
 
 def _named(**names):
-    return lambda study: {output: contract.TEMPLATES[name] for output, name in names.items()}
+    return lambda study: {output: study.paths.template(name) for output, name in names.items()}
 
 
 STEP_OUTPUTS = {
@@ -122,8 +122,8 @@ def _patterns_inputs(study, w):
     _, rois = _union(study)
     runs = study.runs_of(subject)
     inputs = {"bold": [run["bold"] for run in runs], "events": [run["events"] for run in runs],
-              "sidecars": [run["sidecar"] for run in runs], "mask": contract.fill("brain_mask", subject=subject),
-              "roi_masks": [contract.fill("roi_mask", subject=subject, roi=roi) for roi in rois]}
+              "sidecars": [run["sidecar"] for run in runs], "mask": study.paths.fill("brain_mask", subject=subject),
+              "roi_masks": [study.paths.fill("roi_mask", subject=subject, roi=roi) for roi in rois]}
     dataset = study.config["dataset"]
     if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):
         inputs["confounds"] = [run["confounds"] for run in runs]
@@ -136,7 +136,7 @@ def _model_files(analysis):
 
 def _subject_inputs(study, w):
     subject = w["subject"]
-    inputs = {name: contract.fill(f"geometry_{name}", subject=subject) for name in ("betas", "residuals", "index")}
+    inputs = {name: study.paths.fill(f"geometry_{name}", subject=subject) for name in ("betas", "residuals", "index")}
     models = _model_files(study.analyses[w["analysis"]])
     if models:
         inputs["models"] = models
@@ -145,8 +145,8 @@ def _subject_inputs(study, w):
 
 def _group_inputs(study, w):
     name = w["analysis"]
-    return {"distances": [contract.fill("geometry_distances", analysis=name, subject=s) for s in study.subjects],
-            "fits": [contract.fill("geometry_fits", analysis=name, subject=s) for s in study.subjects]}
+    return {"distances": [study.paths.fill("geometry_distances", analysis=name, subject=s) for s in study.subjects],
+            "fits": [study.paths.fill("geometry_fits", analysis=name, subject=s) for s in study.subjects]}
 
 
 def _searchlight_inputs(study, w):
@@ -158,8 +158,8 @@ def _searchlight_inputs(study, w):
 
 
 def _searchlight_group_inputs(study, w):
-    return {"maps": [contract.fill("geometry_searchlight_map", analysis=w["analysis"], subject=s) for s in study.subjects],
-            "masks": [contract.fill("brain_mask", subject=s) for s in study.subjects]}
+    return {"maps": [study.paths.fill("geometry_searchlight_map", analysis=w["analysis"], subject=s) for s in study.subjects],
+            "masks": [study.paths.fill("brain_mask", subject=s) for s in study.subjects]}
 
 
 JOB_INPUTS = {"geometry_patterns": _patterns_inputs, "geometry_subject": _subject_inputs, "geometry_group": _group_inputs,
@@ -219,4 +219,4 @@ STEP_SETTINGS = {
 
 def group_summary_paths(study):
     """The terminal summary file of each geometry analysis."""
-    return [contract.fill("geometry_summary", analysis=analysis.name) for analysis in geometry_analyses(study)]
+    return [study.paths.fill("geometry_summary", analysis=analysis.name) for analysis in geometry_analyses(study)]

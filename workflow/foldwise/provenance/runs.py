@@ -93,15 +93,15 @@ def remove_leftovers(results_dir, store_dir, now_s=None):
     return removed
 
 
-def forced_records(dag):
-    """The provenance-record paths of the jobs Snakemake forces in this run.
+def forced_records(dag, results_dir="results"):
+    """The provenance-record paths of the jobs Snakemake forces in this run (records under ``results_dir``).
 
     ``dag`` is Snakemake's DAG (``workflow.dag``) after planning: a job is
     forced when its reason says so, which covers ``--forcerun RULE``,
     ``--forcerun FILE``, ``--forceall`` and ``--force`` alike.
     """
     return sorted(str(path) for job in dag.needrun_jobs() if dag.reason(job).forced
-                  for path in job.output if str(path).startswith("results/provenance/"))
+                  for path in job.output if str(path).startswith(f"{results_dir}/provenance/"))
 
 
 def start_run(dag, results_dir, store_dir):
@@ -109,7 +109,7 @@ def start_run(dag, results_dir, store_dir):
     removed = remove_leftovers(results_dir, store_dir)
     if removed:
         print(f"foldwise: removed {len(removed)} temporary file(s) or folder(s) left by an interrupted run")
-    forced = forced_records(dag)
+    forced = forced_records(dag, results_dir)
     listing = Path(results_dir) / ".foldwise" / "forced-jobs.txt"
     if forced:
         listing.parent.mkdir(parents=True, exist_ok=True)

@@ -499,9 +499,9 @@ def _decode_job(folder, conditions_per_run, classes):
     analysis = {"name": "shape", "kind": "within", "classes": classes, "selection": "signal", "voxel_counts": [5, "all"],
                 "classifier": "correlation_centroid", "svm_c": 1.0, "logistic_c": 1.0, "demean_patterns": False,
                 "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "n_permutations": 5}
-    outputs = {name: str(folder / "out" / f"{name}.tsv") for name in ("scores", "null", "rankings", "confusion")}
-    return lambda: decode_job.run({"patterns": images, "tables": tables, "mask": str(mask)}, outputs,
-                                  {"analysis": analysis, "subject": "01", "roi": "ember", "seed": 3}, LOG)
+    outputs = {name: [str(folder / "out" / f"{name}.tsv")] for name in ("scores", "null", "rankings", "confusion")}  # one file per ROI
+    return lambda: decode_job.run({"patterns": images, "tables": tables, "masks": [str(mask)]}, outputs,
+                                  {"analysis": analysis, "subject": "01", "rois": ["ember"], "seed": 3}, LOG)
 
 
 @case("a class absent from a training fold (only in one run)", "folds.check_training_classes (decode job)")
@@ -968,9 +968,9 @@ def _patterns_off_the_mask_grid(folder):
     analysis = {"name": "shape", "kind": "within", "classes": {"round": ["seen_round"], "square": ["seen_square"]}, "selection": "signal",
                 "voxel_counts": [5, "all"], "classifier": "correlation_centroid", "svm_c": 1.0, "logistic_c": 1.0, "demean_patterns": False,
                 "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "n_permutations": 5}
-    outputs = {name: str(folder / "out" / f"{name}.tsv") for name in ("scores", "null", "rankings", "confusion")}
-    return Expectation(lambda: decode_job.run({"patterns": images, "tables": tables, "mask": str(mask)}, outputs,
-                                              {"analysis": analysis, "subject": "01", "roi": "ember", "seed": 3}, LOG),
+    outputs = {name: [str(folder / "out" / f"{name}.tsv")] for name in ("scores", "null", "rankings", "confusion")}  # one file per ROI
+    return Expectation(lambda: decode_job.run({"patterns": images, "tables": tables, "masks": [str(mask)]}, outputs,
+                                              {"analysis": analysis, "subject": "01", "rois": ["ember"], "seed": 3}, LOG),
                        f"{FOLDER}/sub-01_run-01_patterns.nii.gz: affine: the patterns' voxel centres lie more than 0.001 mm from the "
                        f"mask's ({FOLDER}/roi-ember_mask.nii.gz): another space or another grid. Fix: compute the patterns and the mask "
                        "on the subject's one grid")

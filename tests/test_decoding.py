@@ -486,9 +486,10 @@ def _run_decode(tmp_path, analysis, roi="ember", region=None, images=None, table
     if images is None:
         images, tables, ember = _lantern_subject(tmp_path)
         region = ember if region is None else region
-    inputs = {"patterns": images, "tables": tables, "mask": _mask(tmp_path, region, roi)}
+    inputs = {"patterns": images, "tables": tables, "masks": [_mask(tmp_path, region, roi)]}
     outputs = _outputs(out or tmp_path, roi)
-    decode_job.run(inputs, outputs, {"analysis": analysis, "subject": subject, "roi": roi, "seed": seed}, log or logging.getLogger("test"))
+    decode_job.run(inputs, {name: [path] for name, path in outputs.items()},  # the job's outputs: one file per ROI
+                   {"analysis": analysis, "subject": subject, "rois": [roi], "seed": seed}, log or logging.getLogger("test"))
     return outputs
 
 
@@ -583,8 +584,26 @@ def test_decode_job_rejects_bad_inputs_with_input_error(tmp_path):
     wrong_grid = tmp_path / "wrong_grid_mask.nii.gz"
     save_nifti(wrong_grid, np.ones((5, 4, 2), dtype=np.uint8), AFFINE, dtype=np.uint8)
     with pytest.raises(InputError, match="grid"):
-        decode_job.run({"patterns": images, "tables": tables, "mask": str(wrong_grid)}, _outputs(tmp_path),
-                       {"analysis": _analysis(), "subject": "01", "roi": "ember", "seed": 1}, logging.getLogger("test"))
+        decode_job.run({"patterns": images, "tables": tables, "masks": [str(wrong_grid)]}, {key: [path] for key, path in _outputs(tmp_path).items()},
+                       {"analysis": _analysis(), "subject": "01", "rois": ["ember"], "seed": 1}, logging.getLogger("test"))
+    # two ROI masks on different grids: one job reads the patterns once over both, so they must share the grid
+    with pytest.raises(InputError, match="grid of"):
+        shifted = tmp_path / "shifted_mask.nii.gz"
+        save_nifti(shifted, ember.astype(np.uint8), AFFINE + _shift(2.0), dtype=np.uint8)
+        decode_job.run({"patterns": images, "tables": tables, "masks": [_mask(tmp_path, ember, "ember"), str(shifted)]},
+                       {key: [path, path + ".2"] for key, path in _outputs(tmp_path).items()},
+                       {"analysis": _analysis(), "subject": "01", "rois": ["ember", "glow"], "seed": 1}, logging.getLogger("test"))
+    with pytest.raises(InputError, match="one mask per ROI"):
+        decode_job.run({"patterns": images, "tables": tables, "masks": [_mask(tmp_path, ember, "ember")]},
+                       {key: [path, path + ".2"] for key, path in _outputs(tmp_path).items()},
+                       {"analysis": _analysis(), "subject": "01", "rois": ["ember", "glow"], "seed": 1}, logging.getLogger("test"))
+
+
+def _shift(millimetres):
+    """An affine term that moves a grid by ``millimetres`` along x."""
+    shift = np.zeros((4, 4))
+    shift[0, 3] = millimetres
+    return shift
 
 
 def test_decode_job_names_subject_run_and_class_missing_from_a_training_fold(tmp_path):

@@ -156,19 +156,25 @@ def test_the_demo_plan_has_the_jobs_of_the_workflow_before_the_model():
     counts = {}
     for step, _ in jobs:
         counts[step] = counts.get(step, 0) + 1
-    # measured on commit 2b945cc: snakemake -n lists these (plus manifest and all); kinds added since add their own steps
-    expected = {"demo_dataset": 1, "brain_mask": 5, "glm": 20, "roi_mask": 15, "roi_counts": 5, "decode": 30, "decode_gather": 10,
+    # measured on commit 2b945cc: snakemake -n lists these (plus manifest and all); kinds added since add their own steps;
+    # decode: one job per subject x analysis since (it decodes every ROI of the analysis)
+    expected = {"demo_dataset": 1, "brain_mask": 5, "glm": 20, "roi_mask": 15, "roi_counts": 5, "decode": 10, "decode_gather": 10,
                 "group": 2, "searchlight_block": 10, "searchlight_merge": 5, "searchlight_group": 1, "report": 1}
     assert {step: counts.get(step) for step in expected} == expected
     outputs = plan.all_job_outputs(model)
     assert len(outputs) == len(set(outputs))
     assert all(path.startswith("results/") for path in outputs)
-    assert plan.job_outputs(model, "decode", {"analysis": "shape", "subject": "01", "roi": "ember"}) == {
-        "scores": "results/decoding/shape/sub-01/sub-01_roi-ember_scores.tsv",
-        "null": "results/decoding/shape/sub-01/sub-01_roi-ember_null.tsv.gz",
-        "rankings": "results/decoding/shape/sub-01/sub-01_roi-ember_rankings.tsv.gz",
-        "confusion": "results/decoding/shape/sub-01/sub-01_roi-ember_confusion.tsv",
-        "provenance": "results/provenance/decode/shape_sub-01_roi-ember.json"}
+    # one file per ROI of the analysis, in the analysis's ROI order (the demo's shape analysis decodes every ROI)
+    rois = list(model.analyses["shape"].rois)
+    assert rois == ["ember", "glow", "hush"]
+    assert plan.job_outputs(model, "decode", {"analysis": "shape", "subject": "01"}) == {
+        "scores": [f"results/decoding/shape/sub-01/sub-01_roi-{roi}_scores.tsv" for roi in rois],
+        "null": [f"results/decoding/shape/sub-01/sub-01_roi-{roi}_null.tsv.gz" for roi in rois],
+        "rankings": [f"results/decoding/shape/sub-01/sub-01_roi-{roi}_rankings.tsv.gz" for roi in rois],
+        "confusion": [f"results/decoding/shape/sub-01/sub-01_roi-{roi}_confusion.tsv" for roi in rois],
+        "provenance": "results/provenance/decode/shape_sub-01.json"}
+    assert plan.job_inputs(model, "decode", {"analysis": "shape", "subject": "01"})["masks"] == [
+        f"results/masks/sub-01/sub-01_roi-{roi}_mask.nii.gz" for roi in rois]
 
 
 def test_every_input_of_a_job_is_a_planned_output_or_a_dataset_file():

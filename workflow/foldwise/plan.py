@@ -18,7 +18,7 @@ from foldwise.errors import InputError
 from foldwise.geometry import wiring as geometry_wiring
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
-           "step_outputs", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
+           "step_outputs", "with_rois", "roi_list_rules", "ROI_LIST_STEPS", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
            "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets", "RunLookup"]
 
 
@@ -149,7 +149,7 @@ STEPS = {
                                                  design_png="design_figure", resvar="residual_variance", facts="glm_facts")),
     "roi_mask": Step("sub-{subject}_roi-{roi}", named_outputs(mask="roi_mask", info="roi_info")),
     "roi_counts": Step("sub-{subject}", named_outputs(table="roi_counts")),
-    "decode": Step("{analysis}_sub-{subject}_roi-{roi}", named_outputs(scores="decode_scores", null="decode_null", rankings="decode_rankings",
+    "decode": Step("{analysis}_sub-{subject}", named_outputs(scores="decode_scores", null="decode_null", rankings="decode_rankings",
                                                                 confusion="decode_confusion")),
     "decode_gather": Step("{analysis}_sub-{subject}", named_outputs(scores="subject_scores", summary="subject_summary")),
     "group": Step("{analysis}", named_outputs(table="group_table", null="group_null", summary="group_summary")),
@@ -167,6 +167,31 @@ STEPS = {
 def step_outputs(study, step):
     """Output templates of a step (wildcards unfilled), its provenance record last."""
     return {**STEPS[step].outputs(study), "provenance": study.paths.provenance(step, STEPS[step].identity)}
+
+
+# Steps whose one job (per subject x analysis) writes each output once per ROI of the analysis:
+# step -> rois(study, wildcards), the order of the job's output lists.
+ROI_LIST_STEPS = {"decode": lambda study, w: list(study.analyses[w["analysis"]].rois)}
+
+
+def with_rois(templates, rois):
+    """Output templates with ``{roi}`` filled for each ROI: each becomes a list in the order of ``rois`` (the others stay)."""
+    return {name: [template.replace("{roi}", roi) for roi in rois] if isinstance(template, str) and "{roi}" in template else template
+            for name, template in templates.items()}
+
+
+def roi_list_rules(study, step):
+    """The rules of a step in ``ROI_LIST_STEPS``: ``[(analysis names, ROI names)]``, one per distinct ROI list.
+
+    A rule's outputs cannot depend on a wildcard, so the analyses that
+    decode another list of ROIs get a rule of their own (constrained to
+    their names); with every analysis on the same ROIs, there is one rule.
+    """
+    groups = {}
+    for name, analysis in study.analyses.items():
+        if step in analysis.steps:
+            groups.setdefault(tuple(analysis.rois), []).append(name)
+    return [(tuple(names), rois) for rois, names in groups.items()]
 
 
 def step_log(study, step):
@@ -188,7 +213,7 @@ def planned_jobs(study):
     for name, analysis in study.analyses.items():
         steps = analysis.steps
         if "decode" in steps:
-            jobs += [("decode", {"analysis": name, "subject": subject, "roi": roi}) for subject in subjects for roi in analysis.rois]
+            jobs += [("decode", {"analysis": name, "subject": subject}) for subject in subjects]  # every ROI of the analysis in one job
         if "decode_gather" in steps:
             jobs += [("decode_gather", {"analysis": name, "subject": subject}) for subject in subjects]
         if "group" in steps:
@@ -221,8 +246,11 @@ def _fill(template, wildcards):
 
 def job_outputs(study, step, wildcards):
     """The output files of one job: {output name: path or list of paths}."""
+    templates = step_outputs(study, step)
+    if step in ROI_LIST_STEPS:
+        templates = with_rois(templates, ROI_LIST_STEPS[step](study, wildcards))
     return {name: [_fill(path, wildcards) for path in value] if isinstance(value, list) else _fill(value, wildcards)
-            for name, value in step_outputs(study, step).items()}
+            for name, value in templates.items()}
 
 
 def job_output_files(study, step, wildcards):
@@ -284,7 +312,8 @@ def roi_mask_inputs(study, w):
 
 def _decode_inputs(study, w):
     return {"patterns": _subject_patterns(study, w["subject"], "patterns_image"),
-            "tables": _subject_patterns(study, w["subject"], "patterns_table"), "mask": study.paths.fill("roi_mask", **w)}
+            "tables": _subject_patterns(study, w["subject"], "patterns_table"),
+            "masks": [study.paths.fill("roi_mask", subject=w["subject"], roi=roi) for roi in study.analyses[w["analysis"]].rois]}
 
 
 def _group_inputs(study, w):

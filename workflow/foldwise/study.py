@@ -449,8 +449,9 @@ STEP_SETTINGS = {
     "glm": _glm_settings,
     "roi_mask": lambda study, w: {"roi": _plain(study.rois[w["roi"]].entry), "subject": w["subject"]},
     "roi_counts": lambda study, w: {"subject": w["subject"]},
-    "decode": lambda study, w: {"analysis": study.analyses[w["analysis"]].method(), "subject": w["subject"], "roi": w["roi"],
-                                "seed": study.seed,
+    # One job decodes every ROI of the analysis; each ROI's part of the job is keyed on these settings without "rois" (jobs/decode.py).
+    "decode": lambda study, w: {"analysis": study.analyses[w["analysis"]].method(), "subject": w["subject"],
+                                "rois": list(study.analyses[w["analysis"]].rois), "seed": study.seed,
                                 **({"pattern_tasks": study.pattern_tasks(w["analysis"])} if study.pattern_tasks(w["analysis"]) else {})},
     "decode_gather": _decode_gather_settings,
     "group": _group_settings,

@@ -51,9 +51,10 @@ wildcard_constraints:
 
 
 # -- what each rule takes from the plan ------------------------------------------------------
-def outputs_of(step):
-    """The step's output templates (the provenance record last)."""
-    return plan.step_outputs(MODEL, step)
+def outputs_of(step, rois=None):
+    """The step's output templates (the provenance record last); with ``rois``, one file per ROI (a list each, plan.with_rois)."""
+    outputs = plan.step_outputs(MODEL, step)
+    return outputs if rois is None else plan.with_rois(outputs, rois)
 
 
 def inputs_of(step):

@@ -1,29 +1,42 @@
-# Per subject x analysis x ROI: fold-aware selection, decoding curves and the
-# permutation null (one job); per subject x analysis: the gathered tables.
+# Per subject x analysis: fold-aware selection, decoding curves and the
+# permutation null of every ROI of the analysis (one job, the patterns read
+# once; each ROI a part of the job's memo), then the gathered tables.
+# A rule's outputs cannot depend on a wildcard: the analyses that decode
+# another list of ROIs get a rule of their own (decode_2, ...; plan.roi_list_rules).
+import re
+
 from foldwise.jobs import decode_gather as decode_gather_job
 from foldwise.provenance.memo import run_in_process
 
 
-rule decode:
-    input:
-        unpack(inputs_of("decode")),
-    output:
-        **outputs_of("decode"),
-    params:
-        settings=settings_of("decode"),
-        code=step_code("decode.py"),
-    log:
-        log_of("decode"),
-    benchmark:
-        benchmark_of("decode")
-    threads: 1
-    resources:
-        mem_mb=2000,
-        runtime=30,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/decode.py"
+for _number, (_analyses, _rois) in enumerate(plan.roi_list_rules(MODEL, "decode"), start=1):
+
+    rule:
+        name:
+            "decode" if _number == 1 else f"decode_{_number}"
+        wildcard_constraints:
+            analysis="|".join(re.escape(name) for name in _analyses),
+        input:
+            unpack(inputs_of("decode")),
+        output:
+            **outputs_of("decode", _rois),
+        params:
+            settings=settings_of("decode"),
+            code=step_code("decode.py"),
+        log:
+            log_of("decode"),
+        benchmark:
+            benchmark_of("decode")
+        threads: 1
+        resources:
+            # one ROI at a time (its null arrays) plus the subject's patterns over the ROIs' union
+            mem_mb=2000,
+            # the allowance of one ROI (30 min, the earlier job's) for each ROI of the analysis
+            runtime=30 * len(_rois),
+        conda:
+            "../envs/foldwise.yaml"
+        script:
+            "../scripts/decode.py"
 
 
 rule decode_gather:

@@ -987,6 +987,73 @@ def _glm_facts_without_a_field(folder):
                        "workflow (snakemake rebuilds what is missing or stale)")
 
 
+# -- the results folder (study.results_dir; foldwise.results_folder) -----------------------------------
+def _with_results_dir(results_dir, **changes):
+    """LANTERNS with its own results folder, the demo's files inside it."""
+    moved = {f"dataset.{key}": f"{results_dir}/demo/{tail}" for key, tail in
+             (("bids_root", "bids"), ("atlas_image", "atlas/atlas.nii.gz"), ("atlas_labels", "atlas/atlas_labels.tsv"))}
+    return _study(**{"study.results_dir": results_dir, **moved, **changes})
+
+
+@case("results folder given as an absolute path", "results_folder.check_results_dir via config.validate, before any job")
+def _absolute_results_dir(folder):
+    return Expectation(_validating(_study(**{"study.results_dir": "/scratch/lanterns"})),
+                       "config/study.yaml: study.results_dir: '/scratch/lanterns' is an absolute path; outputs are named by their path "
+                       "inside the checkout (provenance, manifest, bundle). Fix: give a folder relative to the checkout (e.g. results_b); "
+                       "for another disk, make that folder a symbolic link to it")
+
+
+@case("results folder not in plain form (./, .., //, trailing /)", "results_folder.check_results_dir via config.validate, before any job")
+def _results_dir_not_plain(folder):
+    return Expectation(_validating(_study(**{"study.results_dir": "./results_b/"})),
+                       "config/study.yaml: study.results_dir: './results_b/' is not a plain relative folder name. Fix: write it with "
+                       "letters, digits, '_', '-', '.' and '/' only, without './', '..', '//' or a trailing '/' (e.g. 'results_b')")
+
+
+@case("results folder inside the checkout's code or config folders", "results_folder.check_results_dir via config.validate, before any job")
+def _results_dir_in_code(folder):
+    return Expectation(_validating(_with_results_dir("config/results")),
+                       "config/study.yaml: study.results_dir: 'config/results' is inside the checkout's config/ folder, which holds code "
+                       "or configs, not outputs. Fix: give a folder of its own at the top of the checkout (e.g. results_b)")
+
+
+@case("results folder is the memo store", "results_folder.check_results_dir via config.validate, before any job")
+def _results_dir_is_the_store(folder):
+    return Expectation(_validating(_with_results_dir("shared/memo", **{"study.store_dir": "shared/memo"})),
+                       "config/study.yaml: study.results_dir: 'shared/memo' is the memo store (study.store_dir 'shared/memo'), whose "
+                       "clean-up removes what no manifest reaches. Fix: give the results and the store different folders (the store "
+                       "may sit inside the results folder, as by default: results/.store)")
+
+
+@case("results folder inside the dataset", "results_folder.check_results_dir via config.validate, before any job")
+def _results_dir_in_the_data(folder):
+    study = _study(**{"study.results_dir": "data/lanterns/results", "dataset": {"source": "bids", "bids_root": "data/lanterns"}})
+    return Expectation(_validating(study),
+                       "config/study.yaml: study.results_dir: 'data/lanterns/results' is inside the dataset (dataset.bids_root "
+                       "'data/lanterns'): outputs would be written into the data. Fix: give a results folder outside the dataset "
+                       "(e.g. results_b)")
+
+
+@case("a demo study whose simulated files lie outside its results folder", "results_folder.check_results_dir via config.validate, before any job")
+def _demo_outside_results(folder):
+    return Expectation(_validating(_study(**{"study.results_dir": "results_b"})),
+                       "config/study.yaml: dataset.bids_root: the demo writes 'results/demo/bids', which is outside its results folder "
+                       "'results_b' (study.results_dir), so another study could overwrite it. Fix: put the demo's files inside the "
+                       "results folder: dataset.bids_root: results_b/demo/bids, dataset.atlas_image: results_b/demo/atlas/atlas.nii.gz, "
+                       "dataset.atlas_labels: results_b/demo/atlas/atlas_labels.tsv")
+
+
+@case("the study's results folder not writable", "results_folder.check_results_writable (workflow/rules/common.smk, before any job)")
+def _unwritable_results_dir(folder):
+    from foldwise.results_folder import check_results_writable
+
+    study = validate(_with_results_dir("results_b"), path="config/study.yaml")
+    return Expectation(lambda: _in_read_only_workspace(["results_b"], lambda: check_results_writable(study, "config/study.yaml")),
+                       "config/study.yaml: study.results_dir: the results folder 'results_b' cannot be written (results_b: this user "
+                       "cannot write here (permission denied)). Fix: make it writable for this user (or remove results left by another "
+                       "user), then rerun, or set study.results_dir to a folder this user can write")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

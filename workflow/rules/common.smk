@@ -99,7 +99,7 @@ def print_closing_lines():
     """The run's last lines: how many warnings the jobs logged, then the report's path (the last line)."""
     from foldwise.report.terminal import closing_lines, job_warnings
 
-    for line in closing_lines(len(job_warnings(plan.report_job_logs(MODEL))), MODEL.paths.template("report_html")):
+    for line in closing_lines(len(job_warnings(plan.report_job_logs(MODEL))), MODEL.paths.template("report_html"), MODEL.paths.folder("logs")):
         print(line)
 
 

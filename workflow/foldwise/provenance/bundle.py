@@ -1,7 +1,8 @@
 """The reviewer bundle: one archive that reproduces and proves every number.
 
 ``python -m foldwise.provenance.bundle make`` (``make bundle``) writes
-``results/bundle/<study>-bundle.tar.gz`` with exactly: the repository's
+``<results>/bundle/<study>-bundle.tar.gz`` (``<results>``: the config's
+``study.results_dir``, ``results`` by default) with exactly: the repository's
 tracked code and config, the study config (bundled with a warning if git
 does not track it), the exact lock, the manifest, the files the manifest
 lists, the provenance records of those files' jobs and a README for
@@ -40,6 +41,7 @@ import numpy as np
 import pandas as pd
 
 from foldwise.config import load_study_config
+from foldwise.contract import RESULTS, ResultPaths
 from foldwise.provenance.environment import read_lock, version_differences
 from foldwise.provenance.hashing import hash_file
 from foldwise.provenance.memo import memo_key
@@ -50,8 +52,6 @@ __all__ = ["bundle_members", "bundle_records", "make_bundle", "without_participa
 NUMERIC_RTOL = 1e-5
 NUMERIC_ATOL = 1e-7
 _IMAGE_SUFFIXES = (".nii", ".nii.gz")
-_MANIFEST_RECORD = "results/provenance/manifest/study.json"
-_REPORT_PAGE = "results/report/index.html"
 # Report figures drawn over a participant's images (figure_catalogue kinds masks, resvar, searchlight).
 _PARTICIPANT_FIGURE = re.compile(r"^(sub-[A-Za-z0-9]+_(masks|resvar)|[A-Za-z0-9][A-Za-z0-9_]*_searchlight)$")
 _FIGURE_BLOCK = re.compile(r'<figure id="fig-(?P<stem>[^"]+)">.*?</figure>', re.S)
@@ -61,9 +61,9 @@ REVIEWER_README = """# Reviewer bundle: {study}
 
 This archive holds the complete foldwise pipeline of the study "{study}": its
 code and config ({config}), the exact package lock (requirements/lock.txt),
-the manifest of every output with its sha256 (results/manifest.tsv, copied to
+the manifest of every output with its sha256 ({results}/manifest.tsv, copied to
 REVIEW/manifest.tsv), the files the manifest lists, and the provenance record
-of each job that made them (results/provenance). Nothing else: outputs of
+of each job that made them ({results}/provenance). Nothing else: outputs of
 other studies in the same checkout are left out.
 {images}{warning}
 To reproduce every number, on a machine with python3:
@@ -89,13 +89,13 @@ figures drawn over a participant's images (mean BOLD slices with the masks,
 residual variance maps, searchlight maps). REVIEW/report.html is the report
 with those figures replaced by a note; it shows the study settings, the
 decoding curves, confusion matrices, group tables and design matrices.
-`make verify` recomputes the full report (results/report/index.html) from
+`make verify` recomputes the full report ({results}/report/index.html) from
 the dataset.
 """
 
 _IMAGES_INCLUDED = """
 Participant images are included (made with INCLUDE_IMAGES=1): the NIfTI files
-the manifest lists and the full report (results/report/index.html) with the
+the manifest lists and the full report ({results}/report/index.html) with the
 figures drawn over participant images.
 """
 
@@ -109,26 +109,35 @@ def _tracked_files(root):
     return sorted(name for name in listing.decode("utf-8").split("\0") if name and (root / name).is_file())
 
 
-def _participant_figure(path):
+def _results_dir(root, config_path):
+    """The study's results folder (``study.results_dir`` of its config; the default when the config is not there)."""
+    if config_path is None or not (Path(root) / config_path).is_file():
+        return RESULTS
+    return load_study_config(Path(root) / config_path)["study"]["results_dir"]
+
+
+def _participant_figure(path, results_dir=RESULTS):
     """True for a report figure file drawn over a participant's images."""
-    if not path.startswith("results/report/figures/"):
+    if not path.startswith(ResultPaths(results_dir).template("report_figures_dir") + "/"):
         return False
     stem = path.rsplit("/", 1)[1].split(".", 1)[0]
     return bool(_PARTICIPANT_FIGURE.match(stem))
 
 
-def bundle_records(root, manifest):
+def bundle_records(root, manifest, results_dir=RESULTS):
     """The provenance records of this study's jobs: those whose every output the manifest lists with the same sha256.
 
     A record of an earlier study (another analysis, another ROI) names
     outputs the manifest does not list and is left out; the manifest job's
     own record is kept when its output is this manifest.
     """
-    root = Path(root)
+    root, paths = Path(root), ResultPaths(results_dir)
     listed = dict(zip(manifest["path"], manifest["sha256"]))
-    manifest_digest = hash_file(root / "results/manifest.tsv")
+    manifest_path = paths.template("manifest")
+    manifest_digest = hash_file(root / manifest_path)
     records = []
-    for path in sorted((root / "results/provenance").rglob("*.json")) if (root / "results/provenance").is_dir() else []:
+    provenance = root / paths.folder("provenance")
+    for path in sorted(provenance.rglob("*.json")) if provenance.is_dir() else []:
         relative = path.relative_to(root).as_posix()
         try:
             outputs = json.loads(path.read_text(encoding="utf-8"))["outputs"]
@@ -136,8 +145,8 @@ def bundle_records(root, manifest):
             continue
         if not outputs:
             continue
-        if relative == _MANIFEST_RECORD:
-            if all(item["path"] == "results/manifest.tsv" and item["sha256"] == manifest_digest for item in outputs):
+        if relative == paths.provenance("manifest", "study"):
+            if all(item["path"] == manifest_path and item["sha256"] == manifest_digest for item in outputs):
                 records.append(relative)
         elif all(listed.get(item["path"]) == item["sha256"] for item in outputs):
             records.append(relative)
@@ -154,24 +163,27 @@ def bundle_members(root, include_images=False, config_path=None):
     report page itself only then (else the bundle carries REVIEW/report.html).
     """
     root = Path(root)
+    results_dir = _results_dir(root, config_path)
+    paths = ResultPaths(results_dir)
+    outputs = (f"{RESULTS}/", f"{results_dir}/")  # the study's results and the default folder (the default store lives there)
     tracked = _tracked_files(root)
     if tracked is None:  # an unpacked bundle: everything but results and environments
         tracked = sorted(p.relative_to(root).as_posix() for p in root.rglob("*")
-                         if p.is_file() and not p.relative_to(root).as_posix().startswith(("results/", ".venv/", ".snakemake/", "REVIEW/")))
+                         if p.is_file() and not p.relative_to(root).as_posix().startswith((*outputs, ".venv/", ".snakemake/", "REVIEW/")))
     # Images only from config/ (e.g. an ROI mask that is part of the study's definition): a dataset kept
     # inside the repository is participant data, and an unpacked bundle has no git to tell them apart.
-    members = {m for m in tracked if not m.startswith("results/") and (not m.endswith(_IMAGE_SUFFIXES) or m.startswith("config/"))}
+    members = {m for m in tracked if not m.startswith(outputs) and (not m.endswith(_IMAGE_SUFFIXES) or m.startswith("config/"))}
     if config_path is not None and (root / config_path).is_file():
         members.add(Path(config_path).as_posix())
-    manifest = pd.read_csv(root / "results/manifest.tsv", sep="\t", dtype=str, keep_default_na=False)
-    members.add("results/manifest.tsv")
+    manifest = pd.read_csv(root / paths.template("manifest"), sep="\t", dtype=str, keep_default_na=False)
+    members.add(paths.template("manifest"))
     for path in manifest["path"]:
         if not (root / path).is_file() or path.endswith(".part"):
             continue
-        participant = path.endswith(_IMAGE_SUFFIXES) or _participant_figure(path) or path == _REPORT_PAGE
+        participant = path.endswith(_IMAGE_SUFFIXES) or _participant_figure(path, results_dir) or path == paths.template("report_html")
         if include_images or not participant:
             members.add(path)
-    members.update(bundle_records(root, manifest))
+    members.update(bundle_records(root, manifest, results_dir))
     return sorted(members)
 
 
@@ -197,14 +209,16 @@ def _add_bytes(archive, name, data):
 def make_bundle(root=".", include_images=False, config_path="config/config.yaml"):
     """Write the reviewer bundle and return its path."""
     root = Path(root).resolve()
-    if not (root / "results/manifest.tsv").is_file():
-        raise SystemExit("foldwise: results/manifest.tsv does not exist: run the study first (make demo)")
     if not (root / config_path).is_file():
         raise SystemExit(f"foldwise: the study config {config_path} does not exist: pass the one the study ran with (make bundle CONFIG=...)")
     config_path = Path(os.path.relpath(root / config_path, root)).as_posix()
-    study = load_study_config(root / config_path)["study"]["name"]
+    settings = load_study_config(root / config_path)["study"]
+    study, paths = settings["name"], ResultPaths(settings["results_dir"])
+    manifest_path = paths.template("manifest")
+    if not (root / manifest_path).is_file():
+        raise SystemExit(f"foldwise: {manifest_path} does not exist: run the study first (make study CONFIG={config_path})")
     prefix = f"{study}-bundle"
-    target = root / "results" / "bundle" / f"{prefix}.tar.gz"
+    target = root / paths.folder("bundle", f"{prefix}.tar.gz")
     target.parent.mkdir(parents=True, exist_ok=True)
     tracked = _tracked_files(root)
     warning = ""
@@ -214,7 +228,8 @@ def make_bundle(root=".", include_images=False, config_path="config/config.yaml"
         print(f"foldwise: warning: {config_path} is not tracked by git; it is bundled as it is on disk. "
               f"Commit it (git add {config_path}) so the study's definition is in its history.", file=sys.stderr)
     images = _IMAGES_INCLUDED if include_images else _IMAGES_LEFT_OUT
-    readme = REVIEWER_README.format(study=study, config=config_path, images=images, warning=warning, rtol=NUMERIC_RTOL, atol=NUMERIC_ATOL)
+    readme = REVIEWER_README.format(study=study, config=config_path, images=images.format(results=paths.root), warning=warning,
+                                    rtol=NUMERIC_RTOL, atol=NUMERIC_ATOL, results=paths.root)
     about = json.dumps({"study": study, "config": config_path, "include_images": bool(include_images)}, indent=1, sort_keys=True) + "\n"
     temporary = target.with_suffix(".part")
     with open(temporary, "wb") as raw, gzip.GzipFile(fileobj=raw, mode="wb", mtime=0, filename="") as zipped:
@@ -222,10 +237,11 @@ def make_bundle(root=".", include_images=False, config_path="config/config.yaml"
             for member in bundle_members(root, include_images, config_path):
                 _add_bytes(archive, f"{prefix}/{member}", (root / member).read_bytes())
             _add_bytes(archive, f"{prefix}/REVIEW/README.md", readme.encode("utf-8"))
-            _add_bytes(archive, f"{prefix}/REVIEW/manifest.tsv", (root / "results/manifest.tsv").read_bytes())
+            _add_bytes(archive, f"{prefix}/REVIEW/manifest.tsv", (root / manifest_path).read_bytes())
             _add_bytes(archive, f"{prefix}/REVIEW/study.json", about.encode("utf-8"))
-            if not include_images and (root / _REPORT_PAGE).is_file():
-                page = without_participant_figures((root / _REPORT_PAGE).read_text(encoding="utf-8"))
+            report_page = root / paths.template("report_html")
+            if not include_images and report_page.is_file():
+                page = without_participant_figures(report_page.read_text(encoding="utf-8"))
                 _add_bytes(archive, f"{prefix}/REVIEW/report.html", page.encode("utf-8"))
     os.replace(temporary, target)
     return target
@@ -298,7 +314,7 @@ def _record_key(record):
                     input_hashes, output_counts)
 
 
-def check_records(root, record_paths, manifest, lock_file):
+def check_records(root, record_paths, manifest, lock_file, results_dir=RESULTS):
     """[(record, problem)] for bundled provenance records that disagree with the manifest, the lock or their own key.
 
     A record lists its outputs' sha256 (they must be the manifest's), the
@@ -317,7 +333,7 @@ def check_records(root, record_paths, manifest, lock_file):
         except (OSError, ValueError, KeyError, TypeError):
             problems.append((relative, "unreadable or not a provenance record"))
             continue
-        if relative != _MANIFEST_RECORD:
+        if relative != ResultPaths(results_dir).provenance("manifest", "study"):
             for item in outputs:
                 if listed.get(item.get("path")) != item.get("sha256"):
                     problems.append((relative, f"lists {item.get('path')} with another sha256 than the manifest"))
@@ -340,7 +356,7 @@ def check_records(root, record_paths, manifest, lock_file):
 _COMPARED_FIELDS = ("step", "wildcards", "settings", "code_hash")
 
 
-def compare_records(reference_root, root, record_paths):
+def compare_records(reference_root, root, record_paths, results_dir=RESULTS):
     """[(record, problem)] where a recomputed provenance record differs from the bundled one (settings, code, versions, inputs)."""
     problems = []
     for relative in record_paths:
@@ -358,7 +374,7 @@ def compare_records(reference_root, root, record_paths):
             problems.append((relative, "versions differ from the bundled record"))
         # Provenance records as inputs (the manifest job's) carry run times: their bytes differ from run to run.
         digests = lambda record: [(item.get("name"), item.get("sha256")) for item in record.get("inputs", [])  # noqa: E731
-                                  if not str(item.get("path", "")).startswith("results/provenance/")]
+                                  if not str(item.get("path", "")).startswith(f"{results_dir}/provenance/")]
         if digests(bundled) != digests(fresh):
             problems.append((relative, "its input hashes differ from the bundled record"))
     return problems
@@ -380,19 +396,21 @@ def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
         print(f"foldwise verify: this bundle was made from the study config {about.get('config')}, not {config_path}; "
               f"run: make verify CONFIG={about.get('config')}")
         return 2
+    results_dir = _results_dir(root, config_path)
+    paths = ResultPaths(results_dir)
     reference_path = root / "REVIEW/manifest.tsv"
     if not reference_path.is_file():
-        reference_path = root / "results/manifest.tsv"
+        reference_path = root / paths.template("manifest")
     if not reference_path.is_file():
-        print("foldwise verify: no manifest found (REVIEW/manifest.tsv or results/manifest.tsv); run it inside an unpacked bundle")
+        print(f"foldwise verify: no manifest found (REVIEW/manifest.tsv or {paths.template('manifest')}); run it inside an unpacked bundle")
         return 2
     reference = pd.read_csv(reference_path, sep="\t", dtype=str, keep_default_na=False)
     kept = root / _EVIDENCE
     # The bundled evidence: under REVIEW/bundled once a verify has moved it there (a later verify reads it from there).
     evidence_root = kept if kept.is_dir() else root
     bundled = reference[[(evidence_root / path).is_file() for path in reference["path"]]]
-    records = sorted(p.relative_to(evidence_root).as_posix() for p in (evidence_root / "results/provenance").rglob("*.json")) \
-        if (evidence_root / "results/provenance").is_dir() else []
+    provenance = evidence_root / paths.folder("provenance")
+    records = sorted(p.relative_to(evidence_root).as_posix() for p in provenance.rglob("*.json")) if provenance.is_dir() else []
     print(f"Step 1: {len(bundled)} bundled results checked against the manifest, {len(records)} provenance records "
           "against the manifest, the lock and their memo keys")
     failures = 0
@@ -400,7 +418,7 @@ def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
         if row.status != "match":
             print(f"  {row.status}: {row.path}  (the bundled file differs from the manifest)")
             failures += 1
-    for record, problem in check_records(evidence_root, records, reference, root / "requirements/lock.txt"):
+    for record, problem in check_records(evidence_root, records, reference, root / "requirements/lock.txt", results_dir):
         print(f"  RECORD: {record}: {problem}")
         failures += 1
     if failures:
@@ -425,7 +443,7 @@ def verify(root=".", cores=2, recompute=True, config_path="config/config.yaml"):
     result = compare_outputs(reference, root, reference_root=kept)
     for row in result.itertuples():
         print(f"  {row.status}: {row.path}")
-    record_problems = compare_records(kept, root, records)
+    record_problems = compare_records(kept, root, records, results_dir)
     for record, problem in record_problems:
         print(f"  RECORD: {record}: {problem}")
     counts = result["status"].value_counts().to_dict()

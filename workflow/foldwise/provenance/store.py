@@ -8,9 +8,9 @@ first and recomputes instead), but a shared store is best checked on its own.
 
 ``python -m foldwise.provenance.store clean [--store DIR] [--manifest FILE ...]``
 drops the entries no manifest reaches: an entry is kept when every file it
-holds is listed, by sha256, in one of the given manifests (default
-``results/manifest.tsv``; a store shared by several studies needs all their
-manifests). Damaged entries, staging folders of killed runs and the input-hash
+holds is listed, by sha256, in one of the given manifests (default: the
+manifest in the results folder of ``--config``, ``study.results_dir``; a store
+shared by several studies needs all their manifests). Damaged entries, staging folders of killed runs and the input-hash
 cache (rebuilt on the next run) are dropped too. Entries younger than
 ``--min-age-s`` (default one hour) are kept, so a run that is storing
 results right now loses nothing.
@@ -76,10 +76,10 @@ def reachable_digests(manifest_paths):
         path = Path(path)
         if not path.is_file():
             raise InputError(path, "file", "the manifest does not exist, so what it reaches is unknown",
-                             "run the study first, or name every manifest that uses this store (MANIFESTS='a/results/manifest.tsv ...')")
+                             "run the study first, or name every manifest that uses this store (MANIFESTS='results_a/manifest.tsv ...')")
         table = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
         if "sha256" not in table.columns:
-            raise InputError(path, "sha256", "the manifest has no sha256 column", "give a results/manifest.tsv that foldwise wrote")
+            raise InputError(path, "sha256", "the manifest has no sha256 column", "give a manifest.tsv that foldwise wrote (in a study's results folder)")
         digests.update(table["sha256"])
         digests.add(hash_file(path))  # the manifest job's own entry
     return digests
@@ -129,6 +129,14 @@ def _default_store(config_path):
     return load_study_config(config_path)["study"]["store_dir"]
 
 
+def _default_manifest(config_path):
+    """The manifest of the config's own results folder (study.results_dir)."""
+    from foldwise.config import load_study_config
+    from foldwise.contract import ResultPaths
+
+    return ResultPaths(load_study_config(config_path)["study"]["results_dir"]).template("manifest")
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(prog="python -m foldwise.provenance.store", description=__doc__.splitlines()[0])
     commands = parser.add_subparsers(dest="command", required=True)
@@ -138,7 +146,7 @@ def main(argv=None):
         command.add_argument("--config", default="config/config.yaml", help="the study config (default: config/config.yaml)")
     cleaning = commands.choices["clean"]
     cleaning.add_argument("--manifest", action="append", help="a manifest whose files are kept (repeat for a shared store; "
-                                                              "default: results/manifest.tsv)")
+                                                              "default: the manifest in --config's results folder)")
     cleaning.add_argument("--min-age-s", type=float, default=DEFAULT_MIN_AGE_S, help="keep entries younger than this (seconds)")
     arguments = parser.parse_args(argv)
     try:
@@ -155,7 +163,7 @@ def main(argv=None):
             if damaged:
                 print("Fix: make store-clean drops damaged entries (runs never restore them: they recompute instead)")
             return 1 if damaged else 0
-        summary = clean_store(store_dir, arguments.manifest or ["results/manifest.tsv"], min_age_s=arguments.min_age_s)
+        summary = clean_store(store_dir, arguments.manifest or [_default_manifest(arguments.config)], min_age_s=arguments.min_age_s)
         print(f"foldwise store-clean: kept {summary['kept']} entries, dropped {summary['dropped']}, "
               f"freed {summary['freed_bytes'] / 1e6:.1f} MB")
         return 0

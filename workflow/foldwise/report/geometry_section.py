@@ -49,7 +49,7 @@ def read(inputs):
                    for key in ("geometry_matrix_figure", "geometry_mds_figure", "geometry_fits_figure")}
         name = str(table["analysis"].iloc[0]) if len(table) else ""
         for path in maps:
-            if path == contract.fill("geometry_searchlight_figure", analysis=name):
+            if path.endswith("/" + contract.relative_to_results("geometry_searchlight_figure", analysis=name)):  # any results folder
                 figures["geometry_searchlight_figure"] = (path, _bytes(path))
         analyses.append({"table": table, "summary": _bytes(paths["geometry_summary"][index]).decode("utf-8"), "figures": figures})
     return analyses

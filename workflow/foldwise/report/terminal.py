@@ -38,8 +38,10 @@ def job_warnings(job_logs):
     return found
 
 
-def closing_lines(n_warnings, report_path):
+def closing_lines(n_warnings, report_path, logs_dir="results/logs"):
     """The last lines of a successful run: the warning count, then the report's path (always the last line).
+
+    ``logs_dir`` is the study's log folder (``<study.results_dir>/logs``).
 
     Examples
     --------
@@ -47,9 +49,11 @@ def closing_lines(n_warnings, report_path):
     ['foldwise: no warnings.', 'foldwise: report: results/report/index.html']
     >>> closing_lines(3, "results/report/index.html")[0]
     "foldwise: 3 warnings (each job's log under results/logs/; all of them in the report's Warnings section)."
+    >>> closing_lines(1, "results_b/report/index.html", "results_b/logs")[0]
+    "foldwise: 1 warning (each job's log under results_b/logs/; all of them in the report's Warnings section)."
     """
     if n_warnings:
-        count = (f"foldwise: {n_warnings} warning{'s' if n_warnings != 1 else ''} (each job's log under results/logs/; "
+        count = (f"foldwise: {n_warnings} warning{'s' if n_warnings != 1 else ''} (each job's log under {logs_dir}/; "
                  "all of them in the report's Warnings section).")
     else:
         count = "foldwise: no warnings."

@@ -57,3 +57,15 @@ def test_job_modules_reach_their_science_through_two_level_relative_imports():
     # jobs/*.py import ``from ..glm import x``: the code hash must cover glm.py and its imports.
     names = {path.name for path in module_closure("foldwise.jobs.roi_counts")}
     assert "fileio.py" in names and "errors.py" in names
+
+
+def test_module_closure_sees_an_edited_script_after_a_cached_parse(tmp_path):
+    # The parse of each file is cached per process (Snakemake hashes ~20 closures that share modules);
+    # an edit changes the file's size or mtime, so the next closure parses it again.
+    script = tmp_path / "step.py"
+    script.write_text("import foldwise.errors\n", encoding="utf-8")
+    first = {path.name for path in module_closure(str(script))}
+    script.write_text("import foldwise.errors\nimport foldwise.provenance.hashing\n", encoding="utf-8")
+    second = {path.name for path in module_closure(str(script))}
+    assert "hashing.py" not in first and "hashing.py" in second
+    assert module_closure(str(script)) == module_closure(str(script))  # a cached parse gives the same closure

@@ -74,8 +74,22 @@ def _package_of(source_path):
     return ".".join(["foldwise", *relative.parts[:-1]])
 
 
+_IMPORTS_CACHE = {}  # (path, size, mtime_ns) -> frozenset of names: Snakemake hashes ~20 closures that share most modules
+
+
 def _imported_package_modules(source_path):
-    """Names of ``foldwise.*`` modules imported by one source file (relative imports resolved)."""
+    """Names of ``foldwise.*`` modules imported by one source file (relative imports resolved).
+
+    Parsed once per process while the file's size and mtime stay the same.
+    """
+    status = os.stat(source_path)
+    key = (str(source_path), status.st_size, status.st_mtime_ns)
+    if key not in _IMPORTS_CACHE:
+        _IMPORTS_CACHE[key] = frozenset(_parse_imports(source_path))
+    return set(_IMPORTS_CACHE[key])
+
+
+def _parse_imports(source_path):
     tree = ast.parse(Path(source_path).read_text(encoding="utf-8"))
     package = _package_of(source_path)
     names = set()

@@ -27,7 +27,6 @@ unchanged.
 import nibabel as nib
 import numpy as np
 import pandas as pd
-from scipy.signal import fftconvolve, lfilter
 
 from foldwise import __version__
 from foldwise.data.bids import make_run_id, run_files
@@ -403,6 +402,8 @@ def trial_regressors(onsets_s, durations_s, n_scans, tr_s):
     boxcars = ((fine_times[:, None] >= onsets[None, :]) & (fine_times[:, None] < (onsets + durations)[None, :])).astype(np.float64)
     kernel = double_gamma(dt_s * np.arange(int(np.ceil(_HRF_LENGTH_S / dt_s))))
     kernel /= kernel.sum()  # unit area on the fine grid
+    from scipy.signal import fftconvolve  # late: the workflow imports this module to plan the demo's runs (1.2 s)
+
     convolved = fftconvolve(boxcars, kernel[:, None], axes=0)[: fine_times.size]
     return convolved[:: _OVERSAMPLING]
 
@@ -484,6 +485,8 @@ def simulate_run(brain, condition_patterns, baseline, noise_sd, tr_s, trials_per
     leak = motion_z @ (_LEAK_SD / np.sqrt(6.0) * rng.standard_normal((6, n_brain)))
     innovations = noise_sd * rng.standard_normal((n_scans, n_brain))
     innovations[1:] *= np.sqrt(1.0 - _AR_RHO ** 2)  # the first sample already has the stationary variance
+    from scipy.signal import lfilter  # late, as fftconvolve above
+
     noise = lfilter([1.0], [1.0, -_AR_RHO], innovations, axis=0)
 
     bold = np.empty(brain.shape + (n_scans,), dtype=np.float32)

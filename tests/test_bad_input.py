@@ -1054,6 +1054,25 @@ def _unwritable_results_dir(folder):
                        "user), then rerun, or set study.results_dir to a folder this user can write")
 
 
+# -- one decode job, several ROIs (foldwise.jobs.decode) -----------------------------------------------
+@case("ROI masks of one decode job on different grids", "jobs/decode.read_subject_patterns (decode job: every ROI of a subject x analysis)")
+def _roi_masks_on_two_grids(folder):
+    images, tables = _pattern_runs(folder, [["seen_round", "seen_square"], ["seen_round", "seen_square"]])
+    ember, glow = folder / "roi-ember_mask.nii.gz", folder / "roi-glow_mask.nii.gz"
+    save_nifti(ember, np.ones(GRID, dtype=np.uint8), AFFINE, dtype=np.uint8)
+    shifted = AFFINE.copy()
+    shifted[:3, 3] += 1.5  # half a voxel: another grid of the same shape
+    save_nifti(glow, np.ones(GRID, dtype=np.uint8), shifted, dtype=np.uint8)
+    analysis = {"name": "shape", "kind": "within", "classes": {"round": ["seen_round"], "square": ["seen_square"]}, "selection": "signal",
+                "voxel_counts": [5, "all"], "classifier": "correlation_centroid", "svm_c": 1.0, "logistic_c": 1.0, "demean_patterns": False,
+                "folds": {"scheme": "leave_one_run_out", "n_groups": 2}, "n_permutations": 5}
+    outputs = {name: [str(folder / "out" / f"{roi}_{name}.tsv") for roi in ("ember", "glow")] for name in ("scores", "null", "rankings", "confusion")}
+    return Expectation(lambda: decode_job.run({"patterns": images, "tables": tables, "masks": [str(ember), str(glow)]}, outputs,
+                                              {"analysis": analysis, "subject": "01", "rois": ["ember", "glow"], "seed": 3}, LOG),
+                       f"{FOLDER}/roi-glow_mask.nii.gz: affine: the ROI mask is not on the grid of {FOLDER}/roi-ember_mask.nii.gz. "
+                       "Fix: build every ROI mask of the subject on its one grid")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

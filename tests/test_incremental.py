@@ -6,6 +6,7 @@ own copy of it.
 """
 
 import copy
+import json
 import os
 import shutil
 import subprocess
@@ -62,8 +63,18 @@ def test_changing_one_roi_reruns_only_that_roi(base_run, tmp_path):
     untouched = [path for path in before if "roi-glow" not in path and not path.startswith("results/report/")
                  and ("roi-" in path or "/patterns/" in path)]
     assert untouched, "expected outputs of other ROIs and the patterns"
-    changed = [path for path in untouched if after[path] != before[path]]
-    assert changed == [], f"outputs of other ROIs changed (hash or mtime): {changed[:5]}"
+    # One decode job writes every ROI of its subject x analysis: it reruns as a whole, and the other ROIs' files
+    # are restored from its part memo (same bytes, a new mtime); every other file keeps its bytes and its mtime.
+    decoded = [path for path in untouched if path.startswith("results/decoding/")]
+    assert decoded, "expected decode outputs of other ROIs"
+    changed = [path for path in untouched if (after[path][0] if path in decoded else after[path]) !=
+               (before[path][0] if path in decoded else before[path])]
+    assert changed == [], f"outputs of other ROIs changed (hash, or mtime outside the decode jobs): {changed[:5]}"
+    records = sorted((workdir / "results" / "provenance" / "decode").glob("*.json"))
+    assert len(records) == 6  # 3 subjects x 2 analyses, each rerun
+    for path in records:
+        parts = [(part["part"], part["restored"]) for part in json.loads(path.read_text())["parts"]]
+        assert parts == [("roi-ember", True), ("roi-glow", False), ("roi-hush", True)], (path.name, parts)
 
 
 def test_changing_one_analysis_classifier_reruns_only_that_analysis(base_run, tmp_path):

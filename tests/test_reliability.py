@@ -412,11 +412,11 @@ def test_e2e_an_override_changes_the_result_and_the_provenance(base_run, tmp_pat
     workdir = _copy_of(base_run, tmp_path)
     before = read_manifest(workdir).set_index("path")["sha256"]
     snakemake(workdir, "set=analyses[0].n_permutations=30", "--until", "group")
-    record = _record_of(workdir, "results/provenance/decode/shape_sub-01_roi-ember.json")
+    record = _record_of(workdir, "results/provenance/decode/shape_sub-01.json")
     assert record["settings"]["analysis"]["n_permutations"] == 30 and not record["restored_from_memo"]
     null = "results/decoding/shape/sub-01/sub-01_roi-ember_null.tsv.gz"
     assert hash_file(workdir / null) != before[null]
-    untouched = _record_of(workdir, "results/provenance/decode/carry_sub-01_roi-ember.json")
+    untouched = _record_of(workdir, "results/provenance/decode/carry_sub-01.json")
     assert untouched["settings"]["analysis"]["n_permutations"] == 20  # only the overridden analysis reran
 
 

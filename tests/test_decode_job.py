@@ -170,3 +170,27 @@ def test_a_roi_part_key_holds_its_own_identity_only(tmp_path, monkeypatch):
     both, _ = _run(_snakemake_job(tmp_path, images, tables, masks, ["ember", "hush"]), monkeypatch)
     alone, reads = _run(_snakemake_job(tmp_path, images, tables, masks, ["hush"]), monkeypatch)
     assert reads == 0 and alone["parts"] == [{"part": "roi-hush", "key": both["parts"][1]["key"], "restored": True}]
+
+
+# -- the plan: one job per subject x analysis, a rule per distinct ROI list ------------------------
+def test_analyses_with_another_roi_list_get_a_rule_of_their_own():
+    import copy
+
+    from foldwise import plan
+    from foldwise.config import validate
+    from foldwise.study import build_study
+    from workflow_support import TINY_STUDY
+
+    config = copy.deepcopy(TINY_STUDY)
+    config["analyses"][1]["rois"] = ["glow", "ember"]  # carry: two ROIs, in its own order
+    model = build_study(validate(config, path="config/study.yaml"), path="config/study.yaml")
+    assert plan.roi_list_rules(model, "decode") == [(("shape",), ("ember", "glow", "hush")), (("carry",), ("glow", "ember"))]
+    assert [wildcards for step, wildcards in plan.planned_jobs(model) if step == "decode"] == [
+        {"analysis": name, "subject": subject} for name in ("shape", "carry") for subject in ("01", "02", "03")]
+    wildcards = {"analysis": "carry", "subject": "02"}
+    outputs, inputs = plan.job_outputs(model, "decode", wildcards), plan.job_inputs(model, "decode", wildcards)
+    assert outputs["scores"] == [f"results/decoding/carry/sub-02/sub-02_roi-{roi}_scores.tsv" for roi in ("glow", "ember")]
+    assert outputs["provenance"] == "results/provenance/decode/carry_sub-02.json"
+    assert inputs["masks"] == [f"results/masks/sub-02/sub-02_roi-{roi}_mask.nii.gz" for roi in ("glow", "ember")]
+    settings = plan.job_settings(model, "decode", wildcards)
+    assert settings["rois"] == ["glow", "ember"] and "rois" not in settings["analysis"]  # the part of each ROI drops the list

@@ -25,7 +25,7 @@ from foldwise.errors import InputError
 from foldwise.provenance import bundle, memo, runs, store
 from foldwise.provenance.hashing import hash_file
 from foldwise.study import build_study
-from workflow_support import REPO, TINY_STUDY, copy_repository, read_manifest, scheduled_jobs, snakemake, write_study
+from workflow_support import REPO, TINY_STUDY, copy_repository, scheduled_jobs, snakemake, write_study
 
 DEMO_FILES = (("bids_root", "demo/bids"), ("atlas_image", "demo/atlas/atlas.nii.gz"), ("atlas_labels", "demo/atlas/atlas_labels.tsv"))
 
@@ -228,7 +228,7 @@ def test_two_studies_side_by_side_keep_their_outputs_and_switching_reruns_nothin
     assert scheduled_jobs(workdir, config="config/study_b.yaml") == []
     # Each study's outputs, provenance, manifest, report and logs are in its own folder; nothing in the default one but the shared store.
     for folder, name, other in (("results_a", "shape", "results_b"), ("results_b", "carry", "results_a")):
-        manifest = read_manifest(workdir / folder / "manifest.tsv")
+        manifest = pd.read_csv(workdir / folder / "manifest.tsv", sep="\t")
         assert all(path.startswith(f"{folder}/") for path in manifest["path"]), folder
         assert (workdir / folder / "report/index.html").is_file() and (workdir / folder / "provenance/manifest/study.json").is_file()
         assert (workdir / folder / "logs").is_dir() and (workdir / folder / "demo/bids/dataset_description.json").is_file()

@@ -12,7 +12,7 @@ instead). The run is written as .nii.gz into a temporary folder
 * ``nibabel load``: ``nibabel.load(path).get_fdata()`` of the BOLD file, the
   reference every ratio divides by;
 * ``foldwise load``: ``foldwise.data.bids.load_bold`` (the fast gzip decoder);
-* one whole job per GLM mode (``foldwise.jobs.glm.run``: load, mask, fit,
+* one whole run per GLM mode (``foldwise.jobs.glm.run_one``: load, mask, fit,
   write all five outputs), statistic t;
 * ``fit only``: ``foldwise.glm.estimate.estimate_patterns`` of each mode on data
   already loaded and masked (the science alone, for the breakdown).
@@ -138,7 +138,7 @@ def _fit_inputs(inputs):
 
 
 def _run_job(inputs, folder, mode):
-    glm_job.run(inputs, _outputs(folder / mode.replace(" ", "_").replace(",", "").replace("(", "").replace(")", "")),
+    glm_job.run_one(inputs, _outputs(folder / mode.replace(" ", "_").replace(",", "").replace("(", "").replace(")", "")),
                 _params(mode), _LOG)
 
 

@@ -63,7 +63,7 @@ def test_design_holds_exactly_the_selected_confounds_and_drops_the_initial_volum
                 ("facts", ".json"))}
     params = {"glm": GLM, "confounds": SELECTORS, "subject": run["subject"], "session": run["session"], "run_id": run["run_id"],
               "drop_initial_volumes": drop, "condition_column": "trial_type"}
-    glm_job.run(inputs, outputs, params, logging.getLogger("test"))
+    glm_job.run_one(inputs, outputs, params, logging.getLogger("test"))
     written = read_tsv(outputs["design"])
 
     # The hand-built design: columns picked by hand from the table, first volumes cut, onsets moved by hand.
@@ -366,7 +366,11 @@ def test_sessions_example_plans_localizer_and_cross_task_jobs(dataset):
     config = validate(example_config("sessions_localizer.yaml", dataset), path="sessions_localizer.yaml")
     study = build_study(config, path="sessions_localizer.yaml")
     assert study.tasks == ("lanterns", "beacon") and study.sessions == ("1", "2")
-    glm_runs = [w["run_id"] for step, w in study_plan.planned_jobs(study) if step == "glm" and w["subject"] == "01"]
+    glm_jobs = [w for step, w in study_plan.planned_jobs(study) if step == "glm" and w["subject"] == "01"]
+    assert glm_jobs == [{"subject": "01"}]  # one GLM job fits every run of the subject, each session and task
+    glm_runs = [run["run_id"] for run in study_plan.job_settings(study, "glm", glm_jobs[0])["runs"]]
+    assert [Path(path).name for path in study_plan.job_outputs(study, "glm", glm_jobs[0])["patterns"]] == [
+        f"sub-01_{run_id}_patterns.nii.gz" for run_id in glm_runs]
     assert glm_runs == ["ses-1_run-1", "ses-1_run-2", "ses-2_run-1", "ses-2_run-2",
                         "ses-1_task-beacon_run-1", "ses-1_task-beacon_run-2", "ses-2_task-beacon_run-1", "ses-2_task-beacon_run-2"]
     mask_jobs = [(step, w["roi"]) for step, w in study_plan.planned_jobs(study) if step in ("roi_mask", "localizer_roi") and w["subject"] == "01"]

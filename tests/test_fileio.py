@@ -115,3 +115,63 @@ def test_load_nifti_without_float32_still_finds_a_truncated_file(tmp_path):
     cut.write_bytes(gzip.compress(raw[:-100]))  # a complete gzip stream holding too few values
     with pytest.raises(InputError, match="truncated"):
         load_nifti(cut, float32=False)
+
+
+@pytest.mark.parametrize("dtype, slope, inter", [(np.int16, 0.37, 12.5), (np.int16, 1.0, 0.0), (np.uint8, 1.0, 0.0),
+                                                 (np.int32, 1e-3, 7.0), (np.int32, 1.0, 0.0), (np.float32, 1.0, 0.0),
+                                                 (np.float32, 2.0, 1.0)])
+def test_masked_float32_equals_nibabel_at_the_voxels_bit_for_bit(tmp_path, dtype, slope, inter):
+    # Reference: nibabel's get_fdata(dtype=float32) of the same file, indexed at the voxels (NIfTI's Fortran order).
+    import nibabel
+
+    from foldwise.data.fileio import load_stored, masked_float32
+
+    rng = np.random.default_rng(6)
+    stored = rng.integers(0, 30000 if dtype != np.uint8 else 250, size=(7, 5, 4, 30)).astype(dtype)
+    image = nibabel.Nifti1Image(stored, np.eye(4))
+    image.header.set_slope_inter(slope, inter)
+    path = tmp_path / "bold.nii.gz"
+    nibabel.save(image, path)
+    expected = nibabel.load(path).get_fdata(dtype=np.float32)
+    voxels = np.sort(rng.choice(7 * 5 * 4, size=50, replace=False))
+    got = masked_float32(*load_stored(path), voxels)
+    assert got.dtype == np.float32 and got.shape == (30, 50) and got.flags.c_contiguous
+    assert np.array_equal(got, expected.reshape(-1, 30, order="F")[voxels].T)
+
+
+@pytest.mark.parametrize("name", ["functional.nii", "example4d.nii.gz", "example_nifti2.nii.gz"])
+def test_load_stored_reads_the_files_nibabel_ships(name):
+    # Source: nibabel's own test images (scaled int16, unscaled int16, NIfTI-2); reference: nibabel's reader.
+    from pathlib import Path as _Path
+
+    import nibabel
+
+    from foldwise.data.fileio import load_stored, masked_float32
+
+    path = _Path(nibabel.__file__).parent / "tests" / "data" / name
+    if not path.is_file():
+        pytest.skip(f"nibabel's test data are not installed ({name})")
+    reference = nibabel.load(path)
+    image, stored = load_stored(path)
+    assert np.array_equal(stored, np.asanyarray(reference.dataobj.get_unscaled())) and np.array_equal(image.affine, reference.affine)
+    every_voxel = np.arange(int(np.prod(stored.shape[:3])))
+    expected = reference.get_fdata(dtype=np.float32).reshape(-1, stored.shape[3], order="F").T
+    assert np.array_equal(masked_float32(image, stored, every_voxel), expected)
+
+
+@pytest.mark.parametrize("suffix", [".nii", ".nii.gz"])
+def test_load_stored_finds_a_truncated_file_from_its_size(tmp_path, suffix):
+    import gzip
+
+    import nibabel
+
+    from foldwise.data.fileio import load_stored
+
+    path = tmp_path / "bold.nii"
+    nibabel.save(nibabel.Nifti1Image(np.ones((4, 4, 4, 10), dtype=np.int16), np.eye(4)), path)
+    raw = path.read_bytes()[:-100]  # complete header, too few values
+    cut = tmp_path / f"cut{suffix}"
+    cut.write_bytes(gzip.compress(raw) if suffix == ".nii.gz" else raw)
+    with pytest.raises(InputError, match="truncated") as excinfo:
+        load_stored(cut, what="BOLD image")
+    assert excinfo.value.file == str(cut) and excinfo.value.field == "content"

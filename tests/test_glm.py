@@ -13,6 +13,7 @@ import dataclasses
 import json
 import logging
 from pathlib import Path
+from types import SimpleNamespace
 
 import matplotlib.image
 import nibabel as nib
@@ -31,6 +32,7 @@ from foldwise.glm.estimate import (AR1_STEP, ar1_coefficients, ar1_moment_table,
 from foldwise.data.fileio import save_nifti, write_json, write_tsv
 from foldwise.glm.hrf import HRF_DURATION_S
 from foldwise.jobs import glm as glm_job
+from foldwise.provenance.memo import run_job
 
 N_SCANS, TR_S = 120, 2.0
 CONDITIONS = ["seen_round", "seen_square", "seen_star"]
@@ -524,7 +526,7 @@ def test_job_writes_the_contract_outputs(tmp_path):
     inputs, data, mask = _write_run(tmp_path / "in", rng)
     outputs = _outputs(tmp_path / "out")
     params = _params(conditions=CONDITIONS)
-    glm_job.run(inputs, outputs, params, logging.getLogger("test_glm_job"))
+    glm_job.run_one(inputs, outputs, params, logging.getLogger("test_glm_job"))
 
     patterns = nib.load(outputs["patterns"])
     values = np.asarray(patterns.dataobj)
@@ -563,8 +565,8 @@ def test_job_is_deterministic_and_runs_trial_wise_modes(tmp_path):
     inputs, _, _ = _write_run(tmp_path / "in", rng)
     params = _params(pattern_mode="lss", conditions=CONDITIONS)
     first, second = _outputs(tmp_path / "a"), _outputs(tmp_path / "b")
-    glm_job.run(inputs, first, params, logging.getLogger("test_glm_job"))
-    glm_job.run(inputs, second, params, logging.getLogger("test_glm_job"))
+    glm_job.run_one(inputs, first, params, logging.getLogger("test_glm_job"))
+    glm_job.run_one(inputs, second, params, logging.getLogger("test_glm_job"))
     for key in first:
         assert Path(first[key]).read_bytes() == Path(second[key]).read_bytes(), key
     table = pd.read_csv(first["table"], sep="\t", dtype=str, keep_default_na=False)
@@ -578,7 +580,7 @@ def test_job_warns_about_a_condition_absent_from_the_run(tmp_path, caplog):
     inputs, _, _ = _write_run(tmp_path / "in", rng, conditions=["seen_round", "seen_star"])
     outputs = _outputs(tmp_path / "out")
     with caplog.at_level(logging.WARNING, logger="test_glm_job"):
-        glm_job.run(inputs, outputs, _params(conditions=CONDITIONS, serial_correlation="ignore", statistic="beta"),
+        glm_job.run_one(inputs, outputs, _params(conditions=CONDITIONS, serial_correlation="ignore", statistic="beta"),
                     logging.getLogger("test_glm_job"))
     assert "seen_square" in caplog.text and "run-01" in caplog.text
     table = pd.read_csv(outputs["table"], sep="\t")
@@ -591,7 +593,7 @@ def test_job_refuses_a_mask_on_another_grid(tmp_path):
     shifted = np.diag([3.0, 3.0, 3.0, 1.0])
     save_nifti(tmp_path / "in" / "mask_shifted.nii.gz", np.ones((6, 5, 4), dtype=np.uint8), shifted, dtype=np.uint8)
     with pytest.raises(InputError) as excinfo:
-        glm_job.run({**inputs, "mask": str(tmp_path / "in" / "mask_shifted.nii.gz")}, _outputs(tmp_path / "out"), _params(),
+        glm_job.run_one({**inputs, "mask": str(tmp_path / "in" / "mask_shifted.nii.gz")}, _outputs(tmp_path / "out"), _params(),
                     logging.getLogger("test_glm_job"))
     assert excinfo.value.file.endswith("mask_shifted.nii.gz") and excinfo.value.field == "affine"
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
@@ -601,11 +603,83 @@ def test_job_names_the_events_file_when_no_condition_occurs(tmp_path):
     rng = np.random.default_rng(65)
     inputs, _, _ = _write_run(tmp_path / "in", rng)
     with pytest.raises(InputError) as excinfo:
-        glm_job.run(inputs, _outputs(tmp_path / "out"), _params(conditions=["heard_moon"]), logging.getLogger("test_glm_job"))
+        glm_job.run_one(inputs, _outputs(tmp_path / "out"), _params(conditions=["heard_moon"]), logging.getLogger("test_glm_job"))
     assert excinfo.value.file == inputs["events"] and excinfo.value.field == "trial_type"
     with pytest.raises(InputError) as excinfo:
-        glm_job.run(inputs, _outputs(tmp_path / "out"), _params(serial_correlation="ar3"), logging.getLogger("test_glm_job"))
+        glm_job.run_one(inputs, _outputs(tmp_path / "out"), _params(serial_correlation="ar3"), logging.getLogger("test_glm_job"))
     assert excinfo.value.field == "glm.serial_correlation"
+
+
+class _Named(dict):
+    """Stands in for Snakemake's Namedlist: items() plus attribute access."""
+
+    def __getattr__(self, name):
+        return self[name]
+
+
+def _subject_job(tmp_path, run_folders, glm_changes=None):
+    """The subject job's Snakemake object over runs written by _write_run (the first run's mask is the subject's)."""
+    run_ids = [folder.name for folder in run_folders]
+    inputs = _Named({name: [str(folder / file) for folder in run_folders] for name, file in
+                     (("bold", "bold.nii.gz"), ("events", "events.tsv"), ("sidecar", "bold.json"), ("confounds", "confounds.tsv"))})
+    inputs["mask"] = str(run_folders[0] / "mask.nii.gz")
+    per_run = {name: [str(tmp_path / "out" / f"{run_id}_{Path(path).name}") for run_id in run_ids]
+               for name, path in _outputs(tmp_path).items()}
+    params = _params(**(glm_changes or {}))
+    settings = {key: value for key, value in params.items() if key not in ("session", "run_id", "seed")}
+    settings.update(runs=[{"session": None, "run_id": run_id} for run_id in run_ids], drop_initial_volumes=0,
+                    condition_column="trial_type")
+    return SimpleNamespace(input=inputs, output=_Named(per_run, provenance=str(tmp_path / "prov" / "sub-01.json")),
+                           params=_Named(settings=settings, code="glm-code"), log=[str(tmp_path / "logs" / "sub-01.log")],
+                           wildcards=_Named(subject="01"), config={"study": {"store_dir": str(tmp_path / "store")}})
+
+
+def _run_subject_job(smk):
+    for paths in smk.output.values():  # Snakemake removes a job's outputs before it reruns
+        for path in [paths] if isinstance(paths, str) else paths:
+            Path(path).unlink(missing_ok=True)
+    run_job(smk, "glm", glm_job.run)
+    return json.loads(Path(smk.output.provenance).read_text())
+
+
+def test_subject_job_writes_every_run_as_the_one_run_fit_does(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    folders = [tmp_path / "in" / run_id for run_id in ("run-01", "run-02")]
+    for seed, folder in zip((71, 72), folders):
+        _write_run(folder, np.random.default_rng(seed))
+    smk = _subject_job(tmp_path, folders)
+    record = _run_subject_job(smk)
+    assert [(part["part"], part["restored"]) for part in record["parts"]] == [("run-01", False), ("run-02", False)]
+    for index, folder in enumerate(folders):
+        alone = _outputs(tmp_path / "alone" / folder.name)
+        run_inputs = {name: smk.input[name][index] for name in ("bold", "events", "sidecar", "confounds")}
+        glm_job.run_one({**run_inputs, "mask": smk.input["mask"]}, alone, glm_job.run_settings(smk.params.settings, index),
+                        logging.getLogger("test_glm_job"))
+        for name, path in alone.items():
+            assert Path(smk.output[name][index]).read_bytes() == Path(path).read_bytes(), (folder.name, name)
+
+
+def test_an_events_edit_in_one_run_refits_only_that_run(tmp_path, monkeypatch):
+    """The narrow key inside the subject's job: the edited run's part is computed, the other run's restored (memo on)."""
+    monkeypatch.chdir(tmp_path)
+    folders = [tmp_path / "in" / run_id for run_id in ("run-01", "run-02")]
+    for seed, folder in zip((73, 74), folders):
+        _write_run(folder, np.random.default_rng(seed))
+    smk = _subject_job(tmp_path, folders)
+    first = _run_subject_job(smk)
+    before = {name: [Path(path).read_bytes() for path in paths] for name, paths in smk.output.items() if name != "provenance"}
+    events = pd.read_csv(folders[1] / "events.tsv", sep="\t")
+    events.loc[0, "onset"] += 2.0  # one trial of run-02 moves by a scan
+    write_tsv(folders[1] / "events.tsv", events)
+    second = _run_subject_job(smk)
+    assert [(part["part"], part["restored"]) for part in second["parts"]] == [("run-01", True), ("run-02", False)]
+    assert second["parts"][0]["key"] == first["parts"][0]["key"] and second["parts"][1]["key"] != first["parts"][1]["key"]
+    after = {name: [Path(path).read_bytes() for path in paths] for name, paths in smk.output.items() if name != "provenance"}
+    assert all(after[name][0] == before[name][0] for name in before)  # run-01: the stored bytes
+    assert after["design"][1] != before["design"][1] and after["patterns"][1] != before["patterns"][1]  # run-02: refitted
+    # A GLM setting reaches every run's part: both are refitted.
+    third = _run_subject_job(_subject_job(tmp_path, folders, {"highpass_s": 64}))
+    assert [part["restored"] for part in third["parts"]] == [False, False]
 
 
 def test_design_labels_name_condition_blocks_of_trial_wise_designs():

@@ -11,6 +11,7 @@ commit 2b945cc with `snakemake -n`).
 
 import copy
 import re
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -157,8 +158,8 @@ def test_the_demo_plan_has_the_jobs_of_the_workflow_before_the_model():
     for step, _ in jobs:
         counts[step] = counts.get(step, 0) + 1
     # measured on commit 2b945cc: snakemake -n lists these (plus manifest and all); kinds added since add their own steps;
-    # decode: one job per subject x analysis since (it decodes every ROI of the analysis)
-    expected = {"demo_dataset": 1, "brain_mask": 5, "glm": 20, "roi_mask": 15, "roi_counts": 5, "decode": 10, "decode_gather": 10,
+    # decode: one job per subject x analysis since (it decodes every ROI of the analysis); glm: one job per subject since (every run)
+    expected = {"demo_dataset": 1, "brain_mask": 5, "glm": 5, "roi_mask": 15, "roi_counts": 5, "decode": 10, "decode_gather": 10,
                 "group": 2, "searchlight_block": 10, "searchlight_merge": 5, "searchlight_group": 1, "report": 1}
     assert {step: counts.get(step) for step in expected} == expected
     outputs = plan.all_job_outputs(model)
@@ -175,6 +176,15 @@ def test_the_demo_plan_has_the_jobs_of_the_workflow_before_the_model():
         "provenance": "results/provenance/decode/shape_sub-01.json"}
     assert plan.job_inputs(model, "decode", {"analysis": "shape", "subject": "01"})["masks"] == [
         f"results/masks/sub-01/sub-01_roi-{roi}_mask.nii.gz" for roi in rois]
+    # one file per run of the subject, in its run order; the inputs in the same order
+    run_ids = [run["run_id"] for run in model.runs_of("01")]
+    assert run_ids == ["run-01", "run-02", "run-03", "run-04"]
+    glm_outputs = plan.job_outputs(model, "glm", {"subject": "01"})
+    assert glm_outputs["patterns"] == [f"results/patterns/sub-01/sub-01_{run_id}_patterns.nii.gz" for run_id in run_ids]
+    assert glm_outputs["provenance"] == "results/provenance/glm/sub-01.json"
+    assert [len(paths) for name, paths in glm_outputs.items() if name != "provenance"] == [4] * 6
+    glm_inputs = plan.job_inputs(model, "glm", {"subject": "01"})
+    assert [Path(path).name for path in glm_inputs["events"]] == [f"sub-01_task-lanterns_{run_id}_events.tsv" for run_id in run_ids]
 
 
 def test_every_input_of_a_job_is_a_planned_output_or_a_dataset_file():

@@ -18,7 +18,7 @@ from foldwise.errors import InputError
 from foldwise.geometry import wiring as geometry_wiring
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
-           "step_outputs", "with_rois", "roi_list_rules", "ROI_LIST_STEPS", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
+           "step_outputs", "with_rois", "with_runs", "run_list_rules", "RUN_LIST_STEPS", "roi_list_rules", "ROI_LIST_STEPS", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
            "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets", "RunLookup"]
 
 
@@ -139,13 +139,15 @@ def report_figures(study):
 
 
 def _report_outputs(study):
-    return {"html": study.paths.template("report_html"), "figures": [path for entry in report_figures(study) for path in entry["paths"]]}
+    catalogue = report_figures(study)
+    return {"html": study.paths.template("report_html"), "figures": [path for entry in catalogue for path in entry["paths"]],
+            "previews": [entry["preview"] for entry in catalogue]}  # the screen PNGs the page embeds
 
 
 STEPS = {
     "demo_dataset": Step("study", _demo_outputs),
     "brain_mask": Step("sub-{subject}", named_outputs(mask="brain_mask", mean="brain_mean", summary="brain_summary")),
-    "glm": Step("sub-{subject}_{run_id}", named_outputs(patterns="patterns_image", table="patterns_table", design="design_table",
+    "glm": Step("sub-{subject}", named_outputs(patterns="patterns_image", table="patterns_table", design="design_table",
                                                  design_png="design_figure", resvar="residual_variance", facts="glm_facts")),
     "roi_mask": Step("sub-{subject}_roi-{roi}", named_outputs(mask="roi_mask", info="roi_info")),
     "roi_counts": Step("sub-{subject}", named_outputs(table="roi_counts")),
@@ -194,6 +196,31 @@ def roi_list_rules(study, step):
     return [(tuple(names), rois) for rois, names in groups.items()]
 
 
+# Steps whose one job (per subject) writes each output once per run of the subject:
+# step -> run_ids(study, wildcards), the order of the job's output lists.
+RUN_LIST_STEPS = {"glm": lambda study, w: [run["run_id"] for run in study.runs_of(w["subject"])]}
+
+
+def with_runs(templates, run_ids):
+    """Output templates with ``{run_id}`` filled for each run: each becomes a list in the order of ``run_ids`` (the others stay)."""
+    return {name: [template.replace("{run_id}", run_id) for run_id in run_ids]
+            if isinstance(template, str) and "{run_id}" in template else template for name, template in templates.items()}
+
+
+def run_list_rules(study, step):
+    """The rules of a step in ``RUN_LIST_STEPS``: ``[(subjects, run ids)]``, one per distinct list of run ids.
+
+    A rule's outputs cannot depend on a wildcard, so subjects with other
+    runs (a missing run, another session) get a rule of their own
+    (constrained to their labels); when every subject has the same runs,
+    there is one rule.
+    """
+    groups = {}
+    for subject in study.subjects:
+        groups.setdefault(tuple(RUN_LIST_STEPS[step](study, {"subject": subject})), []).append(subject)
+    return [(tuple(subjects), run_ids) for run_ids, subjects in groups.items()]
+
+
 def step_log(study, step):
     return study.paths.log(step, STEPS[step].identity)
 
@@ -207,7 +234,7 @@ def planned_jobs(study):
     subjects = study.subjects
     jobs = [("demo_dataset", {})] if study.is_demo else []
     jobs += [("brain_mask", {"subject": subject}) for subject in subjects]
-    jobs += [("glm", {"subject": run["subject"], "run_id": run["run_id"]}) for run in study.runs]
+    jobs += [("glm", {"subject": subject}) for subject in subjects]  # every run of the subject in one job
     jobs += roi_jobs(study, "roi_mask")  # an ROI kind with a step of its own (RoiKind.step) plans its jobs through register_steps
     jobs += [("roi_counts", {"subject": subject}) for subject in subjects]
     for name, analysis in study.analyses.items():
@@ -249,6 +276,8 @@ def job_outputs(study, step, wildcards):
     templates = step_outputs(study, step)
     if step in ROI_LIST_STEPS:
         templates = with_rois(templates, ROI_LIST_STEPS[step](study, wildcards))
+    if step in RUN_LIST_STEPS:
+        templates = with_runs(templates, RUN_LIST_STEPS[step](study, wildcards))
     return {name: [_fill(path, wildcards) for path in value] if isinstance(value, list) else _fill(value, wildcards)
             for name, value in templates.items()}
 
@@ -294,11 +323,12 @@ def _brain_mask_inputs(study, w):
 
 
 def _glm_inputs(study, w):
-    run = study.run(w["subject"], w["run_id"])
-    inputs = {"bold": run["bold"], "events": run["events"], "sidecar": run["sidecar"], "mask": study.paths.fill("brain_mask", subject=run["subject"])}
+    runs = study.runs_of(w["subject"])  # each list in the order of the job's runs (settings["runs"], its output lists)
+    inputs = {name: [run[name] for run in runs] for name in ("bold", "events", "sidecar")}
+    inputs["mask"] = study.paths.fill("brain_mask", subject=w["subject"])
     dataset = study.config["dataset"]
     if dataset["confounds"] or isinstance(dataset["drop_initial_volumes"], dict):  # flagged volumes are read from the confounds
-        inputs["confounds"] = run["confounds"]
+        inputs["confounds"] = [run["confounds"] for run in runs]
     return inputs
 
 

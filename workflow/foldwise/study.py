@@ -415,9 +415,10 @@ def _localizer_settings(study):
 
 
 def _glm_settings(study, wildcards):
-    run = study.run(wildcards["subject"], wildcards["run_id"])
-    return {"glm": study.config["glm"], "confounds": study.config["dataset"]["confounds"], "subject": run["subject"],
-            "session": run["session"], "run_id": run["run_id"],
+    # One job fits every run of the subject; each run's part of the job is keyed on these settings with "runs" narrowed to
+    # that run (jobs/glm.py), so a run added or removed recomputes no other run.
+    return {"glm": study.config["glm"], "confounds": study.config["dataset"]["confounds"], "subject": wildcards["subject"],
+            "runs": [{"session": run["session"], "run_id": run["run_id"]} for run in study.runs_of(wildcards["subject"])],
             "drop_initial_volumes": study.config["dataset"]["drop_initial_volumes"], "condition_column": study.config["dataset"]["condition_column"]}
 
 

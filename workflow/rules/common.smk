@@ -51,10 +51,12 @@ wildcard_constraints:
 
 
 # -- what each rule takes from the plan ------------------------------------------------------
-def outputs_of(step, rois=None):
-    """The step's output templates (the provenance record last); with ``rois``, one file per ROI (a list each, plan.with_rois)."""
+def outputs_of(step, rois=None, run_ids=None):
+    """The step's output templates (the provenance record last); with ``rois``, one file per ROI (a list each, plan.with_rois);
+    with ``run_ids``, one file per run (plan.with_runs)."""
     outputs = plan.step_outputs(MODEL, step)
-    return outputs if rois is None else plan.with_rois(outputs, rois)
+    outputs = outputs if rois is None else plan.with_rois(outputs, rois)
+    return outputs if run_ids is None else plan.with_runs(outputs, run_ids)
 
 
 def inputs_of(step):

@@ -1,4 +1,9 @@
-# Per subject: a brain mask; per subject x run: the GLM patterns.
+# Per subject: a brain mask; the GLM patterns of every run (one job per
+# subject: the process start and imports paid once, each run a part of the
+# job's memo, every run's files as before).
+# A rule's outputs cannot depend on a wildcard: subjects with another list of
+# runs get a rule of their own (glm_2, ...; plan.run_list_rules).
+import re
 
 
 rule brain_mask:
@@ -21,23 +26,31 @@ rule brain_mask:
         "../scripts/brain_mask.py"
 
 
-rule glm:
-    input:
-        unpack(inputs_of("glm")),
-    output:
-        **outputs_of("glm"),
-    params:
-        settings=settings_of("glm"),
-        code=step_code("glm.py"),
-    log:
-        log_of("glm"),
-    benchmark:
-        benchmark_of("glm")
-    threads: 1
-    resources:
-        mem_mb=3000,
-        runtime=20,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/glm.py"
+for _number, (_subjects, _run_ids) in enumerate(plan.run_list_rules(MODEL, "glm"), start=1):
+
+    rule:
+        name:
+            "glm" if _number == 1 else f"glm_{_number}"
+        wildcard_constraints:
+            subject="|".join(re.escape(subject) for subject in _subjects),
+        input:
+            unpack(inputs_of("glm")),
+        output:
+            **outputs_of("glm", run_ids=_run_ids),
+        params:
+            settings=settings_of("glm"),
+            code=step_code("glm.py"),
+        log:
+            log_of("glm"),
+        benchmark:
+            benchmark_of("glm")
+        threads: 1
+        resources:
+            # one run in memory at a time (as the earlier one-run job: its decoded file, the masked series, the fit)
+            mem_mb=3000,
+            # the allowance of one run (20 min, the earlier job's) for each run of the subject
+            runtime=20 * len(_run_ids),
+        conda:
+            "../envs/foldwise.yaml"
+        script:
+            "../scripts/glm.py"

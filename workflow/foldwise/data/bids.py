@@ -41,6 +41,7 @@ __all__ = [
     "discover_runs",
     "make_run_id",
     "load_bold",
+    "require_4d",
     "read_tr_s",
     "read_events",
     "read_confounds",
@@ -462,6 +463,13 @@ def discover_runs(bids_root, patterns, task, subjects=(), derivatives_root=None,
     return runs
 
 
+def require_4d(image, path):
+    """Refuse a BOLD image that is not a 4D time series (``path`` names it in the message)."""
+    if len(image.shape) != 4:
+        raise InputError(path, "dim", f"expected a 4D BOLD time series, got an image of shape {tuple(image.shape)}",
+                         "point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
+
+
 def load_bold(path):
     """Load a 4D BOLD image as float32 with its scaling applied.
 
@@ -485,9 +493,7 @@ def load_bold(path):
         If the file is missing, truncated, not NIfTI, or not 4D.
     """
     image = load_nifti(path, what="BOLD image", float32=False)
-    if len(image.shape) != 4:
-        raise InputError(path, "dim", f"expected a 4D BOLD time series, got an image of shape {tuple(image.shape)}",
-                         "point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
+    require_4d(image, path)
     data = float32_data(image)  # get_fdata's values, several times faster for integer files
     return data, np.asarray(image.affine, dtype=np.float64), image.header
 

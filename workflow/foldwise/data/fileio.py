@@ -42,6 +42,8 @@ __all__ = [
     "save_nifti",
     "load_nifti",
     "float32_data",
+    "load_stored",
+    "masked_float32",
     "save_figure",
     "FLOAT_FORMAT",
     "TEXT_COLUMNS",
@@ -328,6 +330,106 @@ def float32_data(image):
         if inter != 0.0:
             block += inter
         result[..., start:start + step] = block
+    return result
+
+
+def load_stored(path, what="image"):
+    """Read a NIfTI file once: the image (header, affine) and its stored values as a view of the decoded bytes.
+
+    For a reader that needs part of a large image (the GLM's masked time
+    series): the file is decoded once (the fast gzip decoder), nothing is
+    scaled or copied, and :func:`masked_float32` then converts only the
+    voxels wanted. Truncation is checked from the byte count the header
+    implies, without reading the values.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    what : str
+        What the file is, for messages.
+
+    Returns
+    -------
+    image : nibabel.Nifti1Image or nibabel.Nifti2Image
+        The in-memory image (as :func:`load_nifti` returns it with ``float32=False``).
+    stored : ndarray
+        The stored values, the image's shape in Fortran order (NIfTI's),
+        read-only, without scaling.
+
+    Raises
+    ------
+    InputError
+        If the file is missing, truncated or not a NIfTI image.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise missing_file_error(path, what)
+    data = path.read_bytes()
+    try:
+        if str(path).endswith(".gz"):
+            data = gunzip_bytes(data)
+        image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
+        image = image_class.from_bytes(data)
+        proxy = image.dataobj  # where nibabel itself reads the values: offset, dtype, shape, order
+        shape, dtype, offset = tuple(int(n) for n in proxy.shape), np.dtype(proxy.dtype), int(proxy.offset)
+        if getattr(proxy, "order", "F") != "F":
+            raise ValueError(f"values stored in {proxy.order!r} order, not NIfTI's")
+        n_values = int(np.prod(shape))
+        if len(data) < offset + n_values * dtype.itemsize:
+            raise ValueError(f"the header promises {n_values * dtype.itemsize} data bytes after byte {offset}, "
+                             f"the file holds {max(0, len(data) - offset)}")
+    except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
+        raise InputError(path, "content", f"the {what} is truncated or not a NIfTI file ({type(error).__name__}: {error})",
+                         "re-export or re-copy the file") from None
+    stored = np.frombuffer(data, dtype=dtype, count=n_values, offset=offset).reshape(shape, order="F")
+    return image, stored
+
+
+def masked_float32(image, stored, voxels):
+    """``float32_data(image)`` at some voxels, as ``(volumes, voxels)``, bit for bit, converting only those voxels.
+
+    Parameters
+    ----------
+    image : nibabel.Nifti1Image or nibabel.Nifti2Image
+        A 4D image from :func:`load_stored` (its scale factors are read here).
+    stored : ndarray
+        Its stored values (:func:`load_stored`).
+    voxels : array_like of int
+        Flat voxel indices in NIfTI's (Fortran) order.
+
+    Returns
+    -------
+    ndarray of float32, shape (volumes, len(voxels)), C order
+
+    Notes
+    -----
+    The arithmetic per value is :func:`float32_data`'s (stored integer to
+    float64, times ``scl_slope``, plus ``scl_inter``, cast to float32), so
+    the result equals ``float32_data(image)`` gathered at ``voxels``
+    (tests/test_fileio.py checks this); the values of other voxels are
+    never converted. Float files, and scale factors :func:`float32_data`
+    leaves to nibabel, take its full-image path.
+    """
+    proxy = image.dataobj
+    n_volumes = stored.shape[3]
+    slope, inter = np.float64(proxy.slope), np.float64(proxy.inter)
+    exact = (stored.dtype.kind in "iu" and stored.dtype.itemsize <= 4 and stored.ndim == 4
+             and np.isfinite(slope) and np.isfinite(inter) and np.isfinite(abs(slope) * 2.0**32 + abs(inter)))
+    if not exact:
+        return np.take(float32_data(image).reshape(-1, n_volumes, order="F").T, voxels, axis=1)
+    # Fortran order: the reshape is a view in which each volume is one contiguous row, so the gather reads rows.
+    picked = np.take(stored.reshape(-1, n_volumes, order="F").T, voxels, axis=1)
+    if slope == 1.0 and inter == 0.0 and picked.dtype.itemsize <= 2:
+        return picked.astype(np.float32)  # 16-bit integers are exact in float32: the same values without float64
+    result = np.empty(picked.shape, dtype=np.float32)
+    step = max(1, _SCALING_BLOCK_VALUES // max(1, picked.shape[1]))
+    for start in range(0, n_volumes, step):
+        block = picked[start:start + step].astype(np.float64)
+        if slope != 1.0:
+            block *= slope
+        if inter != 0.0:
+            block += inter
+        result[start:start + step] = block
     return result
 
 

@@ -1,27 +1,37 @@
-"""Job: the activity patterns of one subject x run (GLM betas or t-values)."""
+"""Job: the activity patterns of one subject, run by run (GLM betas or t-values).
+
+One job per subject fits every run the GLM step covers (each task and
+session), so a subject pays the process start and the imports once instead
+of once per run. Each run is a part of the job's memo
+(:func:`foldwise.provenance.memo.part_memo`): when Snakemake reruns the job
+because one run's files changed, the other runs are restored, not refitted.
+Every run keeps its own output files (patterns, table, design, figure,
+residual variance, facts), as the steps that read them expect.
+"""
 
 import numpy as np
 import pandas as pd
-from matplotlib.figure import Figure
 
-from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, load_bold, read_confounds, read_events,
-                                read_tr_s, select_confound_columns)
+from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, read_confounds, read_events, read_tr_s,
+                                require_4d, select_confound_columns)
 from foldwise.errors import InputError
-from foldwise.data.fileio import save_figure, save_nifti, write_json, write_tsv
+from foldwise.data.fileio import load_stored, masked_float32, save_figure, save_nifti, write_json, write_tsv
 from foldwise.glm.estimate import estimate_patterns
 from foldwise import contract
 from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
 from foldwise.masks.build import same_grid
+from foldwise.provenance.memo import part_memo
 
-__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "run", "design_labels", "design_figure"]
+__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "RUN_INPUTS", "run", "run_one", "run_settings", "design_labels", "design_figure"]
 
 TABLE_COLUMNS = contract.PATTERN_TABLE_COLUMNS  # defined once, in the data contract
+RUN_INPUTS = ("bold", "events", "sidecar", "confounds")  # one file per run (lists in the job's inputs); the mask is the subject's
 _MAX_LABELS = 24
 
 
-def _load_mask(path, shape, affine):
-    """The subject's brain mask (the contract's one reader), refused unless it lies on the run's BOLD grid."""
-    mask, mask_affine = contract.read_brain_mask(path)
+def _load_mask(path, shape, affine, read=None):
+    """The subject's brain mask (the contract's one reader, or ``read()``), refused unless it lies on the run's BOLD grid."""
+    mask, mask_affine = read() if read is not None else contract.read_brain_mask(path)
     if not same_grid(mask.shape, mask_affine, shape, affine, GRID_TOLERANCE_MM):
         raise InputError(path, "affine", f"the brain mask's grid (shape {mask.shape}) differs from the BOLD grid (shape {tuple(shape)})",
                          "make the brain mask on this subject's BOLD grid (same shape and affine)")
@@ -106,6 +116,8 @@ def design_figure(matrix, labels, title):
         without pyplot, so no global figure state (the Agg canvas renders it
         when saved).
     """
+    from matplotlib.figure import Figure  # here: a job whose runs are all restored never imports matplotlib
+
     values = np.asarray(matrix, dtype=np.float64)
     scale = np.max(np.abs(values), axis=0)
     shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0).T
@@ -198,7 +210,80 @@ def run_facts(subject, session, run_id, confound_names, n_dropped_volumes, n_dro
             "n_dropped_events_rows": int(n_dropped_events_rows), "n_scans_kept": int(n_scans_kept)}
 
 
+def run_settings(params, index):
+    """The settings one run's fit reads: the subject job's settings with ``runs`` narrowed to run ``index``.
+
+    These (with the run's input hashes) are the run's part identity, so a
+    run added to or removed from the subject recomputes no other run.
+    """
+    run = params["runs"][index]
+    settings = {key: value for key, value in params.items() if key != "runs"}
+    return {**settings, "session": run["session"], "run_id": run["run_id"]}
+
+
+def _nth(paths, index):
+    return paths[index] if isinstance(paths, (list, tuple)) else paths
+
+
+class _SubjectMask:
+    """The subject's brain mask, read once for all its runs (only if a run is fitted)."""
+
+    def __init__(self, path):
+        self.path = path
+        self._mask = None
+
+    def read(self):
+        if self._mask is None:
+            self._mask = contract.read_brain_mask(self.path)
+        return self._mask
+
+
 def run(inputs, outputs, params, log):
+    """Fit the GLM of every run of one subject inside the brain mask and write each run's patterns.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``bold``, ``events``, ``sidecar`` and, when confounds are
+        configured, ``confounds``: lists of paths, one per run in the order
+        of ``params["runs"]``; ``mask``: the subject's brain mask.
+    outputs : dict
+        Lists of paths, one per run in the same order: ``patterns`` (4D
+        float32 NIfTI, zeros outside the mask), ``table`` (TSV, one row per
+        volume), ``design`` (TSV), ``design_png``, ``resvar`` (3D float32
+        NIfTI), ``facts`` (JSON; see :func:`run_facts`).
+    params : dict
+        ``glm`` (the glm config), ``confounds`` (column names), ``subject``,
+        ``runs`` (``[{"session", "run_id"}]``, session None without
+        sessions), ``drop_initial_volumes``, ``condition_column``.
+    log : logging.Logger
+        Receives each run's lines (prefixed by subject and run) and a
+        warning for each configured condition absent from a run.
+
+    Notes
+    -----
+    Each run is a part of the job's memo, keyed on :func:`run_settings` and
+    the content of the run's own files and the brain mask: a run whose
+    identity is unchanged is restored (its warnings logged again), the
+    others are fitted by :func:`run_one`.
+    """
+    parts = part_memo()
+    mask = _SubjectMask(inputs["mask"])
+    for index, run_entry in enumerate(params["runs"]):
+        run_inputs = {name: _nth(inputs[name], index) for name in RUN_INPUTS if name in inputs}
+        run_inputs["mask"] = inputs["mask"]
+        run_outputs = {name: _nth(paths, index) for name, paths in outputs.items()}
+        settings = run_settings(params, index)
+        identity = {"settings": settings, "inputs": {name: parts.file_hash(path) for name, path in sorted(run_inputs.items())}}
+        if parts.restore(run_entry["run_id"], identity, run_outputs):
+            log.info("sub-%s %s: restored from the content memo (its files and settings are unchanged)", params["subject"],
+                     run_entry["run_id"])
+            continue
+        run_one(run_inputs, run_outputs, settings, log, read_mask=mask.read)
+        parts.store(run_entry["run_id"], identity, run_outputs)
+
+
+def run_one(inputs, outputs, params, log, read_mask=None):
     """Fit the GLM of one run inside the brain mask and write its patterns.
 
     Parameters
@@ -213,26 +298,39 @@ def run(inputs, outputs, params, log):
         initial volumes and events rows dropped; see :func:`run_facts`).
     params : dict
         ``glm`` (the glm config), ``confounds`` (column names), ``subject``,
-        ``session`` (None without sessions), ``run_id``.
+        ``session`` (None without sessions), ``run_id``,
+        ``drop_initial_volumes``, ``condition_column``.
     log : logging.Logger
         Receives a warning for each configured condition absent from the run.
+    read_mask : callable, optional
+        Returns ``(mask, affine)`` of ``inputs["mask"]`` (the subject job
+        reads it once for all runs); default: read the file.
+
+    Notes
+    -----
+    The BOLD file is decoded once and only the mask's voxels are converted
+    to float32 (:func:`foldwise.data.fileio.masked_float32`: the values
+    :func:`foldwise.data.bids.load_bold` gives, without a float copy of the
+    whole grid).
     """
     glm_settings = params["glm"]
     subject, session, run_id = params["subject"], params.get("session"), params["run_id"]
 
-    bold, affine, header = load_bold(inputs["bold"])
-    n_scans = bold.shape[3]
-    tr_s = read_tr_s(inputs["sidecar"], header, inputs["bold"])
+    image, stored = load_stored(inputs["bold"], what="BOLD image")
+    require_4d(image, inputs["bold"])
+    affine = np.asarray(image.affine, dtype=np.float64)
+    n_scans = stored.shape[3]
+    tr_s = read_tr_s(inputs["sidecar"], image.header, inputs["bold"])
     events = read_events(inputs["events"], n_scans, tr_s, params.get("condition_column", "trial_type"))
     n_unlabelled = int(events.attrs.get("n_unlabelled", 0))  # rows without a condition: counted, never dropped silently
     (log.warning if n_unlabelled else log.info)("sub-%s %s: %d events row(s) dropped for an n/a or empty %s", subject, run_id,
                                                  n_unlabelled, params.get("condition_column", "trial_type"))
     confound_names, confounds, n_drop = run_nuisance(inputs.get("confounds"), list(params.get("confounds") or []),
                                                      params.get("drop_initial_volumes", 0), n_scans)
-    mask = _load_mask(inputs["mask"], bold.shape[:3], affine)
+    mask = _load_mask(inputs["mask"], stored.shape[:3], affine, read_mask)
     voxels = np.flatnonzero(mask.ravel(order="F"))
-    bold_2d = _masked_time_series(bold, voxels)
-    del bold
+    bold_2d = masked_float32(image, stored, voxels)
+    del image, stored  # the decoded file: the masked series is all the fit needs
     bold_2d, events, confounds, confound_names = drop_initial(bold_2d, events, confounds, confound_names, n_drop, tr_s)
     log.info("sub-%s %s: dropped %d initial volume(s); confounds: %s", subject, run_id, n_drop, ", ".join(confound_names) or "none")
 

@@ -748,7 +748,7 @@ def _override_unknown_key(folder):
     from foldwise.config import apply_overrides
     return Expectation(lambda: apply_overrides(_study(), ["study={sede: 3}"], "config/study.yaml"),
                        "--config: study: unknown key 'sede' (did you mean 'seed'?) (passed as 'study={sede: 3}'). "
-                       "Fix: remove or rename it; allowed keys here: name, seed, store_dir")
+                       "Fix: remove or rename it; allowed keys here: name, results_dir, seed, store_dir")
 
 
 @case("--config override of a list entry the config does not have", "config.apply_overrides via common.smk, before any job")
@@ -1071,6 +1071,23 @@ def _roi_masks_on_two_grids(folder):
                                               {"analysis": analysis, "subject": "01", "rois": ["ember", "glow"], "seed": 3}, LOG),
                        f"{FOLDER}/roi-glow_mask.nii.gz: affine: the ROI mask is not on the grid of {FOLDER}/roi-ember_mask.nii.gz. "
                        "Fix: build every ROI mask of the subject on its one grid")
+
+
+@case("two study configs name one results folder", "results_folder.shared_results_warning (workflow/rules/common.smk, before any job)")
+def _shared_results_dir(folder):
+    from foldwise.results_folder import claim_results_dir, shared_results_warning
+
+    def call():
+        with contextlib.chdir(folder):
+            (folder / "config").mkdir()
+            for name in ("study_a.yaml", "study_b.yaml"):
+                (folder / "config" / name).write_text("study: {name: lanterns}\n", encoding="utf-8")
+            claim_results_dir("results", "config/study_a.yaml")  # study_a ran last
+            LOG.warning(shared_results_warning("results", "config/study_b.yaml"))
+
+    return Expectation(call, "config/study_b.yaml: study.results_dir: the results folder 'results' was last run by config/study_a.yaml; "
+                             "this run replaces that study's outputs there (and switching back reruns them). Fix: give each study "
+                             "config its own study.results_dir (e.g. results_study_b)", kind="warning")
 
 
 # -- the tests -----------------------------------------------------------------------------------

@@ -128,6 +128,22 @@ def test_each_of_the_demos_files_must_lie_inside_its_results_folder():
         assert _refusal(study).field == f"dataset.{key}"
 
 
+def test_a_folder_last_run_by_another_existing_config_gives_a_warning(tmp_path, monkeypatch):
+    from foldwise.results_folder import claim_results_dir, shared_results_warning
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "config").mkdir()
+    for name in ("study_a.yaml", "study_b.yaml"):
+        (tmp_path / "config" / name).write_text("study: {name: x}\n")
+    assert shared_results_warning("results", "config/study_a.yaml") is None  # never run
+    claim_results_dir("results", "config/study_a.yaml")
+    assert shared_results_warning("results", "./config/study_a.yaml") is None  # the same file, spelt otherwise
+    assert "last run by config/study_a.yaml" in shared_results_warning("results", "config/study_b.yaml")
+    assert shared_results_warning("results_b", "config/study_b.yaml") is None  # another folder
+    (tmp_path / "config/study_a.yaml").unlink()  # renamed or removed: this config takes the folder over
+    assert shared_results_warning("results", "config/study_b.yaml") is None
+
+
 # -- the run guard, the bundle, the store ------------------------------------------------------------------
 def test_forced_records_are_those_of_this_results_folder():
     forced = SimpleNamespace(forced=True)
@@ -219,7 +235,8 @@ def test_two_studies_side_by_side_keep_their_outputs_and_switching_reruns_nothin
 
     snakemake(workdir, config="config/study_a.yaml")
     first_a = _snapshot(workdir / "results_a")
-    snakemake(workdir, config="config/study_b.yaml")
+    second = snakemake(workdir, config="config/study_b.yaml")
+    assert "was last run by" not in second.stderr  # two folders: no warning
     assert _snapshot(workdir / "results_a") == first_a  # B wrote nothing of A's (bytes and times)
     first_b = _snapshot(workdir / "results_b")
 

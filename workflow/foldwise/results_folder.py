@@ -25,6 +25,13 @@ module refuses, and why:
   demo writes ``dataset.bids_root`` and the atlas; a second study writing the
   same files would make the first one's jobs out of date.
 * **a folder this user cannot write** (:func:`check_results_writable`, on disk).
+
+Two configs that name the same folder cannot be told apart from one config
+alone: each real run writes which config file it ran (:func:`claim_results_dir`,
+``<results>/.foldwise/config-file.txt``), and a run with another config file
+that still exists gets a warning (:func:`shared_results_warning`), not a
+refusal: renaming a config, or running a second study on purpose after the
+first (the bundle keeps only the manifest's files), stays possible.
 """
 
 import os
@@ -34,12 +41,13 @@ import re
 from foldwise.data.fileio import check_output_folder
 from foldwise.errors import InputError
 
-__all__ = ["CODE_FOLDERS", "check_results_dir", "check_results_writable"]
+__all__ = ["CODE_FOLDERS", "check_results_dir", "check_results_writable", "claim_results_dir", "shared_results_warning"]
 
 # Top-level folders of the checkout that hold code, configs or the environment, never outputs.
 CODE_FOLDERS = ("workflow", "config", "tests", "docs", "benchmarks", "requirements", ".snakemake", ".git", ".venv")
 _PLAIN = re.compile(r"[A-Za-z0-9_.-]+(/[A-Za-z0-9_.-]+)*")
 _FIELD = "study.results_dir"
+_CLAIM = ".foldwise/config-file.txt"  # inside the results folder: the config file of the last real run
 
 
 def _inside(path, folder):
@@ -120,3 +128,33 @@ def check_results_writable(config, path="the study config"):
     except InputError as error:
         raise InputError(path, _FIELD, f"the results folder '{results_dir}' cannot be written ({error.file}: {error.problem})",
                          f"{error.fix[:1].lower()}{error.fix[1:]}, or set study.results_dir to a folder this user can write") from None
+
+
+def _config_name(config_file):
+    return os.path.relpath(os.path.abspath(config_file)).replace(os.sep, "/")
+
+
+def claim_results_dir(results_dir, config_file):
+    """Write down which config file runs into ``results_dir`` (the onstart hook of a real run, never a dry run)."""
+    claim = os.path.join(results_dir, _CLAIM)
+    os.makedirs(os.path.dirname(claim), exist_ok=True)
+    with open(claim, "w", encoding="utf-8") as handle:
+        handle.write(_config_name(config_file) + "\n")
+
+
+def shared_results_warning(results_dir, config_file):
+    """A warning (str) when ``results_dir`` was last run by another config file that still exists, else None.
+
+    >>> shared_results_warning("no_such_folder", "config/study_b.yaml") is None
+    True
+    """
+    try:
+        with open(os.path.join(results_dir, _CLAIM), encoding="utf-8") as handle:
+            previous = handle.read().strip()
+    except OSError:
+        return None
+    if not previous or previous == _config_name(config_file) or not os.path.isfile(previous):
+        return None
+    return (f"{_config_name(config_file)}: {_FIELD}: the results folder '{results_dir}' was last run by {previous}; this run "
+            f"replaces that study's outputs there (and switching back reruns them). Fix: give each study config its own "
+            f"study.results_dir (e.g. results_{os.path.splitext(os.path.basename(config_file))[0]})")

@@ -2,6 +2,7 @@
 # decide everything: subjects and runs, every job's inputs, outputs and exact
 # settings. This file only hands them to Snakemake.
 import os
+import sys
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # one BLAS thread per job: same bits whatever --cores
 os.environ.setdefault("OMP_NUM_THREADS", "1")
@@ -12,7 +13,7 @@ from foldwise.provenance.environment import check_environment, versioned_code
 from foldwise.provenance.runs import finish_run, start_run
 from foldwise.errors import InputError
 from foldwise.data.fileio import check_output_folder
-from foldwise.results_folder import check_results_writable
+from foldwise.results_folder import check_results_writable, claim_results_dir, shared_results_warning
 from foldwise.provenance.hashing import code_hash
 from foldwise.study import build_study
 
@@ -30,6 +31,8 @@ try:
     check_results_writable(STUDY, CONFIG_FILE)  # study.results_dir: every output of this study goes there
     check_output_folder(STUDY["study"]["store_dir"], "study.store_dir")
     MODEL = build_study(STUDY, path=CONFIG_FILE, overrides=OVERRIDES)  # every check of meaning, before any job
+    if shared_results_warning(MODEL.results_dir, CONFIG_FILE):  # another config file ran into this results folder last
+        print(f"foldwise WARNING: {shared_results_warning(MODEL.results_dir, CONFIG_FILE)}", file=sys.stderr)
 except InputError as error:
     raise WorkflowError(f"foldwise: {error}") from None
 config.clear()
@@ -38,6 +41,7 @@ config.update(STUDY)  # scripts read study.store_dir from here
 
 onstart:
     start_run(workflow.dag, MODEL.results_dir, STUDY["study"]["store_dir"])  # leftovers of a killed run; forced jobs skip the memo
+    claim_results_dir(MODEL.results_dir, CONFIG_FILE)  # which config file this results folder belongs to (a real run only)
 
 SCRIPTS = os.path.join(workflow.basedir, "workflow", "scripts")
 MANIFEST = MODEL.paths.template("manifest")

@@ -71,6 +71,9 @@ TARGET_MASK_PER_READ = 0.2
 TARGET_ROI_CHANGE_STUDY_S = 25.0
 TARGET_ROI_CHANGE_DEMO_S = 10.0
 TARGET_DEMO_WALL_S = 45.0
+TARGET_DEMO_WALL_CORES_PER_IN_JOB = 2.3
+TARGET_REPORT_CPU_S = 5.0
+TARGET_PAGE_S = 2.0
 
 SHAPES = {
     "full": {"n_subjects": 8, "n_runs": 7, "grid_shape": [64, 64, 38], "trials_per_condition_per_run": 8, "n_permutations": 1000},
@@ -220,6 +223,7 @@ def provenance_records(folder):
         with open(path, encoding="utf-8") as handle:
             record = json.load(handle)
         record["_rule"] = os.path.basename(os.path.dirname(path))
+        record["_path"] = path
         records.append(record)
     return records
 
@@ -272,8 +276,9 @@ def measure_study(label, tree, data_root, demo_root, shape, scratch, cores, read
     roi_wall_s, roi_cpu_s, _ = run_snakemake(tree, folder, study_path, scratch, cores)
     after = record_stamps(folder)
     roi_jobs = sum(1 for path, stamp in after.items() if before.get(path) != stamp)
+    roi_records = [record for record in provenance_records(folder) if before.get(record["_path"]) != after[record["_path"]]]
     result = {"label": label, "wall_s": wall_s, "cpu_s": cpu_s, "records": records, "processes": processes,
-              "roi_wall_s": roi_wall_s, "roi_cpu_s": roi_cpu_s, "roi_jobs": roi_jobs, "cores": cores}
+              "roi_wall_s": roi_wall_s, "roi_cpu_s": roi_cpu_s, "roi_jobs": roi_jobs, "roi_records": roi_records, "cores": cores}
     shutil.rmtree(folder, ignore_errors=True)
     return result
 
@@ -303,6 +308,24 @@ def verdict(value, target):
     return f"target <= {target:g}: {'met' if value <= target else 'NOT met'}"
 
 
+def glm_read_ratios(records, reads_s):
+    """([read s of each GLM job's runs], [in-job CPU / that read]) over the GLM records.
+
+    A GLM job reads one run or, one job per subject, all the subject's runs
+    (each listed as a ``bold`` input of its record): its reads are summed.
+    Records without ``cpu_time_s`` (older commits) use their wall time.
+    """
+    by_name = {os.path.basename(path): seconds for path, seconds in reads_s.items()}
+    reads, ratios = [], []
+    for record in records:
+        if record["_rule"] != "glm":
+            continue
+        read_s = sum(by_name[os.path.basename(item["path"])] for item in record["inputs"] if item["name"] == "bold")
+        reads.append(read_s)
+        ratios.append(record.get("cpu_time_s", record["wall_time_s"]) / read_s)
+    return reads, ratios
+
+
 def report_study(result, reads_s):
     label, cores = result["label"], result["cores"]
     records = result["records"]
@@ -330,29 +353,25 @@ def report_study(result, reads_s):
     print("  (process CPU of 'snakemake': the scheduler process itself, with the jobs it runs in-process; "
           "n/a: this tree's records hold no cpu_time_s)")
     print(f"\n  wall {result['wall_s']:.1f} s, CPU {result['cpu_s']:.1f} s (Snakemake + every job, getrusage of children)")
+    print(f"  of which outside the Python processes' own records: {result['cpu_s'] - all_processes_s:.1f} s (each Python process's "
+          f"exit after its record -- module teardown, about 0.1-0.4 s -- the shells that start script jobs, any solver)")
     print(f"  read floor (every BOLD file once, nibabel float32): {floor_s:.1f} s CPU over {len(reads_s)} files")
     print(f"  total CPU / read floor          {result['cpu_s'] / floor_s:6.2f}   {verdict(result['cpu_s'] / floor_s, TARGET_CPU_PER_READ)}")
     ratio = result["wall_s"] * cores / in_wall_s
     print(f"  wall x cores / summed in-job wall {ratio:6.2f}   {verdict(ratio, TARGET_WALL_CORES_PER_IN_JOB)}")
     if has_cpu:
         print(f"  total CPU - summed in-job CPU   {result['cpu_s'] - in_cpu_s:6.1f} s  (start-up, imports, Snakemake)")
-    by_name = {os.path.basename(path): seconds for path, seconds in reads_s.items()}
-    glm_ratios, glm_process_ratios = [], []
     glm_processes = sorted(process["cpu_s"] for process in result["processes"] if script_rule(process["argv0"]) == "glm")
-    for record in records:
-        if record["_rule"] != "glm":
-            continue
-        bold = [item["path"] for item in record["inputs"] if item["name"] == "bold"][0]
-        read_s = by_name[os.path.basename(bold)]
-        glm_ratios.append((record["cpu_time_s"] if "cpu_time_s" in record else record["wall_time_s"]) / read_s)
+    glm_reads_s, glm_ratios = glm_read_ratios(records, reads_s)
     if glm_ratios:
         what = "in-job CPU" if has_cpu else "in-job WALL (no cpu_time_s)"
         median = statistics.median(glm_ratios)
-        print(f"  GLM job {what} / float32 read of its run: median {median:.2f}, max {max(glm_ratios):.2f} over {len(glm_ratios)} runs"
+        print(f"  GLM job {what} / float32 read of its runs: median {median:.2f}, max {max(glm_ratios):.2f} over {len(glm_ratios)} jobs"
               f"   {verdict(median, TARGET_GLM_PER_READ)} (median)")
-        median_read = statistics.median(by_name.values())
-        print(f"  GLM job process CPU (imports and all) median {statistics.median(glm_processes):.2f} s; "
-              f"float32 read median {median_read:.2f} s; ratio {statistics.median(glm_processes) / median_read:.2f}")
+        if glm_processes and len(glm_processes) == len(glm_reads_s):
+            ratio = sum(glm_processes) / sum(glm_reads_s)
+            print(f"  GLM job process CPU (start-up, imports and all) / read of its runs: {sum(glm_processes):.1f} s / "
+                  f"{sum(glm_reads_s):.1f} s = {ratio:.2f} over {len(glm_processes)} processes")
     reads_by_subject = {}
     for path, seconds in reads_s.items():
         reads_by_subject[subject_of(path)] = reads_by_subject.get(subject_of(path), 0.0) + seconds
@@ -362,15 +381,49 @@ def report_study(result, reads_s):
         median = statistics.median(mask_ratios)
         print(f"  brain mask in-job {'CPU' if has_cpu else 'WALL'} / reads of the subject's runs: median {median:.3f}, "
               f"max {max(mask_ratios):.3f}   {verdict(median, TARGET_MASK_PER_READ)} (median)")
+    report_lines(table, records, result["roi_records"])
     print(f"  one-ROI change: wall {result['roi_wall_s']:.1f} s, CPU {result['roi_cpu_s']:.1f} s, {result['roi_jobs']} jobs ran"
           f"   {verdict(result['roi_wall_s'], TARGET_ROI_CHANGE_STUDY_S)} (wall; the target is for the full shape)")
+    rerun = {}
+    for record in result["roi_records"]:
+        row = rerun.setdefault(record["_rule"], [0, 0.0, 0, 0])
+        row[0] += 1
+        row[1] += record.get("cpu_time_s", record["wall_time_s"])
+        parts = record.get("parts", [])
+        row[2] += sum(1 for part in parts if not part.get("restored"))
+        row[3] += len(parts)
+    print("    rerun per rule (jobs, in-job CPU s, parts computed / parts): "
+          + "; ".join(f"{rule} {row[0]}, {row[1]:.1f}, {row[2]}/{row[3]}" for rule, row in sorted(rerun.items())))
+
+
+def figure_parts(record):
+    parts = record.get("parts", [])
+    drawn = sum(1 for part in parts if not part.get("restored"))
+    return f"{drawn} of {len(parts)} parts computed" if parts else "no parts recorded"
+
+
+def report_lines(table, records, roi_records):
+    """The report's CPU from empty, and the report job of the one-ROI change (its figures of other ROIs restored)."""
+    reports = [record for record in records if record["_rule"] == "report"]
+    if not reports:
+        return
+    record = reports[0]
+    process = table.get("report", {}).get("proc_cpu_s", 0.0)
+    print(f"  report from empty: in-job CPU {record.get('cpu_time_s', float('nan')):.1f} s, wall {record['wall_time_s']:.1f} s, "
+          f"process CPU {process:.1f} s ({figure_parts(record)})   {verdict(process, TARGET_REPORT_CPU_S)} (process CPU)")
+    again = [record for record in roi_records if record["_rule"] == "report"]
+    if again:
+        record = again[0]
+        print(f"  report after the one-ROI change: in-job CPU {record.get('cpu_time_s', float('nan')):.1f} s, wall "
+              f"{record['wall_time_s']:.1f} s ({figure_parts(record)}); the page assembly is this less the figures drawn"
+              f"   {verdict(record['wall_time_s'], TARGET_PAGE_S)} (in-job wall, an upper bound of the page's)")
 
 
 def report_demo(result):
     print(f"\n== [{result['label']}] demo (config/config.yaml) from empty results: {result['jobs']} jobs")
     print(f"  wall {result['wall_s']:.1f} s, CPU {result['cpu_s']:.1f} s, summed in-job wall {result['in_wall_s']:.1f} s   "
           f"{verdict(result['wall_s'], TARGET_DEMO_WALL_S)} (wall)")
-    print(f"  wall x cores / summed in-job wall {result['ratio']:.2f}")
+    print(f"  wall x cores / summed in-job wall {result['ratio']:.2f}   {verdict(result['ratio'], TARGET_DEMO_WALL_CORES_PER_IN_JOB)}")
     print(f"  one-ROI change: wall {result['roi_wall_s']:.1f} s, CPU {result['roi_cpu_s']:.1f} s   "
           f"{verdict(result['roi_wall_s'], TARGET_ROI_CHANGE_DEMO_S)} (wall)")
 

@@ -15,14 +15,15 @@ import pandas as pd
 from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, read_confounds, read_events, read_tr_s,
                                 require_4d, select_confound_columns)
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_stored, masked_float32, save_figure, save_nifti, write_json, write_tsv
+from foldwise.data.fileio import load_stored, masked_float32, save_nifti, write_bytes_atomic, write_json, write_tsv
+from foldwise.glm.design_image import design_png
 from foldwise.glm.estimate import estimate_patterns
 from foldwise import contract
 from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
 from foldwise.masks.build import same_grid
 from foldwise.provenance.memo import part_memo
 
-__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "RUN_INPUTS", "run", "run_one", "run_settings", "design_labels", "design_figure"]
+__all__ = ["GRID_TOLERANCE_MM", "TABLE_COLUMNS", "RUN_INPUTS", "run", "run_one", "run_settings", "design_labels"]
 
 TABLE_COLUMNS = contract.PATTERN_TABLE_COLUMNS  # defined once, in the data contract
 RUN_INPUTS = ("bold", "events", "sidecar", "confounds")  # one file per run (lists in the job's inputs); the mask is the subject's
@@ -95,41 +96,6 @@ def design_labels(design):
     labels.sort()
     step = max(1, int(np.ceil(len(labels) / _MAX_LABELS)))
     return labels[::step]
-
-
-def design_figure(matrix, labels, title):
-    """A small image of the design: one row per regressor over the scans, on a diverging scale (zero in white).
-
-    Parameters
-    ----------
-    matrix : array_like
-        ``(n_scans, n_regressors)``.
-    labels : sequence of (float, str)
-        Column positions and their labels (see :func:`design_labels`).
-    title : str
-        Figure title.
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-        4 x 3 inches; regressor names stay horizontal beside their row. Built
-        without pyplot, so no global figure state (the Agg canvas renders it
-        when saved).
-    """
-    from matplotlib.figure import Figure  # here: a job whose runs are all restored never imports matplotlib
-
-    values = np.asarray(matrix, dtype=np.float64)
-    scale = np.max(np.abs(values), axis=0)
-    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0).T
-    figure = Figure(figsize=(4, 3))
-    axes = figure.add_axes((0.36, 0.14, 0.6, 0.76))
-    axes.imshow(shown, aspect="auto", cmap="BrBG", interpolation="nearest", vmin=-1, vmax=1)
-    axes.set_yticks([position for position, _ in labels])
-    axes.set_yticklabels([text for _, text in labels], fontsize=4)
-    axes.tick_params(axis="x", labelsize=5)
-    axes.set_xlabel("scan", fontsize=6)
-    axes.set_title(title, fontsize=7)
-    return figure
 
 
 def run_nuisance(confounds_path, selectors, drop_initial_volumes, n_scans):
@@ -360,4 +326,4 @@ def run_one(inputs, outputs, params, log, read_mask=None):
     write_tsv(outputs["design"], pd.DataFrame(estimate.design.matrix, columns=list(estimate.design.names)))
     write_json(outputs["facts"], run_facts(subject, session, run_id, confound_names, n_drop, n_unlabelled, bold_2d.shape[0]))
     title = f"sub-{subject} {run_id}: {glm_settings['pattern_mode']} design"
-    save_figure(design_figure(estimate.design.matrix, design_labels(estimate.design), title), outputs["design_png"])
+    write_bytes_atomic(outputs["design_png"], design_png(estimate.design.matrix, design_labels(estimate.design), title))

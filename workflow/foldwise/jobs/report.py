@@ -265,6 +265,11 @@ def _text_list(items, limit=12):
 
 # -- page sections --------------------------------------------------------------------
 
+def _results_dir(study):
+    """The study's results folder, as the page names it (study.results_dir)."""
+    return study.get("study", {}).get("results_dir", "results")
+
+
 def _paragraph(text):
     return f"<p>{html.escape(text)}</p>"
 
@@ -303,7 +308,7 @@ def _study_section(study, subjects, runs, trials, repetition_times, voxel_size_m
             + html_page.html_table(("condition", "trials per run", "runs with trials"), trial_rows,
                               caption=f"Trials per condition per run (over all {sum(len(r) for r in runs.values())} runs)")
             + _paragraph("This page holds no clock time: the same inputs, config and environment give a byte-identical "
-                         "page and figures. Job times and memory use are in results/provenance/ (one JSON record per job)."))
+                         f"page and figures. Job times and memory use are in {_results_dir(study)}/provenance/ (one JSON record per job)."))
 
 
 _FAMILY_WORDS = {
@@ -331,7 +336,7 @@ def _inference_text(study):
         "Design self-check: make calibrate CONFIG=<your config> runs this study's own analyses (its subjects' designs, "
         "folds, voxel counts, classifier and selection) on noise patterns of the same shapes, many times, and writes "
         "the false-positive rate of every test against alpha with binomial 99% bounds to "
-        "results/calibration/<analysis>_calibration.tsv (with a figure, .png, and a text summary, .txt). It is not "
+        f"{_results_dir(study)}/calibration/<analysis>_calibration.tsv (with a figure, .png, and a text summary, .txt). It is not "
         "part of the default run and this page does not depend on it.")
 
 
@@ -541,8 +546,8 @@ def _provenance_section(study, config_file, versions, records):
             + html_page.html_table(("package", "version"), versions, caption="Package versions of this run")
             + html_page.html_table(("step", "jobs", "output files"), rows,
                               caption="Jobs before this report, counted from their provenance records")
-            + _paragraph("results/manifest.tsv lists every output file with its sha256 and the job that made it; "
-                         "results/provenance/ holds one record per job (inputs and outputs with their sha256, settings, "
+            + _paragraph(f"{_results_dir(study)}/manifest.tsv lists every output file with its sha256 and the job that made it; "
+                         f"{_results_dir(study)}/provenance/ holds one record per job (inputs and outputs with their sha256, settings, "
                          "code hash, versions). make bundle packs the results for reviewers and make verify "
                          "recomputes them and compares.")
             + _paragraph(f"Config hash: {hash_object(study)}"))
@@ -769,7 +774,7 @@ def _warnings_section(context):
         inner = _paragraph("No job of this run logged a warning.")
     else:
         inner = (_paragraph(f"{len(warnings)} warning{'s' if len(warnings) != 1 else ''}, as the jobs logged them "
-                            "(job: step and its wildcards; full logs under results/logs/).")
+                            f"(job: step and its wildcards; full logs under {_results_dir(context.get('study', {}))}/logs/).")
                  + "<ul class=\"warnings\">" + "".join(f"<li><strong>{html.escape(job)}</strong>: {html.escape(text)}</li>"
                                                   for job, text in warnings) + "</ul>")
     return ("warnings", f"Warnings ({len(warnings)})", inner, ())

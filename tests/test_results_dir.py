@@ -24,6 +24,7 @@ from foldwise.config import load_study_config, validate
 from foldwise.errors import InputError
 from foldwise.provenance import bundle, memo, runs, store
 from foldwise.provenance.hashing import hash_file
+from foldwise.results_folder import CLAIM_FILE
 from foldwise.study import build_study
 from workflow_support import REPO, TINY_STUDY, copy_repository, scheduled_jobs, snakemake, write_study
 
@@ -187,6 +188,8 @@ def test_the_bundle_holds_the_configs_results_folder_only(tmp_path, capsys):
     (root / "config").mkdir()
     write_study(root, with_results_dir(TINY_STUDY, "results_b"), name="study_b.yaml")
     _finished(root, "results", "shape")  # another study's, in the default folder
+    _finished(root, "studies/c", "shape")  # a third study's, in a folder its run claimed (not a git checkout: no git to ask)
+    _write(root / "studies/c" / CLAIM_FILE, "config/study_c.yaml\n")
     _finished(root, "results_b", "carry")
     target = bundle.make_bundle(root, config_path="config/study_b.yaml")
     assert target == root / "results_b/bundle/tiny-bundle.tar.gz" and not (root / "results/bundle").exists()
@@ -196,7 +199,7 @@ def test_the_bundle_holds_the_configs_results_folder_only(tmp_path, capsys):
     names = {path.relative_to(unpacked).as_posix() for path in unpacked.rglob("*") if path.is_file()}
     assert {"results_b/manifest.tsv", "results_b/group/carry/carry_group.tsv", "results_b/provenance/group/carry.json",
             "results_b/provenance/manifest/study.json", "config/study_b.yaml"} <= names
-    assert not [name for name in names if name.startswith("results/")]  # the other study's files stay out
+    assert not [name for name in names if name.startswith(("results/", "studies/"))]  # the other studies' files stay out
     assert "results_b/report/index.html" not in names and "results_b/report/figures/sub-01_masks.png" not in names  # participant figures
     assert "results_b/manifest.tsv" in (unpacked / "REVIEW/README.md").read_text()
     capsys.readouterr()

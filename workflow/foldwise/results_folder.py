@@ -41,13 +41,13 @@ import re
 from foldwise.data.fileio import check_output_folder
 from foldwise.errors import InputError
 
-__all__ = ["CODE_FOLDERS", "check_results_dir", "check_results_writable", "claim_results_dir", "shared_results_warning"]
+__all__ = ["CODE_FOLDERS", "CLAIM_FILE", "check_results_dir", "check_results_writable", "claim_results_dir", "shared_results_warning"]
 
 # Top-level folders of the checkout that hold code, configs or the environment, never outputs.
 CODE_FOLDERS = ("workflow", "config", "tests", "docs", "benchmarks", "requirements", ".snakemake", ".git", ".venv")
 _PLAIN = re.compile(r"[A-Za-z0-9_.-]+(/[A-Za-z0-9_.-]+)*")
 _FIELD = "study.results_dir"
-_CLAIM = ".foldwise/config-file.txt"  # inside the results folder: the config file of the last real run
+CLAIM_FILE = ".foldwise/config-file.txt"  # inside the results folder: the config file of the last real run
 
 
 def _inside(path, folder):
@@ -136,7 +136,7 @@ def _config_name(config_file):
 
 def claim_results_dir(results_dir, config_file):
     """Write down which config file runs into ``results_dir`` (the onstart hook of a real run, never a dry run)."""
-    claim = os.path.join(results_dir, _CLAIM)
+    claim = os.path.join(results_dir, CLAIM_FILE)
     os.makedirs(os.path.dirname(claim), exist_ok=True)
     with open(claim, "w", encoding="utf-8") as handle:
         handle.write(_config_name(config_file) + "\n")
@@ -149,7 +149,7 @@ def shared_results_warning(results_dir, config_file):
     True
     """
     try:
-        with open(os.path.join(results_dir, _CLAIM), encoding="utf-8") as handle:
+        with open(os.path.join(results_dir, CLAIM_FILE), encoding="utf-8") as handle:
             previous = handle.read().strip()
     except OSError:
         return None

@@ -42,6 +42,7 @@ import pandas as pd
 
 from foldwise.config import load_study_config
 from foldwise.contract import RESULTS, ResultPaths
+from foldwise.results_folder import CLAIM_FILE
 from foldwise.provenance.environment import read_lock, version_differences
 from foldwise.provenance.hashing import hash_file
 from foldwise.provenance.memo import memo_key
@@ -168,6 +169,8 @@ def bundle_members(root, include_images=False, config_path=None):
     outputs = (f"{RESULTS}/", f"{results_dir}/")  # the study's results and the default folder (the default store lives there)
     tracked = _tracked_files(root)
     if tracked is None:  # an unpacked bundle: everything but results and environments
+        # ... and other studies' results folders (each real run leaves CLAIM_FILE in its own)
+        outputs += tuple(f"{claim.parent.parent.relative_to(root).as_posix()}/" for claim in root.rglob(CLAIM_FILE))
         tracked = sorted(p.relative_to(root).as_posix() for p in root.rglob("*")
                          if p.is_file() and not p.relative_to(root).as_posix().startswith((*outputs, ".venv/", ".snakemake/", "REVIEW/")))
     # Images only from config/ (e.g. an ROI mask that is part of the study's definition): a dataset kept

@@ -122,6 +122,15 @@ def test_a_bids_study_may_read_a_dataset_inside_its_results_folder_but_not_write
     assert error.field == "study.results_dir" and "dataset.derivatives_root 'prep'" in error.problem
 
 
+def test_a_checkout_inside_the_dataset_may_keep_its_results_folder(tmp_path, monkeypatch):
+    checkout = tmp_path / "dataset" / "code" / "foldwise"  # the dataset's code/ folder holds the checkout
+    checkout.mkdir(parents=True)
+    monkeypatch.chdir(checkout)
+    study = copy.deepcopy(TINY_STUDY)
+    study["dataset"] = {"source": "bids", "bids_root": "../.."}
+    assert validate(study, path="config/study.yaml")["study"]["results_dir"] == "results"
+
+
 def test_each_of_the_demos_files_must_lie_inside_its_results_folder():
     for key, _ in DEMO_FILES:
         study = with_results_dir(TINY_STUDY, "results_b")

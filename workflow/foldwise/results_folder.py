@@ -20,7 +20,9 @@ module refuses, and why:
   no manifest reaches (the store may sit inside the results folder, as by
   default, not the other way round).
 * **a folder inside the dataset** (``dataset.bids_root``,
-  ``dataset.derivatives_root``): outputs would become part of the data.
+  ``dataset.derivatives_root``): outputs would become part of the data
+  (unless the checkout itself lives inside the dataset, e.g. in its ``code/``
+  folder: that layout is the user's choice).
 * **a demo study whose simulated files lie outside its results folder**: the
   demo writes ``dataset.bids_root`` and the atlas; a second study writing the
   same files would make the first one's jobs out of date.
@@ -100,7 +102,8 @@ def check_results_dir(config, path="the study config"):
                          "give the results and the store different folders (the store may sit inside the results folder, "
                          "as by default: results/.store)")
     for key in ("bids_root", "derivatives_root"):
-        if dataset.get(key) and _inside(results, _absolute(dataset[key])):
+        # A checkout kept inside the dataset (e.g. in its code/ folder) is the user's layout: its results folder is fine.
+        if dataset.get(key) and _inside(results, _absolute(dataset[key])) and not _inside(_absolute(os.curdir), _absolute(dataset[key])):
             raise InputError(path, _FIELD, f"'{results_dir}' is inside the dataset (dataset.{key} '{dataset[key]}'): "
                              "outputs would be written into the data", "give a results folder outside the dataset (e.g. results_b)")
     if dataset["source"] == "demo":

@@ -1,4 +1,4 @@
-# The invented demo study, simulated into a BIDS dataset under results/demo.
+# The invented demo study, simulated into a BIDS dataset at dataset.bids_root (inside the study's results folder).
 if MODEL.is_demo:
 
     rule demo_dataset:

@@ -12,6 +12,8 @@ back schedules nothing and leaves the other study's files untouched.
 
 import copy
 import json
+import subprocess
+import sys
 import tarfile
 from pathlib import Path
 from types import SimpleNamespace
@@ -26,7 +28,7 @@ from foldwise.provenance import bundle, memo, runs, store
 from foldwise.provenance.hashing import hash_file
 from foldwise.results_folder import CLAIM_FILE
 from foldwise.study import build_study
-from workflow_support import REPO, TINY_STUDY, copy_repository, scheduled_jobs, snakemake, write_study
+from workflow_support import REPO, TINY_STUDY, copy_repository, scheduled_jobs, snakemake, workflow_environment, write_study
 
 DEMO_FILES = (("bids_root", "demo/bids"), ("atlas_image", "demo/atlas/atlas.nii.gz"), ("atlas_labels", "demo/atlas/atlas_labels.tsv"))
 
@@ -234,21 +236,27 @@ def _snapshot(folder):
             for path in sorted(Path(folder).rglob("*")) if path.is_file()}
 
 
-@pytest.mark.e2e
-@pytest.mark.slow
-def test_two_studies_side_by_side_keep_their_outputs_and_switching_reruns_nothing(tmp_path):
-    workdir = copy_repository(tmp_path / "repo")
+@pytest.fixture(scope="module")
+def side_by_side(tmp_path_factory):
+    """A copied checkout where study A (results_a) ran, then study B (results_b, analysis carry only); the store is shared."""
+    workdir = copy_repository(tmp_path_factory.mktemp("side_by_side") / "repo")
     study_a = with_results_dir(TINY_STUDY, "results_a")
     study_b = with_results_dir(TINY_STUDY, "results_b")
     study_b["study"]["name"] = "tiny-b"
     study_b["analyses"] = [entry for entry in study_b["analyses"] if entry["name"] == "carry"]  # another study, the store shared
     write_study(workdir, study_a, name="study_a.yaml")
     write_study(workdir, study_b, name="study_b.yaml")
-
     snakemake(workdir, config="config/study_a.yaml")
     first_a = _snapshot(workdir / "results_a")
     second = snakemake(workdir, config="config/study_b.yaml")
-    assert "was last run by" not in second.stderr  # two folders: no warning
+    return SimpleNamespace(workdir=workdir, first_a=first_a, second=second)
+
+
+@pytest.mark.e2e
+@pytest.mark.slow
+def test_two_studies_side_by_side_keep_their_outputs_and_switching_reruns_nothing(side_by_side):
+    workdir, first_a = side_by_side.workdir, side_by_side.first_a
+    assert "was last run by" not in side_by_side.second.stderr  # two folders: no warning
     assert _snapshot(workdir / "results_a") == first_a  # B wrote nothing of A's (bytes and times)
     first_b = _snapshot(workdir / "results_b")
 
@@ -256,7 +264,7 @@ def test_two_studies_side_by_side_keep_their_outputs_and_switching_reruns_nothin
     assert scheduled_jobs(workdir, config="config/study_a.yaml") == []
     assert scheduled_jobs(workdir, config="config/study_b.yaml") == []
     # Each study's outputs, provenance, manifest, report and logs are in its own folder; nothing in the default one but the shared store.
-    for folder, name, other in (("results_a", "shape", "results_b"), ("results_b", "carry", "results_a")):
+    for folder, other in (("results_a", "results_b"), ("results_b", "results_a")):
         manifest = pd.read_csv(workdir / folder / "manifest.tsv", sep="\t")
         assert all(path.startswith(f"{folder}/") for path in manifest["path"]), folder
         assert (workdir / folder / "report/index.html").is_file() and (workdir / folder / "provenance/manifest/study.json").is_file()
@@ -267,3 +275,24 @@ def test_two_studies_side_by_side_keep_their_outputs_and_switching_reruns_nothin
     # A rerun of A after B: nothing runs, nothing of B changes.
     snakemake(workdir, config="config/study_a.yaml")
     assert _snapshot(workdir / "results_a") == first_a and _snapshot(workdir / "results_b") == first_b
+
+
+@pytest.mark.e2e
+@pytest.mark.slow
+def test_the_bundle_of_study_b_holds_its_folder_only_and_verifies(side_by_side, tmp_path):
+    """make bundle CONFIG=config/study_b.yaml, then make verify CONFIG=config/study_b.yaml in the unpacked bundle."""
+    workdir = side_by_side.workdir
+    command = [sys.executable, "-m", "foldwise.provenance.bundle"]
+    made = subprocess.run([*command, "make", "--config", "config/study_b.yaml"], cwd=workdir, capture_output=True, text=True,
+                          env=workflow_environment(workdir))
+    assert made.returncode == 0, made.stderr
+    archive = workdir / "results_b/bundle/tiny-b-bundle.tar.gz"
+    with tarfile.open(archive) as packed:
+        names = [name.split("/", 1)[1] for name in packed.getnames()]
+        packed.extractall(tmp_path / "unpacked", filter="data")
+    assert "results_b/manifest.tsv" in names and not [name for name in names if name.startswith(("results_a/", "results/"))]
+    unpacked = tmp_path / "unpacked/tiny-b-bundle"
+    verified = subprocess.run([*command, "verify", "--cores", "2", "--config", "config/study_b.yaml"], cwd=unpacked,
+                              capture_output=True, text=True, env=workflow_environment(unpacked))
+    assert verified.returncode == 0, verified.stdout[-3000:] + verified.stderr[-3000:]
+    assert "every output reproduces" in verified.stdout and (unpacked / "results_b/report/index.html").is_file()

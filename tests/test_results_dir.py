@@ -133,6 +133,19 @@ def test_a_checkout_inside_the_dataset_may_keep_its_results_folder(tmp_path, mon
     assert validate(study, path="config/study.yaml")["study"]["results_dir"] == "results"
 
 
+def test_a_results_folder_may_be_a_symbolic_link_to_another_disk(tmp_path, monkeypatch):
+    from foldwise.results_folder import check_results_writable
+
+    (tmp_path / "scratch").mkdir()
+    (tmp_path / "checkout").mkdir()
+    (tmp_path / "checkout" / "results_b").symlink_to(tmp_path / "scratch")
+    monkeypatch.chdir(tmp_path / "checkout")
+    study = validate(with_results_dir(TINY_STUDY, "results_b"), path="config/study_b.yaml")
+    check_results_writable(study, "config/study_b.yaml")  # no error: the link's target is writable
+    (tmp_path / "scratch" / "x.tsv.part").write_text("left by a killed run")
+    assert runs.remove_leftovers("results_b", "results/.store") == ["results_b/x.tsv.part"]  # the run guard walks the link's target
+
+
 def test_each_of_the_demos_files_must_lie_inside_its_results_folder():
     for key, _ in DEMO_FILES:
         study = with_results_dir(TINY_STUDY, "results_b")

@@ -58,8 +58,10 @@ AR1_LIMIT = 0.9
 #: ... and rounded to multiples of AR1_STEP, so voxels whose coefficients
 #: round alike share one whitened design (common practice, no source).
 AR1_STEP = 0.02
-#: Voxels per block of float64 work (8192 x 200 scans = 13 MB).
-CHUNK_VOXELS = 8192
+#: Voxels per block of float64 work (2048 x 200 scans = 3.3 MB, so a block stays in cache between its products and
+#: sums). Measured on a 59,448-voxel, 186-scan run against 8192: AR(1) 0.14 s instead of 0.17 s, OLS 0.056 s instead
+#: of 0.062 s, LSS 0.24 s instead of 0.26 s, and the same patterns and residual variances bit for bit there.
+CHUNK_VOXELS = 2048
 #: A residual root-sum-of-squares below this fraction of the data's is
 #: float64 rounding, not noise: its variance is reported as 0 and its t as 0.
 NOISE_FLOOR = 1e-10

@@ -435,9 +435,9 @@ def test_e2e_a_same_size_same_mtime_edit_with_forcerun_recomputes(base_run, tmp_
     os.utime(events, ns=(stamp.st_atime_ns, stamp.st_mtime_ns))
     assert os.stat(events).st_size == stamp.st_size
     completed = snakemake(workdir, "--forcerun", "glm", "--until", "glm", check=False)
-    record = _record_of(workdir, "results/provenance/glm/sub-01_run-01.json")
-    assert not record["restored_from_memo"]
-    assert [item["sha256"] for item in record["inputs"] if item["name"] == "events"] == [hash_file(events)]
+    record = _record_of(workdir, "results/provenance/glm/sub-01.json")  # one GLM job per subject, every run a part
+    assert not record["restored_from_memo"] and not any(part["restored"] for part in record["parts"])  # forced: no restore
+    assert [item["sha256"] for item in record["inputs"] if item["name"] == "events"][0] == hash_file(events)
     # The events file is an output of the demo job: the end-of-run check names it as changed after its job.
     assert completed.returncode != 0 and "sub-01_task-lanterns_run-01_events.tsv" in completed.stderr + completed.stdout
 

@@ -1090,6 +1090,23 @@ def _shared_results_dir(folder):
                              "config its own study.results_dir (e.g. results_study_b)", kind="warning")
 
 
+
+@case("a .nii.gz whose gzip stream is whole but holds fewer values than its header says",
+      "fileio.load_stored (GLM job: the BOLD file decoded once, its size checked against the header)")
+def _short_bold_for_the_glm(folder):
+    import gzip
+
+    from foldwise.data.fileio import load_stored
+
+    _noise_bold(folder / "whole.nii.gz")
+    raw = gzip.decompress((folder / "whole.nii.gz").read_bytes())
+    (folder / "bold.nii.gz").write_bytes(gzip.compress(raw[:-100], mtime=0))
+    n_bytes = int(np.prod(GRID)) * 12 * 4  # float32 values of 12 volumes
+    return Expectation(lambda: load_stored(folder / "bold.nii.gz", what="BOLD image"),
+                       f"{FOLDER}/bold.nii.gz: content: the BOLD image is truncated or not a NIfTI file (ValueError: the header "
+                       f"promises {n_bytes} data bytes after byte 352, the file holds {n_bytes - 100}). Fix: re-export or re-copy the file")
+
+
 # -- the tests -----------------------------------------------------------------------------------
 def _numbered():
     return [pytest.param(number, entry, id=f"{number:02d}-{entry.build.__name__.strip('_')}") for number, entry in

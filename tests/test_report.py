@@ -24,6 +24,7 @@ import xml.etree.ElementTree as ElementTree
 from html.parser import HTMLParser
 from importlib import metadata
 from pathlib import Path
+from types import SimpleNamespace
 
 import nibabel as nib
 import numpy as np
@@ -68,13 +69,15 @@ ALPHA = 0.05
 
 # -- a synthetic study on disk ----------------------------------------------------------
 
-def _affine():
+def _affine(grid=GRID):
     affine = np.diag([VOXEL_MM] * 3 + [1.0])
-    affine[:3, 3] = -VOXEL_MM * (np.asarray(GRID) - 1) / 2
+    affine[:3, 3] = -VOXEL_MM * (np.asarray(grid) - 1) / 2
     return affine
 
 
-def _subject_images(rng):
+def _subject_images(rng, grid=GRID, roi_names=ROI_NAMES):
+    if tuple(grid) != GRID or list(roi_names) != ROI_NAMES:
+        return _scaled_images(rng, grid, roi_names)
     i, j, k = np.indices(GRID)
     centre = (np.asarray(GRID) - 1) / 2
     brain = ((i - centre[0]) / 4.6) ** 2 + ((j - centre[1]) / 5.6) ** 2 + ((k - centre[2]) / 3.6) ** 2 <= 1
@@ -85,19 +88,34 @@ def _subject_images(rng):
     return mean, brain, {"ember": ember, "glow": glow}
 
 
-def _design(rng):
-    columns = {condition: np.convolve((rng.random(N_SCANS) < 0.08).astype(float), np.hanning(6), mode="same")
+def _scaled_images(rng, grid, roi_names):
+    """Another grid or other ROIs (benchmarks/bench_report.py): an ellipsoidal brain and one ball per ROI inside it."""
+    i, j, k = np.indices(grid)
+    centre, half = (np.asarray(grid) - 1) / 2, np.asarray(grid) * 0.43
+    brain = ((i - centre[0]) / half[0]) ** 2 + ((j - centre[1]) / half[1]) ** 2 + ((k - centre[2]) / half[2]) ** 2 <= 1
+    mean = np.where(brain, 900 + 100 * rng.random(grid), 40 * rng.random(grid))
+    inside = np.argwhere(brain)
+    rois = {}
+    for name in roi_names:
+        ball_centre = inside[rng.integers(len(inside))]
+        radius = max(1.5, min(grid) * 0.1)
+        rois[name] = brain & ((i - ball_centre[0]) ** 2 + (j - ball_centre[1]) ** 2 + (k - ball_centre[2]) ** 2 <= radius ** 2)
+    return mean, brain, rois
+
+
+def _design(rng, n_scans=N_SCANS):
+    columns = {condition: np.convolve((rng.random(n_scans) < 0.08).astype(float), np.hanning(6), mode="same")
                for condition in CONDITIONS}
-    columns["lowfreq_cos_01"] = np.cos(np.pi * (np.arange(N_SCANS) + 0.5) / N_SCANS)
-    columns["intercept"] = np.ones(N_SCANS)
+    columns["lowfreq_cos_01"] = np.cos(np.pi * (np.arange(n_scans) + 0.5) / n_scans)
+    columns["intercept"] = np.ones(n_scans)
     return pd.DataFrame(columns)
 
 
-def _events(rng, run_index):
+def _events(rng, run_index, n_scans=N_SCANS):
     trial_types = [condition for condition in CONDITIONS for _ in range(3)]
     if run_index == 1:
         trial_types.append("seen_star")  # an uneven run: 3 to 4 seen_star trials per run
-    onsets = np.sort(rng.uniform(4, (N_SCANS - 4) * TR_S, size=len(trial_types))).round(1)
+    onsets = np.sort(rng.uniform(4, (n_scans - 4) * TR_S, size=len(trial_types))).round(1)
     return pd.DataFrame({"onset": onsets, "duration": 2.0, "trial_type": rng.permutation(trial_types)})
 
 
@@ -105,11 +123,11 @@ def _directions(analysis):
     return CROSS_DIRECTIONS if analysis["kind"] == "cross" else ["within"]
 
 
-def _summary(subject, analysis, roi_sizes, rois, rng):
+def _summary(subject, analysis, roi_sizes, rois, rng, counts=COUNTS):
     rows = []
     for roi in rois:
         for direction in _directions(analysis):
-            for count in COUNTS:
+            for count in counts:
                 used = roi_sizes[roi] if count == "all" else min(int(count), roi_sizes[roi])
                 effect = 0.25 if roi == "ember" else 0.0
                 score = float(np.clip(1 / 3 + effect * (1 - 1 / (1 + used / 10)) + rng.normal(0, 0.04), 0, 1))
@@ -119,10 +137,10 @@ def _summary(subject, analysis, roi_sizes, rois, rng):
     return pd.DataFrame(rows)
 
 
-def _confusion(analysis, rng):
+def _confusion(analysis, rng, counts=COUNTS):
     rows = []
     for direction in _directions(analysis):
-        for count in COUNTS:
+        for count in counts:
             for true_class in SHAPES:
                 predicted = rng.multinomial(6, [0.5, 0.25, 0.25])
                 order = [true_class] + [shape for shape in SHAPES if shape != true_class]
@@ -131,17 +149,17 @@ def _confusion(analysis, rng):
     return pd.DataFrame(rows)
 
 
-def _group(analysis, summaries, rois):
+def _group(analysis, summaries, rois, counts=COUNTS):
     table = pd.concat(summaries, ignore_index=True)
     rows = []
     for roi in rois:
         for direction in _directions(analysis):
-            for count in COUNTS:
+            for count in counts:
                 scores = table[(table.roi == roi) & (table.direction == direction) & (table.n_voxels == count)]
                 values = scores["balanced_accuracy"].to_numpy()
                 mean, sem = values.mean(), values.std(ddof=1) / math.sqrt(len(values))
-                p_fwe = 0.01 if (roi == "ember" and count != "5") else 0.6
-                if roi == "ember" and count == "5":
+                p_fwe = 0.01 if (roi == "ember" and count != counts[0]) else 0.6
+                if roi == "ember" and count == counts[0]:
                     p_fwe = ALPHA  # exactly alpha: not marked (the marker rule is p_fwe < alpha)
                 rows.append({"analysis": analysis["name"], "roi": roi, "direction": direction, "n_voxels": count,
                              "n_subjects": len(values), "chance": 1 / 3, "mean": mean, "sem": sem,
@@ -160,12 +178,16 @@ def _group(analysis, summaries, rois):
     return pd.DataFrame(rows)
 
 
-def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
-    """Write a complete set of report inputs under ``root``; return (inputs, params, facts)."""
+def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS, run_ids=RUN_IDS, grid=GRID, n_scans=N_SCANS, counts=COUNTS):
+    """Write a complete set of report inputs under ``root``; return (inputs, params, facts).
+
+    The keywords other than ``study`` and ``subjects`` give other shapes
+    (benchmarks/bench_report.py builds the benchmark study's shape with them).
+    """
     root = Path(root)
     rois = [roi["name"] for roi in study["rois"]]
     rng = np.random.default_rng(seed)
-    affine = _affine()
+    affine = _affine(grid)
     inputs = {key: [] for key in ("designs", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
                                   "summaries", "confusions", "group_tables", "provenance", "glm_facts")}
     roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in study["analyses"]}
@@ -173,7 +195,7 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
     index = {key: [] for key in ("designs", "means", "brain_masks", "roi_masks", "resvar", "confusions", "glm_facts")}
     for subject in subjects:
         masks = root / "masks" / f"sub-{subject}"
-        mean, brain, rois = _subject_images(rng)
+        mean, brain, rois = _subject_images(rng, grid, [roi["name"] for roi in study["rois"]] if tuple(grid) != GRID else ROI_NAMES)
         save_nifti(masks / f"sub-{subject}_mean.nii.gz", mean, affine)
         save_nifti(masks / f"sub-{subject}_brainmask.nii.gz", brain, affine, dtype=np.uint8)
         inputs["means"].append(str(masks / f"sub-{subject}_mean.nii.gz"))
@@ -186,44 +208,44 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
             index["roi_masks"].append({"path": inputs["roi_masks"][-1], "subject": subject, "roi": roi})
         roi_sizes[subject] = {roi: int(mask.sum()) for roi, mask in rois.items()}
         write_tsv(masks / f"sub-{subject}_roi_counts.tsv", pd.DataFrame({
-            "subject": subject, "roi": ROI_NAMES, "n_voxels": [roi_sizes[subject][roi] for roi in ROI_NAMES],
+            "subject": subject, "roi": list(rois), "n_voxels": [roi_sizes[subject][roi] for roi in rois],
             "min_voxels": 10, "below_minimum": False}))
         inputs["roi_counts"].append(str(masks / f"sub-{subject}_roi_counts.tsv"))
         patterns = root / "patterns" / f"sub-{subject}"
-        write_tsv(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv", _design(rng))
-        inputs["designs"].append(str(patterns / f"sub-{subject}_{RUN_IDS[0]}_design.tsv"))
-        index["designs"].append({"path": inputs["designs"][-1], "subject": subject, "run_id": RUN_IDS[0]})
+        write_tsv(patterns / f"sub-{subject}_{run_ids[0]}_design.tsv", _design(rng, n_scans))
+        inputs["designs"].append(str(patterns / f"sub-{subject}_{run_ids[0]}_design.tsv"))
+        index["designs"].append({"path": inputs["designs"][-1], "subject": subject, "run_id": run_ids[0]})
         if subject == subjects[0]:
-            resvar = np.where(brain, rng.gamma(4.0, 25.0, GRID), 0.0)
-            save_nifti(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz", resvar, affine)
-            inputs["resvar"] = str(patterns / f"sub-{subject}_{RUN_IDS[0]}_resvar.nii.gz")
-            index["resvar"] = [{"path": inputs["resvar"], "subject": subject, "run_id": RUN_IDS[0]}]
-        for run_index, run_id in enumerate(RUN_IDS):
+            resvar = np.where(brain, rng.gamma(4.0, 25.0, grid), 0.0)
+            save_nifti(patterns / f"sub-{subject}_{run_ids[0]}_resvar.nii.gz", resvar, affine)
+            inputs["resvar"] = str(patterns / f"sub-{subject}_{run_ids[0]}_resvar.nii.gz")
+            index["resvar"] = [{"path": inputs["resvar"], "subject": subject, "run_id": run_ids[0]}]
+        for run_index, run_id in enumerate(run_ids):
             func = root / "bids" / f"sub-{subject}" / "func"
-            write_tsv(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv", _events(rng, run_index))
+            write_tsv(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv", _events(rng, run_index, n_scans))
             write_json(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json", {"RepetitionTime": TR_S})
             inputs["events"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_events.tsv"))
             inputs["sidecars"].append(str(func / f"sub-{subject}_task-lanterns_{run_id}_bold.json"))
             # what the GLM job records per run (foldwise.jobs.glm.run_facts), varied per run so the table is checkable
             facts = glm_job.run_facts(subject, None, run_id, ["trans_x", "rot_z"] + [f"spike_{k:02d}" for k in range(run_index)],
-                                      run_index + int(subject), int(subject) % 2, N_SCANS - run_index - int(subject))
+                                      run_index + int(subject), int(subject) % 2, n_scans - run_index - int(subject))
             write_json(patterns / f"sub-{subject}_{run_id}_glm.json", facts)
             inputs["glm_facts"].append(str(patterns / f"sub-{subject}_{run_id}_glm.json"))
             index["glm_facts"].append({"path": inputs["glm_facts"][-1], "subject": subject, "run_id": run_id})
         for analysis in study["analyses"]:
             name = analysis["name"]
-            frame = _summary(subject, analysis, roi_sizes[subject], rois, rng)
+            frame = _summary(subject, analysis, roi_sizes[subject], rois, rng, counts)
             summaries[name].append(frame)
             write_tsv(root / "decoding" / name / f"sub-{subject}_summary.tsv", frame)
             inputs["summaries"].append(str(root / "decoding" / name / f"sub-{subject}_summary.tsv"))
             for roi in rois:
                 path = root / "decoding" / name / f"sub-{subject}" / f"sub-{subject}_roi-{roi}_confusion.tsv"
-                write_tsv(path, _confusion(analysis, rng))
+                write_tsv(path, _confusion(analysis, rng, counts))
                 inputs["confusions"].append(str(path))
                 index["confusions"].append({"path": str(path), "subject": subject, "roi": roi, "analysis": name})
     for analysis in study["analyses"]:
         path = root / "group" / analysis["name"] / f"{analysis['name']}_group.tsv"
-        write_tsv(path, _group(analysis, summaries[analysis["name"]], rois))
+        write_tsv(path, _group(analysis, summaries[analysis["name"]], rois, counts))
         inputs["group_tables"].append(str(path))
     n_outputs = {"brain_mask": 3, "glm": 5, "group": 3}
     for step, n_jobs in (("brain_mask", 3), ("glm", 6), ("group", 2)):
@@ -237,7 +259,7 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
         "ember": {"decodes": {"shape_seen": True, "shape_heard": True, "modality": False}},
         "glow": {"decodes": {"shape_seen": True, "shape_heard": False, "modality": True}}}})
     inputs["ground_truth"] = str(root / "demo" / "ground_truth.json")
-    params = {"study": study, "subjects": list(subjects), "runs": {subject: list(RUN_IDS) for subject in subjects},
+    params = {"study": study, "subjects": list(subjects), "runs": {subject: list(run_ids) for subject in subjects},
               "config_file": "config/config.yaml", "input_index": index}
     facts = {"roi_sizes": roi_sizes, "n_jobs": 11, "n_outputs": 3 * 3 + 6 * 5 + 2 * 3}
     return inputs, params, facts
@@ -245,7 +267,8 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS):
 
 def outputs_for(folder, study=STUDY, subjects=SUBJECTS):
     figures_dir = str(Path(folder) / "figures")
-    return {"html": str(Path(folder) / "index.html"), "figures": report.figure_plan(study, subjects, figures_dir)}
+    return {"html": str(Path(folder) / "index.html"), "figures": report.figure_plan(study, subjects, figures_dir),
+            "previews": [entry["preview"] for entry in report.figure_catalogue(study, subjects, figures_dir)]}
 
 
 def _quiet_log():
@@ -498,7 +521,7 @@ def test_captions_render_as_snakemake_renders_them():
 
 def test_job_writes_exactly_the_planned_figures_and_the_page(built):
     written = sorted(str(path) for path in (built["root"] / "report").rglob("*") if path.is_file())
-    assert written == sorted(built["outputs"]["figures"] + [built["outputs"]["html"]])
+    assert written == sorted(built["outputs"]["figures"] + built["outputs"]["previews"] + [built["outputs"]["html"]])
 
 
 def _png_chunks(data):
@@ -536,17 +559,37 @@ def test_figures_are_valid_publication_png_svg_and_pdf(built):
             assert b"/CreationDate" not in data and b"/FontFile2" in data, path  # no date; TrueType fonts (editable text)
 
 
-def test_page_embeds_every_png_and_loads_nothing_else(built):
+def _png_dpi(data):
+    """Pixels per inch from the pHYs chunk (PNG specification 11.3.5.3: pixels per metre, unit 1 = metre)."""
+    x_per_m, _, unit = struct.unpack(">IIB", dict(_png_chunks(data))[b"pHYs"])
+    assert unit == 1
+    return x_per_m * 0.0254
+
+
+def test_page_embeds_every_screen_preview_links_the_files_and_loads_nothing_else(built):
     parsed = _parse(built["html"])
     images = [attributes for tag, attributes in parsed.elements if tag == "img"]
-    pngs = [path for path in built["outputs"]["figures"] if path.endswith(".png")]
-    assert len(images) == len(pngs)
+    previews = built["outputs"]["previews"]
+    assert len(images) == len(previews) == len(built["outputs"]["figures"]) // 3
     embedded = [base64.b64decode(image["src"].removeprefix("data:image/png;base64,"), validate=True) for image in images]
-    assert sorted(embedded) == sorted(Path(path).read_bytes() for path in pngs)  # each figure's own bytes
+    assert sorted(embedded) == sorted(Path(path).read_bytes() for path in previews)  # each figure's own preview
+    for preview, png in zip(previews, built["outputs"]["figures"][::3]):
+        # the same figure at screen resolution: a third of the 300-dpi file's pixels per side (rounded)
+        small, large = Path(preview).read_bytes(), Path(png).read_bytes()
+        assert round(_png_dpi(small)) == 100 and round(_png_dpi(large)) == 300
+        small_width, large_width = struct.unpack(">I", small[16:20])[0], struct.unpack(">I", large[16:20])[0]
+        assert abs(small_width * 3 - large_width) <= 3, (preview, small_width, large_width)
     assert all(image["src"].startswith("data:image/png;base64,") and image.get("alt") for image in images)
+    links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and not attributes["href"].startswith("#")]
+    # every publication file is linked, relative to the page, and the link resolves to the file
+    assert sorted(links) == sorted(Path(path).relative_to(Path(built["outputs"]["html"]).parent).as_posix()
+                                   for path in built["outputs"]["figures"])
+    assert all((Path(built["outputs"]["html"]).parent / link).is_file() for link in links)
     for tag, attributes in parsed.elements:
         assert tag not in ("script", "link", "iframe", "object", "embed", "base"), tag
         for name, value in attributes.items():
+            if tag == "a" and name == "href" and value in links:
+                continue  # a link to a file beside the page: followed only when clicked, never loaded
             if name in ("src", "href", "srcset", "poster", "data", "action", "background"):
                 assert value.startswith("data:") or value.startswith("#"), (tag, name, value[:60])
             assert "http://" not in (value or "") and "https://" not in (value or ""), (tag, name)
@@ -562,7 +605,8 @@ def test_rerun_gives_byte_identical_files(tmp_path):
     report_job.run(inputs, first, params, _quiet_log())
     report_job.run(inputs, second, params, _quiet_log())
     assert len(first["figures"]) == 3 * 8  # design and masks of 2 subjects, residual variance, curve, confusion, comparison
-    for one, other in zip(first["figures"] + [first["html"]], second["figures"] + [second["html"]]):
+    for one, other in zip(first["figures"] + first["previews"] + [first["html"]],
+                          second["figures"] + second["previews"] + [second["html"]]):
         assert Path(one).read_bytes() == Path(other).read_bytes(), Path(one).name
 
 
@@ -595,7 +639,9 @@ def test_every_contents_link_resolves_to_one_anchor(built):
     ids = [attributes["id"] for _, attributes in parsed.elements if "id" in attributes]
     assert len(ids) == len(set(ids))
     links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and "href" in attributes]
-    assert links and all(link.startswith("#") and link[1:] in ids for link in links)
+    files = {Path(path).relative_to(Path(built["outputs"]["html"]).parent).as_posix() for path in built["outputs"]["figures"]}
+    anchors = [link for link in links if link not in files]  # the other links: the figures' files
+    assert anchors and all(link.startswith("#") and link[1:] in ids for link in anchors)
     for target in ("analysis-shape", "analysis-carry-roi-glow", "analysis-carry-rois", "summary", "warnings"):
         assert f"#{target}" in links, target
 
@@ -935,7 +981,8 @@ def test_every_contents_anchor_resolves_in_the_browser(printed):
     parsed = _parse(printed["dom"])
     ids = {attributes["id"] for _, attributes in parsed.elements if "id" in attributes}
     links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and "href" in attributes]
-    assert len(links) >= 15 and all(link[1:] in ids for link in links)
+    anchors = [link for link in links if not link.startswith("figures/")]  # the others link the figures' files
+    assert len(anchors) >= 15 and all(link[1:] in ids for link in anchors)
 
 
 # -- searchlight maps: clusters and the figure ---------------------------------------------------------
@@ -1032,3 +1079,51 @@ def test_an_input_the_plan_does_not_list_is_named(built, tmp_path):
     params = {key: value for key, value in built["params"].items() if key != "input_index"}
     with pytest.raises(InputError, match="report_input_index"):
         report_job.run(built["inputs"], outputs_for(tmp_path / "out2"), params, _quiet_log())
+
+
+class _Named(dict):
+    """What Snakemake hands a ``run:`` block: named items, also as attributes."""
+
+    def __getattr__(self, name):
+        try:
+            return self[name]
+        except KeyError:
+            raise AttributeError(name) from None
+
+
+def _through_memo(inputs, outputs, params, folder, store):
+    """Run the report job as the workflow does (memo key, part memo, provenance record); return the record."""
+    from foldwise.provenance.memo import run_in_process
+
+    output = _Named(outputs, provenance=str(folder / "provenance.json"))
+    run_in_process("report", report_job.run, _Named(inputs), output, SimpleNamespace(settings=params, code="test"),
+                   _Named(), [str(folder / "report.log")], {"study": {"store_dir": str(store)}})
+    return json.loads(Path(output.provenance).read_text(encoding="utf-8"))
+
+
+def test_a_changed_roi_redraws_only_the_figures_that_show_it(tmp_path, monkeypatch):
+    monkeypatch.delenv("FOLDWISE_MEMO", raising=False)
+    study = dict(STUDY, analyses=STUDY["analyses"][:1])
+    subjects = SUBJECTS[:2]
+    inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=subjects)
+    outputs = outputs_for(tmp_path / "report", study, subjects)
+    first = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    assert first["parts"] and not any(part["restored"] for part in first["parts"])  # from empty: every figure drawn
+    drawn_bytes = {path: Path(path).read_bytes() for path in outputs["figures"] + outputs["previews"]}
+    # glow's confusion counts change for one subject: only the glow confusion figure shows them
+    path = next(path for path in inputs["confusions"] if "sub-01_roi-glow_" in path)
+    table = pd.read_csv(path, sep="\t", dtype={"n_voxels": str})
+    table["count"] = table["count"][::-1].to_numpy()
+    write_tsv(path, table)
+    second = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    drawn = sorted(part["part"] for part in second["parts"] if not part["restored"])
+    assert drawn == ["figure-shape_roi-glow_confusion"]
+    assert len(second["parts"]) == len(first["parts"])
+    for name, data in drawn_bytes.items():  # restored files are the drawn ones, byte for byte
+        if "glow_confusion" not in name:
+            assert Path(name).read_bytes() == data, name
+    # the same inputs with the memo off: every figure drawn again, the same bytes
+    monkeypatch.setenv("FOLDWISE_MEMO", "off")
+    params = dict(params, overrides=["a.b=1"])  # another job key, so the whole job is not restored
+    third = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    assert not any(part["restored"] for part in third["parts"]) and len(third["parts"]) == len(first["parts"])

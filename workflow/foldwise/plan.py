@@ -139,7 +139,9 @@ def report_figures(study):
 
 
 def _report_outputs(study):
-    return {"html": study.paths.template("report_html"), "figures": [path for entry in report_figures(study) for path in entry["paths"]]}
+    catalogue = report_figures(study)
+    return {"html": study.paths.template("report_html"), "figures": [path for entry in catalogue for path in entry["paths"]],
+            "previews": [entry["preview"] for entry in catalogue]}  # the screen PNGs the page embeds
 
 
 STEPS = {

@@ -1,5 +1,6 @@
-# The study report: one self-contained HTML page (figures embedded) plus every
+# The study report: one self-contained HTML page (screen previews embedded) plus every
 # figure as PNG (300 dpi), SVG and PDF; the figure list comes from foldwise.report.figures.figure_catalogue.
+# Each figure is a part of the job's memo, keyed on the data it draws: a rerun redraws only changed figures.
 
 
 rule report:

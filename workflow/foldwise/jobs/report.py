@@ -2,16 +2,25 @@
 
 Reads the quality-check images and tables, the decoding summaries and
 confusion counts, the group tables and the other jobs' provenance records;
-draws every figure of ``foldwise.report.figures.figure_plan`` (PNG and SVG) and writes
-``index.html`` with the PNGs embedded as data URIs, so the page opens from
-disk and loads nothing from the network. The page holds no clock time: the
-same inputs give byte-identical files.
+writes every figure of ``foldwise.report.figures.figure_plan`` (PNG 300 dpi,
+SVG, PDF) and its screen preview, and ``index.html`` with the previews
+embedded as data URIs and the publication files linked, so the page opens
+from disk and loads nothing from the network. The page holds no clock time:
+the same inputs give byte-identical files.
+
+Each figure is a part of the job's memo (``foldwise.provenance.memo.part_memo``)
+keyed on a digest of exactly the data it draws (its builder's arguments, or
+the content of the images it reads): when one ROI's results change, Snakemake
+reruns this job, the figures that show that ROI are drawn and every other
+figure is restored; the page is then assembled from tables and files.
 """
 
 import functools
+import gc
 import html
 import json
 import math
+import os
 from pathlib import Path
 
 import numpy as np
@@ -22,12 +31,13 @@ import pandas as pd
 from foldwise.report import figures as page
 from foldwise.report import page as html_page
 from foldwise.report import geometry_section
+from foldwise.report.drawing import data_digest, save_formats
 from foldwise.report.summary import answer_sentences
 from foldwise.report.terminal import job_warnings
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, read_tsv, save_figure, write_text_atomic
-from foldwise.provenance.hashing import hash_object
-from foldwise.provenance.memo import display_path
+from foldwise.data.fileio import load_nifti, read_tsv, write_text_atomic
+from foldwise.provenance.hashing import hash_file, hash_object
+from foldwise.provenance.memo import display_path, part_memo
 
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
@@ -230,26 +240,83 @@ def _check_params(params):
 
 def _check_outputs(outputs, study, subjects):
     figures = [str(path) for path in _as_list(outputs.get("figures"))]
-    if not figures or "html" not in outputs:
-        raise InputError(None, "outputs", "the report job needs the outputs html and figures", "declare both in the rule")
+    if not figures or "html" not in outputs or "previews" not in outputs:
+        raise InputError(None, "outputs", "the report job needs the outputs html, figures and previews",
+                         "declare all three in the rule (foldwise.plan.step_outputs)")
     folder = str(Path(figures[0]).parent)
     catalogue = page.figure_catalogue(study, subjects, figures_dir=folder)
-    planned = [path for entry in catalogue for path in entry["paths"]]
-    if [str(Path(path)) for path in figures] != [str(Path(path)) for path in planned]:
-        extra = sorted(set(map(str, figures)) - set(planned))
-        lacking = [path for path in planned if path not in set(map(str, figures))]
-        raise InputError(None, "outputs.figures", f"the declared figures differ from foldwise.report.figures.figure_plan "
-                         f"(not planned: {extra[:3]}; not declared: {lacking[:3]}; or another order)",
-                         "declare exactly figure_plan(study config, subjects) as the rule's figures output")
+    for key, planned in (("figures", [path for entry in catalogue for path in entry["paths"]]),
+                         ("previews", [entry["preview"] for entry in catalogue])):
+        declared = [str(path) for path in _as_list(outputs.get(key))]
+        if [str(Path(path)) for path in declared] != [str(Path(path)) for path in planned]:
+            extra = sorted(set(declared) - set(planned))
+            lacking = [path for path in planned if path not in set(declared)]
+            raise InputError(None, f"outputs.{key}", f"the declared {key} differ from foldwise.report.figures.figure_catalogue "
+                             f"(not planned: {extra[:3]}; not declared: {lacking[:3]}; or another order)",
+                             f"declare exactly the catalogue's {key} (figure_plan(study config, subjects) for the figures) "
+                             "as the rule's output")
     return catalogue
 
 
 # -- drawing -------------------------------------------------------------------------
 
-def _save(figure, entry):
-    for path in entry["paths"]:
-        save_figure(figure, path)
-    return Path(entry["paths"][0]).read_bytes()
+class _DrawEveryFigure:
+    """Stands in for the part memo when the job runs outside ``run_job`` (a test calling ``run``): nothing is restored."""
+
+    records = ()
+
+    @staticmethod
+    def file_hash(path):
+        return hash_file(path)
+
+    @staticmethod
+    def restore(part, identity, outputs):
+        return False
+
+    @staticmethod
+    def store(part, identity, outputs):
+        return None
+
+
+def _parts():
+    try:
+        return part_memo()
+    except RuntimeError:
+        return _DrawEveryFigure()
+
+
+def _file_identity(parts, path, what):
+    """The content hash of an input image a figure draws (the image itself is read only if the figure is drawn)."""
+    if not Path(path).is_file():
+        raise InputError(path, "file", f"the {what} does not exist", _RERUN)
+    return parts.file_hash(path)
+
+
+def _built(build):
+    """The identity of a figure drawn from small data: the builder's name and the digest of its arguments."""
+    return {"builder": build.func.__name__, "data": data_digest(list(build.args), build.keywords)}
+
+
+def _draw_or_restore(parts, entry, identity, build):
+    """Restore the figure's files (publication formats and preview) when its data did not change, else draw them."""
+    outputs = {Path(path).suffix.lstrip("."): path for path in entry["paths"]}
+    outputs["preview"] = entry["preview"]
+    part = f"figure-{entry['stem']}"
+    if parts.restore(part, identity, outputs):
+        return False
+    # A figure makes ~10^5 objects tied in reference cycles: the automatic collector would scan the job's whole
+    # heap (tables, images) many times per figure. Paused while drawing, then the young generation alone is
+    # collected, which holds the figure once it is dropped (measured: ~25% of the drawing CPU).
+    collecting = gc.isenabled()
+    gc.disable()
+    try:
+        save_formats(build(), entry["paths"], entry["preview"])
+    finally:
+        gc.collect(0)
+        if collecting:
+            gc.enable()
+    parts.store(part, identity, outputs)
+    return True
 
 
 def _classes(analysis):
@@ -570,7 +637,8 @@ def run(inputs, outputs, params, log):
         ``group_tables`` (per analysis), ``provenance`` (every other job's
         record) and, for the demo, ``ground_truth``.
     outputs : dict
-        ``html`` and ``figures`` (exactly ``figure_plan(study, subjects)``).
+        ``html``, ``figures`` (exactly ``figure_plan(study, subjects)``) and
+        ``previews`` (each figure's screen PNG, embedded in the page).
     params : dict
         ``study`` (the validated config), ``subjects``, ``runs`` (subject ->
         run ids) and ``config_file`` (str or None).
@@ -620,20 +688,22 @@ def run(inputs, outputs, params, log):
             "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "tr_s": tr_s, "analyses": analyses,
             "group_tables": group_tables, "summaries": summaries, "confusions": confusions, "subjects": subjects,
             "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study, "clusters": {}, "fields_of": fields_of,
-            "searchlight": _searchlight_inputs(inputs, study)}
-    # Read and check everything first, draw afterwards: bad input stops the job before any drawing.
+            "searchlight": _searchlight_inputs(inputs, study), "parts": _parts()}
+    # Read and check everything first, draw afterwards: bad input stops the job before any drawing
+    # (the images of the masks and residual-variance figures are checked when those figures are drawn).
     specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
     blocks = {}
-    for entry, (build, alt, caption) in zip(catalogue, specifications):
-        figure = build()
-        blocks[entry["stem"]] = (_save(figure, entry), alt, caption)
+    for entry, (identity, build, alt, caption) in zip(catalogue, specifications):
+        _draw_or_restore(data["parts"], entry, identity, build)
+        blocks[entry["stem"]] = (Path(entry["preview"]).read_bytes(), alt, caption)
     first_mean = load_nifti(means[subjects[0]], what="mean image")
     voxel_size_mm = tuple(float(size) for size in first_mean.header.get_zooms()[:3])
     warnings = _read_warnings(params.get("job_logs") or [])
     context = {"study": study, "subjects": subjects, "runs": runs, "trials": trials, "alpha": alpha, "counts": counts,
                "roi_names": roi_names, "analyses": analyses, "group_tables": group_tables, "truth": truth,
                "glm_facts": glm_facts,
-               "catalogue": catalogue, "blocks": blocks, "clusters": data["clusters"], "warnings": warnings,
+               "catalogue": catalogue, "blocks": blocks,
+               "files_href": Path(os.path.relpath(Path(catalogue[0]["paths"][0]).parent, Path(outputs["html"]).parent)).as_posix(), "clusters": data["clusters"], "warnings": warnings,
                "n_draws": int(study.get("group", {}).get("n_draws", 0)) or None,
                "repetition_times": repetition_times, "voxel_size_mm": voxel_size_mm, "config_file": config_file,
                "versions": versions, "records": records, "geometry": geometry_section.read(inputs),
@@ -648,7 +718,7 @@ def run(inputs, outputs, params, log):
 def _figure(context, stem, heading=None, heading_id=None):
     png, alt, caption = context["blocks"][stem]
     return html_page.figure_block(png, stem, alt, caption, formats=page.FIGURE_FORMATS, heading=heading,
-                                  heading_id=heading_id)
+                                  heading_id=heading_id, files_dir=context["files_href"])
 
 
 def _summary_section(context):
@@ -847,7 +917,7 @@ def _searchlight_specification(entry, data, log):
     data["clusters"][name] = page.searchlight_clusters(mean_values, p_values, directions, means.affine, data["alpha"])
     build = functools.partial(page.searchlight_figure, mean_values, p_values, directions, background, brain, means.affine,
                               data["alpha"], f"analysis {name}: group searchlight maps")
-    return (build, f"group searchlight maps of analysis {name}",
+    return (_built(build), build, f"group searchlight maps of analysis {name}",
             f"Analysis {name}: group {page.SEARCHLIGHT_QUANTITY} per searchlight sphere centre, shown only where the "
             f"voxel-wise family-wise corrected p is below {data['alpha']:g}, over {underlay}; the same slices in every "
             "row; coordinates in mm, L and R mark the subject's left and right.")
@@ -865,23 +935,31 @@ def _design_specification(entry, data, log):
     kinds = page.regressor_kinds(names, data["study"].get("dataset", {}).get("confounds") or ())
     build = functools.partial(page.design_figure, values, names, data["tr_s"], f"sub-{subject} {run_id}: design matrix",
                               kinds)
-    return (build, f"Design matrix of sub-{subject}, {run_id}",
+    return (_built(build), build, f"Design matrix of sub-{subject}, {run_id}",
             f"sub-{subject}, {run_id}: {values.shape[1]} regressors (rows, grouped by kind: coloured band) over "
             f"{values.shape[0]} scans; each regressor scaled to its largest magnitude, zero in white.")
 
 
 def _masks_specification(entry, data, log):
     subject = entry["subject"]
-    mean, image = _volume(data["means"][subject], "mean image")
-    brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
-    rois = []
+    parts, title = data["parts"], f"sub-{subject}: brain and ROI masks on the mean image"
     for roi in data["roi_names"]:
         if (subject, roi) not in data["roi_mask_paths"]:
             raise InputError(None, "roi_masks", f"no mask of ROI {roi} for subject {subject}", _RERUN)
-        rois.append((roi, _volume(data["roi_mask_paths"][(subject, roi)], "ROI mask", mean.shape)[0] > 0))
-    build = functools.partial(page.masks_figure, mean, brain, rois, image.affine,
-                              f"sub-{subject}: brain and ROI masks on the mean image")
-    return (build, f"Brain and ROI masks of sub-{subject}",
+    roi_paths = [(roi, data["roi_mask_paths"][(subject, roi)]) for roi in data["roi_names"]]
+    # Keyed on the images' contents: they are read only when the figure is drawn.
+    identity = {"builder": "masks_figure", "title": title,
+                "mean": _file_identity(parts, data["means"][subject], "mean image"),
+                "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask"),
+                "rois": [[roi, _file_identity(parts, path, "ROI mask")] for roi, path in roi_paths]}
+
+    def build():
+        mean, image = _volume(data["means"][subject], "mean image")
+        brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+        rois = [(roi, _volume(path, "ROI mask", mean.shape)[0] > 0) for roi, path in roi_paths]
+        return page.masks_figure(mean, brain, rois, image.affine, title)
+
+    return (identity, build, f"Brain and ROI masks of sub-{subject}",
             f"sub-{subject}: brain mask (outline) and ROIs over the mean BOLD image, slices through the planes with "
             "the most ROI voxels.")
 
@@ -896,12 +974,19 @@ def _resvar_specification(entry, data, log):
     if fields["subject"] != subject:
         raise InputError(path, "subject", f"expected the residual variance of sub-{subject}, got sub-{fields['subject']}",
                          "pass the first subject's first run")
-    mean, _ = _volume(data["means"][subject], "mean image")
-    values, image = _volume(path, "residual variance image", mean.shape)
-    brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
-    build = functools.partial(page.resvar_figure, values, brain, image.affine,
-                              f"sub-{subject} {fields['run_id']}: GLM residual variance")
-    return (build, f"GLM residual variance of sub-{subject}",
+    parts, title = data["parts"], f"sub-{subject} {fields['run_id']}: GLM residual variance"
+    identity = {"builder": "resvar_figure", "title": title,
+                "mean": _file_identity(parts, data["means"][subject], "mean image"),  # its grid is checked
+                "resvar": _file_identity(parts, path, "residual variance image"),
+                "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
+
+    def build():
+        mean, _ = _volume(data["means"][subject], "mean image")
+        values, image = _volume(path, "residual variance image", mean.shape)
+        brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+        return page.resvar_figure(values, brain, image.affine, title)
+
+    return (identity, build, f"GLM residual variance of sub-{subject}",
             f"sub-{subject}, {fields['run_id']}: residual variance of the GLM fit per voxel (colour range: 1st to 99th "
             "percentile inside the brain).")
 
@@ -936,7 +1021,7 @@ def _curve_specification(entry, data, log):
         caption += " Panels: " + "; ".join(f"{panel['label']} ({html_page.direction_tooltip(panel['label'])})"
                                            for panel in panels) + "."
     build = functools.partial(page.curve_figure, panels, f"analysis {name}, ROI {roi}", alpha)
-    return build, f"Decoding curves of analysis {name} in ROI {roi}", caption
+    return _built(build), build, f"Decoding curves of analysis {name} in ROI {roi}", caption
 
 
 def _chosen_count(data, name, roi, key):
@@ -977,7 +1062,7 @@ def _confusion_specification(entry, data, log):
                "(percent; rows sum to 100). Rows are the true classes, columns the predicted ones. Descriptive, not a test.")
     build = functools.partial(page.confusion_figure, shares, directions, classes,
                               f"analysis {name}, ROI {roi}: {count_text}", n_subjects)
-    return build, f"Group confusion matrices of analysis {name} in ROI {roi}", caption
+    return _built(build), build, f"Group confusion matrices of analysis {name} in ROI {roi}", caption
 
 
 def _comparison_specification(entry, data, log):
@@ -997,7 +1082,7 @@ def _comparison_specification(entry, data, log):
                "the diamond and bar the group mean and its 95% confidence interval, the dashed line chance; a star "
                f"marks a family-wise corrected p below {data['alpha']:g}.")
     build = functools.partial(page.comparison_figure, panels, f"analysis {name}: ROIs at {count_text}", data["alpha"])
-    return build, f"ROI comparison of analysis {name}", caption
+    return _built(build), build, f"ROI comparison of analysis {name}", caption
 
 
 _FIGURE_SPECIFICATIONS = {"design": _design_specification, "masks": _masks_specification,

@@ -42,6 +42,7 @@ __all__ = [
     "DESIGN_KINDS",
     "regressor_kinds",
     "design_figure",
+    "roi_overlay",
     "masks_figure",
     "resvar_figure",
     "curve_figure",
@@ -122,6 +123,7 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
         Keys ``stem``, ``kind`` (curve, confusion, comparison, searchlight,
         design, masks, resvar), ``subject``, ``analysis``, ``roi`` (None where
         not applicable), ``paths`` (one per format in ``FIGURE_FORMATS``),
+        ``preview`` (the screen PNG the page embeds, under ``preview/``),
         ``caption`` (a file of ``CAPTIONS``) and ``category`` (for
         Snakemake's report()).
 
@@ -146,7 +148,8 @@ def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
     def add(stem, kind, caption, category, subject=None, analysis=None, roi=None):
         paths = [f"{figures_dir}/{stem}.{suffix}" for suffix in FIGURE_FORMATS]
         entries.append({"stem": stem, "kind": kind, "subject": subject, "analysis": analysis, "roi": roi,
-                        "paths": paths, "caption": CAPTIONS[caption], "category": category})
+                        "paths": paths, "preview": f"{figures_dir}/preview/{stem}.png", "caption": CAPTIONS[caption],
+                        "category": category})
 
     for analysis in study_config["analyses"]:
         if analysis["kind"] == "geometry":  # figures of their own (report/geometry_figures.py, written by geometry_group)
@@ -697,6 +700,44 @@ def design_figure(matrix, names, tr_s, title, kinds=None):
     return figure
 
 
+def roi_overlay(mask_slices, colours):
+    """The ROIs' fills of one slice as one RGBA image: each colour laid over the ones before it ("over" compositing).
+
+    Parameters
+    ----------
+    mask_slices : sequence of 2D array_like of bool
+        One mask slice per ROI, in drawing order.
+    colours : sequence of RGBA tuples
+        Fill colour (with its opacity) of each ROI.
+
+    Returns
+    -------
+    numpy.ndarray, shape (rows, columns, 4)
+        What drawing each ROI's fill as its own image, one over the other,
+        shows (Porter & Duff 1984, "Compositing digital images", the over
+        operator, non-premultiplied colours).
+
+    Examples
+    --------
+    >>> overlay = roi_overlay([np.array([[True, False]]), np.array([[True, True]])],
+    ...                       [(1.0, 0.0, 0.0, 0.5), (0.0, 0.0, 1.0, 0.5)])
+    >>> overlay[0, 0].round(3).tolist(), overlay[0, 1].tolist()
+    ([0.333, 0.0, 0.667, 0.75], [0.0, 0.0, 1.0, 0.5])
+    """
+    shape = np.shape(mask_slices[0]) if len(mask_slices) else (0, 0)
+    colour_sum, alpha = np.zeros(tuple(shape) + (3,)), np.zeros(tuple(shape))
+    for mask, colour in zip(mask_slices, colours):
+        mask = np.asarray(mask, dtype=bool)
+        top = float(colour[3])
+        colour_sum[mask] = np.asarray(colour[:3]) * top + colour_sum[mask] * (1.0 - top)  # premultiplied over
+        alpha[mask] = top + alpha[mask] * (1.0 - top)
+    overlay = np.zeros(tuple(shape) + (4,))
+    shown = alpha > 0
+    overlay[shown, :3] = colour_sum[shown] / alpha[shown, None]
+    overlay[..., 3] = alpha
+    return overlay
+
+
 def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
     """Brain and ROI masks over the mean image in three orthogonal slices (mm axes).
 
@@ -739,11 +780,11 @@ def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
         horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
         axes.imshow(_take(mean_image, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
                     interpolation="nearest")
-        for (name, mask), colour in zip(rois, colours):
-            mask_slice = _take(mask, axis, index)
-            overlay = np.zeros(mask_slice.shape + (4,))
-            overlay[mask_slice] = to_rgba(colour, 0.55)
-            axes.imshow(overlay, origin="lower", extent=extent, interpolation="nearest")
+        mask_slices = [_take(mask, axis, index) for _, mask in rois]
+        # One image for every ROI's fill (drawing one image per ROI costs a resampling each, in every format).
+        axes.imshow(roi_overlay(mask_slices, [to_rgba(colour, 0.55) for colour in colours]), origin="lower",
+                    extent=extent, interpolation="nearest")
+        for mask_slice, colour in zip(mask_slices, colours):
             _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, 1.0)
         _outline(axes, coordinates, horizontal, vertical, _take(brain, axis, index), _BRAIN_OUTLINE, 1.2)
         axes.set_title(panel_title, fontsize=_FONT_SIZE)

@@ -150,23 +150,27 @@ def html_table(header, rows, caption=None, row_classes=None, wide=False, header_
     return "".join(parts)
 
 
-def figure_block(png_bytes, stem, alt, caption, formats=("png", "svg", "pdf"), heading=None, heading_id=None):
-    """One figure: the PNG embedded as a data URI, its caption and its file names.
+def figure_block(png_bytes, stem, alt, caption, formats=("png", "svg", "pdf"), heading=None, heading_id=None,
+                 files_dir="figures"):
+    """One figure: its screen PNG embedded as a data URI, its caption and links to its files.
 
     Parameters
     ----------
     png_bytes : bytes
+        The screen preview (the publication files stay on disk, linked).
     stem : str
-        File stem under ``figures/``.
+        File stem under ``files_dir``.
     alt : str
         Text alternative of the image.
     caption : str
     formats : sequence of str
-        The formats written, listed under the caption.
+        The formats written, linked under the caption.
     heading : str, optional
         A heading kept on the same printed page as the figure.
     heading_id : str, optional
         The heading's anchor.
+    files_dir : str
+        The figures' folder relative to the page (links only: nothing is loaded).
 
     Returns
     -------
@@ -175,14 +179,15 @@ def figure_block(png_bytes, stem, alt, caption, formats=("png", "svg", "pdf"), h
     if not png_bytes.startswith(b"\x89PNG\r\n\x1a\n"):
         raise InputError(None, stem, "the figure is not a PNG image", "rerun the report job")
     data = base64.b64encode(png_bytes).decode("ascii")
-    files = ", ".join(f"figures/{stem}.{suffix}" for suffix in formats)
+    files = ", ".join(f"<a href=\"{html.escape(f'{files_dir}/{stem}.{suffix}')}\">{html.escape(f'{files_dir}/{stem}.{suffix}')}</a>"
+                      for suffix in formats)
     title = ""
     if heading:
         identity = f" id=\"{html.escape(heading_id)}\"" if heading_id else ""
         title = f"<h4{identity}>{html.escape(heading)}</h4>"
     return (f"<figure id=\"fig-{html.escape(stem)}\">{title}<img src=\"data:image/png;base64,{data}\" "
             f"alt=\"{html.escape(alt)}\"><figcaption>{html.escape(caption)} "
-            f"<span class=\"files\">Files: {html.escape(files)}</span></figcaption></figure>")
+            f"<span class=\"files\">Files: {files}</span></figcaption></figure>")
 
 
 _STYLE = """

@@ -84,6 +84,9 @@ _FONT_SIZE = 9
 _DESIGN_MAX_LABELS, _DESIGN_MAX_WIDTH_IN = 60, 14.0  # trial-wise designs can have hundreds of regressors
 _STAR_ROW, _STAR_HEADROOM = 0.96, 0.06  # axes fraction of the significance row; room for it (proportion)
 _OUTLINE_UPSAMPLING = 4  # mask outlines follow voxel edges to within 1/8 voxel
+# Voxel images: square voxels in the PNG (Agg draws "none" as nearest neighbour), and the SVG and PDF hold the
+# image itself at its own size with no smoothing (matplotlib's "none"), instead of a copy resampled at 300 dpi.
+_VOXELS = "none"
 
 
 # -- the figure plan -------------------------------------------------------------
@@ -679,9 +682,9 @@ def design_figure(matrix, names, tr_s, title, kinds=None):
         extent, xlabel = (0.0, n_scans * tr_s, len(names) - 0.5, -0.5), "time from run start (s)"
     else:
         extent, xlabel = (-0.5, n_scans - 0.5, len(names) - 0.5, -0.5), "scan (volume number, from 0)"
-    image = axes.imshow(shown, aspect="auto", cmap="BrBG", interpolation="nearest", vmin=-1, vmax=1, extent=extent)
+    image = axes.imshow(shown, aspect="auto", cmap="BrBG", interpolation=_VOXELS, vmin=-1, vmax=1, extent=extent)
     colours = [OKABE_ITO[DESIGN_KINDS[kind]] for kind in kinds]
-    band_axes.imshow(np.array([to_rgba(colour) for colour in colours])[:, None, :], aspect="auto", interpolation="nearest",
+    band_axes.imshow(np.array([to_rgba(colour) for colour in colours])[:, None, :], aspect="auto", interpolation=_VOXELS,
                      extent=(0, 1, len(names) - 0.5, -0.5))
     band_axes.set_xticks([])
     ticks = np.arange(0, len(names), label_step)
@@ -779,11 +782,11 @@ def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
         index = slices[axis]
         horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
         axes.imshow(_take(mean_image, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
-                    interpolation="nearest")
+                    interpolation=_VOXELS)
         mask_slices = [_take(mask, axis, index) for _, mask in rois]
         # One image for every ROI's fill (drawing one image per ROI costs a resampling each, in every format).
         axes.imshow(roi_overlay(mask_slices, [to_rgba(colour, 0.55) for colour in colours]), origin="lower",
-                    extent=extent, interpolation="nearest")
+                    extent=extent, interpolation=_VOXELS)
         for mask_slice, colour in zip(mask_slices, colours):
             _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, 1.0)
         _outline(axes, coordinates, horizontal, vertical, _take(brain, axis, index), _BRAIN_OUTLINE, 1.2)
@@ -862,9 +865,9 @@ def searchlight_figure(mean_maps, p_fwe_maps, directions, background, brain_mask
             index = slices[axis]
             horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
             axes.imshow(_take(anatomy, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
-                        interpolation="nearest")
+                        interpolation=_VOXELS)
             image = axes.imshow(_take(shown_values[..., row], axis, index), cmap=colour_map, vmin=-limit, vmax=limit,
-                                origin="lower", extent=extent, interpolation="nearest")
+                                origin="lower", extent=extent, interpolation=_VOXELS)
             _outline(axes, coordinates, horizontal, vertical, _take(brain, axis, index), _BRAIN_OUTLINE, 0.8)
             _side_marks(axes, names, horizontal)
             axes.set_title(f"{direction_label(direction)}: {panel_title}", fontsize=_FONT_SIZE)
@@ -970,7 +973,7 @@ def resvar_figure(residual_variance, brain_mask, affine, title):
         horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
         axes.set_facecolor("0.85")
         image = axes.imshow(_take(shown, axis, index), cmap=colour_map, vmin=low, vmax=high, origin="lower",
-                            extent=extent, interpolation="nearest")
+                            extent=extent, interpolation=_VOXELS)
         axes.set_title(panel_title, fontsize=_FONT_SIZE)
         _label_axes(axes, names, horizontal, vertical)
     colourbar = figure.colorbar(image, ax=list(panels), shrink=0.85)
@@ -1123,7 +1126,7 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
     image = None
     for axes, direction in zip(panels, directions):
         values = shares[direction]
-        image = axes.imshow(values, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation="nearest")
+        image = axes.imshow(values, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation=_VOXELS)
         for (row, column), share in np.ndenumerate(values):
             text = "n/a" if not np.isfinite(share) else f"{100 * share:.0f}"
             colour = "white" if not np.isfinite(share) or share < 0.55 else "black"

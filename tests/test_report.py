@@ -1127,3 +1127,36 @@ def test_a_changed_roi_redraws_only_the_figures_that_show_it(tmp_path, monkeypat
     params = dict(params, overrides=["a.b=1"])  # another job key, so the whole job is not restored
     third = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
     assert not any(part["restored"] for part in third["parts"]) and len(third["parts"]) == len(first["parts"])
+
+
+def test_roi_overlay_looks_like_one_image_per_roi_drawn_one_over_the_other():
+    # Reference: matplotlib's Agg renderer drawing each ROI's fill as its own image (what the masks figure did
+    # before the fills were composited), against the one composited image; 8-bit rendering, so within 2/255.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.colors import to_rgba
+    from matplotlib.figure import Figure
+
+    rng = np.random.default_rng(3)
+    masks = [rng.random((6, 7)) < 0.5 for _ in range(3)]
+    colours = [to_rgba(report.OKABE_ITO[name], 0.55) for name in ("orange", "sky blue", "bluish green")]
+
+    def rendered(images):
+        figure = Figure(figsize=(0.7, 0.6), dpi=10)
+        axes = figure.add_axes((0, 0, 1, 1))
+        axes.set_axis_off()
+        canvas = FigureCanvasAgg(figure)
+        underlay = np.full((6, 7, 4), 0.5)
+        underlay[..., 3] = 1.0
+        axes.imshow(underlay, interpolation="nearest")  # an opaque grey underlay
+        for image in images:
+            axes.imshow(image, interpolation="nearest")
+        canvas.draw()
+        return np.asarray(canvas.buffer_rgba(), dtype=float)
+
+    separate = []
+    for mask, colour in zip(masks, colours):
+        image = np.zeros((6, 7, 4))
+        image[mask] = colour
+        separate.append(image)
+    one = rendered([report.roi_overlay(masks, colours)])
+    assert np.abs(one - rendered(separate)).max() <= 2

@@ -245,6 +245,14 @@ def save_nifti(path, data, affine, header=None, dtype=np.float32):
     write_bytes_atomic(path, gzip_bytes(raw) if str(path).endswith(".gz") else raw)
 
 
+def _image_from_bytes(path, data):
+    """The file's bytes decompressed once, and the NIfTI-1 or NIfTI-2 image over them."""
+    if str(path).endswith(".gz"):
+        data = gunzip_bytes(data)
+    image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
+    return image_class.from_bytes(data), data
+
+
 def load_nifti(path, what="image", float32=True):
     """Load a NIfTI file fully into memory, decoding gzip with the fast decoder.
 
@@ -274,10 +282,7 @@ def load_nifti(path, what="image", float32=True):
         raise missing_file_error(path, what)
     data = path.read_bytes()
     try:
-        if str(path).endswith(".gz"):
-            data = gunzip_bytes(data)
-        image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
-        image = image_class.from_bytes(data)
+        image, data = _image_from_bytes(path, data)
         if float32:
             image.get_fdata(caching="fill", dtype=np.float32)  # force a full read (truncation shows here); kept for the caller
         else:
@@ -366,10 +371,7 @@ def load_stored(path, what="image"):
         raise missing_file_error(path, what)
     data = path.read_bytes()
     try:
-        if str(path).endswith(".gz"):
-            data = gunzip_bytes(data)
-        image_class = nib.Nifti2Image if len(data) >= 4 and int.from_bytes(data[:4], "little") == 540 else nib.Nifti1Image
-        image = image_class.from_bytes(data)
+        image, data = _image_from_bytes(path, data)
         proxy = image.dataobj  # where nibabel itself reads the values: offset, dtype, shape, order
         shape, dtype, offset = tuple(int(n) for n in proxy.shape), np.dtype(proxy.dtype), int(proxy.offset)
         if getattr(proxy, "order", "F") != "F":

@@ -80,5 +80,6 @@ store-check: $(STAMP)
 store-clean: $(STAMP)
 	$(BIN)/python -m foldwise.provenance.store clean --config $(CONFIG) $(foreach manifest,$(MANIFESTS),--manifest $(manifest))
 
-clean:
-	rm -rf results .snakemake
+# Removes the results folder of CONFIG (study.results_dir, checked never to be code or the checkout) and .snakemake.
+clean: $(STAMP)
+	folder=$$($(BIN)/python -m foldwise.results_folder --config $(CONFIG)) && rm -rf "$$folder" .snakemake

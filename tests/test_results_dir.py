@@ -231,6 +231,20 @@ def test_the_bundle_holds_the_configs_results_folder_only(tmp_path, capsys):
     assert "3 provenance records" in capsys.readouterr().out
 
 
+def test_make_clean_is_told_the_configs_results_folder_and_never_a_code_folder(tmp_path, monkeypatch, capsys):
+    from foldwise import results_folder
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "config").mkdir()
+    write_study(tmp_path, with_results_dir(TINY_STUDY, "studies/b"), name="study_b.yaml")
+    results_folder.main(["--config", "config/study_b.yaml"])
+    assert capsys.readouterr().out == "studies/b\n"
+    write_study(tmp_path, with_results_dir(TINY_STUDY, "workflow"), name="study_w.yaml")
+    with pytest.raises(InputError) as refused:
+        results_folder.main(["--config", "config/study_w.yaml"])
+    assert refused.value.field == "study.results_dir"
+
+
 def test_store_clean_keeps_what_the_configs_own_manifest_reaches_by_default(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     (tmp_path / "config").mkdir()

@@ -161,3 +161,21 @@ def shared_results_warning(results_dir, config_file):
     return (f"{_config_name(config_file)}: {_FIELD}: the results folder '{results_dir}' was last run by {previous}; this run "
             f"replaces that study's outputs there (and switching back reruns them). Fix: give each study config its own "
             f"study.results_dir (e.g. results_{os.path.splitext(os.path.basename(config_file))[0]})")
+
+
+def main(argv=None):
+    """Print the study's results folder (``make clean`` removes it): ``python -m foldwise.results_folder --config FILE``."""
+    import argparse
+
+    from foldwise.config import load_study_config
+
+    parser = argparse.ArgumentParser(prog="python -m foldwise.results_folder", description=main.__doc__.splitlines()[0])
+    parser.add_argument("--config", default="config/config.yaml", help="the study config (default: config/config.yaml)")
+    arguments = parser.parse_args(argv)
+    config = load_study_config(arguments.config)
+    check_results_dir(config, arguments.config)  # never a code folder or the checkout: the folder is safe to remove
+    print(config["study"]["results_dir"])
+
+
+if __name__ == "__main__":
+    main()

@@ -628,7 +628,7 @@ def _in_read_only_workspace(locked_folders, function):
 def _read_only_results(folder):
     return Expectation(lambda: _in_read_only_workspace(["results/masks/sub-01"], lambda: _run_copy_job(_fake_job())),
                        "results/masks/sub-01: permissions: step copy could not write or read this path (permission denied). "
-                       "Fix: make results/ and study.store_dir writable for this user (or remove results left by another "
+                       "Fix: make the folders of study.results_dir and study.store_dir writable for this user (or remove results left by another "
                        "user), then rerun", kind="exit")
 
 

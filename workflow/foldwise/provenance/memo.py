@@ -400,11 +400,11 @@ def _named(namedlist, exclude=()):
 # folder belongs): stated as one message instead of a traceback.
 _FILE_SYSTEM_FIXES = {
     errno.EACCES: ("permissions", "permission denied",
-                   "make results/ and study.store_dir writable for this user (or remove results left by another user), then rerun"),
+                   "make the folders of study.results_dir and study.store_dir writable for this user (or remove results left by another user), then rerun"),
     errno.EPERM: ("permissions", "operation not permitted",
-                  "make results/ and study.store_dir writable for this user (or remove results left by another user), then rerun"),
+                  "make the folders of study.results_dir and study.store_dir writable for this user (or remove results left by another user), then rerun"),
     errno.EROFS: ("permissions", "the file system is read-only",
-                  "put results/ and study.store_dir on a writable file system, then rerun"),
+                  "put the folders of study.results_dir and study.store_dir on a writable file system, then rerun"),
     errno.ENOSPC: ("disk space", "no space left on the device", "free disk space (or move study.store_dir), then rerun"),
     errno.EDQUOT: ("disk space", "the disk quota is exceeded", "free disk space (or move study.store_dir), then rerun"),
     errno.ENOTDIR: ("folder", "a file stands where a folder is needed", "move or remove that file, then rerun"),

@@ -436,8 +436,9 @@ def test_example_config_runs_end_to_end(tmp_path, example, layout):
     work = copy_repository(tmp_path / "repo")
     written = simulated.write_dataset(work / "data" / "lanterns", n_subjects=3, **layout)
     snakemake(work, config=f"config/examples/{example}")  # the shipped file, unchanged
-    results = work / "results"
     config = yaml.safe_load((EXAMPLES / example).read_text(encoding="utf-8"))
+    results = work / config["study"]["results_dir"]  # each example keeps its own results folder
+    assert not (work / "results" / "group").exists()
     for analysis in config["analyses"]:
         group = pd.read_csv(results / "group" / analysis["name"] / f"{analysis['name']}_group.tsv", sep="\t")
         assert len(group) > 0

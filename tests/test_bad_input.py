@@ -155,7 +155,7 @@ def _malformed_yaml(folder):
 @case("config file missing", "config.load_yaml, before any job")
 def _missing_config(folder):
     return Expectation(lambda: load_yaml(folder / "study.yaml"), f"{FOLDER}/study.yaml: file: the config file does not exist. "
-                                                                "Fix: create it or pass the right path (make demo CONFIG=path)")
+                                                                "Fix: create it or pass the right path (make study CONFIG=path)")
 
 
 @case("config is a list, not a mapping", "config.load_yaml, before any job")

@@ -35,7 +35,7 @@ def load_yaml(path, what="config file"):
     """Load a YAML file safely; a missing or malformed file is an InputError."""
     path = Path(path)
     if not path.is_file():
-        raise InputError(path, "file", f"the {what} does not exist", "create it or pass the right path (make demo CONFIG=path)")
+        raise InputError(path, "file", f"the {what} does not exist", "create it or pass the right path (make study CONFIG=path)")
     try:
         data = yaml.safe_load(path.read_text(encoding="utf-8"))
     except yaml.YAMLError as error:

@@ -203,3 +203,105 @@ def test_in_process_jobs_match_job_processes_and_fail_without_ending_the_process
     with pytest.raises(JobFailed, match="in.txt: times: not a number"):
         run_in_process("double", refuse, broken.input, broken.output, broken.params, broken.wildcards, broken.log, broken.config)
     assert "foldwise: in.txt: times: not a number" in capsys.readouterr().err
+
+
+_ENDING_SCRIPT = '''
+import atexit, os, sys
+from pathlib import Path
+from types import SimpleNamespace
+sys.path.insert(0, {tests!r})
+from test_memo import _Named
+from foldwise.errors import InputError
+from foldwise.provenance.memo import run_job
+
+root = Path({root!r})
+atexit.register(lambda: (root / "teardown-ran").write_text("yes"))  # what os._exit skips
+
+def job(inputs, outputs, settings, log):
+    if settings["fail"]:
+        raise InputError("in.txt", "times", "not a number", "give a whole number")
+    log.info("the job's last log line")
+    print("stdout text still buffered", end="")  # no newline: flushed by run_job, or lost
+    Path(outputs["doubled"]).parent.mkdir(parents=True, exist_ok=True)
+    Path(outputs["doubled"]).write_text("alphaalpha")
+
+smk = SimpleNamespace(input=_Named(), output=_Named(doubled=str(root / "out.txt"), provenance=str(root / "prov.json")),
+                      params=_Named(settings={{"fail": {fail}}}, code="c"), log=[str(root / "job.log")],
+                      wildcards=_Named(), config={{"study": {{"store_dir": str(root / "store")}}}})
+run_job(smk, "double", job, end_process=True)
+(root / "returned").write_text("yes")  # never reached with end_process
+'''
+
+
+@pytest.mark.parametrize("fail", [False, True])
+def test_end_process_exits_after_every_file_is_written_and_only_on_success(tmp_path, fail):
+    # A job script passes end_process=True: after the record and the log are written the process ends with
+    # os._exit(0) (no interpreter teardown, no atexit hooks), its buffered stdout flushed; a failure still
+    # prints the one foldwise: line and exits 1 through the normal exit (atexit hooks run).
+    import subprocess
+    import sys
+
+    tests = os.path.dirname(os.path.abspath(__file__))
+    script = tmp_path / "job_script.py"
+    script.write_text(_ENDING_SCRIPT.format(tests=tests, root=str(tmp_path), fail=fail))
+    environment = dict(os.environ, PYTHONPATH=os.pathsep.join([os.path.join(os.path.dirname(tests), "workflow"), tests]))
+    completed = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, cwd=tmp_path, env=environment, timeout=120)
+    assert not (tmp_path / "returned").exists()
+    if fail:
+        assert completed.returncode == 1
+        assert "foldwise: in.txt: times: not a number. Fix: give a whole number" in completed.stderr
+        assert (tmp_path / "teardown-ran").exists() and not (tmp_path / "prov.json").exists()
+        return
+    assert completed.returncode == 0, completed.stderr
+    assert completed.stdout == "stdout text still buffered"
+    assert not (tmp_path / "teardown-ran").exists(), "end_process must skip the interpreter's teardown"
+    assert (tmp_path / "out.txt").read_text() == "alphaalpha"
+    record = json.loads((tmp_path / "prov.json").read_text())
+    assert record["outputs"][0]["sha256"] == hash_file(tmp_path / "out.txt")
+    log_text = (tmp_path / "job.log").read_text()
+    assert "the job's last log line" in log_text and "computed (key" in log_text
+
+
+_TINY_SNAKEFILE = '''
+rule all:
+    input: "out/doubled.txt"
+
+rule double:
+    input: source="in.txt"
+    output: doubled="out/doubled.txt", provenance="prov/double.json"
+    params: settings={"times": 2}, code="c"
+    log: "logs/double.log"
+    script: "double.py"
+'''
+
+_TINY_SCRIPT = '''
+from pathlib import Path
+from foldwise.provenance.memo import run_job
+
+def double(inputs, outputs, settings, log):
+    Path(outputs["doubled"]).write_text(Path(inputs["source"]).read_text() * 2)
+
+run_job(snakemake, step="double", job=double, end_process=True)
+'''
+
+
+def test_snakemake_sees_a_job_that_ends_its_process_as_finished(tmp_path):
+    # Snakemake judges a script job by its exit status and its outputs: both must be in place after os._exit,
+    # and a second invocation must find nothing to do (no incomplete-output marker left behind).
+    import subprocess
+    import sys
+
+    (tmp_path / "Snakefile").write_text(_TINY_SNAKEFILE)
+    (tmp_path / "double.py").write_text(_TINY_SCRIPT)
+    (tmp_path / "in.txt").write_text("alpha")
+    snakemake = os.path.join(os.path.dirname(sys.executable), "snakemake")
+    package = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "workflow")
+    environment = dict(os.environ, PYTHONPATH=package)
+    command = [snakemake, "--cores", "1", "--directory", str(tmp_path), "--snakefile", str(tmp_path / "Snakefile"),
+               "--config", f"study={{'store_dir': '{tmp_path / 'store'}'}}"]
+    first = subprocess.run(command, capture_output=True, text=True, env=environment, timeout=300)
+    assert first.returncode == 0, first.stderr[-2000:]
+    assert (tmp_path / "out" / "doubled.txt").read_text() == "alphaalpha"
+    assert json.loads((tmp_path / "prov" / "double.json").read_text())["step"] == "double"
+    again = subprocess.run(command + ["--dry-run"], capture_output=True, text=True, env=environment, timeout=300)
+    assert again.returncode == 0 and "Nothing to be done" in again.stdout + again.stderr, again.stdout + again.stderr

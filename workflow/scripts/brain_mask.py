@@ -2,4 +2,4 @@
 from foldwise.jobs import brain_mask
 from foldwise.provenance.memo import run_job
 
-run_job(snakemake, step="brain_mask", job=brain_mask.run)  # noqa: F821 (snakemake is injected by Snakemake)
+run_job(snakemake, step="brain_mask", job=brain_mask.run, end_process=True)  # noqa: F821 (snakemake is injected by Snakemake); end_process: no teardown at exit

@@ -2,4 +2,4 @@
 from foldwise.jobs import decode
 from foldwise.provenance.memo import run_job
 
-run_job(snakemake, step="decode", job=decode.run)  # noqa: F821 (snakemake is injected by Snakemake)
+run_job(snakemake, step="decode", job=decode.run, end_process=True)  # noqa: F821 (snakemake is injected by Snakemake); end_process: no teardown at exit

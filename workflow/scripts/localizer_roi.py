@@ -2,4 +2,4 @@
 from foldwise.jobs import localizer_roi
 from foldwise.provenance.memo import run_job
 
-run_job(snakemake, step="localizer_roi", job=localizer_roi.run)  # noqa: F821 (snakemake is injected by Snakemake)
+run_job(snakemake, step="localizer_roi", job=localizer_roi.run, end_process=True)  # noqa: F821 (snakemake is injected by Snakemake); end_process: no teardown at exit

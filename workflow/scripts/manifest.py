@@ -2,4 +2,4 @@
 from foldwise.jobs import manifest
 from foldwise.provenance.memo import run_job
 
-run_job(snakemake, step="manifest", job=manifest.run)  # noqa: F821 (snakemake is injected by Snakemake)
+run_job(snakemake, step="manifest", job=manifest.run, end_process=True)  # noqa: F821 (snakemake is injected by Snakemake); end_process: no teardown at exit

@@ -2,4 +2,4 @@
 from foldwise.jobs import searchlight_block
 from foldwise.provenance.memo import run_job
 
-run_job(snakemake, step="searchlight_block", job=searchlight_block.run)  # noqa: F821 (snakemake is injected by Snakemake)
+run_job(snakemake, step="searchlight_block", job=searchlight_block.run, end_process=True)  # noqa: F821 (snakemake is injected by Snakemake); end_process: no teardown at exit

@@ -454,7 +454,7 @@ def _shown_path(path):
     return path if relative.startswith(os.pardir) else relative
 
 
-def run_job(smk, step, job):
+def run_job(smk, step, job, end_process=False):
     """Run one Snakemake job through the memo, and write its provenance record.
 
     A fixable file-system error (see :func:`file_system_error`) stops the job
@@ -471,8 +471,32 @@ def run_job(smk, step, job):
         The step's name (a rule name).
     job : callable
         ``job(inputs, outputs, settings, log)``: the job function.
+    end_process : bool
+        For a job script (its own process): once the outputs, the record and
+        the log are written and closed, end the process at once with status
+        0 instead of returning. Python's teardown at exit (freeing every
+        module: 0.1 s of CPU after a decoding job's imports, about 0.45 s
+        once matplotlib's pyplot is loaded, measured with ``/usr/bin/time``)
+        is work no job needs. Only on success: a failure exits as before.
+        Never pass it where the caller's process must go on (tests, threads).
     """
     _run_stated(smk, step, job, in_process=False)
+    if end_process:
+        _end_process()
+
+
+def _end_process():
+    """End a job process whose files are all written and closed, skipping the interpreter's teardown (status 0).
+
+    Snakemake sees the job as finished from the exit status and the outputs,
+    both in place; what would be lost is only buffered text, so the logging
+    handlers and the standard streams are flushed first.
+    """
+    logging.shutdown()  # flushes and closes every handler still open (the job's own are closed already)
+    for stream in (sys.stdout, sys.stderr):
+        with contextlib.suppress(Exception):  # a stream closed by the job
+            stream.flush()
+    os._exit(0)
 
 
 class JobFailed(Exception):

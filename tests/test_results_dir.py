@@ -1,7 +1,7 @@
 """Studies side by side: ``study.results_dir`` moves every output of a study into its own folder.
 
-Quick tests: the paths (every planned job's outputs, inputs, log and
-benchmark of a study with another results folder are the demo's paths under
+Quick tests: the paths (every planned job's outputs, inputs and log
+of a study with another results folder are the demo's paths under
 that folder, and nothing else changes), the checks of the folder
 (foldwise.results_folder; the messages themselves are rows of
 docs/bad-input-table.md), the run guard's forced records, the bundle and the
@@ -42,14 +42,14 @@ def with_results_dir(study, results_dir):
 
 
 def _job_paths(study):
-    """step, wildcards -> every path of the job (outputs, inputs, log, benchmark), in plan order."""
+    """step, wildcards -> every path of the job (outputs, inputs, log), in plan order."""
     jobs = {}
     for step, wildcards in plan.planned_jobs(study):
         paths = []
         for mapping in (plan.job_outputs(study, step, wildcards), plan.job_inputs(study, step, wildcards)):
             for value in mapping.values():
                 paths += value if isinstance(value, list) else [value]
-        paths += [plan.step_log(study, step).format(**wildcards), plan.step_benchmark(study, step).format(**wildcards)]
+        paths += [plan.step_log(study, step).format(**wildcards)]
         jobs[(step, tuple(sorted(wildcards.items())))] = [str(path) for path in paths]
     return jobs
 

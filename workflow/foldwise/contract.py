@@ -17,7 +17,7 @@ from foldwise.data.fileio import load_nifti, read_tsv
 from foldwise.errors import InputError
 
 __all__ = [
-    "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "cross_directions", "provenance_path", "log_path", "benchmark_path",
+    "RESULTS", "GRID_TOLERANCE_MM", "TEMPLATES", "fill", "cross_directions", "provenance_path", "log_path",
     "ResultPaths", "under_results", "relative_to_results",
     "PATTERN_TABLE_COLUMNS", "SCORE_COLUMNS", "NULL_COLUMNS", "RANKING_COLUMNS", "CONFUSION_COLUMNS", "SUMMARY_COLUMNS",
     "ROI_COUNT_COLUMNS", "GROUP_COLUMNS", "GROUP_NULL_COLUMNS", "SEARCHLIGHT_GROUP_COLUMNS", "SEARCHLIGHT_DIRECTION_COLUMNS",
@@ -128,10 +128,6 @@ def log_path(step, identity, results_dir=RESULTS):
     return f"{results_dir}/logs/{step}/{identity}.log"
 
 
-def benchmark_path(step, identity, results_dir=RESULTS):
-    return f"{results_dir}/benchmarks/{step}/{identity}.tsv"
-
-
 def under_results(path, results_dir):
     """A path of the default results folder moved under ``results_dir`` (the same path when it is the default).
 
@@ -182,9 +178,6 @@ class ResultPaths:
 
     def log(self, step, identity):
         return log_path(step, identity, self.root)
-
-    def benchmark(self, step, identity):
-        return benchmark_path(step, identity, self.root)
 
     def folder(self, *parts):
         """A folder (or file) of the results folder that no template names: ``folder("provenance")``."""

@@ -18,7 +18,7 @@ from foldwise.errors import InputError
 from foldwise.geometry import wiring as geometry_wiring
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
-           "step_outputs", "with_rois", "with_runs", "run_list_rules", "RUN_LIST_STEPS", "roi_list_rules", "ROI_LIST_STEPS", "step_log", "step_benchmark", "all_job_outputs", "all_provenance_records", "planned_output_counts",
+           "step_outputs", "with_rois", "with_runs", "run_list_rules", "RUN_LIST_STEPS", "roi_list_rules", "ROI_LIST_STEPS", "step_log", "all_job_outputs", "all_provenance_records", "planned_output_counts",
            "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets", "RunLookup"]
 
 
@@ -101,7 +101,7 @@ class Step:
     ----------
     identity : str
         Names one job among the step's jobs (a wildcard template): its
-        provenance record, log and benchmark files are named after it.
+        provenance record and log are named after it.
     outputs : callable
         ``outputs(study) -> {output name: path template}`` (the provenance
         record is added by :func:`step_outputs`).
@@ -223,10 +223,6 @@ def run_list_rules(study, step):
 
 def step_log(study, step):
     return study.paths.log(step, STEPS[step].identity)
-
-
-def step_benchmark(study, step):
-    return study.paths.benchmark(step, STEPS[step].identity)
 
 
 def planned_jobs(study):

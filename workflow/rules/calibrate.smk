@@ -12,8 +12,6 @@ rule calibrate:
         code=step_code("calibrate.py"),
     log:
         log_of("calibrate"),
-    benchmark:
-        benchmark_of("calibrate")
     threads: 1
     resources:
         mem_mb=2000,

@@ -82,10 +82,6 @@ def log_of(step):
     return plan.step_log(MODEL, step)
 
 
-def benchmark_of(step):
-    return plan.step_benchmark(MODEL, step)
-
-
 def all_job_outputs():
     """Every output file of every planned job: the default target, so a deleted file is made again."""
     return plan.all_job_outputs(MODEL)

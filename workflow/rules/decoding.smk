@@ -25,8 +25,6 @@ for _number, (_analyses, _rois) in enumerate(plan.roi_list_rules(MODEL, "decode"
             code=step_code("decode.py"),
         log:
             log_of("decode"),
-        benchmark:
-            benchmark_of("decode")
         threads: 1
         resources:
             # one ROI at a time (its null arrays) plus the subject's patterns over the ROIs' union

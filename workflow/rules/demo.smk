@@ -11,8 +11,6 @@ if MODEL.is_demo:
             code=step_code("demo_dataset.py"),
         log:
             log_of("demo_dataset"),
-        benchmark:
-            benchmark_of("demo_dataset")
         threads: 1
         resources:
             mem_mb=1000,

@@ -13,8 +13,6 @@ rule geometry_patterns:
         code=step_code("geometry_patterns.py"),
     log:
         log_of("geometry_patterns"),
-    benchmark:
-        benchmark_of("geometry_patterns")
     threads: 1
     resources:
         mem_mb=3000,
@@ -35,8 +33,6 @@ rule geometry_subject:
         code=step_code("geometry_subject.py"),
     log:
         log_of("geometry_subject"),
-    benchmark:
-        benchmark_of("geometry_subject")
     threads: 1
     resources:
         mem_mb=2000,
@@ -57,8 +53,6 @@ rule geometry_group:
         code=step_code("geometry_group.py"),
     log:
         log_of("geometry_group"),
-    benchmark:
-        benchmark_of("geometry_group")
     threads: 1
     resources:
         mem_mb=2000,
@@ -79,8 +73,6 @@ rule geometry_searchlight:
         code=step_code("geometry_searchlight.py"),
     log:
         log_of("geometry_searchlight"),
-    benchmark:
-        benchmark_of("geometry_searchlight")
     threads: 1
     resources:
         mem_mb=4000,
@@ -101,8 +93,6 @@ rule geometry_searchlight_group:
         code=step_code("geometry_searchlight_group.py"),
     log:
         log_of("geometry_searchlight_group"),
-    benchmark:
-        benchmark_of("geometry_searchlight_group")
     threads: 1
     resources:
         mem_mb=4000,

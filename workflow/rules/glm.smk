@@ -42,8 +42,6 @@ for _number, (_subjects, _run_ids) in enumerate(plan.run_list_rules(MODEL, "glm"
             code=step_code("glm.py"),
         log:
             log_of("glm"),
-        benchmark:
-            benchmark_of("glm")
         threads: 1
         resources:
             # one run in memory at a time (as the earlier one-run job: its decoded file, the masked series, the fit)

@@ -11,8 +11,6 @@ rule group:
         code=step_code("group.py"),
     log:
         log_of("group"),
-    benchmark:
-        benchmark_of("group")
     threads: 1
     resources:
         mem_mb=2000,

@@ -40,8 +40,6 @@ rule localizer_roi:
         code=step_code("localizer_roi.py"),
     log:
         log_of("localizer_roi"),
-    benchmark:
-        benchmark_of("localizer_roi")
     threads: 1
     resources:
         mem_mb=3000,

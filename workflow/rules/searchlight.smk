@@ -12,8 +12,6 @@ rule searchlight_block:
         code=step_code("searchlight_block.py"),
     log:
         log_of("searchlight_block"),
-    benchmark:
-        benchmark_of("searchlight_block")
     threads: 1
     resources:
         mem_mb=4000,
@@ -54,8 +52,6 @@ rule searchlight_group:
         code=step_code("searchlight_group.py"),
     log:
         log_of("searchlight_group"),
-    benchmark:
-        benchmark_of("searchlight_group")
     threads: 1
     resources:
         mem_mb=4000,

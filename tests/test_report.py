@@ -19,7 +19,9 @@ import math
 import re
 import shutil
 import struct
+import os
 import subprocess
+import sys
 import xml.etree.ElementTree as ElementTree
 from html.parser import HTMLParser
 from importlib import metadata
@@ -34,7 +36,9 @@ import pytest
 from foldwise.report import figures as report
 from foldwise.config import validate
 from foldwise.errors import InputError
-from foldwise.data.fileio import save_nifti, write_json, write_tsv
+from foldwise.data.fileio import save_nifti, write_bytes_atomic, write_json, write_tsv
+from foldwise.glm.design_image import design_png
+from foldwise.report.catalogue import embedded_files, publication_files
 from foldwise.provenance.hashing import hash_object
 from foldwise.jobs import glm as glm_job
 from foldwise.jobs import report as report_job
@@ -188,11 +192,11 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS, run_ids=RUN_IDS, g
     rois = [roi["name"] for roi in study["rois"]]
     rng = np.random.default_rng(seed)
     affine = _affine(grid)
-    inputs = {key: [] for key in ("designs", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
+    inputs = {key: [] for key in ("design_images", "events", "sidecars", "brain_masks", "means", "roi_masks", "roi_counts",
                                   "summaries", "confusions", "group_tables", "provenance", "glm_facts")}
     roi_sizes, summaries = {}, {analysis["name"]: [] for analysis in study["analyses"]}
     # The plan's record of every input (foldwise.plan.report_input_index): the report reads fields from it.
-    index = {key: [] for key in ("designs", "means", "brain_masks", "roi_masks", "resvar", "confusions", "glm_facts")}
+    index = {key: [] for key in ("design_images", "means", "brain_masks", "roi_masks", "resvar", "confusions", "glm_facts")}
     for subject in subjects:
         masks = root / "masks" / f"sub-{subject}"
         mean, brain, rois = _subject_images(rng, grid, [roi["name"] for roi in study["rois"]] if tuple(grid) != GRID else ROI_NAMES)
@@ -212,9 +216,12 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS, run_ids=RUN_IDS, g
             "min_voxels": 10, "below_minimum": False}))
         inputs["roi_counts"].append(str(masks / f"sub-{subject}_roi_counts.tsv"))
         patterns = root / "patterns" / f"sub-{subject}"
-        write_tsv(patterns / f"sub-{subject}_{run_ids[0]}_design.tsv", _design(rng, n_scans))
-        inputs["designs"].append(str(patterns / f"sub-{subject}_{run_ids[0]}_design.tsv"))
-        index["designs"].append({"path": inputs["designs"][-1], "subject": subject, "run_id": run_ids[0]})
+        # the GLM job's design image of the first run (foldwise.glm.design_image), which the report embeds
+        design = _design(rng, n_scans)
+        write_bytes_atomic(patterns / f"sub-{subject}_{run_ids[0]}_design.png", design_png(
+            design.to_numpy(), list(enumerate(design.columns)), f"sub-{subject} {run_ids[0]}: per_condition design"))
+        inputs["design_images"].append(str(patterns / f"sub-{subject}_{run_ids[0]}_design.png"))
+        index["design_images"].append({"path": inputs["design_images"][-1], "subject": subject, "run_id": run_ids[0]})
         if subject == subjects[0]:
             resvar = np.where(brain, rng.gamma(4.0, 25.0, grid), 0.0)
             save_nifti(patterns / f"sub-{subject}_{run_ids[0]}_resvar.nii.gz", resvar, affine)
@@ -266,9 +273,15 @@ def build_study(root, seed=5, study=STUDY, subjects=SUBJECTS, run_ids=RUN_IDS, g
 
 
 def outputs_for(folder, study=STUDY, subjects=SUBJECTS):
+    """The report job's outputs: the page and the PNGs it embeds."""
     figures_dir = str(Path(folder) / "figures")
-    return {"html": str(Path(folder) / "index.html"), "figures": report.figure_plan(study, subjects, figures_dir),
-            "previews": [entry["preview"] for entry in report.figure_catalogue(study, subjects, figures_dir)]}
+    return {"html": str(Path(folder) / "index.html"),
+            "previews": embedded_files(report.figure_catalogue(study, subjects, figures_dir))}
+
+
+def publication_outputs_for(folder, study=STUDY, subjects=SUBJECTS):
+    """The report_files job's outputs: PNG 300 dpi, SVG and PDF of every result figure."""
+    return {"figures": publication_files(report.figure_catalogue(study, subjects, str(Path(folder) / "figures")))}
 
 
 def _quiet_log():
@@ -284,6 +297,9 @@ def built(tmp_path_factory):
     inputs, params, facts = build_study(root / "inputs")
     outputs = outputs_for(root / "report")
     report_job.run(inputs, outputs, params, _quiet_log())
+    publication = publication_outputs_for(root / "report")
+    report_job.run_publication_files(inputs, publication, params, _quiet_log())
+    outputs = {**outputs, **publication}
     return {"root": root, "inputs": inputs, "params": params, "facts": facts, "outputs": outputs,
             "html": Path(outputs["html"]).read_text(encoding="utf-8")}
 
@@ -321,42 +337,54 @@ def _text(page_html):
 
 # -- the figure plan ------------------------------------------------------------------------
 
-def test_figure_plan_lists_png_svg_and_pdf_of_every_figure_results_first():
-    plan = report.figure_plan(STUDY, SUBJECTS)
+def test_figure_plan_lists_the_embedded_pngs_then_png_svg_and_pdf_of_every_result_figure():
+    catalogue = report.figure_catalogue(STUDY, SUBJECTS)
     n_results = sum(2 * len(report.analysis_rois(STUDY, a)) + 1 for a in STUDY["analyses"])  # curve, confusion; comparison
-    n_figures = n_results + 2 * len(SUBJECTS) + 1
-    assert len(plan) == 3 * n_figures == len(set(plan))
-    assert plan == report.figure_plan(STUDY, list(SUBJECTS))  # deterministic
-    assert all(path.startswith("results/report/figures/") for path in plan)
-    assert [Path(path).suffix for path in plan[:6]] == [".png", ".svg", ".pdf"] * 2
-    assert plan[:3] == ["results/report/figures/shape_roi-ember_curve.png", "results/report/figures/shape_roi-ember_curve.svg",
-                        "results/report/figures/shape_roi-ember_curve.pdf"]
-    assert plan.index("results/report/figures/carry_rois.png") < plan.index("results/report/figures/sub-01_design.png")
-    assert "results/report/figures/sub-01_resvar.png" in plan and "results/report/figures/sub-02_resvar.png" not in plan
-    assert plan[-1] == "results/report/figures/sub-01_resvar.pdf"  # quality checks come last
+    n_quality = 2 * len(SUBJECTS) + len(ROI_NAMES) + 1  # design and brain mask per subject, one per ROI, residual variance
+    embedded, publication = embedded_files(catalogue), publication_files(catalogue)
+    assert len(embedded) == n_results + n_quality == len(set(embedded)) and len(publication) == 3 * n_results
+    assert report.figure_plan(STUDY, SUBJECTS) == embedded + publication == report.figure_plan(STUDY, list(SUBJECTS))
+    assert all(path.startswith("results/report/figures/") for path in embedded + publication)
+    assert [Path(path).suffix for path in publication[:6]] == [".png", ".svg", ".pdf"] * 2
+    assert publication[:3] == ["results/report/figures/shape_roi-ember_curve.png", "results/report/figures/shape_roi-ember_curve.svg",
+                               "results/report/figures/shape_roi-ember_curve.pdf"]
+    assert embedded[0] == "results/report/figures/preview/shape_roi-ember_curve.png"
+    assert embedded.index("results/report/figures/preview/carry_rois.png") < embedded.index("results/report/figures/sub-01_design.png")
+    assert [path for path in embedded if "_masks" in path] == [f"results/report/figures/roi-{roi}_masks.png" for roi in ROI_NAMES]
+    assert "results/report/figures/sub-01_resvar.png" in embedded and "results/report/figures/sub-02_resvar.png" not in embedded
+    assert embedded[-1] == "results/report/figures/sub-01_resvar.png"  # quality checks come last
+    assert not [path for path in publication if "design" in path or "mask" in path or "resvar" in path]  # one PNG each
+
+
+def test_the_catalogue_imports_no_plotting_library():
+    # Snakemake reads the catalogue at every start (dry runs included): matplotlib there costs 0.25 s each time.
+    code = "import sys; import foldwise.plan, foldwise.report.catalogue; print('matplotlib' in sys.modules)"
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                            env={**os.environ, "PYTHONPATH": str(REPO / "workflow")})
+    assert result.stdout.strip() == "False"
 
 
 def test_figure_catalogue_names_existing_captions():
     for entry in report.figure_catalogue(STUDY, SUBJECTS):
         assert (REPO / entry["caption"]).is_file(), entry["caption"]
     kinds = {entry["kind"]: entry["caption"] for entry in report.figure_catalogue(STUDY, SUBJECTS)}
-    assert set(kinds) == {"design", "masks", "resvar", "curve", "confusion", "comparison"}
+    assert set(kinds) == {"design", "brainmask", "roimasks", "resvar", "curve", "confusion", "comparison"}
 
 
 def test_analysis_with_its_own_roi_list_plans_only_those():
     study = dict(STUDY, analyses=[dict(STUDY["analyses"][0], rois=["glow"])])
     stems = [entry["stem"] for entry in report.figure_catalogue(study, ["01"])]
     assert stems[:3] == ["shape_roi-glow_curve", "shape_roi-glow_confusion", "shape_rois"]
-    assert not any("ember" in s for s in stems)
+    assert [s for s in stems if "ember" in s] == ["roi-ember_masks"]  # the quality checks show every ROI of the study
 
 
 def test_module_examples_hold():
     # The docstring examples are part of the contract (run as doctests).
-    from foldwise.report import page, summary
+    from foldwise.report import catalogue, images, page, summary
 
     from foldwise.report import terminal
 
-    for module, least in ((report, 25), (page, 8), (summary, 3), (terminal, 2)):
+    for module, least in ((report, 20), (catalogue, 3), (images, 1), (page, 8), (summary, 3), (terminal, 2)):
         result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
         assert result.attempted >= least and result.failed == 0, module.__name__
 
@@ -460,23 +488,6 @@ def test_best_slices_pick_the_fullest_planes():
     assert report.best_slices(np.zeros((6, 7, 5), dtype=bool)) == (3, 3, 2)
 
 
-def test_design_figure_labels_every_regressor_grouped_by_kind_or_every_kth_of_a_trialwise_design():
-    rng = np.random.default_rng(4)
-    names = ["lowfreq_cos_01", "r0", "intercept", "r1", "r1_dtime"]
-    small = report.design_figure(rng.random((30, 5)), names, TR_S, "small")
-    band, image = small.axes[:2]
-    assert [label.get_text() for label in band.get_yticklabels()] == ["r0", "r1", "r1_dtime", "lowfreq_cos_01", "intercept"]
-    assert image.get_xlim() == (0.0, 30 * TR_S)  # time (s) runs to the right
-    assert report.regressor_kinds(names) == ["low-frequency cosines", "events", "intercept", "events", "HRF derivatives"]
-    names = [f"trial_{i:03d}" for i in range(150)]
-    large = report.design_figure(rng.random((200, 150)), names, None, "trial-wise")
-    labels = [label.get_text() for label in large.axes[0].get_yticklabels()]
-    assert labels == names[::3] and "one name every 3" in large.axes[0].get_ylabel()
-    assert large.get_size_inches()[1] <= 14.0 and "scan" in large.axes[1].get_xlabel()
-    with pytest.raises(InputError, match="does not match 2 regressor names"):
-        report.design_figure(np.zeros((5, 3)), ["a", "b"], TR_S, "bad")
-
-
 def test_manifest_summary_counts_jobs_and_outputs_only():
     records = [{"step": "glm", "outputs": [1, 2], "wall_time_s": 3.0, "restored_from_memo": True},
                {"step": "demo_dataset", "outputs": [1]}, {"step": "glm", "outputs": [1, 2]}]
@@ -522,6 +533,14 @@ def test_captions_render_as_snakemake_renders_them():
 def test_job_writes_exactly_the_planned_figures_and_the_page(built):
     written = sorted(str(path) for path in (built["root"] / "report").rglob("*") if path.is_file())
     assert written == sorted(built["outputs"]["figures"] + built["outputs"]["previews"] + [built["outputs"]["html"]])
+
+
+def test_the_page_shows_the_glm_design_image_itself(built):
+    # The report embeds the picture the GLM job drew of each subject's first run, byte for byte, instead of a second drawing.
+    for design in built["inputs"]["design_images"]:
+        subject = Path(design).name.split("_")[0]
+        shown = Path(built["outputs"]["html"]).parent / "figures" / f"{subject}_design.png"
+        assert shown.read_bytes() == Path(design).read_bytes()
 
 
 def _png_chunks(data):
@@ -570,20 +589,23 @@ def test_page_embeds_every_screen_preview_links_the_files_and_loads_nothing_else
     parsed = _parse(built["html"])
     images = [attributes for tag, attributes in parsed.elements if tag == "img"]
     previews = built["outputs"]["previews"]
-    assert len(images) == len(previews) == len(built["outputs"]["figures"]) // 3
+    results = [path for path in previews if "/preview/" in path]
+    quality = [path for path in previews if "/preview/" not in path]
+    assert len(images) == len(previews) == len(results) + len(quality) and len(results) == len(built["outputs"]["figures"]) // 3
     embedded = [base64.b64decode(image["src"].removeprefix("data:image/png;base64,"), validate=True) for image in images]
-    assert sorted(embedded) == sorted(Path(path).read_bytes() for path in previews)  # each figure's own preview
-    for preview, png in zip(previews, built["outputs"]["figures"][::3]):
+    assert sorted(embedded) == sorted(Path(path).read_bytes() for path in previews)  # each figure's own PNG
+    for preview, png in zip(results, built["outputs"]["figures"][::3]):
         # the same figure at screen resolution: a third of the 300-dpi file's pixels per side (rounded)
         small, large = Path(preview).read_bytes(), Path(png).read_bytes()
+        assert Path(preview).name == Path(png).name
         assert round(_png_dpi(small)) == 100 and round(_png_dpi(large)) == 300
         small_width, large_width = struct.unpack(">I", small[16:20])[0], struct.unpack(">I", large[16:20])[0]
         assert abs(small_width * 3 - large_width) <= 3, (preview, small_width, large_width)
     assert all(image["src"].startswith("data:image/png;base64,") and image.get("alt") for image in images)
     links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and not attributes["href"].startswith("#")]
-    # every publication file is linked, relative to the page, and the link resolves to the file
+    # every publication file and every quality check's PNG is linked, relative to the page, and the link resolves to the file
     assert sorted(links) == sorted(Path(path).relative_to(Path(built["outputs"]["html"]).parent).as_posix()
-                                   for path in built["outputs"]["figures"])
+                                   for path in built["outputs"]["figures"] + quality)
     assert all((Path(built["outputs"]["html"]).parent / link).is_file() for link in links)
     for tag, attributes in parsed.elements:
         assert tag not in ("script", "link", "iframe", "object", "embed", "base"), tag
@@ -601,12 +623,16 @@ def test_rerun_gives_byte_identical_files(tmp_path):
     # A smaller study (one ROI, the within analysis, two subjects) keeps the test fast; inputs are built once.
     study = dict(STUDY, rois=STUDY["rois"][:1], analyses=STUDY["analyses"][:1])
     inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=SUBJECTS[:2])
-    first, second = outputs_for(tmp_path / "first", study, SUBJECTS[:2]), outputs_for(tmp_path / "second", study, SUBJECTS[:2])
-    report_job.run(inputs, first, params, _quiet_log())
-    report_job.run(inputs, second, params, _quiet_log())
-    assert len(first["figures"]) == 3 * 8  # design and masks of 2 subjects, residual variance, curve, confusion, comparison
-    for one, other in zip(first["figures"] + first["previews"] + [first["html"]],
-                          second["figures"] + second["previews"] + [second["html"]]):
+    files = []
+    for name in ("first", "second"):
+        outputs, publication = (outputs_for(tmp_path / name, study, SUBJECTS[:2]),
+                                publication_outputs_for(tmp_path / name, study, SUBJECTS[:2]))
+        report_job.run(inputs, outputs, params, _quiet_log())
+        report_job.run_publication_files(inputs, publication, params, _quiet_log())
+        files.append(publication["figures"] + outputs["previews"] + [outputs["html"]])
+    # curve, confusion, comparison (3 files each and a preview); design and brain mask of 2 subjects, one ROI, residual variance
+    assert len(files[0]) == 3 * 3 + 3 + 2 * 2 + 1 + 1 + 1
+    for one, other in zip(*files):
         assert Path(one).read_bytes() == Path(other).read_bytes(), Path(one).name
 
 
@@ -616,7 +642,7 @@ def test_page_has_the_sections_in_order(built):
     ids = [attributes["id"] for tag, attributes in _parse(built["html"]).elements if tag == "section"]
     assert ids == ["summary", "results", "quality-checks", "warnings", "cautions", "study", "provenance"]
     text = _text(built["html"])
-    for heading in ("Design matrices", "Brain and ROI masks", "ROI voxel counts", "GLM residual variance",
+    for heading in ("Design matrices", "Brain masks", "ROI placement in every subject", "ROI voxel counts", "GLM residual variance",
                     "Analysis shape", "Analysis carry", "ROIs compared (analysis carry)"):
         assert heading in text
     # The answer leads: the summary box comes before the first result figure and long before the quality checks.
@@ -639,7 +665,8 @@ def test_every_contents_link_resolves_to_one_anchor(built):
     ids = [attributes["id"] for _, attributes in parsed.elements if "id" in attributes]
     assert len(ids) == len(set(ids))
     links = [attributes["href"] for tag, attributes in parsed.elements if tag == "a" and "href" in attributes]
-    files = {Path(path).relative_to(Path(built["outputs"]["html"]).parent).as_posix() for path in built["outputs"]["figures"]}
+    files = {Path(path).relative_to(Path(built["outputs"]["html"]).parent).as_posix()
+             for path in built["outputs"]["figures"] + built["outputs"]["previews"]}
     anchors = [link for link in links if link not in files]  # the other links: the figures' files
     assert anchors and all(link.startswith("#") and link[1:] in ids for link in anchors)
     for target in ("analysis-shape", "analysis-carry-roi-glow", "analysis-carry-rois", "summary", "warnings"):
@@ -787,10 +814,15 @@ def test_cautions_are_in_plain_words(built):
 
 def test_declared_figures_must_match_the_plan(built, tmp_path):
     outputs = outputs_for(tmp_path)
-    outputs["figures"] = outputs["figures"][:-2]
+    outputs["previews"] = outputs["previews"][:-2] + outputs["previews"][-1:]
     with pytest.raises(InputError) as caught:
         report_job.run(built["inputs"], outputs, built["params"], _quiet_log())
-    assert caught.value.field == "outputs.figures" and "figure_plan" in caught.value.fix
+    assert caught.value.field == "outputs.previews" and "embedded_files" in caught.value.fix
+    publication = publication_outputs_for(tmp_path)
+    publication["figures"] = publication["figures"][1:]
+    with pytest.raises(InputError) as caught:
+        report_job.run_publication_files(built["inputs"], publication, built["params"], _quiet_log())
+    assert caught.value.field == "outputs.figures" and "publication_files" in caught.value.fix
 
 
 def test_a_summary_without_a_column_names_file_and_column(built, tmp_path):
@@ -1109,7 +1141,7 @@ def test_a_changed_roi_redraws_only_the_figures_that_show_it(tmp_path, monkeypat
     outputs = outputs_for(tmp_path / "report", study, subjects)
     first = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
     assert first["parts"] and not any(part["restored"] for part in first["parts"])  # from empty: every figure drawn
-    drawn_bytes = {path: Path(path).read_bytes() for path in outputs["figures"] + outputs["previews"]}
+    drawn_bytes = {path: Path(path).read_bytes() for path in outputs["previews"]}
     # glow's confusion counts change for one subject: only the glow confusion figure shows them
     path = next(path for path in inputs["confusions"] if "sub-01_roi-glow_" in path)
     table = pd.read_csv(path, sep="\t", dtype={"n_voxels": str})
@@ -1127,6 +1159,29 @@ def test_a_changed_roi_redraws_only_the_figures_that_show_it(tmp_path, monkeypat
     params = dict(params, overrides=["a.b=1"])  # another job key, so the whole job is not restored
     third = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
     assert not any(part["restored"] for part in third["parts"]) and len(third["parts"]) == len(first["parts"])
+
+
+def test_a_changed_roi_mask_redraws_only_that_rois_figure(tmp_path, monkeypatch):
+    # A quality-check figure shows one subject or one ROI: a new mask of ROI ember (every subject) redraws the
+    # figure of ember's placement and nothing else -- not the subjects' brain masks, not glow's figure.
+    monkeypatch.delenv("FOLDWISE_MEMO", raising=False)
+    study = dict(STUDY, analyses=STUDY["analyses"][:1])
+    subjects = SUBJECTS[:2]
+    inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=subjects)
+    outputs = outputs_for(tmp_path / "report", study, subjects)
+    first = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    before = {path: Path(path).read_bytes() for path in outputs["previews"]}
+    for path in inputs["roi_masks"]:
+        if "_roi-ember_" in Path(path).name:
+            image = nib.load(path)
+            mask = np.asarray(image.dataobj) > 0
+            mask[: mask.shape[0] // 2] = False  # one side only
+            save_nifti(path, mask, image.affine, dtype=np.uint8)
+    second = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    drawn = sorted(part["part"] for part in second["parts"] if not part["restored"])
+    assert drawn == ["figure-roi-ember_masks"] and len(second["parts"]) == len(first["parts"])
+    changed = sorted(Path(path).name for path, data in before.items() if Path(path).read_bytes() != data)
+    assert changed == ["roi-ember_masks.png"]
 
 
 def test_roi_overlay_looks_like_one_image_per_roi_drawn_one_over_the_other():

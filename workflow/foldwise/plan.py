@@ -19,7 +19,8 @@ from foldwise.geometry import wiring as geometry_wiring
 
 __all__ = ["StudyPlan", "plan_study", "Step", "STEPS", "planned_jobs", "job_inputs", "job_outputs", "job_output_files", "job_settings",
            "step_outputs", "with_rois", "with_runs", "run_list_rules", "RUN_LIST_STEPS", "roi_list_rules", "ROI_LIST_STEPS", "step_log", "all_job_outputs", "all_provenance_records", "planned_output_counts",
-           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets", "RunLookup"]
+           "report_input_index", "report_figures", "register_steps", "JOB_SOURCES", "calibration_targets", "paper_figure_targets",
+           "report_files_settings", "RunLookup"]
 
 
 class RunLookup:
@@ -132,16 +133,23 @@ def _searchlight_group_outputs(study):
 
 
 def report_figures(study):
-    """The report's figure catalogue (entries with ``paths``), from the report's figure plan."""
-    from foldwise.report.figures import figure_catalogue  # late: matplotlib is needed by the report only
+    """The report's figure catalogue (entries with ``paths`` and ``preview``; foldwise.report.catalogue, no matplotlib)."""
+    from foldwise.report.catalogue import figure_catalogue
 
     return figure_catalogue(study.config, study.subjects, study.paths.template("report_figures_dir"))
 
 
 def _report_outputs(study):
-    catalogue = report_figures(study)
-    return {"html": study.paths.template("report_html"), "figures": [path for entry in catalogue for path in entry["paths"]],
-            "previews": [entry["preview"] for entry in catalogue]}  # the screen PNGs the page embeds
+    from foldwise.report.catalogue import embedded_files
+
+    # the PNGs the page embeds: result figures' screen previews and the quality checks
+    return {"html": study.paths.template("report_html"), "previews": embedded_files(report_figures(study))}
+
+
+def _report_files_outputs(study):
+    from foldwise.report.catalogue import publication_files
+
+    return {"figures": publication_files(report_figures(study))}  # PNG 300 dpi, SVG and PDF of every result figure
 
 
 STEPS = {
@@ -162,6 +170,7 @@ STEPS = {
                                                                  null="searchlight_subject_null")),
     "searchlight_group": Step("{analysis}", _searchlight_group_outputs),
     "report": Step("study", _report_outputs),
+    "report_files": Step("study", _report_files_outputs),  # off the default target: paper_figure_targets
     "manifest": Step("study", named_outputs(manifest="manifest")),
 }
 
@@ -353,6 +362,11 @@ def _calibrate_inputs(study, w):
             "roi_counts": [study.paths.fill("roi_counts", subject=s) for s in study.subjects]}
 
 
+def paper_figure_targets(study):
+    """The result figures' publication files (``snakemake paper_figures``; not part of the default target)."""
+    return job_output_files(study, "report_files", {})
+
+
 def calibration_targets(study):
     """The design self-check's outputs of every decoding analysis (``make calibrate``; not part of the default target)."""
     return [path for name, analysis in study.analyses.items() if "group" in analysis.steps
@@ -393,7 +407,7 @@ def report_input_index(study):
         return {"path": study.paths.fill(name, **fields), **fields}
 
     index = {
-        "designs": [record("design_table", subject=s, run_id=first_runs[s]) for s in subjects],
+        "design_images": [record("design_figure", subject=s, run_id=first_runs[s]) for s in subjects],
         "events": [{"path": run["events"], "subject": run["subject"], "run_id": run["run_id"]} for run in study.runs],
         "sidecars": [{"path": run["sidecar"], "subject": run["subject"], "run_id": run["run_id"]} for run in study.runs],
         "brain_masks": [record("brain_mask", subject=s) for s in subjects],
@@ -443,6 +457,7 @@ JOB_INPUTS = {
     "searchlight_merge": _searchlight_merge_inputs,
     "searchlight_group": _searchlight_group_inputs,
     "report": _report_inputs,
+    "report_files": _report_inputs,
     "manifest": lambda study, w: {"records": all_provenance_records(study)},
 }
 
@@ -498,8 +513,16 @@ def report_settings(study):
             "job_logs": report_job_logs(study), "input_index": report_input_index(study)}
 
 
+def report_files_settings(study):
+    """What the publication files read: the config, subjects, runs and the inputs' records (not the page's job list)."""
+    settings = report_settings(study)
+    return {key: settings[key] for key in ("study", "subjects", "runs", "input_index")}
+
+
 def job_settings(study, step, wildcards):
     """``params.settings`` of one job: exactly the config subset its step reads."""
     if step == "report":
         return report_settings(study)
+    if step == "report_files":
+        return report_files_settings(study)
     return study.settings(step, wildcards)

@@ -117,9 +117,7 @@ def print_group_summaries():
 
 
 def report_figure(entry, path):
-    """Every figure's SVG goes into Snakemake's --report with its caption and category; every file is an output."""
-    if not path.endswith(".svg"):
-        return path
+    """Every figure the page embeds goes into Snakemake's --report with its caption and category."""
     labels = {"figure": entry["stem"]}
     labels.update({key: entry[field] for key, field in (("analysis", "analysis"), ("ROI", "roi"), ("subject", "subject"))
                    if entry[field]})

@@ -1,5 +1,5 @@
-# The study report: one self-contained HTML page (screen previews embedded) plus every
-# figure as PNG (300 dpi), SVG and PDF; the figure list comes from foldwise.report.figures.figure_catalogue.
+# The study report: one self-contained HTML page with every figure embedded (the result figures' screen
+# previews and the quality checks' PNGs); the figure list comes from foldwise.report.catalogue.figure_catalogue.
 # Each figure is a part of the job's memo, keyed on the data it draws: a rerun redraws only changed figures.
 
 
@@ -8,12 +8,14 @@ rule report:
         unpack(inputs_of("report")),
     output:
         **{**outputs_of("report"),
-           "figures": [report_figure(entry, path) for entry in plan.report_figures(MODEL) for path in entry["paths"]]},
+           "previews": [report_figure(entry, entry["preview"]) for entry in plan.report_figures(MODEL)]},
     params:
         settings=plan.report_settings(MODEL),
         code=step_code("report.py"),
     log:
         log_of("report"),
+    benchmark:
+        benchmark_of("report")
     threads: 1
     resources:
         mem_mb=2000,
@@ -22,3 +24,30 @@ rule report:
         "../envs/foldwise.yaml"
     script:
         "../scripts/report.py"
+
+
+# The result figures' publication files (PNG 300 dpi, SVG, PDF), from the same data as the page's previews.
+# Not part of the default target: `snakemake paper_figures` asks for them (the page says so).
+rule report_files:
+    input:
+        unpack(inputs_of("report_files")),
+    output:
+        **outputs_of("report_files"),
+    params:
+        settings=plan.report_files_settings(MODEL),
+        code=step_code("report_files.py"),
+    log:
+        log_of("report_files"),
+    threads: 1
+    resources:
+        mem_mb=2000,
+        runtime=30,
+    conda:
+        "../envs/foldwise.yaml"
+    script:
+        "../scripts/report_files.py"
+
+
+rule paper_figures:
+    input:
+        plan.paper_figure_targets(MODEL),

@@ -22,7 +22,7 @@ import os
 
 import numpy as np
 
-__all__ = ["DPI", "FIGURE_SIZE_IN", "DIVERGING_COLOURS", "diverging_lookup", "scan_ticks", "design_png"]
+__all__ = ["DPI", "FIGURE_SIZE_IN", "DIVERGING_COLOURS", "diverging_lookup", "scan_ticks", "design_png", "font_path", "font_px"]
 
 DPI = 300
 FIGURE_SIZE_IN = (4.0, 3.0)
@@ -77,13 +77,22 @@ def scan_ticks(n_scans, max_intervals=9):
     return [int(tick) if float(tick).is_integer() else tick for tick in ticks]
 
 
+def font_path():
+    """DejaVu Sans, the font file matplotlib ships (found without importing matplotlib)."""
+    spec = importlib.util.find_spec("matplotlib")
+    return os.path.join(spec.submodule_search_locations[0], "mpl-data", "fonts", "ttf", "DejaVuSans.ttf")
+
+
 @functools.lru_cache(maxsize=None)
-def _font(size_pt):
+def font_px(size_px):
+    """The text font at ``size_px`` pixels (Pillow), loaded once per size."""
     from PIL import ImageFont
 
-    spec = importlib.util.find_spec("matplotlib")
-    path = os.path.join(spec.submodule_search_locations[0], "mpl-data", "fonts", "ttf", "DejaVuSans.ttf")
-    return ImageFont.truetype(path, size_pt * _POINT_PX)
+    return ImageFont.truetype(font_path(), size_px)
+
+
+def _font(size_pt):
+    return font_px(size_pt * _POINT_PX)
 
 
 def _columns_for_pixels(n_cells, start_px, stop_px):

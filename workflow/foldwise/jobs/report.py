@@ -1,12 +1,15 @@
-"""Job: the study report, one self-contained HTML page plus its figures (file I/O at the edges).
+"""Jobs: the study report, one self-contained HTML page, and the result figures' publication files (I/O at the edges).
 
-Reads the quality-check images and tables, the decoding summaries and
-confusion counts, the group tables and the other jobs' provenance records;
-writes every figure of ``foldwise.report.figures.figure_plan`` (PNG 300 dpi,
-SVG, PDF) and its screen preview, and ``index.html`` with the previews
-embedded as data URIs and the publication files linked, so the page opens
-from disk and loads nothing from the network. The page holds no clock time:
-the same inputs give byte-identical files.
+``run`` (the report) reads the quality-check images and tables, the decoding
+summaries and confusion counts, the group tables and the planned jobs;
+writes the PNG of every figure the page embeds (a screen preview of each
+result figure, drawn with matplotlib; each quality check drawn into pixels by
+``foldwise.report.images``, or the GLM's own design image) and
+``index.html`` with them embedded as data URIs, so the page opens from disk
+and loads nothing from the network. ``run_publication_files`` (the
+``report_files`` step, off the default target) writes the result figures'
+PNG 300 dpi, SVG and PDF from the same specifications. The page holds no
+clock time: the same inputs give byte-identical files.
 
 Each figure is a part of the job's memo (``foldwise.provenance.memo.part_memo``)
 keyed on a digest of exactly the data it draws (its builder's arguments, or
@@ -29,13 +32,15 @@ import pandas as pd
 # Absolute imports on purpose: the rule's code hash (foldwise.provenance.hashing.module_closure)
 # follows ``from foldwise.x`` imports.
 from foldwise.report import figures as page
+from foldwise.report import images
 from foldwise.report import page as html_page
 from foldwise.report import geometry_section
-from foldwise.report.drawing import data_digest, save_formats
+from foldwise.report.catalogue import embedded_files, figure_catalogue, publication_files
+from foldwise.report.drawing import data_digest, save_preview, save_publication_files
 from foldwise.report.summary import answer_sentences
 from foldwise.report.terminal import job_warnings
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, read_tsv, write_text_atomic
+from foldwise.data.fileio import load_nifti, read_tsv, write_bytes_atomic, write_text_atomic
 from foldwise.provenance.hashing import hash_file, hash_object
 from foldwise.provenance.memo import display_path, part_memo
 
@@ -238,23 +243,25 @@ def _check_params(params):
     return study, subjects, {subject: [str(run) for run in runs[subject]] for subject in subjects}
 
 
-def _check_outputs(outputs, study, subjects):
-    figures = [str(path) for path in _as_list(outputs.get("figures"))]
-    if not figures or "html" not in outputs or "previews" not in outputs:
-        raise InputError(None, "outputs", "the report job needs the outputs html, figures and previews",
-                         "declare all three in the rule (foldwise.plan.step_outputs)")
-    folder = str(Path(figures[0]).parent)
-    catalogue = page.figure_catalogue(study, subjects, figures_dir=folder)
-    for key, planned in (("figures", [path for entry in catalogue for path in entry["paths"]]),
-                         ("previews", [entry["preview"] for entry in catalogue])):
-        declared = [str(path) for path in _as_list(outputs.get(key))]
-        if [str(Path(path)) for path in declared] != [str(Path(path)) for path in planned]:
-            extra = sorted(set(declared) - set(planned))
-            lacking = [path for path in planned if path not in set(declared)]
-            raise InputError(None, f"outputs.{key}", f"the declared {key} differ from foldwise.report.figures.figure_catalogue "
-                             f"(not planned: {extra[:3]}; not declared: {lacking[:3]}; or another order)",
-                             f"declare exactly the catalogue's {key} (figure_plan(study config, subjects) for the figures) "
-                             "as the rule's output")
+def _check_outputs(outputs, study, subjects, publication=False):
+    """The catalogue, after checking that the declared outputs are exactly its files (the page's or the publication files)."""
+    key = "figures" if publication else "previews"
+    declared = [str(Path(path)) for path in _as_list(outputs.get(key))]
+    if not declared or (not publication and "html" not in outputs):
+        needed = "figures" if publication else "html and previews"
+        raise InputError(None, "outputs", f"the {'report_files' if publication else 'report'} job needs the outputs {needed}",
+                         "declare them in the rule (foldwise.plan.step_outputs)")
+    # The last declared file is a quality-check PNG (the report) or a publication file: both lie in the figures folder.
+    folder = str(Path(declared[-1]).parent)
+    catalogue = figure_catalogue(study, subjects, figures_dir=folder)
+    planned = [str(Path(path)) for path in (publication_files(catalogue) if publication else embedded_files(catalogue))]
+    if declared != planned:
+        extra = sorted(set(declared) - set(planned))
+        lacking = [path for path in planned if path not in set(declared)]
+        function = "publication_files" if publication else "embedded_files"
+        raise InputError(None, f"outputs.{key}", f"the declared {key} differ from foldwise.report.catalogue.{function} "
+                         f"(not planned: {extra[:3]}; not declared: {lacking[:3]}; or another order)",
+                         f"declare exactly {function}(figure_catalogue(study config, subjects)) as the rule's output {key}")
     return catalogue
 
 
@@ -297,10 +304,16 @@ def _built(build):
     return {"builder": build.func.__name__, "data": data_digest(list(build.args), build.keywords)}
 
 
-def _draw_or_restore(parts, entry, identity, build):
-    """Restore the figure's files (publication formats and preview) when its data did not change, else draw them."""
-    outputs = {Path(path).suffix.lstrip("."): path for path in entry["paths"]}
-    outputs["preview"] = entry["preview"]
+def _draw_or_restore(parts, entry, identity, build, publication=False):
+    """Restore the figure's files when its data did not change, else draw them.
+
+    The report job writes the PNG the page embeds (a result figure's screen
+    preview, or a quality check's own PNG); the ``report_files`` job writes
+    a result figure's publication files. ``build()`` returns a matplotlib
+    figure or, for a quality check, the PNG's bytes.
+    """
+    outputs = ({Path(path).suffix.lstrip("."): path for path in entry["paths"]} if publication
+               else {"preview": entry["preview"]})
     part = f"figure-{entry['stem']}"
     if parts.restore(part, identity, outputs):
         return False
@@ -310,7 +323,14 @@ def _draw_or_restore(parts, entry, identity, build):
     collecting = gc.isenabled()
     gc.disable()
     try:
-        save_formats(build(), entry["paths"], entry["preview"])
+        drawn = build()
+        if isinstance(drawn, bytes):
+            write_bytes_atomic(entry["preview"], drawn)
+        elif publication:
+            save_publication_files(drawn, entry["paths"])
+        else:
+            save_preview(drawn, entry["preview"])
+        del drawn
     finally:
         gc.collect(0)
         if collecting:
@@ -622,13 +642,73 @@ def _provenance_section(study, config_file, versions, records):
 
 # -- the job ---------------------------------------------------------------------------
 
-def run(inputs, outputs, params, log):
-    """Write the study report: ``index.html`` and every figure of the figure plan.
+def _drawing_data(inputs, params, study, subjects, repetition_times):
+    """Everything the figures draw, read and checked: tables, and the paths of the images (read when drawn)."""
+    analyses = {analysis["name"]: analysis for analysis in study["analyses"] if analysis["kind"] != "geometry"}  # decoding analyses
+    roi_names = [roi["name"] for roi in study["rois"]]
+    fields_of = _field_reader(params.get("input_index"))
+    roi_mask_paths = {}
+    for path in _as_list(inputs.get("roi_masks")):
+        fields = fields_of(path, "roi_masks")
+        roi_mask_paths[(fields["subject"], fields["roi"])] = str(path)
+    counts = _roi_counts(inputs.get("roi_counts"), subjects, roi_names)
+    return {"design_images": _by_subject(inputs.get("design_images"), "design_images", subjects, fields_of),
+            "brain_masks": _by_subject(inputs.get("brain_masks"), "brain_masks", subjects, fields_of),
+            "means": _by_subject(inputs.get("means"), "means", subjects, fields_of), "roi_mask_paths": roi_mask_paths,
+            "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "analyses": analyses, "counts": counts,
+            "tr_s": repetition_times[0] if len(repetition_times) == 1 else None,
+            "group_tables": _read_group_tables(inputs.get("group_tables"), list(analyses)),
+            "summaries": _read_summaries(inputs.get("summaries"), list(analyses), subjects),
+            "confusions": _read_confusions(inputs.get("confusions"), list(analyses), fields_of), "subjects": subjects,
+            "roi_mean_voxels": {roi: float(counts.loc[counts["roi"] == roi, "n_voxels"].mean()) for roi in roi_names},
+            "alpha": float(study.get("group", {}).get("alpha", 0.05)), "study": study, "clusters": {},
+            "fields_of": fields_of, "searchlight": _searchlight_inputs(inputs, study), "parts": _parts()}
+
+
+def _paper_figures_command(config_file):
+    """The command that writes the result figures' publication files (the ``paper_figures`` target)."""
+    config_part = ("" if config_file in (None, "", "config/config.yaml")
+                   else f" --config config_file={config_file}")
+    return f".venv/bin/snakemake --profile config/profiles/local --cores 2{config_part} paper_figures"
+
+
+def run_publication_files(inputs, outputs, params, log):
+    """Write the publication files of the result figures (PNG 300 dpi, SVG, PDF): the ``report_files`` job.
 
     Parameters
     ----------
     inputs : dict
-        ``designs`` (first run's design TSV per subject), ``events`` and
+        The report's inputs (the same files; the page's own, such as events
+        and sidecars, are read only for the repetition time).
+    outputs : dict
+        ``figures``: exactly ``publication_files(figure_catalogue(study, subjects))``.
+    params : dict
+        ``study``, ``subjects``, ``runs`` and ``input_index``, as the report's.
+    log : logging.Logger
+
+    Notes
+    -----
+    Each figure is drawn from the same specification as its preview on the
+    page (same data, same builder), laid out once and saved in every format
+    (``foldwise.report.drawing.save_publication_files``); a figure whose data
+    did not change is restored from the part memo.
+    """
+    study, subjects, _ = _check_params(params)
+    catalogue = _check_outputs(outputs, study, subjects, publication=True)
+    data = _drawing_data(inputs, params, study, subjects, _repetition_times(inputs.get("sidecars")))
+    entries = [entry for entry in catalogue if entry["publication"]]
+    specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in entries]
+    for entry, (identity, build, _, _) in zip(entries, specifications):
+        _draw_or_restore(data["parts"], entry, identity, build, publication=True)
+
+
+def run(inputs, outputs, params, log):
+    """Write the study report: ``index.html`` and the PNG of every figure it embeds.
+
+    Parameters
+    ----------
+    inputs : dict
+        ``design_images`` (the GLM's design PNG of each subject's first run), ``events`` and
         ``sidecars`` (every run's), ``brain_masks``, ``means`` and
         ``roi_counts`` (per subject), ``roi_masks`` (per subject x ROI),
         ``resvar`` (the first subject's first run), ``glm_facts`` (every
@@ -637,8 +717,8 @@ def run(inputs, outputs, params, log):
         ``group_tables`` (per analysis), ``provenance`` (every other job's
         record) and, for the demo, ``ground_truth``.
     outputs : dict
-        ``html``, ``figures`` (exactly ``figure_plan(study, subjects)``) and
-        ``previews`` (each figure's screen PNG, embedded in the page).
+        ``html`` and ``previews`` (exactly ``embedded_files(figure_catalogue(study, subjects))``:
+        the result figures' screen previews and the quality checks' PNGs).
     params : dict
         ``study`` (the validated config), ``subjects``, ``runs`` (subject ->
         run ids) and ``config_file`` (str or None).
@@ -647,32 +727,15 @@ def run(inputs, outputs, params, log):
     """
     study, subjects, runs = _check_params(params)
     catalogue = _check_outputs(outputs, study, subjects)
-    analyses = {analysis["name"]: analysis for analysis in study["analyses"] if analysis["kind"] != "geometry"}  # decoding analyses
-    roi_names = [roi["name"] for roi in study["rois"]]
-    alpha = float(study.get("group", {}).get("alpha", 0.05))
     config_file = display_path(params.get("config_file"))  # never an absolute path in the report
     versions = _package_versions()
-
     repetition_times = _repetition_times(inputs.get("sidecars"))
-    tr_s = repetition_times[0] if len(repetition_times) == 1 else None
     events = [read_tsv(path, EVENT_COLUMNS, what="events table") for path in _as_list(inputs.get("events"))]
     if not events:
         raise InputError(None, "events", "no events table was given", "pass every run's events TSV")
     trials = page.trials_per_condition(events)
-    fields_of = _field_reader(params.get("input_index"))
-    designs = _by_subject(inputs.get("designs"), "designs", subjects, fields_of)
-    brain_masks = _by_subject(inputs.get("brain_masks"), "brain_masks", subjects, fields_of)
-    means = _by_subject(inputs.get("means"), "means", subjects, fields_of)
-    roi_mask_paths = {}
-    for path in _as_list(inputs.get("roi_masks")):
-        fields = fields_of(path, "roi_masks")
-        roi_mask_paths[(fields["subject"], fields["roi"])] = str(path)
-    counts = _roi_counts(inputs.get("roi_counts"), subjects, roi_names)
-    glm_facts = _read_glm_facts(inputs.get("glm_facts"), fields_of)
-    roi_mean_voxels = {roi: float(counts.loc[counts["roi"] == roi, "n_voxels"].mean()) for roi in roi_names}
-    summaries = _read_summaries(inputs.get("summaries"), list(analyses), subjects)
-    group_tables = _read_group_tables(inputs.get("group_tables"), list(analyses))
-    confusions = _read_confusions(inputs.get("confusions"), list(analyses), fields_of)
+    data = _drawing_data(inputs, params, study, subjects, repetition_times)
+    glm_facts = _read_glm_facts(inputs.get("glm_facts"), data["fields_of"])
     records = [_read_json(path, "provenance record") for path in _as_list(inputs.get("provenance"))]
     if not records and params.get("planned_jobs"):
         # The workflow passes the planned jobs instead of their records: records carry run times, and
@@ -683,19 +746,15 @@ def run(inputs, outputs, params, log):
         if not isinstance(record, dict) or "step" not in record or not isinstance(record.get("outputs"), list):
             raise InputError(path, "step, outputs", "not a provenance record of a foldwise job", _RERUN)
     truth = _read_json(inputs["ground_truth"], "demo ground truth") if inputs.get("ground_truth") else None
-
-    data = {"designs": designs, "brain_masks": brain_masks, "means": means, "roi_mask_paths": roi_mask_paths,
-            "roi_names": roi_names, "resvar": _as_list(inputs.get("resvar")), "tr_s": tr_s, "analyses": analyses,
-            "group_tables": group_tables, "summaries": summaries, "confusions": confusions, "subjects": subjects,
-            "roi_mean_voxels": roi_mean_voxels, "alpha": alpha, "study": study, "clusters": {}, "fields_of": fields_of,
-            "searchlight": _searchlight_inputs(inputs, study), "parts": _parts()}
     # Read and check everything first, draw afterwards: bad input stops the job before any drawing
-    # (the images of the masks and residual-variance figures are checked when those figures are drawn).
+    # (the images of the quality-check figures are checked when those figures are drawn).
     specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
     blocks = {}
     for entry, (identity, build, alt, caption) in zip(catalogue, specifications):
         _draw_or_restore(data["parts"], entry, identity, build)
         blocks[entry["stem"]] = (Path(entry["preview"]).read_bytes(), alt, caption)
+    means, counts, alpha, analyses = data["means"], data["counts"], data["alpha"], data["analyses"]
+    roi_names, group_tables = data["roi_names"], data["group_tables"]
     first_mean = load_nifti(means[subjects[0]], what="mean image")
     voxel_size_mm = tuple(float(size) for size in first_mean.header.get_zooms()[:3])
     warnings = _read_warnings(params.get("job_logs") or [])
@@ -703,7 +762,8 @@ def run(inputs, outputs, params, log):
                "roi_names": roi_names, "analyses": analyses, "group_tables": group_tables, "truth": truth,
                "glm_facts": glm_facts,
                "catalogue": catalogue, "blocks": blocks,
-               "files_href": Path(os.path.relpath(Path(catalogue[0]["paths"][0]).parent, Path(outputs["html"]).parent)).as_posix(), "clusters": data["clusters"], "warnings": warnings,
+               "files_href": Path(os.path.relpath(Path(catalogue[-1]["paths"][0]).parent, Path(outputs["html"]).parent)).as_posix(),
+               "clusters": data["clusters"], "warnings": warnings, "paper_command": _paper_figures_command(config_file),
                "n_draws": int(study.get("group", {}).get("n_draws", 0)) or None,
                "repetition_times": repetition_times, "voxel_size_mm": voxel_size_mm, "config_file": config_file,
                "versions": versions, "records": records, "geometry": geometry_section.read(inputs),
@@ -715,10 +775,16 @@ def run(inputs, outputs, params, log):
 
 # -- the page, one function per section (each returns (id, heading, HTML, contents entries) or None) ----------
 
-def _figure(context, stem, heading=None, heading_id=None):
-    png, alt, caption = context["blocks"][stem]
-    return html_page.figure_block(png, stem, alt, caption, formats=page.FIGURE_FORMATS, heading=heading,
-                                  heading_id=heading_id, files_dir=context["files_href"])
+def _figure(context, entry, heading=None, heading_id=None):
+    png, alt, caption = context["blocks"][entry["stem"]]
+    formats = [Path(path).name.split(".", 1)[1] for path in entry["paths"]]
+    note = "written by the paper_figures target (see the top of this section)" if entry["publication"] else None
+    return html_page.figure_block(png, entry["stem"], alt, caption, formats=formats, heading=heading,
+                                  heading_id=heading_id, files_dir=context["files_href"], files_note=note)
+
+
+def _entry(context, stem):
+    return next(entry for entry in context["catalogue"] if entry["stem"] == stem)
 
 
 def _summary_section(context):
@@ -762,10 +828,10 @@ def _analysis_block(context, name, analysis):
              _paragraph(_analysis_text(analysis)), _paragraph(f"Directions: {legend}.")]
     for roi in rois:
         parts.append(_truth_text(context["truth"], roi))
-        parts.append(_figure(context, f"{name}_roi-{roi}_curve", heading=f"ROI {roi}",
+        parts.append(_figure(context, _entry(context, f"{name}_roi-{roi}_curve"), heading=f"ROI {roi}",
                              heading_id=html_page.anchor("analysis", name, "roi", roi)))
-        parts.append(_figure(context, f"{name}_roi-{roi}_confusion"))
-    parts.append(_figure(context, f"{name}_rois", heading=f"ROIs compared (analysis {name})",
+        parts.append(_figure(context, _entry(context, f"{name}_roi-{roi}_confusion")))
+    parts.append(_figure(context, _entry(context, f"{name}_rois"), heading=f"ROIs compared (analysis {name})",
                          heading_id=html_page.anchor("analysis", name, "rois")))
     parts.append(_group_table(table, context["alpha"], context["n_draws"]))
     entries = [(html_page.anchor("analysis", name, "roi", roi), f"ROI {roi}") for roi in rois]
@@ -778,7 +844,10 @@ def _results_section(context):
     intro = _paragraph("Score: balanced accuracy (the mean of the per-class hit rates, a proportion), averaged over "
                        "the test folds of each subject. Colours follow the colour-blind-safe palette of Okabe & Ito "
                        "(2008); images use the cividis and viridis colour maps; every mark is also told apart by "
-                       "shape or position.")
+                       "shape or position.") + _paragraph(
+        "The page shows each result figure at screen resolution. Its publication files (PNG at 300 dpi, SVG with "
+        "text kept as text, PDF with embedded fonts; linked under each figure) are written only when asked, by "
+        f"{context['paper_command']} (the same figures, from the same data).")
     blocks = [_analysis_block(context, name, analysis) for name, analysis in context["analyses"].items()]
     return ("results", "Results per analysis", intro + "".join(block for block, _ in blocks),
             [entry for _, entry in blocks])
@@ -812,7 +881,7 @@ def _maps_section(context):
     for entry in entries:
         name = entry["analysis"]
         target = html_page.anchor("map", name)
-        parts.append(_figure(context, entry["stem"], heading=f"Searchlight map of analysis {name}", heading_id=target))
+        parts.append(_figure(context, entry, heading=f"Searchlight map of analysis {name}", heading_id=target))
         parts.append(_cluster_table(context["clusters"][name]))
         toc.append((target, f"Map of analysis {name}"))
     return ("maps", "Searchlight maps", "".join(parts), toc)
@@ -821,18 +890,19 @@ def _maps_section(context):
 def _quality_section(context):
     """Quality checks: designs, masks, ROI voxel counts, residual variance."""
     catalogue = context["catalogue"]
-    figures = {kind: "".join(_figure(context, e["stem"]) for e in catalogue if e["kind"] == kind)
-               for kind in ("design", "masks", "resvar")}
+    figures = {kind: "".join(_figure(context, e) for e in catalogue if e["kind"] == kind)
+               for kind in ("design", "brainmask", "roimasks", "resvar")}
     inner = ("<h3 id=\"qc-designs\">Design matrices (first run of each subject)</h3><div class=\"gallery\">"
              + figures["design"] + "</div>"
              + "<h3 id=\"qc-glm-runs\">Confounds and dropped data per run</h3>"
              + _glm_facts_table(context["glm_facts"], context["subjects"], context["runs"])
-             + "<h3 id=\"qc-masks\">Brain and ROI masks</h3>" + figures["masks"]
+             + "<h3 id=\"qc-masks\">Brain masks</h3>" + figures["brainmask"]
+             + "<h3 id=\"qc-roi-masks\">ROI placement in every subject</h3>" + figures["roimasks"]
              + "<h3 id=\"qc-roi-counts\">ROI voxel counts</h3>"
              + _roi_count_table(context["counts"], context["subjects"], context["roi_names"])
              + "<h3 id=\"qc-residual-variance\">GLM residual variance</h3>" + figures["resvar"])
     entries = [("qc-designs", "Design matrices"), ("qc-glm-runs", "Confounds and dropped data per run"),
-               ("qc-masks", "Brain and ROI masks"), ("qc-roi-counts", "ROI voxel counts"),
+               ("qc-masks", "Brain masks"), ("qc-roi-masks", "ROI placement"), ("qc-roi-counts", "ROI voxel counts"),
                ("qc-residual-variance", "GLM residual variance")]
     return ("quality-checks", "Quality checks", inner, entries)
 
@@ -925,43 +995,72 @@ def _searchlight_specification(entry, data, log):
 
 def _design_specification(entry, data, log):
     subject = entry["subject"]
-    path = data["designs"][subject]
-    design = read_tsv(path, (), what="design matrix")
-    run_id = data["fields_of"](path, "designs")["run_id"]
-    values = design.apply(pd.to_numeric, errors="coerce").to_numpy(dtype=np.float64)
-    if values.size == 0 or not np.all(np.isfinite(values)):
-        raise InputError(path, "values", "the design matrix is empty or holds a non-number", _RERUN)
-    names = [str(name) for name in design.columns]
-    kinds = page.regressor_kinds(names, data["study"].get("dataset", {}).get("confounds") or ())
-    build = functools.partial(page.design_figure, values, names, data["tr_s"], f"sub-{subject} {run_id}: design matrix",
-                              kinds)
-    return (_built(build), build, f"Design matrix of sub-{subject}, {run_id}",
-            f"sub-{subject}, {run_id}: {values.shape[1]} regressors (rows, grouped by kind: coloured band) over "
-            f"{values.shape[0]} scans; each regressor scaled to its largest magnitude, zero in white.")
+    path = data["design_images"][subject]
+    run_id = data["fields_of"](path, "design_images")["run_id"]
+    # The GLM job drew this run's design (foldwise.glm.design_image); the report shows that picture, not a second drawing.
+    identity = {"builder": "glm_design_image", "image": _file_identity(data["parts"], path, "design image")}
+
+    def build():
+        png = Path(path).read_bytes()
+        if not png.startswith(b"\x89PNG\r\n\x1a\n"):
+            raise InputError(path, "content", "the design image is not a PNG", _RERUN)
+        return png
+
+    tr_text = f"; repetition time {data['tr_s']:g} s" if data["tr_s"] else ""
+    return (identity, build, f"Design matrix of sub-{subject}, {run_id}",
+            f"sub-{subject}, {run_id}: the design as the GLM job drew it: one row per regressor (named at the left, "
+            f"in the design's column order), one column per scan{tr_text}; each regressor scaled to its largest "
+            "magnitude on a diverging scale, zero in white.")
 
 
-def _masks_specification(entry, data, log):
+def _brainmask_specification(entry, data, log):
     subject = entry["subject"]
-    parts, title = data["parts"], f"sub-{subject}: brain and ROI masks on the mean image"
-    for roi in data["roi_names"]:
-        if (subject, roi) not in data["roi_mask_paths"]:
-            raise InputError(None, "roi_masks", f"no mask of ROI {roi} for subject {subject}", _RERUN)
-    roi_paths = [(roi, data["roi_mask_paths"][(subject, roi)]) for roi in data["roi_names"]]
+    parts, title = data["parts"], f"sub-{subject}: brain mask on the mean image"
     # Keyed on the images' contents: they are read only when the figure is drawn.
-    identity = {"builder": "masks_figure", "title": title,
+    identity = {"builder": "brain_mask_png", "title": title,
                 "mean": _file_identity(parts, data["means"][subject], "mean image"),
-                "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask"),
-                "rois": [[roi, _file_identity(parts, path, "ROI mask")] for roi, path in roi_paths]}
+                "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
 
     def build():
         mean, image = _volume(data["means"][subject], "mean image")
         brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
-        rois = [(roi, _volume(path, "ROI mask", mean.shape)[0] > 0) for roi, path in roi_paths]
-        return page.masks_figure(mean, brain, rois, image.affine, title)
+        return images.brain_mask_png(mean, brain, image.affine, title)
 
-    return (identity, build, f"Brain and ROI masks of sub-{subject}",
-            f"sub-{subject}: brain mask (outline) and ROIs over the mean BOLD image, slices through the planes with "
-            "the most ROI voxels.")
+    return (identity, build, f"Brain mask of sub-{subject}",
+            f"sub-{subject}: the brain mask (yellow outline) over the subject's mean BOLD image, three slices through "
+            "the planes with the most brain voxels. Check that it covers the brain without large gaps and stops at its "
+            "edge.")
+
+
+def _roimasks_specification(entry, data, log):
+    roi = entry["roi"]
+    parts, subjects = data["parts"], data["subjects"]
+    for subject in subjects:
+        if (subject, roi) not in data["roi_mask_paths"]:
+            raise InputError(None, "roi_masks", f"no mask of ROI {roi} for subject {subject}", _RERUN)
+    title = f"ROI {roi} in every subject, over the subject's mean image"
+    colour = images.roi_colour(data["roi_names"].index(roi))
+    # One ROI's placement in every subject: a change to this ROI's masks redraws this figure only.
+    identity = {"builder": "roi_masks_png", "title": title, "colour": list(colour),
+                "subjects": [[subject, _file_identity(parts, data["means"][subject], "mean image"),
+                              _file_identity(parts, data["brain_masks"][subject], "brain mask"),
+                              _file_identity(parts, data["roi_mask_paths"][(subject, roi)], "ROI mask")]
+                             for subject in subjects]}
+
+    def build():
+        rows, affine = [], None
+        for subject in subjects:
+            mean, image = _volume(data["means"][subject], "mean image")
+            affine = image.affine if affine is None else affine
+            brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+            mask = _volume(data["roi_mask_paths"][(subject, roi)], "ROI mask", mean.shape)[0] > 0
+            rows.append((f"sub-{subject}", mean, brain, mask))
+        return images.roi_masks_png(roi, rows, affine, colour, title)
+
+    return (identity, build, f"ROI {roi} in every subject",
+            f"ROI {roi} (filled and outlined) and the brain mask (yellow outline) over each subject's mean BOLD image, one "
+            "row per subject with its ROI voxel count, slices through the planes with the most ROI voxels of that "
+            "subject. Check that the ROI lies where it should, inside the brain, in every subject.")
 
 
 def _resvar_specification(entry, data, log):
@@ -975,7 +1074,7 @@ def _resvar_specification(entry, data, log):
         raise InputError(path, "subject", f"expected the residual variance of sub-{subject}, got sub-{fields['subject']}",
                          "pass the first subject's first run")
     parts, title = data["parts"], f"sub-{subject} {fields['run_id']}: GLM residual variance"
-    identity = {"builder": "resvar_figure", "title": title,
+    identity = {"builder": "resvar_png", "title": title,
                 "mean": _file_identity(parts, data["means"][subject], "mean image"),  # its grid is checked
                 "resvar": _file_identity(parts, path, "residual variance image"),
                 "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
@@ -984,7 +1083,7 @@ def _resvar_specification(entry, data, log):
         mean, _ = _volume(data["means"][subject], "mean image")
         values, image = _volume(path, "residual variance image", mean.shape)
         brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
-        return page.resvar_figure(values, brain, image.affine, title)
+        return images.resvar_png(values, brain, image.affine, title)
 
     return (identity, build, f"GLM residual variance of sub-{subject}",
             f"sub-{subject}, {fields['run_id']}: residual variance of the GLM fit per voxel (colour range: 1st to 99th "
@@ -1085,7 +1184,8 @@ def _comparison_specification(entry, data, log):
     return _built(build), build, f"ROI comparison of analysis {name}", caption
 
 
-_FIGURE_SPECIFICATIONS = {"design": _design_specification, "masks": _masks_specification,
+_FIGURE_SPECIFICATIONS = {"design": _design_specification, "brainmask": _brainmask_specification,
+                          "roimasks": _roimasks_specification,
                           "resvar": _resvar_specification, "curve": _curve_specification,
                           "confusion": _confusion_specification, "searchlight": _searchlight_specification,
                           "comparison": _comparison_specification}

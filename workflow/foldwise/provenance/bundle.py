@@ -53,8 +53,10 @@ __all__ = ["bundle_members", "bundle_records", "make_bundle", "without_participa
 NUMERIC_RTOL = 1e-5
 NUMERIC_ATOL = 1e-7
 _IMAGE_SUFFIXES = (".nii", ".nii.gz")
-# Report figures drawn over a participant's images (figure_catalogue kinds masks, resvar, searchlight).
-_PARTICIPANT_FIGURE = re.compile(r"^(sub-[A-Za-z0-9]+_(masks|resvar)|[A-Za-z0-9][A-Za-z0-9_]*_searchlight)$")
+# Report figures drawn over a participant's images (figure_catalogue kinds brainmask, roimasks, resvar, searchlight;
+# sub-<subject>_masks: the per-subject masks figure of earlier versions).
+_PARTICIPANT_FIGURE = re.compile(r"^(sub-[A-Za-z0-9]+_(masks|brainmask|resvar)|roi-[A-Za-z0-9][A-Za-z0-9_]*_masks"
+                                 r"|[A-Za-z0-9][A-Za-z0-9_]*_searchlight)$")
 _FIGURE_BLOCK = re.compile(r'<figure id="fig-(?P<stem>[^"]+)">.*?</figure>', re.S)
 _EVIDENCE = "REVIEW/bundled"
 

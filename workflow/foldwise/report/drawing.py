@@ -3,9 +3,10 @@
 The report job keys each figure on :func:`data_digest` of exactly the
 arguments its builder draws (through the job's per-part memo,
 ``foldwise.provenance.memo.part_memo``), so a figure whose data did not
-change is restored instead of drawn; :func:`save_formats` lays a drawn
-figure out once and writes the publication files (PNG 300 dpi, SVG, PDF)
-and the page's screen preview from that one layout.
+change is restored instead of drawn; :func:`save_preview` writes the
+screen preview the page embeds, and :func:`save_publication_files` lays a
+figure out once and writes its publication files (PNG 300 dpi, SVG, PDF)
+from that one layout.
 """
 
 import hashlib
@@ -18,7 +19,7 @@ import pandas as pd
 
 from foldwise.data.fileio import save_figure, write_bytes_atomic
 
-__all__ = ["PREVIEW_DPI", "data_digest", "save_formats"]
+__all__ = ["PREVIEW_DPI", "data_digest", "save_publication_files", "save_preview"]
 
 # The page shows each figure at screen resolution: at 100 dpi an 11-inch-wide
 # figure is 1,100 pixels, about the page's width (common practice, no source);
@@ -100,8 +101,8 @@ def data_digest(*values):
     return digest.hexdigest()
 
 
-def save_formats(figure, paths, preview_path):
-    """Write one figure to every publication file and to its screen preview, laid out once.
+def save_publication_files(figure, paths):
+    """Write one figure to every publication file, laid out once.
 
     Parameters
     ----------
@@ -109,8 +110,6 @@ def save_formats(figure, paths, preview_path):
     paths : sequence of str
         The publication files, each format by its suffix (PNG at 300 dpi,
         SVG and PDF with text kept as text; ``foldwise.data.fileio.save_figure``).
-    preview_path : str
-        The screen preview (PNG at :data:`PREVIEW_DPI`), embedded in the page.
 
     Notes
     -----
@@ -122,6 +121,10 @@ def save_formats(figure, paths, preview_path):
         save_figure(figure, path)
         if number == 0 and figure.get_layout_engine() is not None:
             figure.set_layout_engine("none")
+
+
+def save_preview(figure, preview_path):
+    """Write the figure's screen preview (PNG at :data:`PREVIEW_DPI`, 256 colours), the image the page embeds."""
     buffer = io.BytesIO()
     figure.savefig(buffer, format="png", dpi=PREVIEW_DPI, metadata={"Software": None})
     write_bytes_atomic(preview_path, _palette_png(buffer.getvalue()))

@@ -1,8 +1,9 @@
-"""The study report: figure plan, figure builders and the HTML page (pure functions).
+"""The study report's result figures (matplotlib) and the numbers behind them (pure functions).
 
 Everything here takes arrays, tables and strings and returns figures or text;
 the report job (``foldwise.jobs.report``) reads the files and writes the page.
-Figures are built without pyplot (no global figure state) and use the
+Figures are built without pyplot (no global figure state; matplotlib is imported
+when a figure is drawn, not when this module is) and use the
 colour-blind-safe palette of Okabe & Ito (2008, "Color Universal Design";
 hex values from memory), with labels in words and units on every axis.
 """
@@ -11,15 +12,11 @@ import math
 
 import numpy as np
 import pandas as pd
-from matplotlib import colormaps
-from matplotlib.colors import to_rgba
-from matplotlib.figure import Figure
-from matplotlib.lines import Line2D
-from matplotlib.patches import Patch
-from matplotlib.ticker import NullLocator
 
 from foldwise.contract import count_label, parse_count
 from foldwise.errors import InputError
+# The catalogue lives in a module of its own, importable without matplotlib (Snakemake reads it at every start).
+from foldwise.report.catalogue import CAPTIONS, FIGURE_FORMATS, FIGURES_DIR, analysis_rois, figure_catalogue, figure_plan
 
 __all__ = [
     "OKABE_ITO",
@@ -39,12 +36,7 @@ __all__ = [
     "SEARCHLIGHT_QUANTITY",
     "best_slices",
     "grid_axes_mm",
-    "DESIGN_KINDS",
-    "regressor_kinds",
-    "design_figure",
     "roi_overlay",
-    "masks_figure",
-    "resvar_figure",
     "curve_figure",
     "group_confusion",
     "confusion_figure",
@@ -60,19 +52,6 @@ OKABE_ITO = {
     "black": "#000000", "orange": "#E69F00", "sky blue": "#56B4E9", "bluish green": "#009E73",
     "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "reddish purple": "#CC79A7",
 }
-FIGURE_FORMATS = ("png", "svg", "pdf")
-FIGURES_DIR = "results/report/figures"
-# Caption files for Snakemake's report(), relative to the repository root.
-CAPTIONS = {
-    "design": "workflow/report/design_matrix.rst",
-    "masks": "workflow/report/masks.rst",
-    "resvar": "workflow/report/residual_variance.rst",
-    "curve_within": "workflow/report/decoding_curve.rst",
-    "curve_cross": "workflow/report/cross_decoding_curve.rst",
-    "confusion": "workflow/report/confusion.rst",
-    "comparison": "workflow/report/roi_comparison.rst",
-    "searchlight": "workflow/report/searchlight.rst",
-}
 _ROI_COLOURS = ("orange", "sky blue", "bluish green", "vermillion", "blue", "reddish purple")
 _PANEL_COLOURS = ("blue", "orange", "bluish green", "reddish purple")
 _BRAIN_OUTLINE = OKABE_ITO["yellow"]
@@ -81,121 +60,11 @@ _CONFUSION_COLUMNS_MAX = 6
 # Display window of grey images: 1st-99th percentile inside the brain (common practice, no source).
 _WINDOW_PERCENTILES = (1.0, 99.0)
 _FONT_SIZE = 9
-_DESIGN_MAX_LABELS, _DESIGN_MAX_WIDTH_IN = 60, 14.0  # trial-wise designs can have hundreds of regressors
 _STAR_ROW, _STAR_HEADROOM = 0.96, 0.06  # axes fraction of the significance row; room for it (proportion)
 _OUTLINE_UPSAMPLING = 4  # mask outlines follow voxel edges to within 1/8 voxel
 # Voxel images: square voxels in the PNG (Agg draws "none" as nearest neighbour), and the SVG and PDF hold the
 # image itself at its own size with no smoothing (matplotlib's "none"), instead of a copy resampled at 300 dpi.
 _VOXELS = "none"
-
-
-# -- the figure plan -------------------------------------------------------------
-
-def analysis_rois(study_config, analysis):
-    """The ROIs of one analysis: its own list, or every ROI of the study.
-
-    Parameters
-    ----------
-    study_config : dict
-        The validated study config.
-    analysis : dict
-        One entry of ``study_config["analyses"]``.
-
-    Returns
-    -------
-    list of str
-    """
-    return list(analysis.get("rois") or []) or [roi["name"] for roi in study_config["rois"]]
-
-
-def figure_catalogue(study_config, subjects, figures_dir=FIGURES_DIR):
-    """Every figure of the report, in page order, with its files and caption.
-
-    Parameters
-    ----------
-    study_config : dict
-        The validated study config (``rois`` and ``analyses`` are read).
-    subjects : sequence of str
-        The study's subjects (without ``sub-``), in study order.
-    figures_dir : str
-        Folder of the figure files.
-
-    Returns
-    -------
-    list of dict
-        Keys ``stem``, ``kind`` (curve, confusion, comparison, searchlight,
-        design, masks, resvar), ``subject``, ``analysis``, ``roi`` (None where
-        not applicable), ``paths`` (one per format in ``FIGURE_FORMATS``),
-        ``preview`` (the screen PNG the page embeds, under ``preview/``),
-        ``caption`` (a file of ``CAPTIONS``) and ``category`` (for
-        Snakemake's report()).
-
-    Notes
-    -----
-    The page leads with the results: per analysis and ROI the decoding curve
-    and the group confusion matrix, then per analysis the ROI comparison;
-    then the searchlight maps; the quality checks (design and masks per
-    subject, the residual variance of the first subject) come last.
-
-    Examples
-    --------
-    >>> study = {"rois": [{"name": "ember"}], "analyses": [{"name": "shape", "kind": "within"}]}
-    >>> [entry["stem"] for entry in figure_catalogue(study, ["01"])]
-    ['shape_roi-ember_curve', 'shape_roi-ember_confusion', 'shape_rois', 'sub-01_design', 'sub-01_masks', 'sub-01_resvar']
-    """
-    subjects = [str(subject) for subject in subjects]
-    if not subjects:
-        raise InputError(None, "subjects", "the study has no subject", "list at least one subject")
-    entries = []
-
-    def add(stem, kind, caption, category, subject=None, analysis=None, roi=None):
-        paths = [f"{figures_dir}/{stem}.{suffix}" for suffix in FIGURE_FORMATS]
-        entries.append({"stem": stem, "kind": kind, "subject": subject, "analysis": analysis, "roi": roi,
-                        "paths": paths, "preview": f"{figures_dir}/preview/{stem}.png", "caption": CAPTIONS[caption],
-                        "category": category})
-
-    for analysis in study_config["analyses"]:
-        if analysis["kind"] == "geometry":  # figures of their own (report/geometry_figures.py, written by geometry_group)
-            continue
-        name = analysis["name"]
-        curve_caption = "curve_cross" if analysis["kind"] == "cross" else "curve_within"
-        for roi in analysis_rois(study_config, analysis):
-            add(f"{name}_roi-{roi}_curve", "curve", curve_caption, "Decoding curves", analysis=name, roi=roi)
-            add(f"{name}_roi-{roi}_confusion", "confusion", "confusion", "Confusion matrices", analysis=name, roi=roi)
-        add(f"{name}_rois", "comparison", "comparison", "ROI comparison", analysis=name)
-    searchlight = study_config.get("searchlight") or {}
-    for name in (searchlight.get("analyses", []) if searchlight.get("enabled") else []):
-        add(f"{name}_searchlight", "searchlight", "searchlight", "Searchlight maps", analysis=name)
-    for subject in subjects:
-        add(f"sub-{subject}_design", "design", "design", "Quality checks", subject=subject)
-        add(f"sub-{subject}_masks", "masks", "masks", "Quality checks", subject=subject)
-    add(f"sub-{subjects[0]}_resvar", "resvar", "resvar", "Quality checks", subject=subjects[0])
-    return entries
-
-
-def figure_plan(study_config, subjects, figures_dir=FIGURES_DIR):
-    """The figure files the report job writes (PNG, SVG and PDF of each figure), in a fixed order.
-
-    Parameters
-    ----------
-    study_config : dict
-        The validated study config.
-    subjects : sequence of str
-        The study's subjects, in study order.
-    figures_dir : str
-        Folder of the figure files (default ``results/report/figures``).
-
-    Returns
-    -------
-    list of str
-
-    Examples
-    --------
-    >>> study = {"rois": [{"name": "ember"}], "analyses": [{"name": "shape", "kind": "within"}]}
-    >>> figure_plan(study, ["01"])[:3]
-    ['results/report/figures/shape_roi-ember_curve.png', 'results/report/figures/shape_roi-ember_curve.svg', 'results/report/figures/shape_roi-ember_curve.pdf']
-    """
-    return [path for entry in figure_catalogue(study_config, subjects, figures_dir) for path in entry["paths"]]
 
 
 # -- directions and curves -----------------------------------------------------------
@@ -596,113 +465,6 @@ def _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, width,
                  levels=[0.5], colors=[colour], linewidths=width)
 
 
-#: Regressor kinds of a design, in the order of the band legend, with their band colour.
-DESIGN_KINDS = {"events": "blue", "HRF derivatives": "sky blue", "low-frequency cosines": "bluish green",
-                "confounds": "orange", "intercept": "black"}
-
-
-def regressor_kinds(names, confound_names=()):
-    """The kind of each design column, from its name.
-
-    Parameters
-    ----------
-    names : sequence of str
-        Design columns as the GLM stage writes them.
-    confound_names : sequence of str or dict
-        The study's confound selectors (``dataset.confounds``: names,
-        ``prefix*`` or ``{prefix, first}``).
-
-    Returns
-    -------
-    list of str
-        Keys of ``DESIGN_KINDS``.
-
-    Examples
-    --------
-    >>> regressor_kinds(["seen_round", "seen_round_dtime", "lowfreq_cos_01", "trans_x", "intercept"], ["trans_x"])
-    ['events', 'HRF derivatives', 'low-frequency cosines', 'confounds', 'intercept']
-    """
-    from foldwise.data.bids import matches_confound_selectors
-    from foldwise.glm.design import DERIVATIVE_SUFFIXES, DRIFT_PREFIX
-
-    kinds = []
-    for name in names:
-        if name == "intercept":
-            kinds.append("intercept")
-        elif matches_confound_selectors(name, confound_names):
-            kinds.append("confounds")
-        elif name.startswith(DRIFT_PREFIX):
-            kinds.append("low-frequency cosines")
-        elif any(suffix and name.endswith(suffix) for suffix in DERIVATIVE_SUFFIXES):
-            kinds.append("HRF derivatives")
-        else:
-            kinds.append("events")
-    return kinds
-
-
-def design_figure(matrix, names, tr_s, title, kinds=None):
-    """The design: one row per regressor over time, grouped by kind with a coloured band, on a diverging scale.
-
-    Parameters
-    ----------
-    matrix : array_like, shape (n_scans, n_regressors)
-    names : sequence of str
-        Regressor names (every one is labelled up to 60 regressors, else every k-th).
-    tr_s : float or None
-        Repetition time (s); None draws the scan number instead of time.
-    title : str
-    kinds : sequence of str, optional
-        Kind of each regressor (see :func:`regressor_kinds`); default from the names.
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-
-    Notes
-    -----
-    Each regressor is scaled to its largest magnitude; zero is the middle of
-    the scale (white), so a regressor's sign and its silent stretches read
-    at a glance. Names stay horizontal, beside their row.
-    """
-    values = np.asarray(matrix, dtype=np.float64)
-    if values.ndim != 2 or values.shape[1] != len(names):
-        raise InputError(None, "design", f"a design of shape {values.shape} does not match {len(names)} regressor names",
-                         "rerun the GLM stage")
-    kinds = list(kinds) if kinds is not None else regressor_kinds(names)
-    order = sorted(range(len(names)), key=lambda index: (list(DESIGN_KINDS).index(kinds[index]), index))
-    values, names, kinds = values[:, order], [names[index] for index in order], [kinds[index] for index in order]
-    scale = np.max(np.abs(values), axis=0) if values.size else np.zeros(values.shape[1])
-    shown = np.divide(values, scale, out=np.zeros_like(values), where=scale > 0).T
-    n_scans = values.shape[0]
-    label_step = max(1, int(math.ceil(len(names) / _DESIGN_MAX_LABELS)))
-    height = min(_DESIGN_MAX_WIDTH_IN, max(3.2, 1.4 + 0.16 * min(len(names), _DESIGN_MAX_LABELS)))
-    figure = Figure(figsize=(7.2, height), layout="constrained")
-    band_axes, axes = figure.subplots(1, 2, sharey=True, gridspec_kw={"width_ratios": [1, 40], "wspace": 0.01})
-    if tr_s:
-        extent, xlabel = (0.0, n_scans * tr_s, len(names) - 0.5, -0.5), "time from run start (s)"
-    else:
-        extent, xlabel = (-0.5, n_scans - 0.5, len(names) - 0.5, -0.5), "scan (volume number, from 0)"
-    image = axes.imshow(shown, aspect="auto", cmap="BrBG", interpolation=_VOXELS, vmin=-1, vmax=1, extent=extent)
-    colours = [OKABE_ITO[DESIGN_KINDS[kind]] for kind in kinds]
-    band_axes.imshow(np.array([to_rgba(colour) for colour in colours])[:, None, :], aspect="auto", interpolation=_VOXELS,
-                     extent=(0, 1, len(names) - 0.5, -0.5))
-    band_axes.set_xticks([])
-    ticks = np.arange(0, len(names), label_step)
-    band_axes.set_yticks(ticks, [names[index] for index in ticks], fontsize=_FONT_SIZE - 1)
-    axes.tick_params(axis="y", left=False, labelleft=False)
-    axes.set_xlabel(xlabel, fontsize=_FONT_SIZE)
-    axes.tick_params(axis="x", labelsize=_FONT_SIZE - 1)
-    band_axes.set_ylabel("regressor" if label_step == 1 else f"regressor (one name every {label_step})", fontsize=_FONT_SIZE)
-    present = [kind for kind in DESIGN_KINDS if kind in kinds]
-    handles = [Patch(facecolor=OKABE_ITO[DESIGN_KINDS[kind]], label=kind) for kind in present]
-    figure.legend(handles=handles, loc="outside lower center", ncols=len(handles), fontsize=_FONT_SIZE - 1, frameon=False)
-    colourbar = figure.colorbar(image, ax=axes, shrink=0.8, pad=0.01)
-    colourbar.set_label("value / the regressor's largest magnitude", fontsize=_FONT_SIZE - 1)
-    colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
-    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
-    return figure
-
-
 def roi_overlay(mask_slices, colours):
     """The ROIs' fills of one slice as one RGBA image: each colour laid over the ones before it ("over" compositing).
 
@@ -739,66 +501,6 @@ def roi_overlay(mask_slices, colours):
     overlay[shown, :3] = colour_sum[shown] / alpha[shown, None]
     overlay[..., 3] = alpha
     return overlay
-
-
-def masks_figure(mean_image, brain_mask, roi_masks, affine, title):
-    """Brain and ROI masks over the mean image in three orthogonal slices (mm axes).
-
-    Parameters
-    ----------
-    mean_image : array_like, 3D
-        The subject's mean BOLD image.
-    brain_mask : array_like of bool, 3D
-    roi_masks : sequence of (str, array_like of bool)
-        ROI name and mask, in config order.
-    affine : array_like, shape (4, 4)
-    title : str
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-
-    Notes
-    -----
-    Slices go through the planes with the most ROI voxels (or brain voxels
-    when there is no ROI); the brain mask is outlined, each ROI filled and
-    outlined in its own colour.
-    """
-    mean_image = np.asarray(mean_image, dtype=np.float64)
-    shape = mean_image.shape
-    coordinates, flips, names = grid_axes_mm(affine, shape)
-    mean_image = _oriented(mean_image, flips)
-    brain = _oriented(np.asarray(brain_mask, dtype=bool), flips)
-    rois = [(name, _oriented(np.asarray(mask, dtype=bool), flips)) for name, mask in roi_masks]
-    union = np.zeros(shape, dtype=bool)
-    for _, mask in rois:
-        union |= mask
-    slices = best_slices(union if union.any() else brain)
-    low, high = _window(mean_image[brain] if brain.any() else mean_image)
-    figure = Figure(figsize=(11, 4.2), layout="constrained")
-    panels = figure.subplots(1, 3)
-    colours = [OKABE_ITO[_ROI_COLOURS[index % len(_ROI_COLOURS)]] for index in range(len(rois))]
-    for axis, axes in enumerate(panels):
-        index = slices[axis]
-        horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
-        axes.imshow(_take(mean_image, axis, index), cmap="gray", vmin=low, vmax=high, origin="lower", extent=extent,
-                    interpolation=_VOXELS)
-        mask_slices = [_take(mask, axis, index) for _, mask in rois]
-        # One image for every ROI's fill (drawing one image per ROI costs a resampling each, in every format).
-        axes.imshow(roi_overlay(mask_slices, [to_rgba(colour, 0.55) for colour in colours]), origin="lower",
-                    extent=extent, interpolation=_VOXELS)
-        for mask_slice, colour in zip(mask_slices, colours):
-            _outline(axes, coordinates, horizontal, vertical, mask_slice, colour, 1.0)
-        _outline(axes, coordinates, horizontal, vertical, _take(brain, axis, index), _BRAIN_OUTLINE, 1.2)
-        axes.set_title(panel_title, fontsize=_FONT_SIZE)
-        _label_axes(axes, names, horizontal, vertical)
-    handles = [Line2D([], [], color=_BRAIN_OUTLINE, linewidth=1.5, label="brain mask (outline)")]
-    handles += [Patch(facecolor=to_rgba(colour, 0.55), edgecolor=colour, label=f"ROI {name}")
-                for (name, _), colour in zip(rois, colours)]
-    figure.legend(handles=handles, loc="outside lower center", ncols=min(len(handles), 6), fontsize=_FONT_SIZE,
-                  frameon=False)
-    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
-    return figure
 
 
 SEARCHLIGHT_QUANTITY = "margin over chance"
@@ -842,6 +544,11 @@ def searchlight_figure(mean_maps, p_fwe_maps, directions, background, brain_mask
     the most significant voxels over all directions (the brain's when none
     survives), so rows can be compared. Axes in mm; L and R mark the sides.
     """
+    from matplotlib import colormaps
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
     means = np.asarray(mean_maps, dtype=np.float64)
     p_fwe = np.asarray(p_fwe_maps, dtype=np.float64)
     if means.ndim != 4 or means.shape != p_fwe.shape or means.shape[3] != len(directions):
@@ -943,46 +650,6 @@ def searchlight_clusters(mean_maps, p_fwe_maps, directions, affine, alpha):
     return pd.DataFrame(rows, columns=columns)
 
 
-def resvar_figure(residual_variance, brain_mask, affine, title):
-    """The GLM residual variance inside the brain in three orthogonal slices (mm axes).
-
-    Parameters
-    ----------
-    residual_variance : array_like, 3D
-    brain_mask : array_like of bool, 3D
-    affine : array_like, shape (4, 4)
-    title : str
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-    """
-    values = np.asarray(residual_variance, dtype=np.float64)
-    coordinates, flips, names = grid_axes_mm(affine, values.shape)
-    values = _oriented(values, flips)
-    brain = _oriented(np.asarray(brain_mask, dtype=bool), flips)
-    shown = np.where(brain & np.isfinite(values), values, np.nan)
-    low, high = _window(shown)
-    slices = best_slices(brain)
-    colour_map = colormaps["viridis"].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
-    figure = Figure(figsize=(11, 3.9), layout="constrained")
-    panels = figure.subplots(1, 3)
-    image = None
-    for axis, axes in enumerate(panels):
-        index = slices[axis]
-        horizontal, vertical, extent, panel_title = _slice_geometry(coordinates, names, axis, index)
-        axes.set_facecolor("0.85")
-        image = axes.imshow(_take(shown, axis, index), cmap=colour_map, vmin=low, vmax=high, origin="lower",
-                            extent=extent, interpolation=_VOXELS)
-        axes.set_title(panel_title, fontsize=_FONT_SIZE)
-        _label_axes(axes, names, horizontal, vertical)
-    colourbar = figure.colorbar(image, ax=list(panels), shrink=0.85)
-    colourbar.set_label("residual variance (squared BOLD signal units)", fontsize=_FONT_SIZE)
-    colourbar.ax.tick_params(labelsize=_FONT_SIZE - 1)
-    figure.suptitle(title + " (outside the brain mask: grey)", fontsize=_FONT_SIZE + 1)
-    return figure
-
-
 # -- results figures -------------------------------------------------------------------
 
 def _score_limits(panels):
@@ -1015,6 +682,11 @@ def curve_figure(panels, title, alpha):
         open circles: the ROI held fewer voxels than requested for at least
         one subject.
     """
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+    from matplotlib.ticker import NullLocator
+
     if not panels:
         raise InputError(None, "direction", "no direction to draw", "rerun the group stage")
     width = 6.6 if len(panels) == 1 else 3.4 * len(panels)
@@ -1118,6 +790,9 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
         Colour and number: the mean share (percent) of a true class's test
         samples given each predicted class; rows sum to 100.
     """
+    from matplotlib import colormaps
+    from matplotlib.figure import Figure
+
     n_panels = len(directions)
     side = 0.42 * len(classes) + 1.0
     figure = Figure(figsize=(max(4.2, side * n_panels + 1.4), side + 1.5), layout="constrained")
@@ -1201,6 +876,9 @@ def comparison_figure(panels, title, alpha):
     -------
     matplotlib.figure.Figure
     """
+    from matplotlib.figure import Figure
+    from matplotlib.lines import Line2D
+
     n_rois = len(panels[0]["rois"])
     figure = Figure(figsize=(max(4.6, (0.9 * n_rois + 1.2) * len(panels)), 4.2), layout="constrained")
     axes_list = np.atleast_1d(figure.subplots(1, len(panels), sharey=True, squeeze=False)[0])

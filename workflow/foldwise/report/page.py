@@ -151,7 +151,7 @@ def html_table(header, rows, caption=None, row_classes=None, wide=False, header_
 
 
 def figure_block(png_bytes, stem, alt, caption, formats=("png", "svg", "pdf"), heading=None, heading_id=None,
-                 files_dir="figures"):
+                 files_dir="figures", files_note=None):
     """One figure: its screen PNG embedded as a data URI, its caption and links to its files.
 
     Parameters
@@ -171,6 +171,8 @@ def figure_block(png_bytes, stem, alt, caption, formats=("png", "svg", "pdf"), h
         The heading's anchor.
     files_dir : str
         The figures' folder relative to the page (links only: nothing is loaded).
+    files_note : str, optional
+        Said after the links (e.g. which target writes the files).
 
     Returns
     -------
@@ -187,7 +189,8 @@ def figure_block(png_bytes, stem, alt, caption, formats=("png", "svg", "pdf"), h
         title = f"<h4{identity}>{html.escape(heading)}</h4>"
     return (f"<figure id=\"fig-{html.escape(stem)}\">{title}<img src=\"data:image/png;base64,{data}\" "
             f"alt=\"{html.escape(alt)}\"><figcaption>{html.escape(caption)} "
-            f"<span class=\"files\">Files: {files}</span></figcaption></figure>")
+            f"<span class=\"files\">Files: {files}{' (' + html.escape(files_note) + ')' if files_note else ''}</span>"
+            "</figcaption></figure>")
 
 
 _STYLE = """

@@ -14,8 +14,6 @@ rule report:
         code=step_code("report.py"),
     log:
         log_of("report"),
-    benchmark:
-        benchmark_of("report")
     threads: 1
     resources:
         mem_mb=2000,

@@ -13,7 +13,10 @@ outputs stored, provenance record) with a memo store of its own:
    decoding scores change for every subject (its rows of the summaries and of
    the group tables too); the figures whose data did not change are restored;
 3. after a change that no figure shows (a job log gains a warning): the
-   page is assembled again from restored figures -- what page assembly costs.
+   page is assembled again from restored figures -- what page assembly costs;
+4. the result figures' publication files (PNG 300 dpi, SVG, PDF: the
+   ``report_files`` job, run only when asked), from empty -- not part of the
+   report's cost, printed for reference.
 
 CPU is this process's (``time.process_time``) around each run; each run's
 figures drawn and restored come from the job's provenance record.
@@ -42,7 +45,7 @@ from foldwise.config import validate  # noqa: E402
 from foldwise.data.fileio import save_nifti, write_tsv  # noqa: E402
 from foldwise.jobs import report as report_job  # noqa: E402
 from foldwise.provenance.memo import run_in_process  # noqa: E402
-from foldwise.report.figures import figure_catalogue  # noqa: E402
+from foldwise.report.catalogue import embedded_files, figure_catalogue, publication_files  # noqa: E402
 
 TARGET_FROM_EMPTY_CPU_S = 5.0
 TARGET_PAGE_CPU_S = 2.0
@@ -88,14 +91,14 @@ class _Named(dict):
             raise AttributeError(name) from None
 
 
-def run_report(inputs, outputs, params, folder, store):
+def run_report(inputs, outputs, params, folder, store, step="report", job=report_job.run):
     """(CPU s, wall s, provenance record) of one report job through the memo, as the workflow runs it."""
-    output = _Named(outputs, provenance=str(folder / "provenance" / "report.json"))
-    log_path = folder / "logs" / "report.log"
+    output = _Named(outputs, provenance=str(folder / "provenance" / f"{step}.json"))
+    log_path = folder / "logs" / f"{step}.log"
     log_path.parent.mkdir(parents=True, exist_ok=True)
     params_named = types.SimpleNamespace(settings=params, code="bench")
     started_cpu, started_wall = time.process_time(), time.perf_counter()
-    run_in_process("report", report_job.run, _Named(inputs), output, params_named, _Named(), [str(log_path)],
+    run_in_process(step, job, _Named(inputs), output, params_named, _Named(), [str(log_path)],
                    {"study": {"store_dir": str(store)}})
     cpu_s, wall_s = time.process_time() - started_cpu, time.perf_counter() - started_wall
     return cpu_s, wall_s, json.loads(Path(output.provenance).read_text(encoding="utf-8"))
@@ -144,13 +147,13 @@ def main():
         params["planned_jobs"] = {"glm": [6] * (len(subjects) * len(run_ids)), "decode": [4] * (len(subjects) * 9 * 2)}
         report_dir = folder / "results" / "report"
         catalogue = figure_catalogue(study, subjects, str(report_dir / "figures"))
-        outputs = {"html": str(report_dir / "index.html"), "figures": [path for entry in catalogue for path in entry["paths"]],
-                   "previews": [entry["preview"] for entry in catalogue]}
+        outputs = {"html": str(report_dir / "index.html"), "previews": embedded_files(catalogue)}
         store = folder / "store"
-        n_figures = len(outputs["figures"]) // 3
+        n_results = sum(1 for entry in catalogue if entry["publication"])
         print(f"bench_report: {len(subjects)} subjects x {len(run_ids)} runs, grid {shape['grid']}, {len(ROI_NAMES)} ROIs, "
-              f"2 analyses: {n_figures} figures x 3 formats")
-        rows = []
+              f"2 analyses: {len(catalogue)} figures on the page ({n_results} result figures, "
+              f"{len(catalogue) - n_results} quality checks)")
+        rows, drawn_parts = [], {}
         for label, prepare in (("from empty", None),
                                ("one-ROI change (ember)", lambda: change_one_roi(inputs, "ember", 7)),
                                ("no figure data changed", lambda: params.__setitem__("overrides", ["a.b=1"]))):
@@ -158,13 +161,24 @@ def main():
                 prepare()
             cpu_s, wall_s, record = run_report(inputs, outputs, params, folder / "results", store)
             parts = record.get("parts", [])
-            drawn = sum(1 for part in parts if not part["restored"] and part["part"].startswith("figure-"))
+            drawn_parts[label] = [part["part"].removeprefix("figure-") for part in parts
+                                  if not part["restored"] and part["part"].startswith("figure-")]
+            drawn = len(drawn_parts[label])
             restored = sum(1 for part in parts if part["restored"] and part["part"].startswith("figure-"))
             rows.append((label, cpu_s, wall_s, drawn, restored))
+        publication = {"figures": publication_files(catalogue)}
+        cpu_s, wall_s, record = run_report(inputs, publication, params, folder / "results", folder / "store-files",
+                                           step="report_files", job=report_job.run_publication_files)
+        files_row = ("publication files (on request)", cpu_s, wall_s,
+                     sum(1 for part in record.get("parts", []) if not part["restored"]), 0)
         page_bytes = Path(outputs["html"]).stat().st_size
         print(f"{'report job':28s} {'CPU s':>7s} {'wall s':>7s} {'figures drawn':>14s} {'restored':>9s}")
-        for label, cpu_s, wall_s, drawn, restored in rows:
+        for label, cpu_s, wall_s, drawn, restored in rows + [files_row]:
             print(f"{label:28s} {cpu_s:7.2f} {wall_s:7.2f} {drawn:14d} {restored:9d}")
+        changed = drawn_parts["one-ROI change (ember)"]
+        showing = {entry["stem"] for entry in catalogue if entry["roi"] == "ember" or entry["kind"] == "comparison"}
+        print(f"one-ROI change drew: {', '.join(changed)}")
+        print(f"one-ROI change draws only figures that show ROI ember: {'yes' if set(changed) <= showing else 'NO'}")
         print(f"page: {page_bytes / 1e6:.2f} MB")
         print(f"from empty: {rows[0][1]:.2f} s CPU, target <= {TARGET_FROM_EMPTY_CPU_S:g}: "
               f"{'met' if rows[0][1] <= TARGET_FROM_EMPTY_CPU_S else 'NOT met'}")

@@ -105,6 +105,22 @@ def test_wilcoxon_counts_zeros_the_pratt_way_and_is_undefined_when_all_zero():
     assert np.isnan(group.wilcoxon_greater(np.full((5, 1), 0.5), 0.5)[0])
 
 
+def test_special_functions_equal_scipy_stats_bit_for_bit():
+    # The module evaluates scipy.special directly (no scipy.stats import in the group job); source: scipy.stats
+    # itself, which must give the very same floats (t.ppf, t.sf, norm.sf, rankdata with average ties).
+    from scipy import special
+    rng = np.random.default_rng(11)
+    t_values = rng.normal(0, 3, 200)
+    for df in (2, 7, 29):
+        assert np.array_equal(special.stdtr(df, -t_values), stats.t.sf(t_values, df))
+        assert special.stdtrit(df, 0.975) == stats.t.ppf(0.975, df)
+    assert np.array_equal(special.ndtr(-t_values), stats.norm.sf(t_values))
+    tied = rng.integers(0, 5, size=(17, 40)).astype(float)  # many ties in every column
+    tied[:, 0] = 1.0  # a column of one value
+    assert np.array_equal(group._average_ranks(tied), stats.rankdata(tied, axis=0))
+    assert np.array_equal(group._average_ranks(tied[:, :1].ravel()[:, None]), stats.rankdata(tied[:, :1], axis=0))
+
+
 # -- group permutation test (Stelzer et al. 2013) ------------------------------
 
 def _tiny_null_study():
@@ -454,6 +470,22 @@ def _outputs(folder):
 
 
 LOG = logging.getLogger("test_group")
+
+
+@pytest.mark.parametrize("labels", [("ember", "seen->heard", "all"), ("glow 100%", "within", "10"), ("hu\tsh", "within", "25")])
+def test_null_table_writer_gives_the_bytes_of_write_tsv(tmp_path, labels):
+    # Reference: foldwise.data.fileio.write_tsv (pandas DataFrame.to_csv) of the same table; values chosen to hit
+    # every branch of "%.7g" (zero, negative zero, exponents, rounding at the 7th digit, subnormal, whole numbers).
+    rng = np.random.default_rng(4)
+    special = [0.0, -0.0, 1e-5, 0.00012345678, 123456789.0, 0.1 + 0.2, 1 / 3, 5e-324, 0.99999995, 1.0, 2.5e7, 0.5]
+    null_mean = np.column_stack([np.resize(special, 40), rng.random(40), rng.normal(0.34, 0.05, 40)])
+    cells = [labels, (labels[0], labels[1], "400"), ("wick", "heard->seen", "all")]
+    write_tsv(tmp_path / "reference.tsv.gz", group_job._null_table(cells, null_mean))
+    group_job._write_null_table(tmp_path / "fast.tsv.gz", cells, null_mean)
+    assert (tmp_path / "fast.tsv.gz").read_bytes() == (tmp_path / "reference.tsv.gz").read_bytes()
+    group_job._write_null_table(tmp_path / "empty.tsv.gz", cells, None)
+    write_tsv(tmp_path / "empty_reference.tsv.gz", group_job._null_table(cells, None))
+    assert (tmp_path / "empty.tsv.gz").read_bytes() == (tmp_path / "empty_reference.tsv.gz").read_bytes()
 
 
 def test_job_writes_table_null_and_summary(tmp_path):

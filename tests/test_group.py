@@ -169,6 +169,25 @@ def test_draws_are_one_joint_matrix_across_cells():
     np.testing.assert_array_equal(indices, group.draw_indices(np.random.default_rng(5), 20, 5, 50))
 
 
+@pytest.mark.parametrize("n_choices, exact", [(30, None), (np.array([30, 12, 30, 8, 30, 30]), np.array([0, 1, 0, 1, 0, 0], bool))])
+def test_null_draws_of_some_cells_are_those_columns_of_all_cells(n_choices, exact):
+    # The group job computes the draws one ROI at a time: each subset of cells must give exactly the columns that the
+    # whole computation gives (reference: group_statistics in one call, as before the job was split by ROI).
+    rng = np.random.default_rng(8)
+    scores, nulls = 1 / 3 + rng.normal(0, 0.05, (6, 7)), 1 / 3 + rng.normal(0, 0.05, (6, 30, 7))
+    families = np.array([0, 0, 0, 1, 1, 1, 1])
+    whole, whole_null = group.group_statistics(scores, 1 / 3, nulls, families, np.random.default_rng(2), 400, 0.05,
+                                               n_choices=n_choices, exact=exact)
+    picks = group.draw_group_picks(np.random.default_rng(2), 6, 400, n_choices, exact)
+    blocks = [group.group_null_draws(scores[:, part], nulls[:, :, part], *picks) for part in ([0, 1], [2], [3, 4, 5, 6])]
+    null_mean, null_minimum = (np.concatenate([block[k] for block in blocks], axis=1) for k in (0, 1))
+    np.testing.assert_array_equal(null_mean, whole_null)
+    parts, parts_null = group.group_statistics(scores, 1 / 3, None, families, None, 400, 0.05, null_draws=(null_mean, null_minimum))
+    np.testing.assert_array_equal(parts_null, whole_null)
+    for name in whole:
+        np.testing.assert_array_equal(parts[name], whole[name], err_msg=name)
+
+
 def test_permutation_p_counts_ties_as_at_least_as_extreme():
     # Scores stored at 7 digits: a tie off by 4e-8 still counts (TIE_TOLERANCE).
     assert group.permutation_p([0.6], [[0.59999996], [0.5]])[0] == pytest.approx(2 / 3)

@@ -14,6 +14,8 @@ Public functions, in the order a group analysis uses them:
 ``draw_indices``         one index matrix of random per-subject permutation picks
 ``group_mean_null``      the null of the group mean (Stelzer, Chen & Turner 2013)
 ``group_minimum_null``   the null of the minimum over subjects (Allefeld et al. 2016)
+``draw_group_picks``     the picks of every group draw in each subject's pool (actual labeling and relabelings)
+``group_null_draws``     both nulls of some cells from those picks (cell by cell: a subset gives the same columns)
 ``permutation_p``        p-value of an observed statistic against its null draws
 ``max_statistic_p``      family-wise corrected p by the maximum statistic (one scale across the family)
 ``standardised_max_p``   the same after standardising each cell by its own null (balanced)
@@ -43,6 +45,8 @@ __all__ = [
     "draw_indices",
     "group_mean_null",
     "group_minimum_null",
+    "draw_group_picks",
+    "group_null_draws",
     "permutation_p",
     "max_statistic_p",
     "FWE_METHODS",
@@ -758,8 +762,82 @@ def prevalence_bound(p_global, n_subjects, alpha):
     return np.where(p_global <= alpha, bound, np.nan)
 
 
+def draw_group_picks(rng, n_subjects, n_draws, n_choices, exact=None, prevalence=True):
+    """The group draws' picks in each subject's pool, shared by every cell: one matrix for the mean, one for the minimum.
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+    n_subjects, n_draws : int
+    n_choices : int or array_like of int, shape (n_subjects,)
+        Each subject's relabelings (null rows).
+    exact : array_like of bool, shape (n_subjects,), optional
+        Subjects whose null lists their whole relabeling space (the actual labeling among its rows).
+    prevalence : bool
+        Also draw the picks of the minimum statistic's null.
+
+    Returns
+    -------
+    mean_picks : ndarray of int64, shape (n_draws, n_subjects)
+        Rows of each subject's pool (:func:`group_null_draws`: row 0 the actual
+        labeling, then the relabelings) in each draw of the group mean.
+    minimum_picks : ndarray of int64, shape (n_draws, n_subjects), or None
+        The same for the minimum statistic (prevalence); None without prevalence.
+
+    Notes
+    -----
+    Each subject's pool holds its actual labeling (choice 0) beside its
+    relabelings, as a randomization distribution does: under H0 the actual
+    labeling is one more member of the subject's null, so the observed group
+    mean is exchangeable with the drawn ones and the p-value (1 + #) / (1 +
+    draws) is exact (Hemerik & Goeman 2018, JRSS-B 80:137-155). A subject
+    whose null lists its whole space already holds the actual labeling: its
+    picks skip choice 0. For prevalence, choice 0 is the neutral (actual)
+    labeling, as in Allefeld, Gorgen & Haynes (2016). The stream is used in
+    a fixed order: the mean's picks first, then the minimum's.
+    """
+    listed = np.zeros(n_subjects, dtype=bool) if exact is None else np.asarray(exact, dtype=bool)
+    choices = np.broadcast_to(np.asarray(n_choices, dtype=np.int64), (n_subjects,)) + (~listed).astype(np.int64)
+    shift = listed.astype(np.int64)[np.newaxis, :]
+    mean_picks = draw_indices(rng, choices if np.any(choices != choices[0]) else int(choices[0]), n_subjects, n_draws) + shift
+    if not prevalence:
+        return mean_picks, None
+    minimum_picks = draw_indices(rng, choices if np.any(choices != choices[0]) else int(choices[0]), n_subjects, n_draws) + shift
+    return mean_picks, minimum_picks
+
+
+def group_null_draws(scores, subject_nulls, mean_picks, minimum_picks=None):
+    """The group-mean null and the minimum-statistic null of some cells, from each subject's pool.
+
+    Parameters
+    ----------
+    scores : array_like, shape (n_subjects, n_cells)
+        Observed scores (row 0 of each subject's pool).
+    subject_nulls : array_like, shape (n_subjects, n_permutations, n_cells)
+    mean_picks, minimum_picks : ndarray of int, shape (n_draws, n_subjects)
+        From :func:`draw_group_picks` (``minimum_picks`` None: no minimum null).
+
+    Returns
+    -------
+    null_mean : ndarray, shape (n_draws, n_cells)
+    null_minimum : ndarray, shape (n_draws, n_cells), or None
+
+    Notes
+    -----
+    Every cell's draws depend on its own column alone (gathers, sums and
+    minima element by element), so the draws of a subset of the cells equal
+    those columns of the draws of all cells, bit for bit: the group job
+    computes them one ROI at a time (tests/test_group.py checks this).
+    """
+    scores = np.asarray(scores, dtype=np.float64)
+    pool = np.concatenate([scores[:, None, :], np.asarray(subject_nulls, dtype=np.float64)], axis=1)
+    null_mean = group_mean_null(pool, mean_picks)
+    null_minimum = None if minimum_picks is None else group_minimum_null(pool, minimum_picks)
+    return null_mean, null_minimum
+
+
 def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha, prevalence=True, fwe_method="standardised",
-                     n_choices=None, exact=None):
+                     n_choices=None, exact=None, null_draws=None):
     """Every group statistic of one analysis, per cell.
 
     Parameters
@@ -788,6 +866,11 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
     exact : array_like of bool, shape (n_subjects,), optional
         Subjects whose null lists their whole relabeling space (the actual
         labeling among the rows); default none.
+    null_draws : tuple of ndarray, optional
+        ``(null_mean, null_minimum)`` computed beforehand by
+        :func:`group_null_draws` with the picks of :func:`draw_group_picks`
+        (the group job assembles them ROI by ROI); ``subject_nulls``, ``rng``,
+        ``n_choices`` and ``exact`` are then not used.
 
     Returns
     -------
@@ -824,30 +907,25 @@ def group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alph
         return columns, None
     columns["t"], columns["p_t"] = t_test_greater(scores, chance)
     columns["p_wilcoxon"] = wilcoxon_greater(scores, chance)
-    if subject_nulls is None or np.asarray(subject_nulls).shape[1] == 0:
-        return columns, None
-    subject_nulls = np.asarray(subject_nulls, dtype=np.float64)
-    if subject_nulls.shape[0] != n_subjects or subject_nulls.shape[2] != n_cells:
-        _fail("subject_nulls", f"shape {subject_nulls.shape} does not match scores {scores.shape}",
-              "pass one (permutations x cells) null per subject, cells as in scores")
-    n_permutations = subject_nulls.shape[1] if n_choices is None else np.asarray(n_choices, dtype=np.int64)
-    # Each subject's pool holds its actual labeling (choice 0) beside its relabelings, as a randomization
-    # distribution does: under H0 the actual labeling is one more member of the subject's null, so the observed
-    # group mean is exchangeable with the drawn ones and the p-value (1 + #) / (1 + draws) is exact (Hemerik &
-    # Goeman 2018). A subject whose null lists its whole space already holds the actual labeling: its picks skip choice 0.
-    pool = np.concatenate([scores[:, None, :], subject_nulls], axis=1)
-    listed = np.zeros(n_subjects, dtype=bool) if exact is None else np.asarray(exact, dtype=bool)
-    choices = np.broadcast_to(np.asarray(n_permutations, dtype=np.int64), (n_subjects,)) + (~listed).astype(np.int64)
-    indices = draw_indices(rng, choices if np.any(choices != choices[0]) else int(choices[0]), n_subjects, n_draws)
-    indices = indices + listed.astype(np.int64)[np.newaxis, :]
-    null_mean = group_mean_null(pool, indices)
+    if null_draws is None:
+        if subject_nulls is None or np.asarray(subject_nulls).shape[1] == 0:
+            return columns, None
+        subject_nulls = np.asarray(subject_nulls, dtype=np.float64)
+        if subject_nulls.shape[0] != n_subjects or subject_nulls.shape[2] != n_cells:
+            _fail("subject_nulls", f"shape {subject_nulls.shape} does not match scores {scores.shape}",
+                  "pass one (permutations x cells) null per subject, cells as in scores")
+        n_permutations = subject_nulls.shape[1] if n_choices is None else np.asarray(n_choices, dtype=np.int64)
+        picks = draw_group_picks(rng, n_subjects, n_draws, n_permutations, exact, prevalence)
+        null_mean, null_minimum = group_null_draws(scores, subject_nulls, *picks)
+    else:
+        null_mean, null_minimum = null_draws
+        if np.shape(null_mean) != (n_draws, n_cells) or (prevalence and np.shape(null_minimum) != (n_draws, n_cells)):
+            _fail("null_draws", f"expected ({n_draws}, {n_cells}) draws of the group mean (and minimum), got "
+                  f"{np.shape(null_mean)} and {np.shape(null_minimum)}", "pass the output of group_null_draws for these cells")
     observed_mean = columns["mean"]
     columns["p_perm"] = permutation_p(observed_mean, null_mean)
     columns["p_fwe"] = family_wise_p(observed_mean - chance, null_mean - chance, families, fwe_method)
     if prevalence:
-        # Choice 0 is the neutral (actual) labeling, as in Allefeld et al. (2016); the same pool as above.
-        prevalence_indices = draw_indices(rng, choices if np.any(choices != choices[0]) else int(choices[0]), n_subjects, n_draws)
-        null_minimum = group_minimum_null(pool, prevalence_indices + listed.astype(np.int64)[np.newaxis, :])
         observed_minimum = scores.min(axis=0)
         p_global = permutation_p(observed_minimum, null_minimum)
         columns["prevalence_p_global"] = p_global

@@ -42,6 +42,12 @@ config.update(STUDY)  # scripts read study.store_dir from here
 onstart:
     start_run(workflow.dag, MODEL.results_dir, STUDY["study"]["store_dir"])  # leftovers of a killed run; forced jobs skip the memo
     claim_results_dir(MODEL.results_dir, CONFIG_FILE)  # which config file this results folder belongs to (a real run only)
+    # Snakemake 9.27's job-rate limiter (default 100 jobs per 1 s, for submissions to a cluster) arms a
+    # 1-s timer at every scheduling round and every timer starts one more round, so the rounds multiply
+    # with each job that ends (8,218 rounds in a 175-s full-shape run, profiled; docs/speed.md). On one
+    # machine nothing needs the limit: rounds then happen only when a job ends. Cluster runs keep it.
+    if workflow.local_exec:
+        workflow.scheduler.job_rate_limiter = None
 
 SCRIPTS = os.path.join(workflow.basedir, "workflow", "scripts")
 MANIFEST = MODEL.paths.template("manifest")

@@ -12,6 +12,7 @@ import doctest
 import gzip
 import itertools
 import logging
+from types import SimpleNamespace
 from pathlib import Path
 
 import numpy as np
@@ -745,3 +746,55 @@ def test_job_family_all_analyses_is_bonferroni_over_the_analyses_maxima(tmp_path
     np.testing.assert_allclose(study["p_fwe"], np.minimum(1.0, 3 * single["p_fwe"]), rtol=1e-6)
     assert set(study["family"]) == {"all analyses"}
     assert "Bonferroni over the study's 3 analyses" in Path(three["summary"]).read_text(encoding="utf-8")
+
+
+# -- through the content memo: one ROI's change recomputes that ROI's draws only ----------------
+class _Named(dict):
+    """Stands in for Snakemake's Namedlist: items() plus attribute access."""
+
+    def __getattr__(self, name):
+        return self[name]
+
+
+def _run_through_memo(tmp_path, inputs, params):
+    """The job as Snakemake's script runs it (foldwise.provenance.memo.run_job, outputs removed first); its record."""
+    import json
+    from foldwise.provenance.memo import run_job
+    outputs = _outputs(tmp_path / "results")
+    for path in outputs.values():
+        Path(path).unlink(missing_ok=True)
+    smk = SimpleNamespace(input=_Named(inputs), output=_Named(**outputs, provenance=str(tmp_path / "provenance" / "group.json")),
+                          params=_Named(settings=params, code="code-v1"), log=[str(tmp_path / "logs" / "group.log")],
+                          wildcards=_Named(analysis=ANALYSIS), config={"study": {"store_dir": str(tmp_path / "store")}})
+    run_job(smk, "group", group_job.run)
+    return json.loads((tmp_path / "provenance" / "group.json").read_text()), outputs
+
+
+def test_a_changed_roi_recomputes_its_draws_only_and_the_outputs_keep_the_bytes_of_a_full_run(tmp_path, monkeypatch):
+    monkeypatch.delenv("FOLDWISE_MEMO", raising=False)
+    directions = ("seen->heard", "heard->seen")
+    analysis = {"name": ANALYSIS, "kind": "cross", "sets": {"seen": {"round": "seen_round"}, "heard": {"round": "heard_round"}},
+                "rois": [], "voxel_counts": [10, "all"]}
+    rois = ("ember", "glow", "hush")
+    inputs = _write_study(tmp_path / "in", rois=rois, directions=directions, effect={"ember": 0.08}, seed=21)
+    params = _params(n_draws=400, analysis=analysis)
+    first, outputs = _run_through_memo(tmp_path, inputs, params)
+    assert [(part["part"], part["restored"]) for part in first["parts"]] == [(f"roi-{roi}", False) for roi in rois]
+    # glow changes in every subject (its nulls and its summary rows): Snakemake reruns the job, ember and hush are restored
+    _write_study(tmp_path / "in", rois=rois, directions=directions, effect={"ember": 0.08, "glow": 0.1}, seed=21)
+    for path in inputs["nulls"] + inputs["summaries"]:
+        if "glow" not in path and "summary" not in path:
+            continue
+        frame = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
+        rows = frame["roi"] == "glow"
+        frame.loc[rows, "balanced_accuracy"] = [f"{float(value) * 0.97 + 0.02:.7g}" for value in frame.loc[rows, "balanced_accuracy"]]
+        write_tsv(path, frame)
+    second, outputs = _run_through_memo(tmp_path, inputs, params)
+    assert sorted((part["part"], part["restored"]) for part in second["parts"]) == [("roi-ember", True), ("roi-glow", False),
+                                                                                   ("roi-hush", True)]
+    # Reference: the job without any memo on the same inputs (every ROI computed, as before the job had parts)
+    alone = _outputs(tmp_path / "alone")
+    group_job.run(inputs, alone, params, LOG)
+    for name in outputs:
+        assert Path(outputs[name]).read_bytes() == Path(alone[name]).read_bytes(), name
+    assert Path(outputs["table"]).read_bytes() != b"" and "glow" in Path(outputs["table"]).read_text(encoding="utf-8")

@@ -6,7 +6,10 @@ that all subjects share the same cells and permutations, runs
 null and a short plain-text summary.
 """
 
+import hashlib
 import io
+import tempfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -17,7 +20,8 @@ import pandas as pd
 from foldwise import contract
 from foldwise.stats import group as group_stats
 from foldwise.errors import InputError
-from foldwise.data.fileio import FLOAT_FORMAT, gunzip_bytes, gzip_bytes, write_bytes_atomic, write_text_atomic, write_tsv
+from foldwise.data.fileio import FLOAT_FORMAT, gunzip_bytes, gzip_bytes, save_npy, write_bytes_atomic, write_text_atomic, write_tsv
+from foldwise.provenance.memo import part_memo
 from foldwise.provenance.hashing import seed_from
 from foldwise.report.page import format_p  # one way to print a p-value: at its floor, with its resolution
 
@@ -237,86 +241,288 @@ def _subject_scores(subject_frames, cells, subjects):
     return scores, chance[0]
 
 
-def _subject_nulls(paths, name, cells, subjects):
-    """(n_subjects, n_permutations, n_cells) null scores, or None without permutations."""
-    if not paths:
+def _read_null(path, name, subject_row, cells_of_roi):
+    """One subject x ROI null file in full, with every check: ``((subject, roi), piece)``, or ``(None, path)`` without rows.
+
+    ``piece`` is ``(keys, permutation, values, path)``: per row the study cell
+    index (before duplicates are dropped), the permutation (from 0) and the score.
+    """
+    frame = _read_table(path, SUBJECT_NULL_COLUMNS, "permutation null")
+    if frame.empty:
+        return None, path  # zero permutations
+    subject = _subject_label(_single_value(frame, "subject", path))
+    roi = _single_value(frame, "roi", path)
+    analysis = _single_value(frame, "analysis", path)
+    _check_null_owner(path, name, subject, analysis, roi, subject_row, cells_of_roi)
+    # Few distinct keys over many rows: look cells up per distinct (direction, count) pair.
+    direction_codes, directions = pd.factorize(frame["direction"])
+    count_codes, counts = pd.factorize(frame["n_voxels"])
+    lookup = np.array([[cells_of_roi[roi].get(f"{direction}\t{count}", -1) for count in counts]
+                       for direction in directions], dtype=np.int64).reshape(len(directions), len(counts))
+    keys = lookup[direction_codes, count_codes]
+    if np.any(keys < 0):
+        row = int(np.flatnonzero(keys < 0)[0])
+        raise InputError(path, "direction, n_voxels", f"cell {frame['direction'].iloc[row]}/"
+                         f"{frame['n_voxels'].iloc[row]} (data row {row + 1}) is not in the subject's summary",
+                         _RERUN_FIX)
+    permutation = pd.to_numeric(frame["permutation"], errors="coerce").to_numpy(dtype=np.float64)
+    if not np.all(np.isfinite(permutation)) or np.any(permutation < 1) or np.any(permutation != np.round(permutation)):
+        raise InputError(path, "permutation", "permutation numbers must be integers 1, 2, ...", _RERUN_FIX)
+    return (subject, roi), (keys, permutation.astype(np.int64) - 1, _scores_column(frame, "balanced_accuracy", path), path)
+
+
+def _check_null_owner(path, name, subject, analysis, roi, subject_row, cells_of_roi):
+    if analysis != name:
+        raise InputError(path, "analysis", f"the null is of analysis {analysis!r}, this job groups {name!r}",
+                         "pass this analysis's nulls only")
+    if subject not in subject_row:
+        raise InputError(path, "subject", f"subject {subject} is not among the study's subjects",
+                         "pass only the study's subjects' nulls")
+    if roi not in cells_of_roi:
+        raise InputError(path, "roi", f"ROI {roi!r} has no cells in the summaries ({_short_list(cells_of_roi)})",
+                         _RERUN_FIX)
+
+
+_PEEK_BYTES = 1 << 16  # the start of a null file: its header and first rows
+
+
+def _peek_null(path):
+    """``(subject, analysis, roi)`` from a null file's header and first data row, decoding only the file's start.
+
+    None when that does not settle it (no complete data row, another header,
+    a quoted, empty or ``n/a`` value, a carriage return): the full read
+    (:func:`_read_null`) then decides and gives its own message. A file whose
+    later rows name another subject or ROI is caught there too: its ROI is
+    computed, since no stored part has its content hash.
+    """
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(_PEEK_BYTES)
+        if str(path).endswith(".gz"):
+            head = zlib.decompressobj(wbits=31).decompress(head, _PEEK_BYTES)  # 31: a gzip stream
+        lines = head.split(b"\n", 2)
+        if len(lines) < 3 or b"\r" in lines[0] + lines[1]:
+            return None
+        header, row = lines[0].decode("utf-8").split("\t"), lines[1].decode("utf-8").split("\t")
+    except (OSError, zlib.error, UnicodeDecodeError):
         return None
-    subject_row = {subject: index for index, subject in enumerate(subjects)}
-    cells_of_roi = {}
-    for index, (roi, direction, count) in enumerate(cells):
-        cells_of_roi.setdefault(roi, {})[f"{direction}\t{count}"] = index
-    pieces, seen = {}, {}
+    if len(row) != len(header) or any(column not in header for column in SUBJECT_NULL_COLUMNS) or header[0].startswith("\ufeff"):
+        return None
+    values = tuple(row[header.index(column)] for column in ("subject", "analysis", "roi"))
+    if any(value in ("", "n/a") or value.startswith('"') for value in values):
+        return None
+    return values
+
+
+def _locate_nulls(paths, name, subject_row, cells_of_roi, subjects):
+    """Which file holds which subject x ROI, from a peek at each file (files that cannot be peeked are read in full).
+
+    Returns ``(located, read)``: ``{(subject, roi): path}`` and the pieces read
+    in full on the way; ``located`` is None when no file has a row (zero
+    permutations). Raises on a stranger's or a second file, or a missing one.
+    """
+    located, read, seen, empty = {}, {}, {}, None
     for path in paths:
-        frame = _read_table(path, SUBJECT_NULL_COLUMNS, "permutation null")
-        if frame.empty:
-            pieces[None] = path  # zero permutations
-            continue
-        subject = _subject_label(_single_value(frame, "subject", path))
-        roi = _single_value(frame, "roi", path)
-        analysis = _single_value(frame, "analysis", path)
-        if analysis != name:
-            raise InputError(path, "analysis", f"the null is of analysis {analysis!r}, this job groups {name!r}",
-                             "pass this analysis's nulls only")
-        if subject not in subject_row:
-            raise InputError(path, "subject", f"subject {subject} is not among the study's subjects",
-                             "pass only the study's subjects' nulls")
-        if roi not in cells_of_roi:
-            raise InputError(path, "roi", f"ROI {roi!r} has no cells in the summaries ({_short_list(cells_of_roi)})",
-                             _RERUN_FIX)
-        if (subject, roi) in seen:
-            raise InputError(path, "subject, roi", f"a second null for subject {subject}, ROI {roi} "
-                             f"(first: {seen[(subject, roi)]})", "pass one null per subject and ROI")
-        seen[(subject, roi)] = path
-        # Few distinct keys over many rows: look cells up per distinct (direction, count) pair.
-        direction_codes, directions = pd.factorize(frame["direction"])
-        count_codes, counts = pd.factorize(frame["n_voxels"])
-        lookup = np.array([[cells_of_roi[roi].get(f"{direction}\t{count}", -1) for count in counts]
-                           for direction in directions], dtype=np.int64).reshape(len(directions), len(counts))
-        keys = lookup[direction_codes, count_codes]
-        if np.any(keys < 0):
-            row = int(np.flatnonzero(keys < 0)[0])
-            raise InputError(path, "direction, n_voxels", f"cell {frame['direction'].iloc[row]}/"
-                             f"{frame['n_voxels'].iloc[row]} (data row {row + 1}) is not in the subject's summary",
-                             _RERUN_FIX)
-        permutation = pd.to_numeric(frame["permutation"], errors="coerce").to_numpy(dtype=np.float64)
-        if not np.all(np.isfinite(permutation)) or np.any(permutation < 1) or np.any(permutation != np.round(permutation)):
-            raise InputError(path, "permutation", "permutation numbers must be integers 1, 2, ...", _RERUN_FIX)
-        pieces[(subject, roi)] = (keys, permutation.astype(np.int64) - 1,
-                                  _scores_column(frame, "balanced_accuracy", path), path)
-    if set(pieces) == {None}:
-        return None
+        peeked = _peek_null(path)
+        if peeked is None:
+            key, piece = _read_null(path, name, subject_row, cells_of_roi)
+            if key is None:
+                empty = piece  # zero permutations
+                continue
+            read[key] = piece
+        else:
+            subject, analysis, roi = _subject_label(peeked[0]), peeked[1], peeked[2]
+            _check_null_owner(path, name, subject, analysis, roi, subject_row, cells_of_roi)
+            key = (subject, roi)
+        if key in seen:
+            raise InputError(path, "subject, roi", f"a second null for subject {key[0]}, ROI {key[1]} "
+                             f"(first: {seen[key]})", "pass one null per subject and ROI")
+        seen[key] = path
+        located[key] = path
+    if not located:
+        return None, read
     wanted = [(subject, roi) for subject in subjects for roi in cells_of_roi]
-    missing = [f"{subject}/{roi}" for subject, roi in wanted if (subject, roi) not in pieces]
+    missing = [f"{subject}/{roi}" for subject, roi in wanted if (subject, roi) not in located]
     if missing:
-        where = pieces.get(None)
-        raise InputError(where, "subject, roi", f"no permutation null for subject/ROI {_short_list(missing)}"
-                         + (" (this file has no permutations)" if where else ""), _RERUN_FIX)
-    counts = {key: int(piece[1].max()) + 1 for key, piece in pieces.items() if key is not None}
+        raise InputError(empty, "subject, roi", f"no permutation null for subject/ROI {_short_list(missing)}"
+                         + (" (this file has no permutations)" if empty else ""), _RERUN_FIX)
+    return located, read
+
+
+def _subject_counts(per_subject, subjects):
+    """Each subject's number of relabelings, from ``{subject: {roi: count}}``; the ROIs of a subject must agree."""
     # One subject's ROIs share its relabelings, so they hold equally many; subjects may differ (a design with
     # few distinct relabelings lists all of them, fewer than requested).
-    per_subject = {}
-    for (subject, roi), count in counts.items():
-        per_subject.setdefault(subject, {})[roi] = count
     differing = [f"{subject}/{roi}: {count}" for subject, by_roi in per_subject.items() for roi, count in by_roi.items()
                  if len(set(by_roi.values())) > 1]
     if differing:
         raise InputError(None, "permutation", f"the ROIs of a subject have different numbers of permutations "
                          f"({_short_list(differing)})", _RERUN_FIX)
-    n_choices = np.array([next(iter(per_subject[subject].values())) for subject in subjects], dtype=np.int64)
-    nulls = np.empty((len(subjects), int(n_choices.max()), len(cells)))
-    for (subject, roi), (columns, permutation, values, path) in ((k, v) for k, v in pieces.items() if k is not None):
-        n_permutations = int(n_choices[subject_row[subject]])
-        n_roi_cells = len(cells_of_roi[roi])
-        local = np.full(len(cells), -1, dtype=np.int64)  # study cell index -> index within this ROI
-        local[list(cells_of_roi[roi].values())] = np.arange(n_roi_cells)
-        flat = local[columns] * n_permutations + permutation
-        if flat.size != n_roi_cells * n_permutations or np.any(np.bincount(flat, minlength=flat.size) != 1):
+    return np.array([next(iter(per_subject[subject].values())) for subject in subjects], dtype=np.int64)
+
+
+def _roi_nulls(pieces, roi, columns, n_choices, subjects, n_cells):
+    """(n_subjects, max relabelings, len(columns)) null scores of one ROI's cells (``columns``: study cell indices)."""
+    local = np.full(n_cells, -1, dtype=np.int64)  # study cell index -> index within this ROI
+    local[columns] = np.arange(len(columns))
+    nulls = np.empty((len(subjects), int(n_choices.max()), len(columns)))
+    for row, subject in enumerate(subjects):
+        keys, permutation, values, path = pieces[(subject, roi)]
+        n_permutations = int(n_choices[row])
+        flat = local[keys] * n_permutations + permutation
+        if flat.size != len(columns) * n_permutations or np.any(np.bincount(flat, minlength=flat.size) != 1):
             raise InputError(path, "permutation", f"every cell needs each permutation 1..{n_permutations} exactly once "
-                             f"({n_roi_cells} cells, {flat.size} rows)", _RERUN_FIX)
-        nulls[subject_row[subject], permutation, columns] = values
-    for row, count in enumerate(n_choices):  # rows beyond a subject's own count are never drawn; keep them finite
-        nulls[row, count:] = nulls[row, :1]
+                             f"({len(columns)} cells, {flat.size} rows)", _RERUN_FIX)
+        nulls[row, permutation, local[keys]] = values
+        nulls[row, n_permutations:] = nulls[row, :1]  # rows beyond the subject's own count are never drawn; keep them finite
+    return nulls
+
+
+def _cells_by_roi(cells):
+    """ROI -> {"direction\tcount": study cell index}, in cell order."""
+    cells_of_roi = {}
+    for index, (roi, direction, count) in enumerate(cells):
+        cells_of_roi.setdefault(roi, {})[f"{direction}\t{count}"] = index
+    return cells_of_roi
+
+
+def _subject_nulls(paths, name, cells, subjects):
+    """(n_subjects, n_permutations, n_cells) null scores of every cell and each subject's count, or None without permutations."""
+    if not paths:
+        return None
+    subject_row = {subject: index for index, subject in enumerate(subjects)}
+    cells_of_roi = _cells_by_roi(cells)
+    located, pieces = _locate_nulls(paths, name, subject_row, cells_of_roi, subjects)
+    if located is None:
+        return None
+    for key, path in located.items():
+        if key not in pieces:
+            pieces[key] = _read_null(path, name, subject_row, cells_of_roi)[1]
+    per_subject = {}
+    for (subject, roi), piece in pieces.items():
+        per_subject.setdefault(subject, {})[roi] = int(piece[1].max()) + 1
+    n_choices = _subject_counts(per_subject, subjects)
+    nulls = np.empty((len(subjects), int(n_choices.max()), len(cells)))
+    for roi, columns in cells_of_roi.items():
+        nulls[:, :, list(columns.values())] = _roi_nulls(pieces, roi, list(columns.values()), n_choices, subjects, len(cells))
     return nulls, n_choices
+
+
+class _EveryPartComputed:
+    """Outside run_job (tests, benchmarks): no memo, every ROI computed."""
+
+    def file_hash(self, path):
+        return None
+
+    def restore(self, part, identity, outputs):
+        return False
+
+    def store(self, part, identity, outputs):
+        pass
+
+
+def _parts():
+    try:
+        return part_memo()
+    except RuntimeError:  # not inside run_job / run_in_process
+        return _EveryPartComputed()
+
+
+def _array_digest(values):
+    values = np.ascontiguousarray(values, dtype=np.float64)
+    return {"shape": list(values.shape), "sha256": hashlib.sha256(values.tobytes()).hexdigest()}
+
+
+def _null_draws_by_roi(paths, name, cells, keep, kept_cells, scores, subjects, exact, rng, n_draws, prevalence, seed):
+    """The group-mean and minimum nulls of the kept cells, one ROI at a time, each ROI a part of the job's memo.
+
+    Every cell's draws depend on the shared picks and its own column only
+    (:func:`foldwise.stats.group.group_null_draws`), so an ROI's block of
+    draws, and its rows of the group null table, are a part keyed on what
+    they read: the ROI's null files (content hashes), its observed scores,
+    its cells, the subjects, which of them list their whole relabeling space,
+    the seed and the number of draws. When one ROI changes, Snakemake reruns
+    the job; the other ROIs' blocks are restored and their null files are
+    not read (a peek at each file's first row says which subject and ROI it
+    holds). The family-wise correction and the tables are then computed from
+    all the blocks as before, so the outputs keep their bytes.
+
+    Parameters
+    ----------
+    cells, keep
+        Every cell of the summaries and the mask of those kept (duplicates of an ROI's ``all`` dropped).
+    kept_cells, scores
+        The kept cells (renamed) and their ``(n_subjects, n_kept)`` scores.
+
+    Returns
+    -------
+    tuple or None
+        ``(null_mean, null_minimum, rows)`` over the kept cells (``null_minimum``
+        None without prevalence; ``rows`` the null table's text per ROI, None
+        when a label needs quoting), or None without permutations.
+    """
+    if not paths:
+        return None
+    subject_row = {subject: index for index, subject in enumerate(subjects)}
+    cells_of_roi = _cells_by_roi(cells)
+    located, pieces = _locate_nulls(paths, name, subject_row, cells_of_roi, subjects)
+    if located is None:
+        return None
+    kept_position = np.cumsum(keep) - 1  # study cell index -> position among the kept cells
+    quoted = _needs_quoting(kept_cells)
+    parts = _parts()
+    shared = {"analysis": name, "seed": seed, "n_draws": n_draws, "prevalence": prevalence, "subjects": list(subjects),
+              "exact": [bool(value) for value in exact]}
+    blocks, computed = {}, {}
+    with tempfile.TemporaryDirectory(prefix="foldwise-group-") as folder:
+        for number, (roi, columns) in enumerate(cells_of_roi.items()):
+            kept_columns = [index for index in columns.values() if keep[index]]
+            positions = kept_position[kept_columns]
+            identity = {"roi": roi, **shared,
+                        "cells": [[cells[index][1], cells[index][2], kept_cells[kept_position[index]][2]] for index in kept_columns],
+                        "scores": _array_digest(scores[:, positions]),
+                        "nulls": [parts.file_hash(located[(subject, roi)]) for subject in subjects]}
+            files = {"n_choices": str(Path(folder) / f"{number}_n_choices.npy"), "mean": str(Path(folder) / f"{number}_mean.npy"),
+                     "rows": str(Path(folder) / f"{number}_rows.tsv.gz")}
+            if prevalence:
+                files["minimum"] = str(Path(folder) / f"{number}_minimum.npy")
+            if parts.restore(f"roi-{roi}", identity, files):
+                blocks[roi] = {"n_choices": np.load(files["n_choices"], allow_pickle=False),
+                               "mean": np.load(files["mean"], allow_pickle=False),
+                               "minimum": np.load(files["minimum"], allow_pickle=False) if prevalence else None,
+                               "rows": None if quoted else gunzip_bytes(Path(files["rows"]).read_bytes()).decode("utf-8")}
+            else:
+                computed[roi] = (list(columns.values()), kept_columns, positions, identity, files)
+        for roi in computed:  # the null files of the ROIs to compute, read in full with every check
+            for subject in subjects:
+                if (subject, roi) not in pieces:
+                    pieces[(subject, roi)] = _read_null(located[(subject, roi)], name, subject_row, cells_of_roi)[1]
+        per_subject = {}
+        for (subject, roi), piece in pieces.items():
+            if roi in computed:
+                per_subject.setdefault(subject, {})[roi] = int(piece[1].max()) + 1
+        for roi, block in blocks.items():
+            for subject, count in zip(subjects, block["n_choices"].tolist()):
+                per_subject.setdefault(subject, {})[roi] = int(count)
+        n_choices = _subject_counts(per_subject, subjects)
+        picks = group_stats.draw_group_picks(rng, len(subjects), n_draws, n_choices, exact, prevalence)
+        for roi, (columns, kept_columns, positions, identity, files) in computed.items():
+            nulls = _roi_nulls(pieces, roi, columns, n_choices, subjects, len(cells))[:, :, [columns.index(i) for i in kept_columns]]
+            null_mean, null_minimum = group_stats.group_null_draws(scores[:, positions], nulls, *picks)
+            rows = None if quoted else "".join(_null_rows_text([kept_cells[i] for i in positions], null_mean))
+            blocks[roi] = {"n_choices": n_choices, "mean": null_mean, "minimum": null_minimum, "rows": rows}
+            if isinstance(parts, _EveryPartComputed):
+                continue
+            save_npy(files["n_choices"], n_choices)
+            save_npy(files["mean"], null_mean)
+            if prevalence:
+                save_npy(files["minimum"], null_minimum)
+            write_bytes_atomic(files["rows"], gzip_bytes((rows or "").encode("utf-8"), level=1))
+            parts.store(f"roi-{roi}", identity, files)
+    order = list(cells_of_roi)  # cells are sorted by ROI: each ROI's kept cells are one run of columns
+    null_mean = np.concatenate([blocks[roi]["mean"] for roi in order], axis=1)
+    null_minimum = np.concatenate([blocks[roi]["minimum"] for roi in order], axis=1) if prevalence else None
+    return null_mean, null_minimum, None if quoted else [blocks[roi]["rows"] for roi in order]
 
 
 def _optional_column(subject_frames, cells, column):
@@ -410,6 +616,11 @@ def _family_text(family, fwe_method, n_analyses):
 _QUOTED_CHARACTERS = ("\t", '"', "\n", "\r")
 
 
+def _needs_quoting(cells):
+    labels = {str(part) for cell in cells for part in cell}
+    return any(character in label for label in labels for character in _QUOTED_CHARACTERS)
+
+
 def _null_rows_text(cells, null_mean):
     """The data rows of the group null table as ``write_tsv`` writes them, cell by cell; None where a label needs quoting.
 
@@ -420,8 +631,7 @@ def _null_rows_text(cells, null_mean):
     already, the same text (tests/test_group.py compares the bytes with
     ``write_tsv`` of :func:`_null_table`).
     """
-    labels = {str(part) for cell in cells for part in cell}
-    if any(character in label for label in labels for character in _QUOTED_CHARACTERS):
+    if _needs_quoting(cells):
         return None
     n_draws = null_mean.shape[0]
     template = "".join([f"\x00\t{draw}\t{FLOAT_FORMAT}\n" for draw in range(1, n_draws + 1)])
@@ -429,9 +639,14 @@ def _null_rows_text(cells, null_mean):
             for index, (roi, direction, count) in enumerate(cells)]
 
 
-def _write_null_table(path, cells, null_mean):
-    """Write the group null table: the bytes of ``write_tsv(path, _null_table(cells, null_mean))``, faster."""
-    rows = None if null_mean is None else _null_rows_text(cells, null_mean)
+def _write_null_table(path, cells, null_mean, rows=None):
+    """Write the group null table: the bytes of ``write_tsv(path, _null_table(cells, null_mean))``, faster.
+
+    ``rows``: the data rows' text in blocks (each ROI's from :func:`_null_rows_text`, perhaps restored
+    from the job's memo), when the caller has them.
+    """
+    if rows is None and null_mean is not None:
+        rows = _null_rows_text(cells, null_mean)
     if rows is None:
         write_tsv(path, _null_table(cells, null_mean))
         return
@@ -528,7 +743,6 @@ def run(inputs, outputs, params, log):
                       for frame, _ in subject_frames], dtype=bool)
     subject_p_min = _optional_column(subject_frames, cells, "p_min")
     notes = []
-    n_choices = None
     keep, renamed, dropped = _duplicate_counts(cells, n_used)
     for roi, counts in dropped.items():
         message = (f"ROI {roi}: voxel count(s) {', '.join(map(str, counts))} reach the ROI's size in every subject; "
@@ -544,33 +758,32 @@ def run(inputs, outputs, params, log):
                    f"subject-level p can reach alpha {alpha:g} (see subject_p_min)")
         log.warning(message)
         notes.append("Note: " + message + ".")
+    # duplicates of the ROI's 'all' cell enter the table and the family once
+    kept_cells = [(cell[0], cell[1], renamed[index]) for index, cell in enumerate(cells) if keep[index]]
+    kept_scores = scores[:, keep]
+    rng = np.random.default_rng(seed_from(params["seed"], "group", name))
+    drawn = None
     if len(subjects) < group_stats.MIN_SUBJECTS:
         message = (f"only {len(subjects)} subject(s): descriptive statistics only, inferential columns are n/a "
                    f"(at least {group_stats.MIN_SUBJECTS} are needed)")
         log.warning(message)
         notes.append("Note: " + message + ".")
-        subject_nulls = None
     else:
-        subject_nulls = _subject_nulls(nulls, name, cells, subjects)
-        if subject_nulls is not None:
-            subject_nulls, n_choices = subject_nulls
-        if subject_nulls is None:
+        drawn = _null_draws_by_roi(nulls, name, cells, keep, kept_cells, kept_scores, subjects, exact, rng, n_draws,
+                                   prevalence, params["seed"])
+        if drawn is None:
             message = "no permutation null (n_permutations is 0): p_perm, p_fwe and prevalence columns are n/a"
             log.warning(message)
             notes.append("Note: " + message + ".")
         elif 1.0 / (1 + n_draws) > alpha:
             log.warning("group.n_draws %d cannot reach p <= alpha %g; raise group.n_draws", n_draws, alpha)
-    # duplicates of the ROI's 'all' cell enter the table and the family once
-    cells = [(cell[0], cell[1], renamed[index]) for index, cell in enumerate(cells) if keep[index]]
-    scores, chance, n_used, worst_p_min = scores[:, keep], chance[keep], n_used[:, keep], worst_p_min[keep]
-    if subject_nulls is not None:
-        subject_nulls = subject_nulls[:, :, keep]
+    cells, scores = kept_cells, kept_scores
+    chance, n_used, worst_p_min = chance[keep], n_used[:, keep], worst_p_min[keep]
     directions = [d for d in _direction_order(analysis) if any(cell[1] == d for cell in cells)]
     families, family_names = _families(cells, directions, family)
-    rng = np.random.default_rng(seed_from(params["seed"], "group", name))
-    columns, null_mean = group_stats.group_statistics(scores, chance, subject_nulls, families, rng, n_draws, alpha,
-                                                       prevalence=prevalence, fwe_method=fwe_method, n_choices=n_choices,
-                                                       exact=exact)
+    columns, null_mean = group_stats.group_statistics(scores, chance, None, families, rng, n_draws, alpha,
+                                                       prevalence=prevalence, fwe_method=fwe_method,
+                                                       null_draws=None if drawn is None else drawn[:2])
     if n_analyses > 1:  # one family over the study's analyses: Bonferroni over the analyses' own maxima
         for column in ("p_fwe", "prevalence_p_global_fwe"):
             columns[column] = np.minimum(1.0, columns[column] * n_analyses)
@@ -582,6 +795,6 @@ def run(inputs, outputs, params, log):
     columns["family"] = np.array(family_names, dtype=object)
     table = _result_table(name, cells, len(subjects), chance, columns)
     write_tsv(outputs["table"], table)
-    _write_null_table(outputs["null"], cells, null_mean)
+    _write_null_table(outputs["null"], cells, null_mean, None if drawn is None else drawn[2])
     write_text_atomic(outputs["summary"], _summary_text(name, analysis, table, directions, len(subjects), n_draws,
                                                         alpha, notes, _family_text(family, fwe_method, n_analyses)))

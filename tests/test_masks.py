@@ -410,3 +410,27 @@ def test_brain_mask_from_leading_volumes_decodes_only_those_volumes(tmp_path):
     with pytest.raises(InputError) as excinfo:
         brain_mask_job.run({"bold": [str(cut)]}, outputs, {"brain_mask": {"mean_fraction": 0.2, "summary_volumes": 20}, "subject": "01"}, LOG)
     _assert_input_error(excinfo, "cut_bold.nii.gz", "truncated")
+
+
+@pytest.mark.parametrize("dtype, slope, inter, suffix", [(np.int16, 0.25, 100.0, ".nii.gz"), (np.float32, None, None, ".nii.gz"),
+                                                         (np.int16, None, None, ".nii")])
+def test_leading_volumes_equal_nibabels_read_of_those_volumes(tmp_path, dtype, slope, inter, suffix):
+    # Reference: nibabel reading the file itself, np.asanyarray(nib.load(path).dataobj[..., :k], dtype=float32),
+    # on a scaled int16 run as scanners export them, a float32 run and an uncompressed file.
+    import nibabel as nib
+    rng = np.random.default_rng(13)
+    values = rng.normal(800, 120, (7, 6, 5, 12))
+    image = nib.Nifti1Image(values.astype(dtype) if slope is None else np.round((values - inter) / slope).astype(dtype), np.eye(4))
+    if slope is not None:
+        image.header.set_slope_inter(slope, inter)
+    path = str(tmp_path / f"run_bold{suffix}")
+    nib.save(image, path)
+    for k in (1, 5, 12, 40):
+        data, affine = brain_mask_job._leading_volumes(path, k)
+        expected = np.asanyarray(nib.load(path).dataobj[..., :min(k, 12)], dtype=np.float32)
+        assert data.dtype == np.float32 and data.shape == expected.shape
+        assert np.array_equal(data, expected) and np.array_equal(affine, nib.load(path).affine)
+    save_nifti(tmp_path / "volume.nii.gz", values[..., 0], np.eye(4))
+    with pytest.raises(InputError) as excinfo:
+        brain_mask_job._leading_volumes(str(tmp_path / "volume.nii.gz"), 4)
+    assert excinfo.value.field == "dim"

@@ -1,5 +1,6 @@
 """Job: one subject's brain mask (derived from the BOLD runs, or a given mask checked against them)."""
 
+import io
 import zlib
 
 import nibabel as nib
@@ -13,33 +14,62 @@ from foldwise.masks.build import combine_run_statistics, run_statistics, same_gr
 
 __all__ = ["GRID_TOLERANCE_MM", "run"]
 
+try:  # the fast gzip decoder from PyPI (as foldwise.data.fileio); the standard library's is the fallback
+    from isal import igzip as _gzip
+    from isal.isal_zlib import error as _gzip_error
+except ImportError:  # pragma: no cover - exercised only where isal is absent
+    import gzip as _gzip
+    _gzip_error = zlib.error
 
 
 def _as_list(paths):
     return [paths] if isinstance(paths, str) else list(paths)
 
 
+# The largest NIfTI header (NIfTI-2; NIfTI-1's is 348 bytes): read first, to learn where the volumes start.
+_HEADER_BYTES = 540
+
+
 def _leading_volumes(path, n_volumes):
     """The first ``n_volumes`` volumes of a 4D run as float32 (scaling applied), with its affine.
 
     A .nii.gz stores the volumes one after the other, so only the header and
-    these volumes are decompressed: for 20 of 180 volumes about a ninth of a
-    full read. 0 (or more volumes than the run has) reads every volume, as
-    :func:`foldwise.data.bids.load_bold` does.
+    these volumes are decompressed (for 20 of 180 volumes about a ninth of a
+    full read), with the fast gzip decoder where it is installed (isal; the
+    standard library's otherwise). nibabel then reads the header, the affine
+    and the scaled values from those bytes, as it reads them from a file, so
+    the values are the ones ``nib.load(path).dataobj[..., :n_volumes]`` gives
+    (tests/test_masks.py compares them). 0 (or more volumes than the run
+    has) reads every volume, as :func:`foldwise.data.bids.load_bold` does.
     """
     if not n_volumes:
         data, affine, _ = load_bold(path)
         return data, affine
     try:
-        image = nib.load(path)  # the header only; the data are read below
-        shape = tuple(image.shape)
-        if len(shape) != 4:
-            raise InputError(path, "dim", f"expected a 4D BOLD time series, got an image of shape {shape}",
-                             "point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
-        data = np.asanyarray(image.dataobj[..., :min(int(n_volumes), shape[3])], dtype=np.float32)
+        opener = _gzip.open if str(path).endswith(".gz") else open
+        with opener(path, "rb") as stream:
+            head = stream.read(_HEADER_BYTES)
+            size = int.from_bytes(head[:4], "little")
+            size = size if size in (348, 540) else int.from_bytes(head[:4], "big")  # a big-endian header
+            image_class = nib.Nifti2Image if size == 540 else nib.Nifti1Image
+            header = image_class.header_class.from_fileobj(io.BytesIO(head))
+            shape = tuple(int(n) for n in header.get_data_shape())
+            if len(shape) != 4:
+                raise InputError(path, "dim", f"expected a 4D BOLD time series, got an image of shape {shape}",
+                                 "point dataset.patterns.bold at the 4D preprocessed BOLD series, not a 3D volume")
+            n_read = min(int(n_volumes), shape[3])
+            needed = int(header.get_data_offset()) + int(np.prod(shape[:3])) * n_read * header.get_data_dtype().itemsize
+            prefix = head + stream.read(max(0, needed - len(head)))
+        if len(prefix) < needed:
+            raise EOFError(f"the file ends after {len(prefix)} of the {needed} bytes of its first {n_read} volumes")
+        image = image_class.from_bytes(prefix)  # nibabel's own reader over the bytes: header, affine, scaling
+        data = np.asanyarray(image.dataobj[..., :n_read], dtype=np.float32)
+    except InputError:
+        raise
     except FileNotFoundError:
         raise InputError(path, "file", "the BOLD image does not exist", "create it or correct the path in the config") from None
-    except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
+    except (OSError, EOFError, zlib.error, _gzip_error, ValueError, nib.filebasedimages.ImageFileError,
+            nib.spatialimages.HeaderDataError) as error:
         raise InputError(path, "content", f"the BOLD image is truncated or not a NIfTI file ({type(error).__name__}: {error})",
                          "re-export or re-copy the file") from None
     return data, np.asarray(image.affine, dtype=np.float64)

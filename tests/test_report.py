@@ -13,6 +13,7 @@ Snakemake renders them) and Debian's chromium (the page in a real browser).
 import base64
 import html as html_module
 import doctest
+import io
 import json
 import logging
 import math
@@ -1215,3 +1216,24 @@ def test_roi_overlay_looks_like_one_image_per_roi_drawn_one_over_the_other():
         separate.append(image)
     one = rendered([report.roi_overlay(masks, colours)])
     assert np.abs(one - rendered(separate)).max() <= 2
+
+
+def test_the_preview_is_the_picture_savefig_draws_at_the_same_dpi(tmp_path):
+    # save_preview draws once on an Agg canvas instead of savefig's layout dry run plus drawing:
+    # reference, matplotlib's own savefig at the preview dpi, decoded; both reduced to the same 256 colours.
+    from PIL import Image
+
+    from foldwise.report import drawing
+
+    rows = pd.DataFrame({"n_voxels": ["5", "20", "all"], "mean": [0.4, 0.5, 0.6], "ci_low": [0.3, 0.4, 0.5],
+                         "ci_high": [0.5, 0.6, 0.7], "chance": [1 / 3] * 3, "p_fwe": [0.5, 0.01, 0.02]})
+    subjects = pd.DataFrame({"subject": ["01", "01", "01", "02", "02", "02"], "n_voxels": ["5", "20", "all"] * 2,
+                             "n_used": [5, 20, 30, 5, 20, 28], "balanced_accuracy": [0.4, 0.5, 0.6, 0.45, 0.55, 0.5]})
+    panel = dict(report.curve_data(rows, subjects, 29.0, ALPHA), label="within")
+    drawing.save_preview(report.curve_figure([panel], "curve", ALPHA), str(tmp_path / "preview.png"))
+    buffer = io.BytesIO()
+    report.curve_figure([panel], "curve", ALPHA).savefig(buffer, format="png", dpi=drawing.PREVIEW_DPI)
+    reference = drawing._palette_png(buffer.getvalue())
+    with Image.open(tmp_path / "preview.png") as ours, Image.open(io.BytesIO(reference)) as theirs:
+        assert ours.size == theirs.size
+        assert np.array_equal(np.asarray(ours.convert("RGB")), np.asarray(theirs.convert("RGB")))

@@ -123,6 +123,18 @@ def _volume(path, what, shape=None):
     return data, image
 
 
+def _read_volume(data, path, what, shape=None):
+    """:func:`_volume` read once per job: a subject's mean image and brain mask appear in several figures."""
+    cache = data.setdefault("volumes", {})
+    if path not in cache:
+        cache[path] = _volume(path, what)
+    values, image = cache[path]
+    if shape is not None and values.shape != tuple(shape):
+        raise InputError(path, "dim", f"the {what} has shape {values.shape}, the subject's mean image {tuple(shape)}",
+                         "build every image of a subject on one grid (rerun the masks stage)")
+    return values, image
+
+
 def _repetition_times(sidecars):
     values = []
     for path in _as_list(sidecars):
@@ -1022,8 +1034,8 @@ def _brainmask_specification(entry, data, log):
                 "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
 
     def build():
-        mean, image = _volume(data["means"][subject], "mean image")
-        brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+        mean, image = _read_volume(data, data["means"][subject], "mean image")
+        brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
         return images.brain_mask_png(mean, brain, image.affine, title)
 
     return (identity, build, f"Brain mask of sub-{subject}",
@@ -1050,9 +1062,9 @@ def _roimasks_specification(entry, data, log):
     def build():
         rows, affine = [], None
         for subject in subjects:
-            mean, image = _volume(data["means"][subject], "mean image")
+            mean, image = _read_volume(data, data["means"][subject], "mean image")
             affine = image.affine if affine is None else affine
-            brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+            brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
             mask = _volume(data["roi_mask_paths"][(subject, roi)], "ROI mask", mean.shape)[0] > 0
             rows.append((f"sub-{subject}", mean, brain, mask))
         return images.roi_masks_png(roi, rows, affine, colour, title)
@@ -1080,9 +1092,9 @@ def _resvar_specification(entry, data, log):
                 "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
 
     def build():
-        mean, _ = _volume(data["means"][subject], "mean image")
-        values, image = _volume(path, "residual variance image", mean.shape)
-        brain = _volume(data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+        mean, _ = _read_volume(data, data["means"][subject], "mean image")
+        values, image = _read_volume(data, path, "residual variance image", mean.shape)
+        brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
         return images.resvar_png(values, brain, image.affine, title)
 
     return (identity, build, f"GLM residual variance of sub-{subject}",

@@ -124,23 +124,37 @@ def save_publication_files(figure, paths):
 
 
 def save_preview(figure, preview_path):
-    """Write the figure's screen preview (PNG at :data:`PREVIEW_DPI`, 256 colours), the image the page embeds."""
-    buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=PREVIEW_DPI, metadata={"Software": None})
-    write_bytes_atomic(preview_path, _palette_png(buffer.getvalue()))
+    """Write the figure's screen preview (PNG at :data:`PREVIEW_DPI`, 256 colours), the image the page embeds.
+
+    The figure is drawn once on an Agg canvas and its pixels go straight to
+    Pillow: ``savefig`` would draw a figure with a layout engine twice (a
+    dry run to lay it out, then the picture) and encode a PNG that is
+    decoded again to reduce its colours. The pixels are the ones ``savefig``
+    gives at the same dpi (``tests/test_report.py`` compares them).
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    figure.set_dpi(PREVIEW_DPI)
+    canvas = FigureCanvasAgg(figure)
+    canvas.draw()
+    write_bytes_atomic(preview_path, _palette_png(np.asarray(canvas.buffer_rgba())))
 
 
-def _palette_png(png_bytes):
-    """The preview as a 256-colour PNG (median cut, deterministic): ~2.7x smaller than RGBA, so the page stays small.
+def _palette_png(pixels):
+    """An image as a 256-colour PNG (median cut, deterministic): ~2.7x smaller than RGBA, so the page stays small.
 
-    Written by Pillow with the pHYs chunk of :data:`PREVIEW_DPI` and no text
-    or time chunk (measured on the benchmark's 45 previews: 2.66 MB RGBA,
-    0.99 MB with 256 colours).
+    ``pixels`` is an RGBA or RGB uint8 array, or PNG bytes. Written by Pillow
+    with the pHYs chunk of :data:`PREVIEW_DPI` and no text or time chunk
+    (measured on the benchmark's 45 previews: 2.66 MB RGBA, 0.99 MB with 256
+    colours).
     """
     from PIL import Image  # Pillow: matplotlib's own PNG writer
 
-    with Image.open(io.BytesIO(png_bytes)) as image:
-        palette = image.convert("RGB").quantize(colors=256)
+    if isinstance(pixels, bytes):
+        with Image.open(io.BytesIO(pixels)) as image:
+            palette = image.convert("RGB").quantize(colors=256)
+    else:
+        palette = Image.fromarray(np.ascontiguousarray(pixels[..., :3])).quantize(colors=256)
     buffer = io.BytesIO()
     palette.save(buffer, format="png", dpi=(PREVIEW_DPI, PREVIEW_DPI))
     return buffer.getvalue()

@@ -1237,3 +1237,60 @@ def test_the_preview_is_the_picture_savefig_draws_at_the_same_dpi(tmp_path):
     with Image.open(tmp_path / "preview.png") as ours, Image.open(io.BytesIO(reference)) as theirs:
         assert ours.size == theirs.size
         assert np.array_equal(np.asarray(ours.convert("RGB")), np.asarray(theirs.convert("RGB")))
+
+
+def _layout_problems(figure):
+    """Texts outside the figure, and a legend or tick labels over another panel (Agg's own measure of every text)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.text import Text
+
+    canvas = FigureCanvasAgg(figure)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    box = figure.bbox
+    problems = []
+    for text in figure.findobj(Text):
+        if not text.get_visible() or not text.get_text().strip():
+            continue
+        extent = text.get_window_extent(renderer)
+        if extent.x0 < box.x0 - 1 or extent.y0 < box.y0 - 1 or extent.x1 > box.x1 + 1 or extent.y1 > box.y1 + 1:
+            problems.append(f"outside: {text.get_text()!r}")
+    panels = [axes for axes in figure.axes if axes.get_label() != "<colorbar>"]
+    for legend in figure.legends:
+        for axes in panels:
+            if legend.get_window_extent(renderer).overlaps(axes.get_tightbbox(renderer)):
+                problems.append("legend over a panel")
+    for left, right in zip(panels, panels[1:]):  # tick labels of one panel over its neighbour's frame
+        if left.get_tightbbox(renderer).x1 > right.get_window_extent(renderer).x0 + 1:
+            problems.append("panels overlap")
+        if right.get_tightbbox(renderer).x0 < left.get_window_extent(renderer).x1 - 1:
+            problems.append("panels overlap")
+    return problems
+
+
+@pytest.mark.parametrize("n_directions", [1, 5])
+def test_result_figures_keep_every_label_inside_and_apart(n_directions):
+    # Fixed layouts (no layout engine) computed from the labels: checked on crowded cases with Agg's own text extents.
+    rng = np.random.default_rng(1)
+    counts = ["10", "25", "50", "100", "200", "400", "1000", "all"]
+    rows = pd.DataFrame({"n_voxels": counts, "mean": rng.uniform(0.3, 0.9, 8), "ci_low": 0.2, "ci_high": 0.95,
+                         "chance": 1 / 3, "p_fwe": 0.01})
+    subjects = pd.DataFrame({"subject": np.repeat(["01", "02"], 8), "n_voxels": counts * 2, "n_used": 10,
+                             "balanced_accuracy": rng.uniform(0, 1, 16)})
+    subjects["n_used"] = [int(c) if c != "all" else 12345 for c in counts] * 2
+    panel = dict(report.curve_data(rows, subjects, 12345.0, ALPHA), label="a_long_set_name<->another_long_set_name")
+    assert _layout_problems(report.curve_figure([panel] * n_directions, "analysis shape_seen_heard, ROI ember", ALPHA)) == []
+    classes = ["round", "square", "star", "a_much_longer_class_name"]
+    shares = {f"d{k}": group_confusion_matrix(rng, len(classes)) for k in range(n_directions)}
+    figure = report.confusion_figure(shares, list(shares), classes, "analysis shape, ROI ember: 100 voxels", 12)
+    assert _layout_problems(figure) == []
+    rois = ["ember", "glow", "hush", "emberL", "emberR", "glowL", "glowR", "hushL", "hushR"][: 2 + 3 * (n_directions > 1)]
+    comparison = [{"direction": f"d{k}", "rois": rois, "scores": [rng.uniform(0, 1, 8) for _ in rois],
+                   "mean": np.full(len(rois), 0.5), "ci_low": np.full(len(rois), 0.4), "ci_high": np.full(len(rois), 0.6),
+                   "chance": np.full(len(rois), 1 / 3), "p_fwe": np.full(len(rois), 0.01)} for k in range(n_directions)]
+    assert _layout_problems(report.comparison_figure(comparison, "analysis shape: ROIs at 100 voxels", ALPHA)) == []
+
+
+def group_confusion_matrix(rng, n_classes):
+    counts = rng.integers(0, 10, (n_classes, n_classes))
+    return report.group_confusion([counts])

@@ -8,6 +8,7 @@ colour-blind-safe palette of Okabe & Ito (2008, "Color Universal Design";
 hex values from memory), with labels in words and units on every axis.
 """
 
+import functools
 import math
 
 import numpy as np
@@ -651,6 +652,62 @@ def searchlight_clusters(mean_maps, p_fwe_maps, directions, affine, alpha):
 
 
 # -- results figures -------------------------------------------------------------------
+#
+# The result figures are laid out in inches computed from their own labels (widths measured in the font
+# matplotlib draws with), not by a layout engine: constrained layout measures every text of a figure
+# again on each draw, most of a preview's cost (benchmarks/bench_report.py). tests/test_report.py checks,
+# for crowded cases, that every text lies inside the figure and that the legend overlaps no panel.
+
+_LINE_IN = 1.25 / 72  # a text line's height per point of font size (inches; DejaVu Sans line spacing, common practice)
+_PAD_IN = 0.06
+
+
+@functools.lru_cache(maxsize=1)
+def _measuring_font():
+    from PIL import ImageFont
+
+    from foldwise.glm.design_image import font_path  # DejaVu Sans, matplotlib's default font
+
+    return ImageFont.truetype(font_path(), 100)
+
+
+def _text_width_in(text, size_pt):
+    """Width of ``text`` in DejaVu Sans (matplotlib's default font) at ``size_pt``, in inches."""
+    return _measuring_font().getlength(str(text)) / 100.0 * size_pt / 72.0
+
+
+def _rotated_drop_in(labels, size_pt, degrees):
+    """How far rotated tick labels reach below their ticks (inches), with the tick and its pad."""
+    angle = math.radians(degrees)
+    longest = max((_text_width_in(label, size_pt) for label in labels), default=0.0)
+    return longest * math.sin(angle) + size_pt * _LINE_IN * math.cos(angle) + 7.0 / 72  # tick 3.5 pt + pad 3.5 pt
+
+
+def _legend_height_in(n_rows, size_pt):
+    """A frameless legend's height: its rows (text and spacing) and its border padding (matplotlib's defaults)."""
+    return n_rows * size_pt * 1.5 / 72 + 2 * 0.4 * size_pt / 72 + 0.5 * size_pt / 72
+
+
+def _legend_width_in(texts, n_columns, size_pt):
+    """A legend's width with ``n_columns`` (filled column by column, as matplotlib does): per column its widest text,
+    the handle (2 em) and its pad (0.8 em), and 2 em between columns (matplotlib's defaults)."""
+    n_rows = math.ceil(len(texts) / n_columns)
+    columns = [texts[start:start + n_rows] for start in range(0, len(texts), n_rows)]
+    em = size_pt / 72
+    return (sum(max(_text_width_in(text, size_pt) for text in column) + 2.8 * em for column in columns)
+            + 2.0 * em * (len(columns) - 1) + 0.8 * em)
+
+
+def _place_panels(figure, n_panels, left_in, right_in, bottom_in, top_in, gap_in):
+    """Lay out ``n_panels`` side by side with margins and gaps in inches (``subplots_adjust`` fractions)."""
+    width, height = figure.get_size_inches()
+    available = width - left_in - right_in
+    panel_in = max((available - (n_panels - 1) * gap_in) / n_panels, 0.5)
+    figure.subplots_adjust(left=left_in / width, right=1.0 - right_in / width, bottom=bottom_in / height,
+                           top=1.0 - top_in / height, wspace=gap_in / panel_in if n_panels > 1 else 0.0)
+
+
+_TOP_IN = 0.62  # suptitle and panel titles above the panels
 
 def _score_limits(panels):
     values = [panel["scores"][np.isfinite(panel["scores"])] for panel in panels]
@@ -690,7 +747,15 @@ def curve_figure(panels, title, alpha):
     if not panels:
         raise InputError(None, "direction", "no direction to draw", "rerun the group stage")
     width = 6.6 if len(panels) == 1 else 3.4 * len(panels)
-    figure = Figure(figsize=(width, 4.4), layout="constrained")
+    n_columns = 2 if len(panels) == 1 else 3
+    figure = Figure(figsize=(width, 4.4))
+    labels = [label for panel in panels for label in panel["labels"]]
+    legend_in = _legend_height_in(math.ceil(6 / n_columns), _FONT_SIZE - 1)
+    first_label_in = max(_text_width_in(panel["labels"][0], _FONT_SIZE - 1) for panel in panels) * math.sin(math.pi / 4)
+    _place_panels(figure, len(panels), left_in=0.72, right_in=0.2,
+                  bottom_in=_PAD_IN + legend_in + _PAD_IN + _FONT_SIZE * _LINE_IN + 4.0 / 72
+                  + _rotated_drop_in(labels, _FONT_SIZE - 1, 45), top_in=_TOP_IN,
+                  gap_in=0.2 + first_label_in)
     axes_list = np.atleast_1d(figure.subplots(1, len(panels), sharey=True, squeeze=False)[0])
     low, high = _score_limits(panels)
     for index, (axes, panel) in enumerate(zip(axes_list, panels)):
@@ -736,8 +801,8 @@ def curve_figure(panels, title, alpha):
         Line2D([], [], color=grey, marker="o", markerfacecolor="white", linestyle="none",
                label="ROI smaller than the count for some subjects"),
     ]
-    figure.legend(handles=handles, loc="outside lower center", ncols=2 if len(panels) == 1 else 3,
-                  fontsize=_FONT_SIZE - 1, frameon=False)
+    figure.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, _PAD_IN / 4.4), ncols=n_columns,
+                  fontsize=_FONT_SIZE - 1, frameon=False, borderaxespad=0.0)
     figure.suptitle(title, fontsize=_FONT_SIZE + 2)
     return figure
 
@@ -795,7 +860,15 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
 
     n_panels = len(directions)
     side = 0.42 * len(classes) + 1.0
-    figure = Figure(figsize=(max(4.2, side * n_panels + 1.4), side + 1.5), layout="constrained")
+    width, height = max(4.2, side * n_panels + 1.4), side + 1.5
+    figure = Figure(figsize=(width, height))
+    class_in = max(_text_width_in(name, _FONT_SIZE - 1) for name in classes)
+    bar_label = [f"share of the true class's test samples", f"(mean of {n_subjects} subjects)"]
+    right_in = 0.12 + 0.15 + 7.0 / 72 + _text_width_in("100", _FONT_SIZE - 1) + 0.1 + 2 * (_FONT_SIZE - 1) * _LINE_IN + 0.08
+    bottom_in = _PAD_IN + _FONT_SIZE * _LINE_IN + 4.0 / 72 + _rotated_drop_in(classes, _FONT_SIZE - 1, 30)
+    left_in = 0.08 + _FONT_SIZE * _LINE_IN + 4.0 / 72 + class_in + 7.0 / 72
+    _place_panels(figure, n_panels, left_in=left_in, right_in=right_in, bottom_in=bottom_in, top_in=_TOP_IN - 0.06,
+                  gap_in=class_in + 7.0 / 72 + 0.15)
     panels = np.atleast_1d(figure.subplots(1, n_panels, squeeze=False)[0])
     colour_map = colormaps["cividis"]
     image = None
@@ -811,8 +884,12 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
         axes.set_xlabel("predicted class", fontsize=_FONT_SIZE)
         axes.set_title(direction_label(direction), fontsize=_FONT_SIZE)
     panels[0].set_ylabel("true class", fontsize=_FONT_SIZE)
-    bar = figure.colorbar(image, ax=list(panels), shrink=0.85)
-    bar.set_label(f"share of the true class's test samples (mean of {n_subjects} subjects)", fontsize=_FONT_SIZE - 1)
+    # The colour bar in its own strip at the right, 85% of the panels' height (placed, not taken from the panels).
+    bottom, top = bottom_in / height, 1.0 - (_TOP_IN - 0.06) / height
+    bar_axes = figure.add_axes((1.0 - (right_in - 0.12) / width, bottom + 0.075 * (top - bottom), 0.15 / width,
+                                0.85 * (top - bottom)))
+    bar = figure.colorbar(image, cax=bar_axes)
+    bar.set_label("\n".join(bar_label), fontsize=_FONT_SIZE - 1)
     bar.ax.tick_params(labelsize=_FONT_SIZE - 1)
     figure.suptitle(title, fontsize=_FONT_SIZE + 1)
     return figure
@@ -880,7 +957,14 @@ def comparison_figure(panels, title, alpha):
     from matplotlib.lines import Line2D
 
     n_rois = len(panels[0]["rois"])
-    figure = Figure(figsize=(max(4.6, (0.9 * n_rois + 1.2) * len(panels)), 4.2), layout="constrained")
+    width = max(4.6, (0.9 * n_rois + 1.2) * len(panels))
+    figure = Figure(figsize=(width, 4.2))
+    legend_texts = ["single subjects", "group mean and 95% confidence interval", "chance level",
+                    f"p (family-wise corrected) < {alpha:g}"]
+    n_columns = next(n for n in (4, 2, 1) if _legend_width_in(legend_texts, n, _FONT_SIZE - 1) <= width - 0.2)
+    _place_panels(figure, len(panels), left_in=0.72, right_in=0.2,
+                  bottom_in=_PAD_IN + _legend_height_in(4 // n_columns, _FONT_SIZE - 1) + _PAD_IN
+                  + _FONT_SIZE * _LINE_IN + 7.0 / 72, top_in=_TOP_IN, gap_in=0.2)
     axes_list = np.atleast_1d(figure.subplots(1, len(panels), sharey=True, squeeze=False)[0])
     low, high = 1.0, 0.0
     for panel in panels:
@@ -909,12 +993,12 @@ def comparison_figure(panels, title, alpha):
         axes.grid(True, axis="y", color="0.9", linewidth=0.6)
         axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
     axes_list[0].set_ylabel("balanced accuracy (proportion)", fontsize=_FONT_SIZE)
-    handles = [Line2D([], [], color="0.4", marker="o", linestyle="none", label="single subjects"),
-               Line2D([], [], color="black", marker="D", label="group mean and 95% confidence interval"),
-               Line2D([], [], color="0.3", linestyle="--", label="chance level"),
-               Line2D([], [], color="black", marker="*", markersize=10, linestyle="none",
-                      label=f"p (family-wise corrected) < {alpha:g}")]
-    figure.legend(handles=handles, loc="outside lower center", ncols=4, fontsize=_FONT_SIZE - 1, frameon=False)
+    handles = [Line2D([], [], color="0.4", marker="o", linestyle="none", label=legend_texts[0]),
+               Line2D([], [], color="black", marker="D", label=legend_texts[1]),
+               Line2D([], [], color="0.3", linestyle="--", label=legend_texts[2]),
+               Line2D([], [], color="black", marker="*", markersize=10, linestyle="none", label=legend_texts[3])]
+    figure.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, _PAD_IN / 4.2), ncols=n_columns,
+                  fontsize=_FONT_SIZE - 1, frameon=False, borderaxespad=0.0)
     figure.suptitle(title, fontsize=_FONT_SIZE + 1)
     return figure
 

@@ -1,6 +1,6 @@
 # Per subject x analysis: fold-aware selection, decoding curves and the
 # permutation null of every ROI of the analysis (one job, the patterns read
-# once; each ROI a part of the job's memo), then the gathered tables.
+# once; each ROI a part of the job's memo), then the gathered tables; both inside Snakemake's process.
 # A rule's outputs cannot depend on a wildcard: the analyses that decode
 # another list of ROIs get a rule of their own (decode_2, ...; plan.roi_list_rules).
 import re
@@ -31,10 +31,14 @@ for _number, (_analyses, _rois) in enumerate(plan.roi_list_rules(MODEL, "decode"
             mem_mb=2000,
             # the allowance of one ROI (30 min, the earlier job's) for each ROI of the analysis
             runtime=30 * len(_rois),
-        conda:
-            "../envs/foldwise.yaml"
-        script:
-            "../scripts/decode.py"
+        # Inside Snakemake's process (a thread; no conda: here, run: takes none): a process of its own
+        # starts Python and imports (~0.35 s of CPU), and with the linear SVM all of scikit-learn
+        # (~1 s), for every subject x analysis; a one-ROI change reruns every decode job of the study
+        # (docs/speed.md). The job's arrays are numpy's, which releases the GIL in its loops.
+        run:
+            from foldwise.jobs import decode as decode_job
+
+            run_in_process("decode", decode_job.run, input, output, params, wildcards, log, config)
 
 
 rule decode_gather:

@@ -1,6 +1,7 @@
 # Geometry analyses (docs/geometry.md): per subject the betas and residuals of the
 # geometry ROIs' voxels; per analysis x subject the dissimilarities and model
-# fits; per analysis the group tests, noise ceilings and figures.
+# fits (inside Snakemake's process); per analysis the group tests, noise ceilings and figures.
+from foldwise.provenance.memo import run_in_process
 
 
 rule geometry_patterns:
@@ -37,10 +38,13 @@ rule geometry_subject:
     resources:
         mem_mb=2000,
         runtime=20,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/geometry_subject.py"
+    # Inside Snakemake's process (no conda: here; run: takes none): distances and model fits on the ROI
+    # patterns geometry_patterns wrote (0.04 s in-job CPU per demo job); a process of its own costs ~0.45 s
+    # of CPU more. Imported on first use, so a dry run does not import the geometry modules.
+    run:
+        from foldwise.jobs import geometry_subject as geometry_subject_job
+
+        run_in_process("geometry_subject", geometry_subject_job.run, input, output, params, wildcards, log, config)
 
 
 rule geometry_group:

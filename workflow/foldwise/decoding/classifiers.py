@@ -25,6 +25,7 @@ when the classes are equal. So on noise, predictions do not pile onto the
 majority class, and balanced accuracy stays at chance.
 """
 
+import threading
 import warnings
 
 import numpy as np
@@ -697,6 +698,9 @@ def linear_svm_fit_predict(train_gram, train_labels, test_gram, C=1.0, return_mo
 
 
 # -- L2 logistic regression ------------------------------------------------------------
+_WARNINGS_LOCK = threading.Lock()
+
+
 def logistic_l2_fit_predict(train_patterns, train_labels, test_patterns, C=1.0, return_models=False):
     """L2-penalised (multinomial) logistic regression, one scikit-learn fit per label set.
 
@@ -739,7 +743,9 @@ def logistic_l2_fit_predict(train_patterns, train_labels, test_patterns, C=1.0, 
     for row in range(n_label_sets):
         if np.unique(rows[row]).size < 2:
             raise InputError(None, "labels", "logistic regression needs two classes in training", "train on folds with every class")
-        with warnings.catch_warnings(record=True) as caught:
+        # catch_warnings swaps process-wide state: decode jobs run in threads of Snakemake's process (local
+        # profile), so one fit at a time records, or a thread would count another's warnings or lose its own.
+        with _WARNINGS_LOCK, warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", ConvergenceWarning)
             model = LogisticRegression(C=float(C), class_weight="balanced").fit(trains[0 if trains.shape[0] == 1 else row], rows[row])
         n_not_converged += any(issubclass(item.category, ConvergenceWarning) for item in caught)

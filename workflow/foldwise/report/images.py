@@ -83,15 +83,22 @@ class _Slicer:
     def orient(self, volume):
         return _oriented(np.asarray(volume), self.flips)
 
-    def pixels(self, volume, axis, index):
-        """The slice ``index`` across ``axis`` as a pixel array (top row: the largest vertical coordinate)."""
+    def voxels(self, volume, axis, index):
+        """The slice ``index`` across ``axis`` at voxel resolution (top row: the largest vertical coordinate)."""
+        return _take(volume, axis, index)[::-1]  # rows: vertical axis, top = largest
+
+    def upsample(self, values, axis):
+        """A slice (2D, or 2D with channels) of the plane across ``axis`` as pixels: each voxel a block of its size in mm."""
         horizontal, vertical = [a for a in range(3) if a != axis]
-        values = _take(volume, axis, index)[::-1]  # rows: vertical axis, top = largest
         width = max(1, int(round(len(self.coordinates[horizontal]) * self.steps[horizontal] * self.px_per_mm)))
         height = max(1, int(round(len(self.coordinates[vertical]) * self.steps[vertical] * self.px_per_mm)))
         columns = np.minimum(((np.arange(width) + 0.5) * values.shape[1] / width).astype(np.int64), values.shape[1] - 1)
         rows = np.minimum(((np.arange(height) + 0.5) * values.shape[0] / height).astype(np.int64), values.shape[0] - 1)
-        return values[np.ix_(rows, columns)]
+        return values[rows][:, columns]
+
+    def pixels(self, volume, axis, index):
+        """The slice ``index`` across ``axis`` as a pixel array (top row: the largest vertical coordinate)."""
+        return self.upsample(self.voxels(volume, axis, index), axis)
 
     def title(self, axis, index):
         return f"{_SLICE_NAMES[axis]}, {self.names[axis]} = {self.coordinates[axis][index]:g} mm"
@@ -310,12 +317,13 @@ def roi_masks_png(roi, subjects, affine, colour, title):
         low, high = _window(mean[brain] if brain.any() else mean)
         panels = []
         for axis, index in enumerate(best_slices(mask if mask.any() else brain)):
-            rgb = _grey(slicer.pixels(mean, axis, index), low, high)
-            roi_pixels = slicer.pixels(mask, axis, index)
-            overlay = roi_overlay([roi_pixels], [tuple(np.asarray(colour) / 255.0) + (_FILL_OPACITY,)])
-            rgb = rgb * (1.0 - overlay[..., 3:]) + overlay[..., :3] * overlay[..., 3:]
+            # the fill is composited voxel by voxel, then every voxel becomes its block of pixels; outlines are pixels
+            roi_voxels = slicer.voxels(mask, axis, index)
+            overlay = roi_overlay([roi_voxels], [tuple(np.asarray(colour) / 255.0) + (_FILL_OPACITY,)])
+            rgb = _grey(slicer.voxels(mean, axis, index), low, high)
+            rgb = slicer.upsample(rgb * (1.0 - overlay[..., 3:]) + overlay[..., :3] * overlay[..., 3:], axis)
             _paint_edges(rgb, slicer.pixels(brain, axis, index), brain_colour, 2)
-            _paint_edges(rgb, roi_pixels, colour, 1)
+            _paint_edges(rgb, slicer.upsample(roi_voxels, axis), colour, 1)
             panels.append((slicer.title(axis, index), _to_bytes(rgb), slicer.sides(axis)))
         n_voxels = int(mask.sum())
         rows.append((f"{label}\n{n_voxels} voxels" if n_voxels else f"{label}\nempty", panels))

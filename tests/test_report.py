@@ -1004,7 +1004,7 @@ def test_printed_pdf_leads_with_the_answer(printed):
     printed = _printed_or_fail(printed)
     text = " ".join(_words(printed["text"]))
     answer = text.index(" ".join(_words("ROI ember, within: above chance after")))
-    first_quality_figure = text.index(" ".join(_words("regressors (rows, grouped by kind")))
+    first_quality_figure = text.index(" ".join(_words("the design as the GLM job drew it")))
     assert answer < first_quality_figure
 
 

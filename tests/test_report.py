@@ -1294,3 +1294,10 @@ def test_result_figures_keep_every_label_inside_and_apart(n_directions):
 def group_confusion_matrix(rng, n_classes):
     counts = rng.integers(0, 10, (n_classes, n_classes))
     return report.group_confusion([counts])
+
+
+def test_the_page_says_how_to_get_the_publication_files(built):
+    # The default run writes previews only; the page names the target that writes PNG 300 dpi, SVG and PDF.
+    text = _text(built["html"])
+    assert "--cores 2 paper_figures" in text and "PNG at 300 dpi, SVG with text kept as text, PDF" in text
+    assert text.count("written on request by the paper_figures target") == len(built["outputs"]["figures"]) // 3

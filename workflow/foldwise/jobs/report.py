@@ -790,7 +790,8 @@ def run(inputs, outputs, params, log):
 def _figure(context, entry, heading=None, heading_id=None):
     png, alt, caption = context["blocks"][entry["stem"]]
     formats = [Path(path).name.split(".", 1)[1] for path in entry["paths"]]
-    note = "written by the paper_figures target (see the top of this section)" if entry["publication"] else None
+    note = ("written on request by the paper_figures target: see the top of Results per analysis" if entry["publication"]
+            else None)
     return html_page.figure_block(png, entry["stem"], alt, caption, formats=formats, heading=heading,
                                   heading_id=heading_id, files_dir=context["files_href"], files_note=note)
 

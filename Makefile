@@ -19,7 +19,7 @@ ifdef PACKAGE_CHANGE
 export FOLDWISE_PACKAGE_CHANGE := $(PACKAGE_CHANGE)
 endif
 
-.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean store-check store-clean calibrate
+.PHONY: demo study check test env bundle verify benchmark lint cluster-test clean store-check store-clean calibrate figures
 
 $(STAMP): requirements/lock.txt pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -40,6 +40,10 @@ study: $(STAMP)
 # The design self-check: every decoding analysis on noise of the study's own design (docs/inference.md); not part of `make demo`.
 calibrate: $(STAMP)
 	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES) -- calibration
+
+# The result figures' publication files (PNG 300 dpi, SVG, PDF) for a paper; not part of `make demo` (docs/report.md).
+figures: $(STAMP)
+	$(BIN)/snakemake --profile config/profiles/local --cores $(CORES) --config config_file=$(CONFIG) $(OVERRIDES) -- paper_figures
 
 # What the dataset holds per subject, and every configured condition some subject lacks (reads headers only).
 check: $(STAMP)

@@ -1301,3 +1301,44 @@ def test_the_page_says_how_to_get_the_publication_files(built):
     text = _text(built["html"])
     assert "--cores 2 paper_figures" in text and "PNG at 300 dpi, SVG with text kept as text, PDF" in text
     assert text.count("written on request by the paper_figures target") == len(built["outputs"]["figures"]) // 3
+
+
+def test_a_preview_drawn_on_a_reused_figure_is_the_preview_of_a_new_figure(tmp_path):
+    # The report draws every ROI's curves (and confusions) of an analysis on one figure, replacing its artists' data,
+    # ticks, limits and layout: drawn A, then B, then A again on that figure, A must give the bytes of A drawn on a new
+    # figure. B differs from A in every replaced part (data, 'all' position and label, dropped counts, stars, capped
+    # points, NaN band cells, y range; a NaN share and other colours in the confusion cells).
+    from foldwise.report import drawing
+
+    def curve_panels(shift, roi_voxels, n_used_small):
+        counts = ["5", "20", "50", "all"]
+        rows = pd.DataFrame({"n_voxels": counts, "mean": [0.4 + shift, 0.5, 0.62, 0.6 - shift],
+                             "ci_low": [0.3, np.nan if shift else 0.4, 0.5, 0.5], "ci_high": [0.5, 0.6, 0.7, 0.7 + shift],
+                             "chance": [1 / 3] * 4, "p_fwe": [0.5, 0.01, 0.2 if shift else 0.02, 0.02]})
+        subjects = pd.DataFrame({"subject": np.repeat(["01", "02"], 4), "n_voxels": counts * 2,
+                                 "n_used": [5, 20, n_used_small, n_used_small] * 2,
+                                 "balanced_accuracy": [0.4, 0.5 + shift, 0.6, 0.55, 0.45, 0.55, 0.5, 0.6 - shift]})
+        return [dict(report.curve_data(rows, subjects, roi_voxels, ALPHA), label=label) for label in ("a->a", "a->b")]
+
+    classes = ["round", "square", "star"]
+    shares_a = {"a->a": np.array([[0.7, 0.2, 0.1], [0.1, 0.8, 0.1], [0.3, 0.3, 0.4]]), "a->b": np.full((3, 3), 1 / 3)}
+    shares_b = {"a->a": np.array([[0.2, 0.7, 0.1], [np.nan] * 3, [0.1, 0.1, 0.8]]), "a->b": np.eye(3)}
+    figures = {
+        "curve": (lambda pool, which: report.curve_figure(curve_panels(0.0, 64.0, 50) if which == "A"
+                                                          else curve_panels(0.15, 23.0, 23), f"ROI {which}", ALPHA,
+                                                          pool=pool)),
+        "confusion": (lambda pool, which: report.confusion_figure(shares_a if which == "A" else shares_b, ["a->a", "a->b"],
+                                                                  classes, f"ROI {which}", 2, pool=pool)),
+    }
+    for kind, draw in figures.items():
+        pool = {}
+        reused = []
+        for which in ("A", "B", "A"):
+            drawing.save_preview(draw(pool, which), str(tmp_path / f"{kind}-{which}.png"))
+            reused.append((tmp_path / f"{kind}-{which}.png").read_bytes())
+        assert len(pool) == 1  # one figure drawn three times
+        drawing.save_preview(draw(None, "A"), str(tmp_path / f"{kind}-fresh.png"))
+        drawing.save_preview(draw(None, "B"), str(tmp_path / f"{kind}-fresh-B.png"))
+        assert reused[2] == (tmp_path / f"{kind}-fresh.png").read_bytes()
+        assert reused[1] == (tmp_path / f"{kind}-fresh-B.png").read_bytes()
+        assert reused[0] != reused[1]

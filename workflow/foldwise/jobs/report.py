@@ -316,13 +316,19 @@ def _built(build):
     return {"builder": build.func.__name__, "data": data_digest(list(build.args), build.keywords)}
 
 
-def _draw_or_restore(parts, entry, identity, build, publication=False):
+# Result figures whose builder can reuse a figure of the same arrangement (``pool``): the previews of every ROI of
+# an analysis are drawn on one figure per kind, its artists' data replaced (foldwise.report.figures.curve_figure).
+_REUSABLE_KINDS = ("curve", "confusion")
+
+
+def _draw_or_restore(parts, entry, identity, build, publication=False, pool=None):
     """Restore the figure's files when its data did not change, else draw them.
 
     The report job writes the PNG the page embeds (a result figure's screen
     preview, or a quality check's own PNG); the ``report_files`` job writes
     a result figure's publication files. ``build()`` returns a matplotlib
-    figure or, for a quality check, the PNG's bytes.
+    figure or, for a quality check, the PNG's bytes. ``pool`` (previews
+    only) keeps the figures that later previews of the same kind reuse.
     """
     outputs = ({Path(path).suffix.lstrip("."): path for path in entry["paths"]} if publication
                else {"preview": entry["preview"]})
@@ -335,7 +341,7 @@ def _draw_or_restore(parts, entry, identity, build, publication=False):
     collecting = gc.isenabled()
     gc.disable()
     try:
-        drawn = build()
+        drawn = build(pool=pool) if pool is not None and entry["kind"] in _REUSABLE_KINDS else build()
         if isinstance(drawn, bytes):
             write_bytes_atomic(entry["preview"], drawn)
         elif publication:
@@ -761,9 +767,9 @@ def run(inputs, outputs, params, log):
     # Read and check everything first, draw afterwards: bad input stops the job before any drawing
     # (the images of the quality-check figures are checked when those figures are drawn).
     specifications = [_FIGURE_SPECIFICATIONS[entry["kind"]](entry, data, log) for entry in catalogue]
-    blocks = {}
+    blocks, pool = {}, {}
     for entry, (identity, build, alt, caption) in zip(catalogue, specifications):
-        _draw_or_restore(data["parts"], entry, identity, build)
+        _draw_or_restore(data["parts"], entry, identity, build, pool=pool)
         blocks[entry["stem"]] = (Path(entry["preview"]).read_bytes(), alt, caption)
     means, counts, alpha, analyses = data["means"], data["counts"], data["alpha"], data["analyses"]
     roi_names, group_tables = data["roi_names"], data["group_tables"]

@@ -130,12 +130,15 @@ def save_preview(figure, preview_path):
     Pillow: ``savefig`` would draw a figure with a layout engine twice (a
     dry run to lay it out, then the picture) and encode a PNG that is
     decoded again to reduce its colours. The pixels are the ones ``savefig``
-    gives at the same dpi (``tests/test_report.py`` compares them).
+    gives at the same dpi (``tests/test_report.py`` compares them). A figure
+    drawn again keeps its Agg canvas (and the renderer's cache of text
+    metrics): the pixels are those of a new canvas (tested).
     """
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
     figure.set_dpi(PREVIEW_DPI)
-    canvas = FigureCanvasAgg(figure)
+    # A figure drawn again (reused for another preview) keeps its canvas, whose renderer caches the text metrics.
+    canvas = figure.canvas if isinstance(figure.canvas, FigureCanvasAgg) else FigureCanvasAgg(figure)
     canvas.draw()
     write_bytes_atomic(preview_path, _palette_png(np.asarray(canvas.buffer_rgba())))
 

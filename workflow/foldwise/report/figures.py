@@ -719,7 +719,16 @@ def _score_limits(panels):
     return (low, high) if high > low else (max(0.0, low - 0.05), min(1.0, high + 0.05))
 
 
-def curve_figure(panels, title, alpha):
+def _held(pool, key, make):
+    """The figure kept in ``pool`` under ``key``, made by ``make()`` when absent (no pool: always made)."""
+    if pool is None:
+        return make()
+    if key not in pool:
+        pool[key] = make()
+    return pool[key]
+
+
+def curve_figure(panels, title, alpha, pool=None):
     """Decoding curves: balanced accuracy against the number of voxels, one panel per direction.
 
     Parameters
@@ -729,6 +738,13 @@ def curve_figure(panels, title, alpha):
     title : str
     alpha : float
         Shown in the legend of the significance markers.
+    pool : dict, optional
+        Figures kept for reuse: a figure with the same panels, subjects and
+        alpha is taken from it and its artists' data, ticks, limits and
+        layout replaced, instead of building a new figure, axes, ticks and
+        legend (most of a preview's building cost). The picture is the one a
+        new figure gives (``tests/test_report.py`` compares the pixels).
+        The returned figure belongs to the pool: draw it before the next call.
 
     Returns
     -------
@@ -739,58 +755,52 @@ def curve_figure(panels, title, alpha):
         open circles: the ROI held fewer voxels than requested for at least
         one subject.
     """
+    if not panels:
+        raise InputError(None, "direction", "no direction to draw", "rerun the group stage")
+    key = ("curve", tuple(panel["label"] for panel in panels), len(panels[0]["subjects"]), float(alpha))
+    held = _held(pool, key, lambda: _curve_skeleton([panel["label"] for panel in panels], len(panels[0]["subjects"]),
+                                                    alpha))
+    _curve_update(held, panels, title)
+    return held["figure"]
+
+
+def _curve_skeleton(labels, n_subjects, alpha):
+    """A curve figure's fixed parts (axes, artists without data, legend), for :func:`_curve_update` to fill in."""
     from matplotlib.figure import Figure
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
     from matplotlib.ticker import NullLocator
 
-    if not panels:
-        raise InputError(None, "direction", "no direction to draw", "rerun the group stage")
-    width = 6.6 if len(panels) == 1 else 3.4 * len(panels)
-    n_columns = 2 if len(panels) == 1 else 3
+    n_panels = len(labels)
+    width = 6.6 if n_panels == 1 else 3.4 * n_panels
+    n_columns = 2 if n_panels == 1 else 3
     figure = Figure(figsize=(width, 4.4))
-    labels = [label for panel in panels for label in panel["labels"]]
-    legend_in = _legend_height_in(math.ceil(6 / n_columns), _FONT_SIZE - 1)
-    first_label_in = max(_text_width_in(panel["labels"][0], _FONT_SIZE - 1) for panel in panels) * math.sin(math.pi / 4)
-    _place_panels(figure, len(panels), left_in=0.72, right_in=0.2,
-                  bottom_in=_PAD_IN + legend_in + _PAD_IN + _FONT_SIZE * _LINE_IN + 4.0 / 72
-                  + _rotated_drop_in(labels, _FONT_SIZE - 1, 45), top_in=_TOP_IN,
-                  gap_in=0.2 + first_label_in)
-    axes_list = np.atleast_1d(figure.subplots(1, len(panels), sharey=True, squeeze=False)[0])
-    low, high = _score_limits(panels)
-    for index, (axes, panel) in enumerate(zip(axes_list, panels)):
+    axes_list = np.atleast_1d(figure.subplots(1, n_panels, sharey=True, squeeze=False)[0])
+    empty = np.array([1.0, 2.0]), np.array([np.nan, np.nan])
+    artists = []
+    for index, (axes, label) in enumerate(zip(axes_list, labels)):
         colour = OKABE_ITO[_PANEL_COLOURS[index % len(_PANEL_COLOURS)]]
-        x = panel["x"]
-        for scores in panel["scores"]:
-            axes.plot(x, scores, color=colour, alpha=0.35, linewidth=0.8)
-        band = np.isfinite(panel["ci_low"]) & np.isfinite(panel["ci_high"])
-        if band.any():
-            axes.fill_between(x, panel["ci_low"], panel["ci_high"], where=band, color=colour, alpha=0.2, linewidth=0)
-        axes.plot(x, panel["chance"], color="0.3", linestyle="--", linewidth=1.0)
-        axes.plot(x, panel["mean"], color=colour, linewidth=2.0)
-        full, capped = ~panel["capped"], panel["capped"]
-        axes.scatter(x[full], panel["mean"][full], s=28, color=colour, zorder=3)
-        axes.scatter(x[capped], panel["mean"][capped], s=28, facecolors="white", edgecolors=colour, zorder=3)
-        significant = panel["significant"]
-        if significant.any():  # a row of stars along the top, so they hide no point of the curve
-            axes.scatter(x[significant], np.full(int(significant.sum()), _STAR_ROW), s=90, marker="*",
-                         color=OKABE_ITO["black"], transform=axes.get_xaxis_transform(), zorder=4)
-        if panel["counts"][-1] == "all" and len(x) > 1:  # 'all' is a size of its own: set apart by a dotted line
-            axes.axvline(math.sqrt(x[-2] * x[-1]), color="0.6", linestyle=":", linewidth=0.8)
+        # Created in the order a figure drawn from scratch adds them (equal z-orders draw in that order).
+        subject_lines = [axes.plot(*empty, color=colour, alpha=0.35, linewidth=0.8)[0] for _ in range(n_subjects)]
+        band = axes.fill_between(*empty, empty[1], color=colour, alpha=0.2, linewidth=0)
+        chance = axes.plot(*empty, color="0.3", linestyle="--", linewidth=1.0)[0]
+        mean = axes.plot(*empty, color=colour, linewidth=2.0)[0]
+        full = axes.scatter([], [], s=28, color=colour, zorder=3)
+        capped = axes.scatter([], [], s=28, facecolors="white", edgecolors=colour, zorder=3)
+        # A row of stars along the top, so they hide no point of the curve.
+        stars = axes.scatter([], [], s=90, marker="*", color=OKABE_ITO["black"], transform=axes.get_xaxis_transform(),
+                             zorder=4)
+        divider = axes.axvline(1.0, color="0.6", linestyle=":", linewidth=0.8)
         axes.set_xscale("log")
-        axes.set_xticks(x)
-        axes.set_xticklabels(panel["labels"], rotation=45, ha="right", fontsize=_FONT_SIZE - 1)
         axes.xaxis.set_minor_locator(NullLocator())
-        axes.set_xlim(x.min() / 1.35, x.max() * 1.35)
-        axes.set_ylim(low, high + _STAR_HEADROOM)
-        axes.set_yticks([tick for tick in np.round(np.arange(0.0, 1.0001, 0.1), 1) if low <= tick <= high])
         axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
-        axes.set_title(panel["label"], fontsize=_FONT_SIZE + 1)
+        axes.set_title(label, fontsize=_FONT_SIZE + 1)
         axes.set_xlabel("number of voxels (log scale)", fontsize=_FONT_SIZE)
         axes.grid(True, axis="y", color="0.9", linewidth=0.6)
+        artists.append({"subjects": subject_lines, "band": band, "chance": chance, "mean": mean, "full": full,
+                        "capped": capped, "stars": stars, "divider": divider})
     axes_list[0].set_ylabel("balanced accuracy (proportion)", fontsize=_FONT_SIZE)
     grey = "0.35"
-    n_subjects = len(panels[0]["subjects"])
     handles = [
         Line2D([], [], color=grey, linewidth=2.0, marker="o", label=f"group mean ({n_subjects} subjects)"),
         Patch(facecolor=grey, alpha=0.25, label="95% confidence interval of the mean"),
@@ -803,7 +813,46 @@ def curve_figure(panels, title, alpha):
     ]
     figure.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, _PAD_IN / 4.4), ncols=n_columns,
                   fontsize=_FONT_SIZE - 1, frameon=False, borderaxespad=0.0)
-    figure.suptitle(title, fontsize=_FONT_SIZE + 2)
+    title = figure.suptitle("", fontsize=_FONT_SIZE + 2)
+    return {"figure": figure, "axes": axes_list, "artists": artists, "title": title, "n_columns": n_columns}
+
+
+def _curve_update(held, panels, title):
+    """Put one ROI's curves into a figure from :func:`_curve_skeleton`: data, ticks, limits, layout and title."""
+    figure, n_columns = held["figure"], held["n_columns"]
+    labels = [label for panel in panels for label in panel["labels"]]
+    legend_in = _legend_height_in(math.ceil(6 / n_columns), _FONT_SIZE - 1)
+    first_label_in = max(_text_width_in(panel["labels"][0], _FONT_SIZE - 1) for panel in panels) * math.sin(math.pi / 4)
+    _place_panels(figure, len(panels), left_in=0.72, right_in=0.2,
+                  bottom_in=_PAD_IN + legend_in + _PAD_IN + _FONT_SIZE * _LINE_IN + 4.0 / 72
+                  + _rotated_drop_in(labels, _FONT_SIZE - 1, 45), top_in=_TOP_IN,
+                  gap_in=0.2 + first_label_in)
+    low, high = _score_limits(panels)
+    for axes, artists, panel in zip(held["axes"], held["artists"], panels):
+        x = panel["x"]
+        for line, scores in zip(artists["subjects"], panel["scores"]):
+            line.set_data(x, scores)
+        band = np.isfinite(panel["ci_low"]) & np.isfinite(panel["ci_high"])
+        artists["band"].set_data(x, panel["ci_low"], panel["ci_high"], where=band)
+        artists["band"].set_visible(bool(band.any()))
+        artists["chance"].set_data(x, panel["chance"])
+        artists["mean"].set_data(x, panel["mean"])
+        full, capped = ~panel["capped"], panel["capped"]
+        artists["full"].set_offsets(np.column_stack([x[full], panel["mean"][full]]))
+        artists["capped"].set_offsets(np.column_stack([x[capped], panel["mean"][capped]]))
+        significant = panel["significant"]
+        artists["stars"].set_offsets(np.column_stack([x[significant], np.full(int(significant.sum()), _STAR_ROW)]))
+        artists["stars"].set_visible(bool(significant.any()))
+        # 'all' is a size of its own: set apart by a dotted line.
+        divides = panel["counts"][-1] == "all" and len(x) > 1
+        artists["divider"].set_xdata([math.sqrt(x[-2] * x[-1])] * 2 if divides else [1.0, 1.0])
+        artists["divider"].set_visible(divides)
+        axes.set_xticks(x)
+        axes.set_xticklabels(panel["labels"], rotation=45, ha="right", fontsize=_FONT_SIZE - 1)
+        axes.set_xlim(x.min() / 1.35, x.max() * 1.35)
+        axes.set_ylim(low, high + _STAR_HEADROOM)
+        axes.set_yticks([tick for tick in np.round(np.arange(0.0, 1.0001, 0.1), 1) if low <= tick <= high])
+    held["title"].set_text(title)
     return figure
 
 
@@ -837,7 +886,7 @@ def group_confusion(matrices):
     return np.divide(summed, counted, out=np.full(summed.shape, np.nan), where=counted > 0)
 
 
-def confusion_figure(shares, directions, classes, title, n_subjects):
+def confusion_figure(shares, directions, classes, title, n_subjects, pool=None):
     """Group confusion matrices (mean of row-normalised subject matrices), one panel per direction.
 
     Parameters
@@ -848,6 +897,10 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
     classes : sequence of str
     title : str
     n_subjects : int
+    pool : dict, optional
+        Figures kept for reuse (as in :func:`curve_figure`): a figure with the
+        same directions, classes and number of subjects gets the new shares,
+        cell numbers and title instead of being built again.
 
     Returns
     -------
@@ -855,6 +908,20 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
         Colour and number: the mean share (percent) of a true class's test
         samples given each predicted class; rows sum to 100.
     """
+    key = ("confusion", tuple(directions), tuple(classes), int(n_subjects))
+    held = _held(pool, key, lambda: _confusion_skeleton(directions, classes, n_subjects))
+    for direction, image, cells in zip(directions, held["images"], held["cells"]):
+        values = np.asarray(shares[direction], dtype=np.float64)
+        image.set_data(values)
+        for (row, column), share in np.ndenumerate(values):
+            cells[row][column].set_text("n/a" if not np.isfinite(share) else f"{100 * share:.0f}")
+            cells[row][column].set_color("white" if not np.isfinite(share) or share < 0.55 else "black")
+    held["title"].set_text(title)
+    return held["figure"]
+
+
+def _confusion_skeleton(directions, classes, n_subjects):
+    """A confusion figure's fixed parts (panels, cell texts, colour bar), for :func:`confusion_figure` to fill in."""
     from matplotlib import colormaps
     from matplotlib.figure import Figure
 
@@ -871,14 +938,12 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
                   gap_in=class_in + 7.0 / 72 + 0.15)
     panels = np.atleast_1d(figure.subplots(1, n_panels, squeeze=False)[0])
     colour_map = colormaps["cividis"]
-    image = None
+    images, cells = [], []
+    blank = np.zeros((len(classes), len(classes)))
     for axes, direction in zip(panels, directions):
-        values = shares[direction]
-        image = axes.imshow(values, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation=_VOXELS)
-        for (row, column), share in np.ndenumerate(values):
-            text = "n/a" if not np.isfinite(share) else f"{100 * share:.0f}"
-            colour = "white" if not np.isfinite(share) or share < 0.55 else "black"
-            axes.text(column, row, text, ha="center", va="center", fontsize=_FONT_SIZE - 1, color=colour)
+        images.append(axes.imshow(blank, cmap=colour_map, vmin=0.0, vmax=1.0, interpolation=_VOXELS))
+        cells.append([[axes.text(column, row, "", ha="center", va="center", fontsize=_FONT_SIZE - 1)
+                       for column in range(len(classes))] for row in range(len(classes))])
         axes.set_xticks(np.arange(len(classes)), classes, rotation=30, ha="right", fontsize=_FONT_SIZE - 1)
         axes.set_yticks(np.arange(len(classes)), classes, fontsize=_FONT_SIZE - 1)
         axes.set_xlabel("predicted class", fontsize=_FONT_SIZE)
@@ -888,11 +953,11 @@ def confusion_figure(shares, directions, classes, title, n_subjects):
     bottom, top = bottom_in / height, 1.0 - (_TOP_IN - 0.06) / height
     bar_axes = figure.add_axes((1.0 - (right_in - 0.12) / width, bottom + 0.075 * (top - bottom), 0.15 / width,
                                 0.85 * (top - bottom)))
-    bar = figure.colorbar(image, cax=bar_axes)
+    bar = figure.colorbar(images[-1], cax=bar_axes)
     bar.set_label("\n".join(bar_label), fontsize=_FONT_SIZE - 1)
     bar.ax.tick_params(labelsize=_FONT_SIZE - 1)
-    figure.suptitle(title, fontsize=_FONT_SIZE + 1)
-    return figure
+    title = figure.suptitle("", fontsize=_FONT_SIZE + 1)
+    return {"figure": figure, "images": images, "cells": cells, "title": title}
 
 
 def comparison_data(subject_rows, group_rows, rois, directions, count):

@@ -1109,17 +1109,33 @@ def _resvar_specification(entry, data, log):
             "percentile inside the brain).")
 
 
+def _rows_by(data, key, table, columns):
+    """``table``'s rows per value of ``columns`` (in table order), split once per job and kept in ``data`` under ``key``.
+
+    Every ROI's figure takes its rows from the same tables: one split instead of a pass over the table per figure
+    and direction. A value absent from the table gets the table's empty head.
+    """
+    cache = data.setdefault("_rows_by", {})
+    if key not in cache:
+        groups = {tuple(str(part) for part in value): rows
+                  for value, rows in table.groupby([table[column].astype(str) for column in columns], sort=False)}
+        cache[key] = (groups, table.iloc[:0])
+    groups, empty = cache[key]
+    return lambda *value: groups.get(tuple(str(part) for part in value), empty)
+
+
 def _curve_specification(entry, data, log):
     name, roi = entry["analysis"], entry["roi"]
     analysis, alpha, roi_mean = data["analyses"][name], data["alpha"], data["roi_mean_voxels"][roi]
     table, path = data["group_tables"][name]
-    subject_table = data["summaries"][name]
+    group_rows = _rows_by(data, ("group", name), table, ("roi", "direction"))
+    subject_rows = _rows_by(data, ("summaries", name), data["summaries"][name], ("roi", "direction"))
     panels = []
     for direction in page.curve_directions(analysis):
-        rows = table[(table["roi"] == roi) & (table["direction"] == direction)]
+        rows = group_rows(roi, direction)
         if rows.empty:
             raise InputError(path, "roi, direction", f"no row for ROI {roi}, direction {direction}", _RERUN)
-        own = subject_table[(subject_table["roi"] == roi) & (subject_table["direction"] == direction)]
+        own = subject_rows(roi, direction)
         try:
             panel = page.curve_data(rows, own, roi_mean, alpha)
         except InputError as error:
@@ -1166,7 +1182,7 @@ def _confusion_specification(entry, data, log):
             if (name, subject, roi) not in data["confusions"]:
                 raise InputError(None, "confusions", f"no confusion table of analysis {name}, sub-{subject}, ROI {roi}", _RERUN)
             frame, path = data["confusions"][(name, subject, roi)]
-            rows = frame[(frame["direction"] == direction) & (frame["n_voxels"].astype(str) == chosen)]
+            rows = _rows_by(data, ("confusions", path), frame, ("direction", "n_voxels"))(direction, chosen)
             if rows.empty:
                 raise InputError(path, "direction, n_voxels", f"no rows for direction {direction} at {chosen} voxels", _RERUN)
             try:

@@ -1175,14 +1175,18 @@ def _confusion_specification(entry, data, log):
         log.info("analysis %s, ROI %s: no results at %s voxels; confusion matrices at %s", name, roi, configured, chosen)
     classes = _classes(analysis)
     directions = page.curve_directions(analysis)
-    shares = {}
+    shares, at_count = {}, {}
     for direction in directions:
         matrices = []
         for subject in data["subjects"]:
             if (name, subject, roi) not in data["confusions"]:
                 raise InputError(None, "confusions", f"no confusion table of analysis {name}, sub-{subject}, ROI {roi}", _RERUN)
             frame, path = data["confusions"][(name, subject, roi)]
-            rows = _rows_by(data, ("confusions", path), frame, ("direction", "n_voxels"))(direction, chosen)
+            if subject not in at_count:  # the rows at the chosen count, selected once for all directions
+                wanted = frame[frame["n_voxels"].astype(str) == chosen]
+                at_count[subject] = (wanted, wanted["direction"].astype(str).to_numpy())
+            wanted, wanted_directions = at_count[subject]
+            rows = wanted[wanted_directions == direction]
             if rows.empty:
                 raise InputError(path, "direction, n_voxels", f"no rows for direction {direction} at {chosen} voxels", _RERUN)
             try:

@@ -18,10 +18,13 @@ rule geometry_patterns:
     resources:
         mem_mb=3000,
         runtime=20,
-    conda:
-        "../envs/foldwise.yaml"
-    script:
-        "../scripts/geometry_patterns.py"
+    # Inside Snakemake's process (a thread; run: takes no conda:): a process of its own starts Python and
+    # imports (~0.5 s of CPU) for each subject, and a one-ROI change of a geometry ROI reruns every
+    # subject's job. The refit is numpy's and the fast gzip decoder's, which release the GIL in their loops.
+    run:
+        from foldwise.jobs import geometry_patterns as geometry_patterns_job
+
+        run_in_process("geometry_patterns", geometry_patterns_job.run, input, output, params, wildcards, log, config)
 
 
 rule geometry_subject:

@@ -709,6 +709,9 @@ def _place_panels(figure, n_panels, left_in, right_in, bottom_in, top_in, gap_in
 
 
 _TOP_IN = 0.62  # suptitle and panel titles above the panels
+# Panel titles placed at the top of their panel: where matplotlib's automatic placement puts them when no tick label
+# or axis label is above the panel (none is), without measuring the axis's texts again on every draw.
+_TITLE_Y = 1.0
 
 def _score_limits(panels):
     values = [panel["scores"][np.isfinite(panel["scores"])] for panel in panels]
@@ -795,7 +798,7 @@ def _curve_skeleton(labels, n_subjects, alpha):
         axes.set_xscale("log")
         axes.xaxis.set_minor_locator(NullLocator())
         axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
-        axes.set_title(label, fontsize=_FONT_SIZE + 1)
+        axes.set_title(label, fontsize=_FONT_SIZE + 1, y=_TITLE_Y)
         axes.set_xlabel("number of voxels (log scale)", fontsize=_FONT_SIZE)
         axes.grid(True, axis="y", color="0.9", linewidth=0.6)
         artists.append({"subjects": subject_lines, "band": band, "chance": chance, "mean": mean, "full": full,
@@ -948,7 +951,7 @@ def _confusion_skeleton(directions, classes, n_subjects):
         axes.set_xticks(np.arange(len(classes)), classes, rotation=30, ha="right", fontsize=_FONT_SIZE - 1)
         axes.set_yticks(np.arange(len(classes)), classes, fontsize=_FONT_SIZE - 1)
         axes.set_xlabel("predicted class", fontsize=_FONT_SIZE)
-        axes.set_title(direction_label(direction), fontsize=_FONT_SIZE)
+        axes.set_title(direction_label(direction), fontsize=_FONT_SIZE, y=_TITLE_Y)
     panels[0].set_ylabel("true class", fontsize=_FONT_SIZE)
     # The colour bar in its own strip at the right, 85% of the panels' height (placed, not taken from the panels).
     bottom, top = bottom_in / height, 1.0 - (_TOP_IN - 0.06) / height
@@ -1063,7 +1066,7 @@ def comparison_figure(panels, title, alpha):
         axes.set_xticks(np.arange(n_rois), [f"ROI {roi}" for roi in panel["rois"]], fontsize=_FONT_SIZE)
         axes.set_xlim(-0.6, n_rois - 0.4)
         axes.set_ylim(low, high + _STAR_HEADROOM)
-        axes.set_title(direction_label(panel["direction"]), fontsize=_FONT_SIZE + 1)
+        axes.set_title(direction_label(panel["direction"]), fontsize=_FONT_SIZE + 1, y=_TITLE_Y)
         axes.grid(True, axis="y", color="0.9", linewidth=0.6)
         axes.tick_params(axis="y", labelsize=_FONT_SIZE - 1)
     axes_list[0].set_ylabel("balanced accuracy (proportion)", fontsize=_FONT_SIZE)

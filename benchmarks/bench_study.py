@@ -307,8 +307,9 @@ def measure_demo(label, tree, scratch, cores):
     roi_wall_s, roi_cpu_s, _ = run_snakemake(tree, folder, study_path, scratch, cores)
     shutil.rmtree(folder, ignore_errors=True)
     in_wall_s = sum(record["wall_time_s"] for record in records)
-    return {"label": label, "jobs": len(records), "wall_s": wall_s, "cpu_s": cpu_s, "in_wall_s": in_wall_s,
-            "ratio": wall_s * cores / in_wall_s, "roi_wall_s": roi_wall_s, "roi_cpu_s": roi_cpu_s}
+    in_cpu_s = sum(record.get("cpu_time_s", 0.0) for record in records)
+    return {"label": label, "jobs": len(records), "wall_s": wall_s, "cpu_s": cpu_s, "in_wall_s": in_wall_s, "in_cpu_s": in_cpu_s,
+            "ratio": wall_s * cores / in_wall_s, "roi_wall_s": roi_wall_s, "roi_cpu_s": roi_cpu_s, "cores": cores}
 
 
 def subject_of(path):
@@ -372,6 +373,10 @@ def report_study(result, reads_s):
     ratio = result["wall_s"] * cores / in_wall_s
     print(f"  wall x cores / summed in-job wall {ratio:6.2f}   {verdict(ratio, TARGET_WALL_CORES_PER_IN_JOB)}")
     if has_cpu:
+        # Jobs in Snakemake's process are threads: their in-job wall includes waits for the interpreter lock,
+        # so the same ratio on in-job CPU (the work itself) is the stricter reading.
+        print(f"  wall x cores / summed in-job CPU  {result['wall_s'] * cores / in_cpu_s:6.2f}   (the stricter reading: "
+              f"threads' in-job wall includes waits for the interpreter lock)")
         print(f"  total CPU - summed in-job CPU   {result['cpu_s'] - in_cpu_s:6.1f} s  (start-up, imports, Snakemake)")
     glm_processes = sorted(process["cpu_s"] for process in result["processes"] if script_rule(process["argv0"]) == "glm")
     glm_reads_s, glm_ratios = glm_read_ratios(records, reads_s)
@@ -436,6 +441,8 @@ def report_demo(result):
     print(f"  wall {result['wall_s']:.1f} s, CPU {result['cpu_s']:.1f} s, summed in-job wall {result['in_wall_s']:.1f} s   "
           f"{verdict(result['wall_s'], TARGET_DEMO_WALL_S)} (wall)")
     print(f"  wall x cores / summed in-job wall {result['ratio']:.2f}   {verdict(result['ratio'], TARGET_DEMO_WALL_CORES_PER_IN_JOB)}")
+    if result["in_cpu_s"]:
+        print(f"  wall x cores / summed in-job CPU  {result['wall_s'] * result['cores'] / result['in_cpu_s']:.2f}   (the stricter reading)")
     print(f"  one-ROI change: wall {result['roi_wall_s']:.1f} s, CPU {result['roi_cpu_s']:.1f} s   "
           f"{verdict(result['roi_wall_s'], TARGET_ROI_CHANGE_DEMO_S)} (wall)")
 

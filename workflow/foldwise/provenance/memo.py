@@ -254,15 +254,27 @@ def memo_key(step, code, settings, input_hashes, output_names):
     return hash_object({"step": step, "code": code, "settings": settings, "inputs": input_hashes, "outputs": output_names})
 
 
+_VERSIONS = {}  # read once per process: the modules a process has imported do not change while it runs
+
+
 def package_versions():
-    """Installed versions of the packages that shape the numbers."""
-    versions = {"python": platform.python_version()}
-    for name in VERSIONED_PACKAGES:
-        try:
-            versions[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            versions[name] = None
-    return versions
+    """Installed versions of the packages that shape the numbers (a new dict each call).
+
+    Read once per process: importlib.metadata parses each package's METADATA
+    (~0.013 s a call), and Snakemake's process asks ~20 times at start (every
+    step's code key) and once per job it runs in a thread. A job in that
+    process computes with the modules the process imported, so the versions
+    read at its start are the ones that shape its numbers.
+    """
+    if not _VERSIONS:
+        versions = {"python": platform.python_version()}
+        for name in VERSIONED_PACKAGES:
+            try:
+                versions[name] = metadata.version(name)
+            except metadata.PackageNotFoundError:
+                versions[name] = None
+        _VERSIONS.update(versions)
+    return dict(_VERSIONS)
 
 
 class PartMemo:

@@ -69,3 +69,35 @@ def test_module_closure_sees_an_edited_script_after_a_cached_parse(tmp_path):
     second = {path.name for path in module_closure(str(script))}
     assert "hashing.py" not in first and "hashing.py" in second
     assert module_closure(str(script)) == module_closure(str(script))  # a cached parse gives the same closure
+
+
+def test_the_import_scan_names_what_a_full_parse_of_every_package_module_and_script_names():
+    # Reference: Python's own parser (ast.parse of the whole module, ast.walk over every node).
+    from pathlib import Path
+
+    from foldwise.provenance import hashing
+
+    workflow = Path(hashing.__file__).resolve().parents[2]
+    files = sorted((workflow / "foldwise").rglob("*.py")) + sorted((workflow / "scripts").glob("*.py"))
+    assert len(files) > 80
+    for path in files:
+        assert hashing._parse_imports(path) == hashing._parse_imports(path, full_parse=True), path
+
+
+@pytest.mark.parametrize("source, expected", [
+    # a parenthesised import whose comments hold parentheses, and a backslash continuation
+    ("from foldwise.data.bids import (read_events,  # why (it)\n    read_tr_s)  # end\n"
+     "from foldwise.glm import \\\n    estimate\n",
+     {"foldwise.data.bids", "foldwise.data.bids.read_events", "foldwise.data.bids.read_tr_s", "foldwise.glm",
+      "foldwise.glm.estimate"}),
+    # text in a string that looks like an import and does not parse alone: the whole module is parsed instead
+    ('"""Notes.\n\nfrom the config import nothing\n"""\nimport foldwise.masks.build\n', {"foldwise.masks.build"}),
+    # an import inside a function counts, as it does for ast.walk
+    ("def late():\n    from foldwise.stats import group\n", {"foldwise.stats", "foldwise.stats.group"}),
+])
+def test_the_import_scan_handles_continuations_comments_and_look_alikes(tmp_path, source, expected):
+    from foldwise.provenance import hashing
+
+    path = tmp_path / "module.py"
+    path.write_text(source, encoding="utf-8")
+    assert hashing._parse_imports(path) == expected == hashing._parse_imports(path, full_parse=True)

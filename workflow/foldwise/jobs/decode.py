@@ -30,7 +30,7 @@ from foldwise.data.patterns import analysis_task_rows, files_label, read_pattern
 from foldwise.decoding.folds import check_training_classes, make_folds, pair_runs_across_tasks
 from foldwise.masks.build import same_grid
 from foldwise.provenance.hashing import seed_from
-from foldwise.provenance.memo import part_memo
+from foldwise.provenance.memo import job_parts
 
 __all__ = [
     "TABLE_COLUMNS",
@@ -359,26 +359,6 @@ def decode_roi(subject_patterns, inside, analysis, subject, roi, seed, outputs, 
     write_tsv(outputs["confusion"], _confusion_rows(result, subject_patterns.class_names, voxel_counts))
 
 
-class _EveryPartComputed:
-    """Stands in for the part memo when the job runs outside run_job (tests, a direct call): every ROI is computed."""
-
-    def file_hash(self, path):
-        return None
-
-    def restore(self, part, identity, outputs):
-        return False
-
-    def store(self, part, identity, outputs):
-        pass
-
-
-def _parts():
-    try:
-        return part_memo()
-    except RuntimeError:  # not inside run_job / run_in_process
-        return _EveryPartComputed()
-
-
 def run(inputs, outputs, params, log):
     """Decode every ROI of one subject x analysis: the subject's patterns read once, each ROI a part of the job.
 
@@ -412,7 +392,7 @@ def run(inputs, outputs, params, log):
     analysis, subject, rois, seed = _check_params(params)
     mask_paths, roi_outputs = _check_roi_files(inputs, outputs, rois)
     pattern_tasks = params.get("pattern_tasks")  # an analysis of another task, or sets from two tasks (absent: the main task)
-    parts = _parts()
+    parts = job_parts()
     # What every ROI's part reads besides its own mask: the job's settings without the ROI list, the subject's pattern files.
     shared = {key: value for key, value in params.items() if key != "rois"}
     pattern_files = {name: [parts.file_hash(path) for path in ([inputs[name]] if isinstance(inputs[name], str) else inputs[name])]

@@ -21,7 +21,7 @@ from foldwise import contract
 from foldwise.stats import group as group_stats
 from foldwise.errors import InputError
 from foldwise.data.fileio import FLOAT_FORMAT, gunzip_bytes, gzip_bytes, save_npy, write_bytes_atomic, write_text_atomic, write_tsv
-from foldwise.provenance.memo import part_memo
+from foldwise.provenance.memo import job_parts
 from foldwise.provenance.hashing import seed_from
 from foldwise.report.page import format_p  # one way to print a p-value: at its floor, with its resolution
 
@@ -408,26 +408,6 @@ def _subject_nulls(paths, name, cells, subjects):
     return nulls, n_choices
 
 
-class _EveryPartComputed:
-    """Outside run_job (tests, benchmarks): no memo, every ROI computed."""
-
-    def file_hash(self, path):
-        return None
-
-    def restore(self, part, identity, outputs):
-        return False
-
-    def store(self, part, identity, outputs):
-        pass
-
-
-def _parts():
-    try:
-        return part_memo()
-    except RuntimeError:  # not inside run_job / run_in_process
-        return _EveryPartComputed()
-
-
 def _array_digest(values):
     values = np.ascontiguousarray(values, dtype=np.float64)
     return {"shape": list(values.shape), "sha256": hashlib.sha256(values.tobytes()).hexdigest()}
@@ -470,7 +450,7 @@ def _null_draws_by_roi(paths, name, cells, keep, kept_cells, scores, subjects, e
         return None
     kept_position = np.cumsum(keep) - 1  # study cell index -> position among the kept cells
     quoted = _needs_quoting(kept_cells)
-    parts = _parts()
+    parts = job_parts()
     shared = {"analysis": name, "seed": seed, "n_draws": n_draws, "prevalence": prevalence, "subjects": list(subjects),
               "exact": [bool(value) for value in exact]}
     blocks, computed = {}, {}
@@ -511,7 +491,7 @@ def _null_draws_by_roi(paths, name, cells, keep, kept_cells, scores, subjects, e
             null_mean, null_minimum = group_stats.group_null_draws(scores[:, positions], nulls, *picks)
             rows = None if quoted else "".join(_null_rows_text([kept_cells[i] for i in positions], null_mean))
             blocks[roi] = {"n_choices": n_choices, "mean": null_mean, "minimum": null_minimum, "rows": rows}
-            if isinstance(parts, _EveryPartComputed):
+            if not parts.stores:
                 continue
             save_npy(files["n_choices"], n_choices)
             save_npy(files["mean"], null_mean)

@@ -45,7 +45,7 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import write_json
 from foldwise.provenance.hashing import canonical_json, hash_file, hash_object
 
-__all__ = ["MemoStore", "memo_key", "PartMemo", "part_memo", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "display_path", "forced_jobs",
+__all__ = ["MemoStore", "memo_key", "PartMemo", "part_memo", "job_parts", "EveryPartComputed", "run_job", "run_in_process", "JobFailed", "file_system_error", "package_versions", "relative_path", "display_path", "forced_jobs",
            "FORCED_JOBS_VARIABLE", "copy_file", "VERSIONED_PACKAGES"]
 
 # The packages that shape the numbers: the memo keys on their versions and the report prints them (one list).
@@ -297,6 +297,8 @@ class PartMemo:
             parts.store("roi-ember", identity, {"summary": path})
     """
 
+    stores = True  # EveryPartComputed, outside a job, does not
+
     def __init__(self, store, step, code, log, use_memo=True, forced=False):
         self._store = store
         self._step = step
@@ -359,6 +361,30 @@ def part_memo():
     if parts is None:
         raise RuntimeError("part_memo() is available only inside a job run by run_job or run_in_process")
     return parts
+
+
+class EveryPartComputed:
+    """Stands in for :class:`PartMemo` when a job's ``run`` is called outside :func:`run_job` (a test, a benchmark):
+    nothing is restored or stored, every part is computed."""
+
+    stores = False
+
+    @staticmethod
+    def file_hash(path):
+        return None
+
+    @staticmethod
+    def restore(part, identity, outputs):
+        return False
+
+    @staticmethod
+    def store(part, identity, outputs):
+        return None
+
+
+def job_parts():
+    """:func:`part_memo` inside a job run by :func:`run_job` or :func:`run_in_process`, else :class:`EveryPartComputed`."""
+    return getattr(_CURRENT_PARTS, "memo", None) or EveryPartComputed()
 
 
 class _WarningCollector(logging.Handler):

@@ -78,9 +78,10 @@ def answer_sentences(table, alpha, n_draws=None, directions=None, rois=None):
     rois = list(rois) if rois is not None else list(dict.fromkeys(table["roi"].astype(str)))
     directions = list(directions) if directions is not None else list(dict.fromkeys(table["direction"].astype(str)))
     lines = []
+    roi_column, direction_column = table["roi"].astype(str).to_numpy(), table["direction"].astype(str).to_numpy()
     for roi in rois:
         for direction in directions:
-            rows = table[(table["roi"].astype(str) == roi) & (table["direction"].astype(str) == direction)]
+            rows = table[(roi_column == roi) & (direction_column == direction)]
             if rows.empty:
                 continue
             order = {count: index for index, count in enumerate(count_order(rows["n_voxels"]))}

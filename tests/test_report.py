@@ -498,9 +498,20 @@ def test_manifest_summary_counts_jobs_and_outputs_only():
 
 def test_reproduce_commands_name_the_config_file():
     commands = dict((command, what) for what, command in report.reproduce_commands("studies/mine.yaml", "bids"))
-    assert "make demo CONFIG=studies/mine.yaml" in commands
+    assert "make study CONFIG=studies/mine.yaml" in commands
     assert ".venv/bin/snakemake --profile config/profiles/local --cores 2 --config config_file=studies/mine.yaml" in commands
     assert "make demo" in dict((c, w) for w, c in report.reproduce_commands("config/config.yaml", "demo"))
+
+
+def test_reproduce_commands_repeat_the_runs_overrides():
+    dotted = [command for _, command in report.reproduce_commands("studies/mine.yaml", "bids", ["set=study.seed=3 glm.statistic=t"])]
+    assert "make study CONFIG=studies/mine.yaml SET='study.seed=3 glm.statistic=t'" in dotted
+    assert (".venv/bin/snakemake --profile config/profiles/local --cores 2 --config config_file=studies/mine.yaml "
+            "'set=study.seed=3 glm.statistic=t'") in dotted
+    # A mapping override has no make form: only the Snakemake command, which carries it
+    mapping = [command for _, command in report.reproduce_commands("config/config.yaml", "demo", ["group={alpha: 0.01}"])]
+    assert not any(command.startswith("make demo") for command in mapping)
+    assert ".venv/bin/snakemake --profile config/profiles/local --cores 2 --config config_file=config/config.yaml 'group={alpha: 0.01}'" in mapping
 
 
 def test_the_rule_code_hash_covers_the_report_modules():

@@ -41,8 +41,8 @@ from foldwise.report.summary import answer_sentences
 from foldwise.report.terminal import job_warnings
 from foldwise.errors import InputError
 from foldwise.data.fileio import load_nifti, read_tsv, write_bytes_atomic, write_text_atomic
-from foldwise.provenance.hashing import hash_file, hash_object
-from foldwise.provenance.memo import display_path, part_memo
+from foldwise.provenance.hashing import hash_object
+from foldwise.provenance.memo import display_path, job_parts
 
 __all__ = ["run", "VERSIONED_PACKAGES", "GROUP_COLUMNS", "SUMMARY_COLUMNS", "CONFUSION_COLUMNS", "ROI_COUNT_COLUMNS"]
 
@@ -278,31 +278,6 @@ def _check_outputs(outputs, study, subjects, publication=False):
 
 
 # -- drawing -------------------------------------------------------------------------
-
-class _DrawEveryFigure:
-    """Stands in for the part memo when the job runs outside ``run_job`` (a test calling ``run``): nothing is restored."""
-
-    records = ()
-
-    @staticmethod
-    def file_hash(path):
-        return hash_file(path)
-
-    @staticmethod
-    def restore(part, identity, outputs):
-        return False
-
-    @staticmethod
-    def store(part, identity, outputs):
-        return None
-
-
-def _parts():
-    try:
-        return part_memo()
-    except RuntimeError:
-        return _DrawEveryFigure()
-
 
 def _file_identity(parts, path, what):
     """The content hash of an input image a figure draws (the image itself is read only if the figure is drawn)."""
@@ -640,8 +615,8 @@ def _truth_text(truth, roi):
                       f"{_text_list(yes) if yes else 'nothing'}{'; does not decode ' + _text_list(no) if no else ''}.")
 
 
-def _provenance_section(study, config_file, versions, records):
-    commands = page.reproduce_commands(config_file, study["dataset"]["source"])
+def _provenance_section(study, config_file, versions, records, overrides=()):
+    commands = page.reproduce_commands(config_file, study["dataset"]["source"], overrides)
     command_html = "".join(f"<p>{html.escape(what)}:</p><pre><code>{html.escape(command)}</code></pre>"
                            for what, command in commands)
     summary = page.manifest_summary(records)
@@ -680,7 +655,7 @@ def _drawing_data(inputs, params, study, subjects, repetition_times):
             "confusions": _read_confusions(inputs.get("confusions"), list(analyses), fields_of), "subjects": subjects,
             "roi_mean_voxels": {roi: float(counts.loc[counts["roi"] == roi, "n_voxels"].mean()) for roi in roi_names},
             "alpha": float(study.get("group", {}).get("alpha", 0.05)), "study": study, "clusters": {},
-            "fields_of": fields_of, "searchlight": _searchlight_inputs(inputs, study), "parts": _parts()}
+            "fields_of": fields_of, "searchlight": _searchlight_inputs(inputs, study), "parts": job_parts()}
 
 
 def _paper_figures_command(config_file):
@@ -954,7 +929,7 @@ def _methods_section(context):
 
 def _provenance_page_section(context):
     return ("provenance", "Provenance", _provenance_section(context["study"], context["config_file"], context["versions"],
-                                                            context["records"]), ())
+                                                            context["records"], context["overrides"]), ())
 
 
 #: The page's sections in order: the answer, results, maps, quality checks, warnings, then how it was done.

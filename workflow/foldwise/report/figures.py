@@ -1082,7 +1082,7 @@ def comparison_figure(panels, title, alpha):
 
 # -- provenance ------------------------------------------------------------------------
 
-def reproduce_commands(config_file, dataset_source):
+def reproduce_commands(config_file, dataset_source, overrides=()):
     """The commands that reproduce the study, as (description, command) pairs.
 
     Parameters
@@ -1091,6 +1091,11 @@ def reproduce_commands(config_file, dataset_source):
         The study config file (None: given to Snakemake with ``--configfile``).
     dataset_source : str
         ``demo`` or ``bids``.
+    overrides : sequence of str, optional
+        The run's command-line overrides, as Snakemake's ``--config`` took
+        them (``set=a.b=1 c=2`` or ``key=value``); repeated in every command
+        (``make`` passes dotted ones as ``SET=``; other forms only on the
+        Snakemake command line).
 
     Returns
     -------
@@ -1100,19 +1105,31 @@ def reproduce_commands(config_file, dataset_source):
     --------
     >>> reproduce_commands("config/config.yaml", "demo")[0]
     ('the demo study, with the pinned environment', 'make demo')
+    >>> reproduce_commands("studies/mine.yaml", "bids", ["set=study.seed=3"])[0][1]
+    'make study CONFIG=studies/mine.yaml SET=study.seed=3'
     """
+    import shlex
+
+    overrides = [str(entry) for entry in overrides]
+    default = config_file in (None, "", "config/config.yaml")
+    settable = all(entry.startswith("set=") for entry in overrides)
+    make_overrides = f" SET={shlex.quote(' '.join(entry[len('set='):] for entry in overrides))}" if overrides and settable else ""
     commands = []
-    if config_file in (None, "", "config/config.yaml"):
-        what = "the demo study" if dataset_source == "demo" else "the study"
-        commands.append((f"{what}, with the pinned environment", "make demo"))
+    if settable:
+        if default:
+            what = "the demo study" if dataset_source == "demo" else "the study"
+            commands.append((f"{what}, with the pinned environment", "make demo" + make_overrides))
+        else:
+            commands.append(("the study, with the pinned environment", f"make study CONFIG={config_file}" + make_overrides))
+    if default:
         config_part = "--config config_file=config/config.yaml" if config_file else "--configfile <the study config>"
     else:
-        commands.append(("the study, with the pinned environment", f"make demo CONFIG={config_file}"))
         config_part = f"--config config_file={config_file}"
-    commands.append(("the same with Snakemake directly",
+    config_part += "".join(" " + shlex.quote(entry) for entry in overrides)
+    commands.append(("the same with Snakemake directly" if settable else "the study, with Snakemake directly (its command-line overrides included)",
                      f".venv/bin/snakemake --profile config/profiles/local --cores 2 {config_part}"))
     commands.append(("recompute everything with the memo off and compare with these results", "make verify"
-                     + ("" if config_file in (None, "", "config/config.yaml") else f" CONFIG={config_file}")))
+                     + ("" if default else f" CONFIG={config_file}")))
     return commands
 
 

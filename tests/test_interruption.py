@@ -200,7 +200,12 @@ def test_a_killed_run_leaves_nothing_half_written_and_reruns_to_the_same_manifes
     assert store_problems(workdir / "results" / ".store") == []
     for name in interrupted:
         assert (workdir / "results" / "provenance" / "decode" / f"{name}.json").is_file()
-    assert {path: path.stat().st_mtime_ns for path in finished} == finished  # jobs done before the kill did not run again
+    # Jobs done before the kill did not run again, except a job that wrote its record in the instant before the
+    # kill, before Snakemake noted it as finished: Snakemake reruns it (and the run guard recomputes it, as it
+    # does every job that was running at a kill). On 2 cores at most 2 jobs can be in that instant; jobs in
+    # Snakemake's own process (threads) wait for its bookkeeping longer than job processes did, so this happens.
+    rerun_records = [path for path in finished if path.stat().st_mtime_ns != finished[path]]
+    assert len(rerun_records) <= 2 and len(finished) - len(rerun_records) >= 1, rerun_records
 
 
 # -- racing the content store directly (no Snakemake) -----------------------------------------------------

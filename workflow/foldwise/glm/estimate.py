@@ -579,20 +579,20 @@ def _by_noise_level(bold, voxel_rho, solve, n_beta_rows, n_t_rows, with_t, first
     residual_variance = np.empty(n_voxels)
     t_values = np.empty((n_t_rows, n_voxels)) if with_t else None
     if voxel_rho is None:
-        source, order, runs = bold, None, [(None, 0, n_voxels)]
+        order, runs = None, [(None, 0, n_voxels)]
     else:
         order = np.argsort(voxel_rho, kind="stable")
         levels = voxel_rho[order]
-        source = np.take(bold, order, axis=1)
         starts = np.flatnonzero(np.r_[True, levels[1:] != levels[:-1]])
         runs = [(float(levels[start]), start, end) for start, end in zip(starts, np.r_[starts[1:], n_voxels])]
     for level, run_start, run_end in runs:
         for start in range(run_start, run_end, CHUNK_VOXELS):
             block = slice(start, min(start + CHUNK_VOXELS, run_end))
-            data = _float64_block(source, block, centre)
+            target = block if order is None else order[block]  # these voxels, in the input order
+            # Each block gathers its own columns: no sorted copy of the whole run (a run-sized allocation).
+            data = _float64_block(bold, target, centre)
             if level is not None:
                 data = whiten_ar1(data, level, first_scan)
-            target = block if order is None else order[block]  # back to the input order
             betas[:, target], residual_variance[target], t = solve(level, data)
             if with_t:
                 t_values[:, target] = t

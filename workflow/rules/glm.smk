@@ -52,10 +52,7 @@ for _number, (_subjects, _run_ids) in enumerate(plan.run_list_rules(MODEL, "glm"
             mem_mb=3000,
             # the allowance of one run (20 min, the earlier job's) for each run of the subject
             runtime=20 * len(_run_ids),
-        # Inside Snakemake's process (a thread; run: takes no conda:), as decode: no process start and imports
-        # per subject, and the large arrays of one run reuse memory the process already holds instead of
-        # faulting in fresh pages (docs/speed.md). The fit is numpy's and the gzip decoder's, which release the GIL.
-        run:
-            from foldwise.jobs import glm as glm_job
-
-            run_in_process("glm", glm_job.run, input, output, params, wildcards, log, config)
+        conda:
+            "../envs/foldwise.yaml"
+        script:
+            "../scripts/glm.py"

@@ -43,12 +43,14 @@ import pandas as pd
 
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO / "workflow"))
+sys.path.insert(1, str(REPO / "tests"))  # tests/test_report.py's synthetic study and workflow_support
 
 from foldwise.config import validate  # noqa: E402
 from foldwise.data.fileio import save_nifti, write_tsv  # noqa: E402
 from foldwise.jobs import report as report_job  # noqa: E402
 from foldwise.provenance.memo import MemoStore, run_in_process  # noqa: E402
 from foldwise.report.catalogue import embedded_files, figure_catalogue, publication_files  # noqa: E402
+from workflow_support import Named  # noqa: E402 (what Snakemake hands a run: block)
 
 TARGET_FROM_EMPTY_CPU_S = 5.0
 TARGET_PAGE_CPU_S = 2.0
@@ -84,24 +86,14 @@ def study_config():
     }, path="the report benchmark")
 
 
-class _Named(dict):
-    """What Snakemake hands a ``run:`` block: named items, also as attributes."""
-
-    def __getattr__(self, name):
-        try:
-            return self[name]
-        except KeyError:
-            raise AttributeError(name) from None
-
-
 def run_report(inputs, outputs, params, folder, store, step="report", job=report_job.run):
     """(CPU s, wall s, provenance record) of one report job through the memo, as the workflow runs it."""
-    output = _Named(outputs, provenance=str(folder / "provenance" / f"{step}.json"))
+    output = Named(outputs, provenance=str(folder / "provenance" / f"{step}.json"))
     log_path = folder / "logs" / f"{step}.log"
     log_path.parent.mkdir(parents=True, exist_ok=True)
     params_named = types.SimpleNamespace(settings=params, code="bench")
     started_cpu, started_wall = time.process_time(), time.perf_counter()
-    run_in_process(step, job, _Named(inputs), output, params_named, _Named(), [str(log_path)],
+    run_in_process(step, job, Named(inputs), output, params_named, Named(), [str(log_path)],
                    {"study": {"store_dir": str(store)}})
     cpu_s, wall_s = time.process_time() - started_cpu, time.perf_counter() - started_wall
     return cpu_s, wall_s, json.loads(Path(output.provenance).read_text(encoding="utf-8"))

@@ -42,6 +42,7 @@ from foldwise.jobs import report as report_job
 from foldwise.jobs import roi_mask as roi_mask_job
 from foldwise.provenance.memo import run_job
 from foldwise.plan import plan_study
+from workflow_support import Named
 
 REPO = Path(__file__).resolve().parents[1]
 TABLE_PATH = REPO / "docs" / "bad-input-table.md"
@@ -544,21 +545,14 @@ def _group_of_one(folder):
 
 
 # -- where results go (run_job) ---------------------------------------------------------------
-class _Named(dict):
-    """Stands in for Snakemake's Namedlist: items() plus attribute access."""
-
-    def __getattr__(self, name):
-        return self[name]
-
-
 def _copy_job(inputs, outputs, settings, log):
     write_text_atomic(outputs["copy"], Path(inputs["source"]).read_text(encoding="utf-8"))
 
 
 def _fake_job(store_dir="results/.store", output="results/masks/sub-01/copy.txt"):
     Path("in.txt").write_text("lanterns", encoding="utf-8")
-    return SimpleNamespace(input=_Named(source="in.txt"), output=_Named(copy=output, provenance="results/provenance/copy.json"),
-                           params=_Named(settings={}, code="v1"), log=[], wildcards=_Named(subject="01"),
+    return SimpleNamespace(input=Named(source="in.txt"), output=Named(copy=output, provenance="results/provenance/copy.json"),
+                           params=Named(settings={}, code="v1"), log=[], wildcards=Named(subject="01"),
                            config={"study": {"store_dir": store_dir}})
 
 

@@ -25,6 +25,7 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import write_tsv
 from foldwise.provenance.hashing import seed_from
 from foldwise.jobs import group as group_job
+from workflow_support import Named
 
 
 # -- descriptives, t-test, Wilcoxon ------------------------------------------
@@ -749,13 +750,6 @@ def test_job_family_all_analyses_is_bonferroni_over_the_analyses_maxima(tmp_path
 
 
 # -- through the content memo: one ROI's change recomputes that ROI's draws only ----------------
-class _Named(dict):
-    """Stands in for Snakemake's Namedlist: items() plus attribute access."""
-
-    def __getattr__(self, name):
-        return self[name]
-
-
 def _run_through_memo(tmp_path, inputs, params):
     """The job as Snakemake's script runs it (foldwise.provenance.memo.run_job, outputs removed first); its record."""
     import json
@@ -763,9 +757,9 @@ def _run_through_memo(tmp_path, inputs, params):
     outputs = _outputs(tmp_path / "results")
     for path in outputs.values():
         Path(path).unlink(missing_ok=True)
-    smk = SimpleNamespace(input=_Named(inputs), output=_Named(**outputs, provenance=str(tmp_path / "provenance" / "group.json")),
-                          params=_Named(settings=params, code="code-v1"), log=[str(tmp_path / "logs" / "group.log")],
-                          wildcards=_Named(analysis=ANALYSIS), config={"study": {"store_dir": str(tmp_path / "store")}})
+    smk = SimpleNamespace(input=Named(inputs), output=Named(**outputs, provenance=str(tmp_path / "provenance" / "group.json")),
+                          params=Named(settings=params, code="code-v1"), log=[str(tmp_path / "logs" / "group.log")],
+                          wildcards=Named(analysis=ANALYSIS), config={"study": {"store_dir": str(tmp_path / "store")}})
     run_job(smk, "group", group_job.run)
     return json.loads((tmp_path / "provenance" / "group.json").read_text()), outputs
 

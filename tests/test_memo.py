@@ -11,16 +11,7 @@ import pytest
 from foldwise.errors import InputError
 from foldwise.provenance.hashing import hash_file
 from foldwise.provenance.memo import MemoStore, memo_key, relative_path, run_job
-
-
-class _Named(dict):
-    """Stands in for Snakemake's Namedlist: items() plus attribute access."""
-
-    def __getattr__(self, name):
-        return self[name]
-
-    def __len__(self):
-        return dict.__len__(self)
+from workflow_support import Named
 
 
 def _fake_smk(tmp_path, settings, source_text="alpha"):
@@ -28,11 +19,11 @@ def _fake_smk(tmp_path, settings, source_text="alpha"):
     if not source.exists():
         source.write_text(source_text)
     return SimpleNamespace(
-        input=_Named(source=str(source)),
-        output=_Named(doubled=str(tmp_path / "out" / "doubled.txt"), provenance=str(tmp_path / "prov" / "job.json")),
-        params=_Named(settings=settings, code="code-v1"),
+        input=Named(source=str(source)),
+        output=Named(doubled=str(tmp_path / "out" / "doubled.txt"), provenance=str(tmp_path / "prov" / "job.json")),
+        params=Named(settings=settings, code="code-v1"),
         log=[str(tmp_path / "logs" / "job.log")],
-        wildcards=_Named(subject="01"),
+        wildcards=Named(subject="01"),
         config={"study": {"store_dir": str(tmp_path / "store")}},
     )
 
@@ -178,7 +169,7 @@ def test_in_process_jobs_match_job_processes_and_fail_without_ending_the_process
     results = []
     # Two jobs in two threads at once, as Snakemake runs them: each log holds only its own job's lines.
     second = _fake_smk(tmp_path / "b", {"times": 3})
-    second.output = _Named(doubled=str(tmp_path / "b" / "out" / "tripled.txt"), provenance=str(tmp_path / "b" / "prov" / "job3.json"))
+    second.output = Named(doubled=str(tmp_path / "b" / "out" / "tripled.txt"), provenance=str(tmp_path / "b" / "prov" / "job3.json"))
     second.log = [str(tmp_path / "b" / "logs" / "job3.log")]
     threads = [threading.Thread(target=lambda s=s: results.append(run_in_process("double", _double, s.input, s.output, s.params,
                                                                                   s.wildcards, s.log, s.config)))
@@ -210,7 +201,7 @@ import atexit, os, sys
 from pathlib import Path
 from types import SimpleNamespace
 sys.path.insert(0, {tests!r})
-from test_memo import _Named
+from test_memo import Named
 from foldwise.errors import InputError
 from foldwise.provenance.memo import run_job
 
@@ -225,9 +216,9 @@ def job(inputs, outputs, settings, log):
     Path(outputs["doubled"]).parent.mkdir(parents=True, exist_ok=True)
     Path(outputs["doubled"]).write_text("alphaalpha")
 
-smk = SimpleNamespace(input=_Named(), output=_Named(doubled=str(root / "out.txt"), provenance=str(root / "prov.json")),
-                      params=_Named(settings={{"fail": {fail}}}, code="c"), log=[str(root / "job.log")],
-                      wildcards=_Named(), config={{"study": {{"store_dir": str(root / "store")}}}})
+smk = SimpleNamespace(input=Named(), output=Named(doubled=str(root / "out.txt"), provenance=str(root / "prov.json")),
+                      params=Named(settings={{"fail": {fail}}}, code="c"), log=[str(root / "job.log")],
+                      wildcards=Named(), config={{"study": {{"store_dir": str(root / "store")}}}})
 run_job(smk, "double", job, end_process=True)
 (root / "returned").write_text("yes")  # never reached with end_process
 '''

@@ -33,7 +33,7 @@ from foldwise.errors import InputError
 from foldwise.data.fileio import save_nifti, write_tsv
 from foldwise.jobs import roi_mask as roi_mask_job
 from foldwise.provenance.memo import run_job
-from workflow_support import REPO, TINY_STUDY, copy_repository, workflow_environment, write_study
+from workflow_support import REPO, TINY_STUDY, Named, copy_repository, workflow_environment, write_study
 
 # -- YAML --------------------------------------------------------------------------------------
 
@@ -164,11 +164,6 @@ def private_record_problems(record_path):
     return problems
 
 
-class _Named(dict):
-    def __getattr__(self, name):
-        return self[name]
-
-
 def test_a_provenance_record_names_files_relative_to_the_repository(tmp_path, monkeypatch):
     """An ROI image kept outside the repository, given by its absolute path, as labs do."""
     repository, elsewhere = tmp_path / "repository", tmp_path / "lab-share"
@@ -181,11 +176,11 @@ def test_a_provenance_record_names_files_relative_to_the_repository(tmp_path, mo
     save_nifti(elsewhere / "glow_roi.nii.gz", roi, affine, dtype=np.uint8)
     entry = {"name": "glow", "image": str(elsewhere / "glow_roi.nii.gz"), "min_voxels": 5}
     smk = SimpleNamespace(
-        input=_Named(brain_mask="results/masks/sub-01_brainmask.nii.gz", image=entry["image"]),
-        output=_Named(mask="results/masks/sub-01_roi-glow_mask.nii.gz", info="results/masks/sub-01_roi-glow.json",
+        input=Named(brain_mask="results/masks/sub-01_brainmask.nii.gz", image=entry["image"]),
+        output=Named(mask="results/masks/sub-01_roi-glow_mask.nii.gz", info="results/masks/sub-01_roi-glow.json",
                       provenance="results/provenance/roi_mask/sub-01_roi-glow.json"),
-        params=_Named(settings={"roi": entry, "subject": "01"}, code="code-hash"), log=["results/logs/roi_mask/sub-01_roi-glow.log"],
-        wildcards=_Named(subject="01", roi="glow"), config={"study": {"store_dir": "results/.store"}})
+        params=Named(settings={"roi": entry, "subject": "01"}, code="code-hash"), log=["results/logs/roi_mask/sub-01_roi-glow.log"],
+        wildcards=Named(subject="01", roi="glow"), config={"study": {"store_dir": "results/.store"}})
     monkeypatch.chdir(repository)
     run_job(smk, "roi_mask", roi_mask_job.run)
     record = repository / smk.output.provenance

@@ -43,6 +43,7 @@ from foldwise.report.catalogue import embedded_files, publication_files
 from foldwise.provenance.hashing import hash_object
 from foldwise.jobs import glm as glm_job
 from foldwise.jobs import report as report_job
+from workflow_support import Named
 
 REPO = Path(__file__).resolve().parents[1]
 SUBJECTS = ["01", "02", "03"]
@@ -1125,23 +1126,13 @@ def test_an_input_the_plan_does_not_list_is_named(built, tmp_path):
         report_job.run(built["inputs"], outputs_for(tmp_path / "out2"), params, _quiet_log())
 
 
-class _Named(dict):
-    """What Snakemake hands a ``run:`` block: named items, also as attributes."""
-
-    def __getattr__(self, name):
-        try:
-            return self[name]
-        except KeyError:
-            raise AttributeError(name) from None
-
-
 def _through_memo(inputs, outputs, params, folder, store):
     """Run the report job as the workflow does (memo key, part memo, provenance record); return the record."""
     from foldwise.provenance.memo import run_in_process
 
-    output = _Named(outputs, provenance=str(folder / "provenance.json"))
-    run_in_process("report", report_job.run, _Named(inputs), output, SimpleNamespace(settings=params, code="test"),
-                   _Named(), [str(folder / "report.log")], {"study": {"store_dir": str(store)}})
+    output = Named(outputs, provenance=str(folder / "provenance.json"))
+    run_in_process("report", report_job.run, Named(inputs), output, SimpleNamespace(settings=params, code="test"),
+                   Named(), [str(folder / "report.log")], {"study": {"store_dir": str(store)}})
     return json.loads(Path(output.provenance).read_text(encoding="utf-8"))
 
 

@@ -1,4 +1,4 @@
-"""Helpers for end-to-end tests: copy the repository, write a tiny study, run Snakemake."""
+"""Helpers for tests: copy the repository, write a tiny study, run Snakemake, or stand in for what Snakemake hands a job."""
 
 import os
 import shutil
@@ -28,6 +28,16 @@ TINY_STUDY = {
     ],
     "group": {"n_draws": 500},
 }
+
+
+class Named(dict):
+    """Stands in for Snakemake's named lists (a job's input, output, params, wildcards): items, also as attributes."""
+
+    def __getattr__(self, name):
+        try:
+            return self[name]
+        except KeyError:
+            raise AttributeError(name) from None
 
 
 def copy_repository(destination):

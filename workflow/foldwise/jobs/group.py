@@ -386,15 +386,22 @@ def _cells_by_roi(cells):
     return cells_of_roi
 
 
-def _subject_nulls(paths, name, cells, subjects):
-    """(n_subjects, n_permutations, n_cells) null scores of every cell and each subject's count, or None without permutations."""
+def _null_files(paths, name, cells, subjects):
+    """``(subject_row, cells_of_roi, located, pieces)`` of the subjects' null files (:func:`_locate_nulls`), or None without permutations."""
     if not paths:
         return None
     subject_row = {subject: index for index, subject in enumerate(subjects)}
     cells_of_roi = _cells_by_roi(cells)
     located, pieces = _locate_nulls(paths, name, subject_row, cells_of_roi, subjects)
-    if located is None:
+    return None if located is None else (subject_row, cells_of_roi, located, pieces)
+
+
+def _subject_nulls(paths, name, cells, subjects):
+    """(n_subjects, n_permutations, n_cells) null scores of every cell and each subject's count, or None without permutations."""
+    found = _null_files(paths, name, cells, subjects)
+    if found is None:
         return None
+    subject_row, cells_of_roi, located, pieces = found
     for key, path in located.items():
         if key not in pieces:
             pieces[key] = _read_null(path, name, subject_row, cells_of_roi)[1]
@@ -441,13 +448,10 @@ def _null_draws_by_roi(paths, name, cells, keep, kept_cells, scores, subjects, e
         None without prevalence; ``rows`` the null table's text per ROI, None
         when a label needs quoting), or None without permutations.
     """
-    if not paths:
+    found = _null_files(paths, name, cells, subjects)
+    if found is None:
         return None
-    subject_row = {subject: index for index, subject in enumerate(subjects)}
-    cells_of_roi = _cells_by_roi(cells)
-    located, pieces = _locate_nulls(paths, name, subject_row, cells_of_roi, subjects)
-    if located is None:
-        return None
+    subject_row, cells_of_roi, located, pieces = found
     kept_position = np.cumsum(keep) - 1  # study cell index -> position among the kept cells
     quoted = _needs_quoting(kept_cells)
     parts = job_parts()

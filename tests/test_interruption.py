@@ -34,7 +34,7 @@ import pytest
 from foldwise.provenance.hashing import hash_file
 from foldwise.provenance.memo import MemoStore, run_job
 from test_privacy import private_record_problems
-from workflow_support import TINY_STUDY, copy_repository, read_manifest, snakemake, workflow_environment, write_study
+from workflow_support import TINY_STUDY, Named, copy_repository, read_manifest, snakemake, workflow_environment, write_study
 
 MINI_STUDY = copy.deepcopy(TINY_STUDY)
 MINI_STUDY["study"]["name"] = "mini"
@@ -137,8 +137,14 @@ def reference_run(tmp_path_factory):
     first = _start_workflow(workdir)
     try:
         _wait_for(lambda: any((workdir / ".snakemake" / "locks").glob("*.lock")), first, "directory lock")
-        second = snakemake(workdir, check=False)
-        first_still_running = first.poll() is None
+        # The mini study finishes in ~6 s and a second Snakemake needs ~3 s to reach the lock: the first run and
+        # its jobs are paused (SIGSTOP to the group) while the second tries, so the lock is certainly held.
+        os.killpg(first.pid, signal.SIGSTOP)
+        try:
+            second = snakemake(workdir, check=False)
+            first_still_running = first.poll() is None
+        finally:
+            os.killpg(first.pid, signal.SIGCONT)
         first.wait(timeout=900)
     finally:
         if first.poll() is None:
@@ -255,11 +261,6 @@ def test_restore_racing_store_only_ever_sees_complete_entries(tmp_path):
     assert os.listdir(root / "incoming") == []
 
 
-class _Named(dict):
-    def __getattr__(self, name):
-        return self[name]
-
-
 def _doubling_job(inputs, outputs, settings, log):
     text = Path(inputs["source"]).read_text(encoding="utf-8")
     Path(outputs["doubled"]).parent.mkdir(parents=True, exist_ok=True)
@@ -270,10 +271,10 @@ def _run_job_worker(arguments):
     """One run_job of the shared key, writing its own outputs; returns (exit code, key)."""
     folder, worker = arguments
     os.chdir(folder)
-    smk = SimpleNamespace(input=_Named(source="lantern.txt"),
-                          output=_Named(doubled=f"out/{worker}/doubled.txt", provenance=f"prov/{worker}.json"),
-                          params=_Named(settings={"times": 3}, code="v1"), log=[f"logs/{worker}.log"],
-                          wildcards=_Named(worker=str(worker)), config={"study": {"store_dir": "store"}})
+    smk = SimpleNamespace(input=Named(source="lantern.txt"),
+                          output=Named(doubled=f"out/{worker}/doubled.txt", provenance=f"prov/{worker}.json"),
+                          params=Named(settings={"times": 3}, code="v1"), log=[f"logs/{worker}.log"],
+                          wildcards=Named(worker=str(worker)), config={"study": {"store_dir": "store"}})
     try:
         run_job(smk, "double", _doubling_job)
     except SystemExit as stop:

@@ -175,3 +175,22 @@ def test_load_stored_finds_a_truncated_file_from_its_size(tmp_path, suffix):
     with pytest.raises(InputError, match="truncated") as excinfo:
         load_stored(cut, what="BOLD image")
     assert excinfo.value.file == str(cut) and excinfo.value.field == "content"
+
+
+def test_a_damaged_deflate_stream_is_a_content_error_not_a_traceback(tmp_path):
+    # A .nii.gz whose first deflate byte is flipped: the fast decoder (isal) raises its own error class, which is
+    # not a zlib.error; the readers must still name the file and the field instead of raising it.
+    from foldwise.data import fileio
+
+    path = tmp_path / "damaged.nii.gz"
+    nib.save(nib.Nifti1Image(np.arange(8 * 8 * 8 * 5, dtype=np.float32).reshape(8, 8, 8, 5), np.eye(4)), path)
+    damaged = bytearray(path.read_bytes())
+    damaged[10] ^= 0xFF  # the first byte after the 10-byte gzip header (RFC 1952)
+    path.write_bytes(bytes(damaged))
+    with pytest.raises(fileio.GZIP_ERRORS):  # what the decoder itself raises
+        with fileio.open_gzip(path) as stream:
+            stream.read()
+    for read in (fileio.load_nifti, fileio.load_stored):
+        with pytest.raises(InputError) as caught:
+            read(path)
+        assert caught.value.field == "content", read.__name__

@@ -24,8 +24,13 @@ from foldwise.errors import InputError
 
 try:  # a faster gzip decoder/encoder from PyPI; the standard one is the fallback
     from isal import igzip as _fast_gzip
+    from isal.isal_zlib import error as _fast_gzip_error
 except ImportError:  # pragma: no cover - exercised only where isal is absent
     _fast_gzip = None
+    _fast_gzip_error = zlib.error
+
+#: What a damaged deflate stream raises, from either decoder (isal's error is not a zlib.error).
+GZIP_ERRORS = (zlib.error, _fast_gzip_error)
 
 __all__ = [
     "missing_file_error",
@@ -38,6 +43,8 @@ __all__ = [
     "write_tsv",
     "read_tsv",
     "gzip_bytes",
+    "open_gzip",
+    "GZIP_ERRORS",
     "gunzip_bytes",
     "save_nifti",
     "load_nifti",
@@ -160,6 +167,11 @@ def gunzip_bytes(data):
     return gzip.decompress(data)
 
 
+def open_gzip(path):
+    """A binary stream of a .gz file's decompressed bytes, decoded as they are read, with the fastest decoder available."""
+    return (_fast_gzip or gzip).open(path, "rb")
+
+
 def write_tsv(path, frame):
     """Write a DataFrame as TSV (gzip if the name ends in .gz), atomically.
 
@@ -218,7 +230,7 @@ def read_tsv(path, required_columns=(), what="table", text_columns=TEXT_COLUMNS)
                             dtype={column: str for column in text_columns})
     except pd.errors.EmptyDataError:
         raise InputError(path, "header", f"the {what} is empty", "write a header line and at least one row") from None
-    except (pd.errors.ParserError, csv.Error, UnicodeDecodeError, gzip.BadGzipFile, EOFError, zlib.error) as error:
+    except (pd.errors.ParserError, csv.Error, UnicodeDecodeError, gzip.BadGzipFile, EOFError, *GZIP_ERRORS) as error:
         raise InputError(path, "format", f"the {what} is not a readable TSV ({str(error).strip()})",
                          "save it as tab-separated UTF-8 text") from None
     missing = [column for column in required_columns if column not in frame.columns]
@@ -287,7 +299,7 @@ def load_nifti(path, what="image", float32=True):
             image.get_fdata(caching="fill", dtype=np.float32)  # force a full read (truncation shows here); kept for the caller
         else:
             image.dataobj.get_unscaled()  # the stored values: truncation shows here too
-    except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
+    except (OSError, EOFError, *GZIP_ERRORS, ValueError, nib.filebasedimages.ImageFileError) as error:
         raise InputError(path, "content", f"the {what} is truncated or not a NIfTI file ({type(error).__name__}: {error})",
                          "re-export or re-copy the file") from None
     return image
@@ -380,7 +392,7 @@ def load_stored(path, what="image"):
         if len(data) < offset + n_values * dtype.itemsize:
             raise ValueError(f"the header promises {n_values * dtype.itemsize} data bytes after byte {offset}, "
                              f"the file holds {max(0, len(data) - offset)}")
-    except (OSError, EOFError, zlib.error, ValueError, nib.filebasedimages.ImageFileError) as error:
+    except (OSError, EOFError, *GZIP_ERRORS, ValueError, nib.filebasedimages.ImageFileError) as error:
         raise InputError(path, "content", f"the {what} is truncated or not a NIfTI file ({type(error).__name__}: {error})",
                          "re-export or re-copy the file") from None
     stored = np.frombuffer(data, dtype=dtype, count=n_values, offset=offset).reshape(shape, order="F")

@@ -1,26 +1,17 @@
 """Job: one subject's brain mask (derived from the BOLD runs, or a given mask checked against them)."""
 
 import io
-import zlib
 
 import nibabel as nib
 import numpy as np
 
 from foldwise.data.bids import load_bold
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_nifti, save_nifti, write_json
+from foldwise.data.fileio import GZIP_ERRORS, load_nifti, open_gzip, save_nifti, write_json
 from foldwise.contract import GRID_TOLERANCE_MM  # one tolerance for every grid comparison
 from foldwise.masks.build import combine_run_statistics, run_statistics, same_grid, threshold_mean_image
 
 __all__ = ["GRID_TOLERANCE_MM", "run"]
-
-try:  # the fast gzip decoder from PyPI (as foldwise.data.fileio); the standard library's is the fallback
-    from isal import igzip as _gzip
-    from isal.isal_zlib import error as _gzip_error
-except ImportError:  # pragma: no cover - exercised only where isal is absent
-    import gzip as _gzip
-    _gzip_error = zlib.error
-
 
 def _as_list(paths):
     return [paths] if isinstance(paths, str) else list(paths)
@@ -46,8 +37,8 @@ def _leading_volumes(path, n_volumes):
         data, affine, _ = load_bold(path)
         return data, affine
     try:
-        opener = _gzip.open if str(path).endswith(".gz") else open
-        with opener(path, "rb") as stream:
+        opener = open_gzip if str(path).endswith(".gz") else (lambda name: open(name, "rb"))
+        with opener(path) as stream:
             head = stream.read(_HEADER_BYTES)
             size = int.from_bytes(head[:4], "little")
             size = size if size in (348, 540) else int.from_bytes(head[:4], "big")  # a big-endian header
@@ -68,7 +59,7 @@ def _leading_volumes(path, n_volumes):
         raise
     except FileNotFoundError:
         raise InputError(path, "file", "the BOLD image does not exist", "create it or correct the path in the config") from None
-    except (OSError, EOFError, zlib.error, _gzip_error, ValueError, nib.filebasedimages.ImageFileError,
+    except (OSError, EOFError, *GZIP_ERRORS, ValueError, nib.filebasedimages.ImageFileError,
             nib.spatialimages.HeaderDataError) as error:
         raise InputError(path, "content", f"the BOLD image is truncated or not a NIfTI file ({type(error).__name__}: {error})",
                          "re-export or re-copy the file") from None

@@ -194,3 +194,56 @@ def test_a_damaged_deflate_stream_is_a_content_error_not_a_traceback(tmp_path):
         with pytest.raises(InputError) as caught:
             read(path)
         assert caught.value.field == "content", read.__name__
+
+
+def _scaled_run(tmp_path, name, shape, seed):
+    rng = np.random.default_rng(seed)
+    image = nib.Nifti1Image(rng.integers(-3000, 30000, size=shape).astype(np.int16), np.diag([3.0, 3.0, 3.0, 1.0]))
+    image.header.set_slope_inter(0.37, 12.5)
+    path = tmp_path / name
+    nib.save(image, path)
+    return path
+
+
+def test_runs_read_through_one_reused_buffer_match_nibabel(tmp_path):
+    # Reference: nibabel's reader of each file. A small run after a large one, then a larger one (the buffer grows),
+    # all through the same two buffers, as the GLM job reads a subject's runs.
+    from foldwise.data.fileio import ByteBuffer, load_stored, masked_float32
+
+    decoded, series = ByteBuffer(), ByteBuffer()
+    for index, shape in enumerate([(6, 5, 4, 30), (3, 4, 2, 7), (9, 8, 7, 40)]):
+        path = _scaled_run(tmp_path, f"run{index}.nii.gz", shape, index)
+        reference = nib.load(path)
+        image, stored = load_stored(path, buffer=decoded)
+        assert not stored.flags.writeable
+        assert np.array_equal(stored, np.asanyarray(reference.dataobj.get_unscaled())) and np.array_equal(image.affine, reference.affine)
+        voxels = np.arange(0, int(np.prod(shape[:3])), 3)
+        expected = reference.get_fdata(dtype=np.float32).reshape(-1, shape[3], order="F")[voxels].T
+        assert np.array_equal(masked_float32(image, stored, voxels, buffer=series), expected)
+
+
+def test_a_multi_member_gzip_file_with_zero_padding_reads_whole(tmp_path):
+    # RFC 1952 section 2.2: a gzip file is a series of members; the standard library's gzip reader reads them all
+    # and ignores zero padding after the last. Here the trailer's size (the last member's) is far below the whole,
+    # so the streamed decode must also grow its buffer past that hint.
+    from foldwise.data.fileio import load_stored
+
+    path = _scaled_run(tmp_path, "whole.nii", (6, 5, 4, 30), 3)
+    raw = path.read_bytes()
+    split = tmp_path / "split.nii.gz"
+    split.write_bytes(gzip.compress(raw[:-500]) + gzip.compress(raw[-500:]) + bytes(64))
+    with gzip.open(split) as stream:
+        assert stream.read() == raw  # the standard library's reading of the same file
+    image, stored = load_stored(split)
+    assert np.array_equal(stored, np.asanyarray(nib.load(path).dataobj.get_unscaled()))
+
+
+def test_a_gzip_stream_cut_inside_a_member_is_a_content_error(tmp_path):
+    from foldwise.data.fileio import load_stored
+
+    path = _scaled_run(tmp_path, "whole.nii", (6, 5, 4, 30), 4)
+    cut = tmp_path / "cut.nii.gz"
+    cut.write_bytes(gzip.compress(path.read_bytes())[:-20])  # the last bytes of the stream and its trailer are missing
+    with pytest.raises(InputError) as caught:
+        load_stored(cut, what="BOLD image")
+    assert caught.value.field == "content" and caught.value.file == str(cut)

@@ -15,7 +15,7 @@ import pandas as pd
 from foldwise.data.bids import (confound_table_columns, count_flagged_initial_volumes, read_confounds, read_events, read_tr_s,
                                 require_4d, select_confound_columns)
 from foldwise.errors import InputError
-from foldwise.data.fileio import load_stored, masked_float32, save_nifti, write_bytes_atomic, write_json, write_tsv
+from foldwise.data.fileio import ByteBuffer, load_stored, masked_float32, save_nifti, write_bytes_atomic, write_json, write_tsv
 from foldwise.glm.design_image import design_png
 from foldwise.glm.estimate import estimate_patterns
 from foldwise import contract
@@ -235,6 +235,7 @@ def run(inputs, outputs, params, log):
     """
     parts = part_memo()
     mask = _SubjectMask(inputs["mask"])
+    decoded, series = ByteBuffer(), ByteBuffer()  # every run is decoded and converted into the same memory (no fresh pages per run)
     for index, run_entry in enumerate(params["runs"]):
         run_inputs = {name: _nth(inputs[name], index) for name in RUN_INPUTS if name in inputs}
         run_inputs["mask"] = inputs["mask"]
@@ -245,11 +246,11 @@ def run(inputs, outputs, params, log):
             log.info("sub-%s %s: restored from the content memo (its files and settings are unchanged)", params["subject"],
                      run_entry["run_id"])
             continue
-        run_one(run_inputs, run_outputs, settings, log, read_mask=mask.read)
+        run_one(run_inputs, run_outputs, settings, log, read_mask=mask.read, buffers=(decoded, series))
         parts.store(run_entry["run_id"], identity, run_outputs)
 
 
-def run_one(inputs, outputs, params, log, read_mask=None):
+def run_one(inputs, outputs, params, log, read_mask=None, buffers=(None, None)):
     """Fit the GLM of one run inside the brain mask and write its patterns.
 
     Parameters
@@ -271,6 +272,10 @@ def run_one(inputs, outputs, params, log, read_mask=None):
     read_mask : callable, optional
         Returns ``(mask, affine)`` of ``inputs["mask"]`` (the subject job
         reads it once for all runs); default: read the file.
+    buffers : pair of foldwise.data.fileio.ByteBuffer, optional
+        Where the BOLD file is decoded and where its masked series is
+        converted (the subject job passes one pair for all its runs);
+        default: new memory.
 
     Notes
     -----
@@ -282,7 +287,7 @@ def run_one(inputs, outputs, params, log, read_mask=None):
     glm_settings = params["glm"]
     subject, session, run_id = params["subject"], params.get("session"), params["run_id"]
 
-    image, stored = load_stored(inputs["bold"], what="BOLD image")
+    image, stored = load_stored(inputs["bold"], what="BOLD image", buffer=buffers[0])
     require_4d(image, inputs["bold"])
     affine = np.asarray(image.affine, dtype=np.float64)
     n_scans = stored.shape[3]
@@ -295,7 +300,7 @@ def run_one(inputs, outputs, params, log, read_mask=None):
                                                      params.get("drop_initial_volumes", 0), n_scans)
     mask = _load_mask(inputs["mask"], stored.shape[:3], affine, read_mask)
     voxels = np.flatnonzero(mask.ravel(order="F"))
-    bold_2d = masked_float32(image, stored, voxels)
+    bold_2d = masked_float32(image, stored, voxels, buffer=buffers[1])
     del image, stored  # the decoded file: the masked series is all the fit needs
     bold_2d, events, confounds, confound_names = drop_initial(bold_2d, events, confounds, confound_names, n_drop, tr_s)
     log.info("sub-%s %s: dropped %d initial volume(s); confounds: %s", subject, run_id, n_drop, ", ".join(confound_names) or "none")

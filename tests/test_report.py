@@ -1241,6 +1241,45 @@ def test_the_preview_is_the_picture_savefig_draws_at_the_same_dpi(tmp_path):
         assert np.array_equal(np.asarray(ours.convert("RGB")), np.asarray(theirs.convert("RGB")))
 
 
+def test_the_preview_canvas_keeps_text_but_draws_the_pixels_of_a_plain_agg_canvas():
+    # The preview canvas reuses text layouts and glyph bitmaps (a glyph at the same fraction of a pixel, moved by whole
+    # pixels). Reference: matplotlib's own FigureCanvasAgg, the raw RGBA buffer compared bit for bit (no colour
+    # reduction that could hide a difference): plain, rotated, non-antialiased and mathtext texts, each figure drawn
+    # with a cold cache, then again with a warm one, and figures whose texts move by fractions of a pixel in between.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    from foldwise.report import drawing
+
+    def texts(shift):
+        figure = Figure(figsize=(5.3, 3.1), dpi=drawing.PREVIEW_DPI)
+        axes = figure.add_subplot()
+        axes.plot([0, 1, 2], [0.3, 0.5 + shift, 0.4], label="A<->B")
+        axes.set_xlabel("n_voxels")
+        axes.set_ylabel("balanced accuracy")
+        axes.set_title(f"analysis shape, ROI ember {shift:g}")
+        axes.text(0.5 + shift, 0.45, "seen->heard", rotation=33, fontsize=7)
+        axes.text(0.2 + shift / 3, 0.35, "hush ffi", antialiased=False, fontsize=11)
+        axes.text(1.2 + shift / 7, 0.42, "$p_{fwe} < 0.05$", fontsize=9)
+        axes.legend(loc="lower right")
+        return figure
+
+    drawing.clear_text_cache()
+    canvas_class = drawing._preview_canvas_class()
+    for shift in (0.0, 0.0137, 0.0, 0.2):
+        plain = texts(shift)
+        FigureCanvasAgg(plain).draw()
+        reference = np.asarray(plain.canvas.buffer_rgba()).copy()
+        cached = texts(shift)
+        canvas = canvas_class(cached)
+        for _ in range(2):
+            canvas.draw()
+            assert np.array_equal(np.asarray(canvas.buffer_rgba()), reference)
+    assert drawing._TEXT_CACHE["bitmaps"] and drawing._TEXT_CACHE["layouts"]  # the cache was used
+    drawing.clear_text_cache()
+    assert not drawing._TEXT_CACHE["bitmaps"] and not drawing._TEXT_CACHE["layouts"]
+
+
 def _layout_problems(figure):
     """Texts outside the figure, and a legend or tick labels over another panel (Agg's own measure of every text)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg

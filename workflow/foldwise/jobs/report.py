@@ -36,7 +36,7 @@ from foldwise.report import images
 from foldwise.report import page as html_page
 from foldwise.report import geometry_section
 from foldwise.report.catalogue import embedded_files, figure_catalogue, publication_files
-from foldwise.report.drawing import data_digest, save_preview, save_publication_files
+from foldwise.report.drawing import clear_text_cache, data_digest, save_preview, save_publication_files
 from foldwise.report.summary import answer_sentences
 from foldwise.report.terminal import job_warnings
 from foldwise.errors import InputError
@@ -720,6 +720,7 @@ def run(inputs, outputs, params, log):
     """
     study, subjects, runs = _check_params(params)
     catalogue = _check_outputs(outputs, study, subjects)
+    clear_text_cache()  # the previews' text layouts and glyphs are kept for this job only
     config_file = display_path(params.get("config_file"))  # never an absolute path in the report
     versions = _package_versions()
     repetition_times = _repetition_times(inputs.get("sidecars"))

@@ -1244,8 +1244,8 @@ def test_the_preview_is_the_picture_savefig_draws_at_the_same_dpi(tmp_path):
 def test_the_preview_canvas_keeps_text_but_draws_the_pixels_of_a_plain_agg_canvas():
     # The preview canvas reuses text layouts and glyph bitmaps (a glyph at the same fraction of a pixel, moved by whole
     # pixels). Reference: matplotlib's own FigureCanvasAgg, the raw RGBA buffer compared bit for bit (no colour
-    # reduction that could hide a difference): plain, rotated, non-antialiased and mathtext texts, each figure drawn
-    # with a cold cache, then again with a warm one, and figures whose texts move by fractions of a pixel in between.
+    # reduction that could hide a difference): plain, rotated, non-antialiased, two-line and mathtext texts, each drawn
+    # with a cold cache, then with a warm one, and figures whose texts move by fractions of a pixel in between.
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -1261,6 +1261,7 @@ def test_the_preview_canvas_keeps_text_but_draws_the_pixels_of_a_plain_agg_canva
         axes.text(0.5 + shift, 0.45, "seen->heard", rotation=33, fontsize=7)
         axes.text(0.2 + shift / 3, 0.35, "hush ffi", antialiased=False, fontsize=11)
         axes.text(1.2 + shift / 7, 0.42, "$p_{fwe} < 0.05$", fontsize=9)
+        axes.text(1.5, 0.32 + shift / 5, "glow\n40 voxels", fontsize=8)  # two lines: the font's line gap counts
         axes.legend(loc="lower right")
         return figure
 
@@ -1275,9 +1276,9 @@ def test_the_preview_canvas_keeps_text_but_draws_the_pixels_of_a_plain_agg_canva
         for _ in range(2):
             canvas.draw()
             assert np.array_equal(np.asarray(canvas.buffer_rgba()), reference)
-    assert drawing._TEXT_CACHE["bitmaps"] and drawing._TEXT_CACHE["layouts"]  # the cache was used
+    assert all(drawing._TEXT_CACHE.values())  # layouts, glyphs and line metrics were kept and used
     drawing.clear_text_cache()
-    assert not drawing._TEXT_CACHE["bitmaps"] and not drawing._TEXT_CACHE["layouts"]
+    assert not any(drawing._TEXT_CACHE.values())
 
 
 def _layout_problems(figure):

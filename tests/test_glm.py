@@ -259,6 +259,61 @@ def test_estimated_ar1_fit_solves_each_voxel_with_its_binned_coefficient():
         np.testing.assert_allclose(fit.t_values[:, voxel], single.t_values[:, 0], rtol=1e-10)
 
 
+def test_whitened_quadratic_forms_equal_sums_over_whitened_data():
+    # Reference: whiten_ar1's rows themselves, multiplied out (X'W'W y and y'W'W y), for both first-scan variants
+    # and per-voxel coefficients; the forms are those fit_ar1 solves from without whitening the data.
+    rng = np.random.default_rng(31)
+    design = rng.normal(size=(40, 3))
+    data = rng.normal(size=(40, 5)) + 7.0
+    rho = np.array([-0.6, 0.0, 0.2, 0.5, 0.9])
+    neighbours = np.zeros_like(design)
+    neighbours[1:] += design[:-1]
+    neighbours[:-1] += design[1:]
+    lag_square = np.einsum("ij,ij->j", data[1:], data[:-1])
+    for first_scan in ("keep", "drop"):
+        design_form, data_form = glm_module._whitened_forms(rho, first_scan, design.T @ data, neighbours.T @ data,
+                                                            np.einsum("ij,ij->j", data, data), lag_square, data[0], data[-1],
+                                                            design[0], design[-1])
+        for voxel, coefficient in enumerate(rho):
+            whitened_design = whiten_ar1(design, coefficient, first_scan)
+            whitened_data = whiten_ar1(data[:, voxel], coefficient, first_scan)
+            np.testing.assert_allclose(design_form[:, voxel], whitened_design.T @ whitened_data, rtol=1e-12, atol=1e-12)
+            assert data_form[voxel] == pytest.approx(whitened_data @ whitened_data, rel=1e-12)
+
+
+def test_ar1_fit_equals_exact_gls_for_mixed_voxels_designs_without_a_constant_and_a_separate_rho_design():
+    # Source: statsmodels GLS with sigma_ij = rho^|i-j| (Prais-Winsten is exact GLS), voxel by voxel, with the
+    # coefficients fit_ar1 chose. fit_ar1 solves from products of the centred data when the design spans the
+    # constant; exact fits (a noise-free voxel, a constant voxel) are refitted from their whitened data, and a
+    # design without the constant is whitened directly: every route must give the same GLS answer.
+    rng = np.random.default_rng(32)
+    design = _design(_lantern_events(rng))
+    bold = _data(rng, design, 6, rho=0.4) * 40.0  # a large baseline (4,000) against unit-scale noise
+    bold[:, 2] = design.matrix @ rng.normal(size=design.matrix.shape[1])  # noise-free: the model fits exactly
+    bold[:, 3] = bold[:, 2] + 1e-6 * _ar1_noise(rng, 0.4, N_SCANS, 1)[:, 0]  # almost noise-free: refitted from its data
+    bold[:, 4] = 321.0  # constant
+    no_constant = design.matrix[:, :len(CONDITIONS)]  # the pattern regressors alone
+    per_condition_rho = _design(_lantern_events(np.random.default_rng(33))).matrix  # another design of the same length
+    for matrix, rho_design in ((design.matrix, None), (design.matrix, per_condition_rho), (no_constant, None),
+                               (design.matrix, no_constant)):
+        columns = np.arange(len(CONDITIONS))
+        fit = fit_ar1(matrix, bold, columns, rho_design=rho_design)
+        noise_design = matrix if rho_design is None else rho_design
+        residuals = bold - noise_design @ np.linalg.lstsq(noise_design, bold, rcond=None)[0]
+        np.testing.assert_array_equal(fit.rho, bin_ar1(ar1_coefficients(residuals, noise_design)))
+        for voxel in range(bold.shape[1]):
+            sigma = toeplitz(fit.rho[voxel] ** np.arange(N_SCANS))
+            gls = sm.GLS(bold[:, voxel], matrix, sigma=sigma).fit()
+            np.testing.assert_allclose(fit.betas[:, voxel], gls.params, rtol=1e-8, atol=1e-8)
+            if voxel in (2, 4) and matrix is design.matrix:  # exact fits: no residual noise, t reported as 0
+                assert fit.residual_variance[voxel] == 0.0
+                np.testing.assert_array_equal(fit.t_values[:, voxel], 0.0)
+            else:
+                # Prais-Winsten's W'W is (1 - rho^2) times GLS's inverse correlation: the innovation variance
+                assert fit.residual_variance[voxel] == pytest.approx(gls.scale * (1.0 - fit.rho[voxel] ** 2), rel=1e-7)
+                np.testing.assert_allclose(fit.t_values[:, voxel], gls.tvalues[columns], rtol=1e-7)
+
+
 def test_whiten_ar1_bad_input():
     with pytest.raises(InputError):
         whiten_ar1(np.ones((5, 2)), 1.0)

@@ -10,7 +10,7 @@ products per block of voxels. Voxels are processed in blocks of
 block boundary never changes a voxel's result beyond rounding.
 """
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -396,10 +396,14 @@ def ar1_moment_table(design_matrix, grid_step=0.001, grid_limit=0.99):
     return rho_grid, np.maximum.accumulate(expected_ratio)
 
 
+def _lag_sums(values):
+    """Per column: sum_t v_t^2 and sum_t v_t v_(t-1) (over t >= 1)."""
+    return np.einsum("ij,ij->j", values, values), np.einsum("ij,ij->j", values[1:], values[:-1])
+
+
 def _lag_ratio(residuals):
     """Plain lag-1 autocorrelation sum r_t r_(t-1) / sum r_t^2 per column (0 without variance)."""
-    lag0 = np.einsum("ij,ij->j", residuals, residuals)
-    lag1 = np.einsum("ij,ij->j", residuals[1:], residuals[:-1])
+    lag0, lag1 = _lag_sums(residuals)
     ratio = np.zeros_like(lag0)
     np.divide(lag1, lag0, out=ratio, where=lag0 > 0)
     return ratio
@@ -530,27 +534,113 @@ def whiten_ar1(values, rho, first_scan="keep"):
     return whitened
 
 
+def _data_pass(bold, noise_design=None, design=None):
+    """One pass over contiguous blocks of the data: what the AR(1) fits need from it.
+
+    Returns ``(ratio, products)``. ``ratio``: the plain lag-1 autocorrelation
+    of each voxel's OLS residuals under ``noise_design``, from the residuals
+    themselves (None without it). ``products`` (None without ``design``):
+    :class:`_DataProducts` of the data, each voxel minus its mean, with
+    ``design`` (any matrix of the run's rows) and with itself, from which
+    :func:`fit_ar1` gets the coefficients and every whitened fit without
+    forming residuals or whitening the data.
+    """
+    n_voxels = bold.shape[1]
+    noise = None if noise_design is None else _Factor(noise_design)
+    ratio = None if noise is None else np.empty(n_voxels)
+    products = None
+    if design is not None:
+        # [X, X shifted down + X shifted up]: X'y and sum_(t>=1) (x_t y_(t-1) + x_(t-1) y_t) in one product
+        neighbours = np.zeros_like(design)
+        neighbours[1:] += design[:-1]
+        neighbours[:-1] += design[1:]
+        stacked = np.ascontiguousarray(np.hstack([design, neighbours]).T)
+        n_columns = design.shape[1]
+        products = _DataProducts(*(np.empty((n_columns, n_voxels)) for _ in range(2)), *(np.empty(n_voxels) for _ in range(6)))
+    for block in _voxel_blocks(n_voxels):
+        data = _float64_block(bold, block)
+        if noise is not None:
+            ratio[block] = _lag_ratio(data - noise.u @ (noise.u.T @ data))
+        if products is not None:
+            products.mean[block] = data.mean(axis=0)
+            data -= products.mean[block]
+            both = stacked @ data
+            products.cross[:, block], products.lag_cross[:, block] = both[:n_columns], both[n_columns:]
+            products.square[block], products.lag_square[block] = _lag_sums(data)
+            products.total[block], products.first[block], products.last[block] = data.sum(axis=0), data[0], data[-1]
+    return ratio, products
+
+
+@dataclass
+class _DataProducts:
+    """Products of one run's centred data ``y - mean(y)`` (per voxel) with its design ``X`` and with itself."""
+
+    cross: np.ndarray  # X'y, (regressors, voxels)
+    lag_cross: np.ndarray  # sum_(t>=1) (x_t y_(t-1) + x_(t-1) y_t)
+    square: np.ndarray  # y'y
+    lag_square: np.ndarray  # sum_(t>=1) y_t y_(t-1)
+    total: np.ndarray  # sum_t y_t (zero up to rounding)
+    first: np.ndarray  # y_0
+    last: np.ndarray  # y_(T-1)
+    mean: np.ndarray  # the mean taken off each voxel
+
+    def columns(self, rows):
+        """The products with some of the matrix's columns (the voxels' own sums are shared)."""
+        return replace(self, cross=self.cross[rows], lag_cross=self.lag_cross[rows])
+
+
+def _residual_lag_ratio(noise_design, products, bold):
+    """:func:`_lag_ratio` of each voxel's OLS residuals under ``noise_design``, from the products with it.
+
+    With ``u = X C`` orthonormal, ``z = C' X'y`` and ``beta = C z``, the
+    residuals ``r = y - X beta`` have ``sum r_t^2 = y'y - ||z||^2`` and
+    ``sum_(t>=1) r_t r_(t-1) = sum y_t y_(t-1) - beta' L + beta' H beta`` with
+    ``L`` the products' ``lag_cross`` and ``H`` the symmetric part of
+    ``sum_(t>=1) x_t x_(t-1)'``. The data are centred, which leaves the
+    residuals unchanged as the constant is in the span of ``X``. Voxels whose
+    residual sum of squares is below ``PRODUCTS_RESOLUTION`` of the data's
+    (exact fits, constant voxels) get the ratio of their explicit residuals.
+    """
+    factor = _Factor(noise_design)
+    z = factor.coefficients_from_z.T @ products.cross
+    beta = factor.coefficients_from_z @ z
+    neighbours = noise_design[1:].T @ noise_design[:-1]
+    lag0 = products.square - np.einsum("ij,ij->j", z, z)
+    lag1 = (products.lag_square - np.einsum("ij,ij->j", beta, products.lag_cross)
+            + np.einsum("ij,ij->j", beta, 0.5 * (neighbours + neighbours.T) @ beta))
+    ratio = np.zeros_like(lag0)
+    np.divide(lag1, lag0, out=ratio, where=lag0 > 0)
+    unresolved = lag0 <= PRODUCTS_RESOLUTION * products.square
+    if unresolved.any():
+        ratio[unresolved] = _data_pass(bold[:, unresolved], noise_design=noise_design)[0]
+    return ratio
+
+
+def _binned_rho(noise_design, ratio):
+    """Bias-corrected (:func:`ar1_moment_table`), binned AR(1) coefficients from the residual lag ratios."""
+    rho_grid, expected_ratio = ar1_moment_table(noise_design)
+    return bin_ar1(np.interp(ratio, expected_ratio, rho_grid))
+
+
 def _estimate_rho(rho_design, bold):
     """Bias-corrected, binned AR(1) coefficients from the OLS residuals of ``rho_design``."""
-    factor = _Factor(rho_design)
-    rho_grid, expected_ratio = ar1_moment_table(rho_design)
-    rho = np.empty(bold.shape[1])
-    for block in _voxel_blocks(bold.shape[1]):
-        data = _float64_block(bold, block)
-        residuals = data - factor.u @ (factor.u.T @ data)
-        rho[block] = np.interp(_lag_ratio(residuals), expected_ratio, rho_grid)
-    return bin_ar1(rho)
+    return _binned_rho(rho_design, _data_pass(bold, noise_design=rho_design)[0])
+
+
+def _noise_design(design, rho_design):
+    """The design whose OLS residuals give the AR(1) coefficients (default: ``design``), checked."""
+    noise_design = design if rho_design is None else _check_design(rho_design)
+    if noise_design.shape[0] != design.shape[0]:
+        raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
+                         "pass a design of the same run")
+    return noise_design
 
 
 def _voxel_rho(design, bold, rho, rho_design):
     """The AR(1) coefficient of every voxel: ``rho`` checked, or estimated from the residuals of ``rho_design`` (default: ``design``)."""
     if rho is not None:
         return _check_rho(rho, bold.shape[1])
-    noise_design = design if rho_design is None else _check_design(rho_design)
-    if noise_design.shape[0] != design.shape[0]:
-        raise InputError(None, "rho_design", f"has {noise_design.shape[0]} rows, the design {design.shape[0]}",
-                         "pass a design of the same run")
-    return _estimate_rho(noise_design, bold)
+    return _estimate_rho(_noise_design(design, rho_design), bold)
 
 
 def _check_rho(rho, n_voxels):
@@ -644,21 +734,137 @@ def fit_ar1(design_matrix, bold_2d, pattern_columns=None, with_t=True, rho=None,
     bold = _check_bold(bold_2d, design.shape[0])
     columns = _check_columns(pattern_columns, design.shape[1], "pattern_columns")
     _check_first_scan(first_scan)
-    voxel_rho = _voxel_rho(design, bold, rho, rho_design)
+    voxel_rho = None if rho is None else _check_rho(rho, bold.shape[1])
+    noise_design = None if rho is not None else _noise_design(design, rho_design)
     unwhitened = _Factor(design)
     _require_estimable(unwhitened, columns, column_names)
     whitened_factors = {}
 
-    def solve(level, data):
+    def factor_of(level):
         if level not in whitened_factors:  # one factorisation per coefficient
             whitened_factors[level] = _Factor(whiten_ar1(design, level, first_scan))
-        return _ols_block(whitened_factors[level], data, columns, with_t)
+        return whitened_factors[level]
 
-    betas, residual_variance, t_values = _by_noise_level(bold, voxel_rho, solve, design.shape[1], columns.size, with_t,
-                                                         first_scan=first_scan)
+    def solve(level, data):
+        return _ols_block(factor_of(level), data, columns, with_t)
+
+    constant = _constant_coefficients(design)
+    if constant is None:  # the products below need the constant in the design's span; whiten the data instead
+        voxel_rho = voxel_rho if voxel_rho is not None else _estimate_rho(noise_design, bold)
+        betas, residual_variance, t_values = _by_noise_level(bold, voxel_rho, solve, design.shape[1], columns.size, with_t,
+                                                             first_scan=first_scan)
+    else:
+        # One pass gives the products with the design and, when the coefficients are estimated, with their design;
+        # the coefficients come from those products if that design also spans the constant, else from residuals.
+        same = noise_design is None or noise_design is design or np.array_equal(noise_design, design)
+        from_products = noise_design is not None and (same or _constant_coefficients(noise_design) is not None)
+        matrix = design if same else np.hstack([design, noise_design])
+        ratio, products = _data_pass(bold, None if from_products or noise_design is None else noise_design, matrix)
+        noise_products = products if same else products.columns(slice(design.shape[1], None))
+        products = products if same else products.columns(slice(0, design.shape[1]))
+        if voxel_rho is None:
+            ratio = _residual_lag_ratio(noise_design, noise_products, bold) if from_products else ratio
+            voxel_rho = _binned_rho(noise_design, ratio)
+        betas, residual_variance, t_values, unresolved = _fit_from_products(design, products, voxel_rho, factor_of, columns,
+                                                                            with_t, first_scan, constant)
+        if unresolved.any():  # (near-)exact fits: from their whitened data, as the products cannot resolve them
+            redo = _by_noise_level(bold[:, unresolved], voxel_rho[unresolved], solve, design.shape[1], columns.size, with_t,
+                                   first_scan=first_scan)
+            betas[:, unresolved], residual_variance[unresolved] = redo[0], redo[1]
+            if with_t:
+                t_values[:, unresolved] = redo[2]
     dof = design.shape[0] - (first_scan == "drop") - unwhitened.rank  # whitening keeps the rank
     return LinearFit(betas=betas, t_values=t_values, residual_variance=residual_variance,
                      dof=np.full(columns.size, dof, dtype=np.int64), rho=voxel_rho)
+
+
+#: A voxel whose whitened residual sum of squares, computed from the products, is below this fraction of its
+#: whitened (centred) sum of squares is refitted from its whitened data: the difference of two sums loses about
+#: -log10 of that fraction in digits, so below 1e-6 (a fit explaining 99.9999 % of the centred data) it is not
+#: trusted to the precision the t-values are reported with. Real noisy voxels stay far above it.
+PRODUCTS_RESOLUTION = 1e-6
+
+
+def _constant_coefficients(design):
+    """The minimum-norm ``c`` with ``X c = 1`` (the constant in the design's span), or None when the span lacks it."""
+    ones = np.ones(design.shape[0])
+    coefficients = np.linalg.lstsq(design, ones, rcond=None)[0]
+    if np.linalg.norm(design @ coefficients - ones) > 1e-9 * np.sqrt(design.shape[0]):
+        return None
+    return coefficients
+
+
+def _whitened_forms(rho, first_scan, cross, lag_cross, square, lag_square, first, last, first_row, last_row):
+    """``X' W'W y`` and ``y' W'W y`` of AR(1) whitening with coefficient(s) ``rho`` (per voxel), from the products.
+
+    ``W'W = (1 + rho^2) I - rho (S + S') - a e_0 e_0' - rho^2 e_(T-1) e_(T-1)'``
+    with ``S`` the lag-1 shift, ``a = rho^2`` when the first scan is kept
+    (Prais-Winsten) and ``a = 1`` when it is dropped (Cochrane-Orcutt):
+    multiply out ``sum_t (w_t)^2`` of :func:`whiten_ar1`'s rows. With the first
+    scan kept this is ``(1 - rho^2)`` times the inverse of the AR(1) correlation
+    matrix, the tridiagonal matrix with 1 at both corners, ``1 + rho^2``
+    inside and ``-rho`` beside the diagonal (e.g. Hamilton 1994, Time Series
+    Analysis, ch. 5, from memory; tests/test_glm.py checks these forms against
+    whitened data).
+    """
+    first_weight = rho ** 2 if first_scan == "keep" else np.ones_like(rho)
+    last_weight = rho ** 2
+    inside = 1.0 + rho ** 2
+    design_form = None
+    if cross is not None:
+        design_form = (inside * cross - rho * lag_cross - first_row[:, None] * (first_weight * first)
+                       - last_row[:, None] * (last_weight * last))
+    data_form = inside * square - 2.0 * rho * lag_square - first_weight * first ** 2 - last_weight * last ** 2
+    return design_form, data_form
+
+
+def _fit_from_products(design, products, voxel_rho, factor_of, columns, with_t, first_scan, constant):
+    """AR(1) fits of every voxel from its :class:`_DataProducts`, without whitening the data.
+
+    With ``W`` the voxel's whitening filter and ``u = W X C`` the orthonormal
+    basis of its whitened design (``C`` = ``coefficients_from_z``),
+    ``z = u' W y = C' X'W'W y``, ``beta = C z`` and the residual sum of squares
+    is ``y'W'W y - ||z||^2``: the quadratic forms come from the products
+    (:func:`_whitened_forms`), the rest from one small factorisation per
+    coefficient. The betas of the data as given are those of the centred
+    data plus ``constant`` (``X c = 1``) times the voxel's mean. Returns
+    betas, residual variance, t-values and the voxels to refit (see
+    ``PRODUCTS_RESOLUTION``).
+    """
+    n_voxels = voxel_rho.size
+    n_scans = design.shape[0]
+    design_form, data_form = _whitened_forms(voxel_rho, first_scan, products.cross, products.lag_cross, products.square,
+                                             products.lag_square, products.first, products.last, design[0], design[-1])
+    # The rounding floor compares with the sum of squares of the whitened data as given (mean included).
+    mean = products.mean
+    _, raw_form = _whitened_forms(voxel_rho, first_scan, None, None, products.square + 2 * mean * products.total + n_scans * mean ** 2,
+                                  products.lag_square + mean * (2 * products.total - products.first - products.last)
+                                  + (n_scans - 1) * mean ** 2, products.first + mean, products.last + mean, None, None)
+    # In the order of the coefficients, so that each level is a contiguous slice; back to the voxels' order at the end.
+    order = np.argsort(voxel_rho, kind="stable")
+    levels = voxel_rho[order]
+    design_form, data_form, raw_form, mean = design_form[:, order], data_form[order], raw_form[order], mean[order]
+    betas = np.empty((design.shape[1], n_voxels))
+    residual_sum = np.empty(n_voxels)
+    residual_variance = np.empty(n_voxels)
+    t_values = np.empty((columns.size, n_voxels)) if with_t else None
+    starts = np.flatnonzero(np.r_[True, levels[1:] != levels[:-1]])
+    for start, end in zip(starts, np.r_[starts[1:], n_voxels]):
+        level = slice(start, end)
+        factor = factor_of(float(levels[start]))
+        z = factor.coefficients_from_z.T @ design_form[:, level]
+        betas[:, level] = factor.coefficients_from_z @ z + constant[:, None] * mean[None, level]
+        residual_sum[level] = data_form[level] - np.einsum("ij,ij->j", z, z)
+        residual_variance[level] = _above_rounding(residual_sum[level], raw_form[level]) / (factor.n_rows - factor.rank)
+        if with_t:
+            t_values[:, level] = _t_values(betas[columns, level], factor.variance_factors[columns][:, None] * residual_variance[None, level])
+    unsorted = np.empty_like(order)
+    unsorted[order] = np.arange(n_voxels)
+    betas, residual_sum, residual_variance = betas[:, unsorted], residual_sum[unsorted], residual_variance[unsorted]
+    t_values = t_values[:, unsorted] if with_t else None
+    data_form = data_form[unsorted]
+    unresolved = residual_sum <= PRODUCTS_RESOLUTION * data_form
+    return betas, residual_variance, t_values, unresolved
 
 
 def _check_blocks(pattern_blocks, pattern_groups, n_columns):

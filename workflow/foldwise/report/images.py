@@ -20,6 +20,7 @@ import numpy as np
 
 from foldwise.errors import InputError
 from foldwise.glm.design_image import font_px
+from foldwise.report.drawing import PNG_COMPRESS_LEVEL
 from foldwise.report.figures import (OKABE_ITO, _ROI_COLOURS, _SLICE_NAMES, _oriented, _take, _window, best_slices,
                                      grid_axes_mm, roi_overlay)
 
@@ -237,9 +238,11 @@ def _compose(title, rows, legend=(), footer=(), colourbar=None):
         draw.text((_MARGIN_PX, y), line, font=font_px(_TEXT_PX["legend"]), fill=_BLACK, anchor="lt")
         y += _TEXT_PX["legend"] + 5
     # 256 colours (Pillow's fast octree, deterministic): about 0.6 times the bytes of RGB, for a page that embeds
-    # every quality check (measured on the benchmark's ROI figure: 211 kB RGB, 85 kB with 256 colours).
+    # every quality check (measured on the benchmark's ROI figure: 211 kB RGB, 85 kB with 256 colours); the zlib
+    # level of the previews (foldwise.report.drawing.PNG_COMPRESS_LEVEL says what it costs).
     buffer = io.BytesIO()
-    image.quantize(colors=256, method=Image.Quantize.FASTOCTREE).save(buffer, format="PNG")
+    image.quantize(colors=256, method=Image.Quantize.FASTOCTREE).save(buffer, format="PNG",
+                                                                      compress_level=PNG_COMPRESS_LEVEL)
     return buffer.getvalue()
 
 

@@ -201,9 +201,13 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
     counts = [str(value) for value in group_rows["n_voxels"]]
     if len(set(counts)) != len(counts):
         raise InputError(None, "n_voxels", f"duplicate voxel counts in the group table: {counts}", "rerun the group stage")
+    # The columns as Python lists (the values itertuples gives, without building a namedtuple class per call: ~1 ms).
+    row_counts = [str(value) for value in subject_rows["n_voxels"].tolist()]
+    row_subjects = [str(value) for value in subject_rows["subject"].tolist()]
+    row_used = subject_rows["n_used"].tolist()
     used = {}
-    for row in subject_rows.itertuples(index=False):
-        used.setdefault(str(row.n_voxels), {})[str(row.subject)] = int(row.n_used)
+    for count, subject, n_used in zip(row_counts, row_subjects, row_used):
+        used.setdefault(count, {})[subject] = int(n_used)
     whole = used.get("all", {})
     # A count every subject's ROI is too small for repeats 'all' exactly: drawn once, as 'all'.
     dropped = [count for count in counts if count != "all" and "all" in counts and whole
@@ -222,12 +226,12 @@ def curve_data(group_rows, subject_rows, roi_mean_voxels, alpha):
     scores = np.full((len(subjects), len(counts)), np.nan)
     capped = np.zeros(len(counts), dtype=bool)
     subject_index = {subject: row for row, subject in enumerate(subjects)}
-    for row in subject_rows.itertuples(index=False):
-        count = str(row.n_voxels)
+    for count, subject, n_used, score in zip(row_counts, row_subjects, row_used,
+                                            subject_rows["balanced_accuracy"].tolist()):
         if count not in position:
             continue
-        scores[subject_index[str(row.subject)], position[count]] = float(row.balanced_accuracy)
-        if count != "all" and int(row.n_used) < parse_count(count):
+        scores[subject_index[subject], position[count]] = float(score)
+        if count != "all" and int(n_used) < parse_count(count):
             capped[position[count]] = True
     p_fwe = column("p_fwe")
     return {

@@ -286,7 +286,7 @@ def confusion_matrix(rows, classes):
 
     Parameters
     ----------
-    rows : pandas.DataFrame
+    rows : pandas.DataFrame or dict of numpy arrays
         ``true_class``, ``predicted_class``, ``count`` of one direction and count.
     classes : sequence of str
         Class order of rows and columns.

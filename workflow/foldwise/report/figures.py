@@ -300,6 +300,8 @@ def confusion_matrix(rows, classes):
     >>> rows = pd.DataFrame({"true_class": ["a", "a", "b"], "predicted_class": ["a", "b", "b"], "count": [3, 1, 4]})
     >>> confusion_matrix(rows, ["a", "b"]).tolist()
     [[3, 1], [0, 4]]
+    >>> confusion_matrix({name: rows[name].to_numpy() for name in rows}, ["a", "b"]).tolist()
+    [[3, 1], [0, 4]]
     """
     index = {name: position for position, name in enumerate(classes)}
     matrix = np.zeros((len(classes), len(classes)), dtype=np.int64)

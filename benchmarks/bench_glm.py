@@ -124,7 +124,7 @@ def _params(mode):
 def _outputs(folder):
     return {key: str(folder / name) for key, name in (("patterns", "patterns.nii.gz"), ("table", "patterns.tsv"),
                                                       ("design", "design.tsv"), ("design_png", "design.png"),
-                                                      ("resvar", "resvar.nii.gz"))}
+                                                      ("resvar", "resvar.nii.gz"), ("facts", "glm.json"))}
 
 
 def _fit_inputs(inputs):

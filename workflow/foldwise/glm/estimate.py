@@ -726,9 +726,18 @@ def fit_ar1(design_matrix, bold_2d, pattern_columns=None, with_t=True, rho=None,
 
     Notes
     -----
-    For each distinct coefficient the whitened design is factorised once
-    and the voxels of that bin are solved with the OLS algebra of
-    :func:`fit_ols`; with ~50 bins the cost is a few matrix products.
+    For each distinct coefficient the whitened design is factorised once.
+    When the design spans the constant (every design foldwise builds), the
+    data are not whitened: one pass over them gives the products of the
+    centred data with the design, with the design's lag-1 neighbours and
+    with themselves, and every voxel's whitened fit follows from those
+    through the tridiagonal ``W'W`` of its coefficient
+    (:func:`_fit_from_products`), as do its coefficient's OLS residual
+    autocorrelations (:func:`_residual_lag_ratio`); the mean goes back into
+    the betas through ``X c = 1``. A voxel whose residual the products cannot
+    resolve (an exact or near-exact fit, see ``PRODUCTS_RESOLUTION``), and
+    every voxel of a design without the constant, is solved from its
+    whitened data with the OLS algebra of :func:`fit_ols` instead.
     """
     design = _check_design(design_matrix)
     bold = _check_bold(bold_2d, design.shape[0])

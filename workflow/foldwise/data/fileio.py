@@ -389,15 +389,21 @@ _STREAM_OUT_BYTES = 1 << 20
 
 
 def _gzip_size_hint(handle):
-    """The decoded size the gzip trailer records (ISIZE: the last member's size modulo 2**32), or 0."""
+    """The decoded size the gzip trailer records (ISIZE: the last member's size modulo 2**32), or 0.
+
+    Only a first guess (the buffer grows past it): capped at 1,032 times the
+    compressed size, deflate's largest ratio, so the last bytes of a cut or
+    damaged file cannot ask for gigabytes.
+    """
     handle.seek(0, os.SEEK_END)
-    if handle.tell() < 18:  # shorter than an empty gzip member: the decoder reports it
+    compressed_bytes = handle.tell()
+    if compressed_bytes < 18:  # shorter than an empty gzip member: the decoder reports it
         handle.seek(0)
         return 0
     handle.seek(-4, os.SEEK_END)
     size = int.from_bytes(handle.read(4), "little")
     handle.seek(0)
-    return size
+    return min(size, 1032 * compressed_bytes)
 
 
 def _gunzip_into(path, buffer):

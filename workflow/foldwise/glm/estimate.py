@@ -30,6 +30,7 @@ __all__ = [
     "AR1_STEP",
     "CHUNK_VOXELS",
     "NOISE_FLOOR",
+    "PRODUCTS_RESOLUTION",
     "LinearFit",
     "PatternEstimate",
     "fit_ols",

@@ -47,9 +47,12 @@ def test_rule_table_adds_process_cpu_to_the_rule_of_each_process():
 def test_report_lines_name_the_parts_drawn(capsys):
     record = dict(_record("report", 4.0, 5.0), parts=[{"part": "a", "key": "k", "restored": False},
                                                       {"part": "b", "key": "k", "restored": True}])
-    table = {"report": {"proc_cpu_s": 4.5}}
+    table = {"report": {"proc_cpu_s": 5.5, "procs": 1}}
     bench_study.report_lines(table, [record], [dict(record, cpu_time_s=1.0, wall_time_s=1.5)])
     printed = capsys.readouterr().out
     assert "report from empty: in-job CPU 4.0 s" in printed and "1 of 2 parts computed" in printed
-    assert "target <= 5: met" in printed  # 4.5 s of process CPU
+    assert "target <= 5: NOT met (process CPU)" in printed  # a process of its own: 5.5 s of process CPU count
     assert "report after the one-ROI change: in-job CPU 1.0 s, wall 1.5 s" in printed and "target <= 2: met" in printed
+    bench_study.report_lines({"report": {"proc_cpu_s": 0.0, "procs": 0}}, [record], [])
+    printed = capsys.readouterr().out
+    assert "in Snakemake's process" in printed and "target <= 5: met (in-job CPU)" in printed  # in a thread: its 4.0 s count

@@ -1329,8 +1329,28 @@ def test_result_figures_keep_every_label_inside_and_apart(n_directions):
     rois = ["ember", "glow", "hush", "emberL", "emberR", "glowL", "glowR", "hushL", "hushR"][: 2 + 3 * (n_directions > 1)]
     comparison = [{"direction": f"d{k}", "rois": rois, "scores": [rng.uniform(0, 1, 8) for _ in rois],
                    "mean": np.full(len(rois), 0.5), "ci_low": np.full(len(rois), 0.4), "ci_high": np.full(len(rois), 0.6),
-                   "chance": np.full(len(rois), 1 / 3), "p_fwe": np.full(len(rois), 0.01)} for k in range(n_directions)]
+                   "chance": np.full(len(rois), 1 / 3), "p_fwe": np.full(len(rois), 0.01),
+                   "shown_counts": ["100"] + ["all"] * (len(rois) - 1)} for k in range(n_directions)]  # labels "ROI x (all)"
     assert _layout_problems(report.comparison_figure(comparison, "analysis shape: ROIs at 100 voxels", ALPHA)) == []
+
+
+def test_comparison_shows_an_roi_smaller_than_the_count_with_all_its_voxels():
+    # The decoding step reports counts an ROI cannot reach once, as 'all': a one-sided ROI of 80 voxels has no row
+    # at 100. The comparison at 100 voxels shows it at 'all' (what 100 selects there) instead of stopping the report.
+    group = pd.DataFrame({"roi": ["big", "big", "small"], "direction": "within", "n_voxels": ["100", "all", "all"],
+                          "mean": [0.6, 0.7, 0.55], "ci_low": 0.5, "ci_high": 0.8, "chance": 0.5, "p_fwe": 0.01})
+    subjects = pd.DataFrame({"subject": ["01", "02"] * 3, "roi": ["big", "big", "big", "big", "small", "small"],
+                             "direction": "within", "n_voxels": ["100", "100", "all", "all", "all", "all"],
+                             "balanced_accuracy": [0.61, 0.62, 0.71, 0.72, 0.51, 0.52]})
+    panel, = report.comparison_data(subjects, group, ["big", "small"], ["within"], "100")
+    assert panel["shown_counts"] == ["100", "all"]
+    assert panel["mean"].tolist() == [0.6, 0.55]
+    assert [scores.tolist() for scores in panel["scores"]] == [[0.61, 0.62], [0.51, 0.52]]
+    figure = report.comparison_figure([panel], "analysis shape: ROIs at 100 voxels", ALPHA)
+    figure.canvas.draw()
+    assert [label.get_text() for label in figure.axes[0].get_xticklabels()] == ["ROI big", "ROI small (all)"]
+    with pytest.raises(InputError, match="no group row for ROI gone"):
+        report.comparison_data(subjects, group, ["big", "gone"], ["within"], "100")
 
 
 def group_confusion_matrix(rng, n_classes):

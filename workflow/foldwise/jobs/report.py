@@ -1195,9 +1195,13 @@ def _comparison_specification(entry, data, log):
         panels = page.comparison_data(data["summaries"][name], table, rois, directions, chosen)
     except InputError as error:
         raise InputError(path, error.field, error.problem, error.fix) from None
+    smaller = [roi for roi, shown in zip(rois, panels[0]["shown_counts"]) if shown != chosen]
     caption = (f"ROIs compared at {count_text}: each dot is one subject's balanced accuracy (spread sideways by rank), "
                "the diamond and bar the group mean and its 95% confidence interval, the dashed line chance; a star "
-               f"marks a family-wise corrected p below {data['alpha']:g}.")
+               f"marks a family-wise corrected p below {data['alpha']:g}."
+               + (f" ROI {', '.join(smaller)} {'is' if len(smaller) == 1 else 'are'} smaller than {chosen} voxels in every "
+                  f"subject and shown with all {'its' if len(smaller) == 1 else 'their'} voxels, marked (all)."
+                  if smaller else ""))
     build = functools.partial(page.comparison_figure, panels, f"analysis {name}: ROIs at {count_text}", data["alpha"])
     return _built(build), build, f"ROI comparison of analysis {name}", caption
 

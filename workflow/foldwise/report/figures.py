@@ -990,21 +990,30 @@ def comparison_data(subject_rows, group_rows, rois, directions, count):
     list of dict
         One per direction: ``direction``, ``rois``, ``scores`` (list of
         arrays, one per ROI), ``mean``, ``ci_low``, ``ci_high``, ``chance``,
-        ``significant`` (arrays over ROIs).
+        ``significant`` (arrays over ROIs), ``shown_counts`` (the count each
+        ROI is shown at).
+
+    Notes
+    -----
+    An ROI smaller than ``count`` in every subject has no rows at it: the
+    decoding step reports such counts once, as ``all`` (every voxel of the
+    ROI, which is what ``count`` would select there). That ROI is shown at
+    ``all``, and ``shown_counts`` says so.
     """
     panels = []
+    subject_counts, group_counts = subject_rows["n_voxels"].astype(str), group_rows["n_voxels"].astype(str)
+    group_rois = group_rows["roi"].astype(str)
+    shown_counts = [count if ((group_rois == roi) & (group_counts == count)).any()
+                    or not ((group_rois == roi) & (group_counts == "all")).any() else "all" for roi in rois]
     for direction in directions:
-        own = subject_rows[(subject_rows["direction"].astype(str) == direction)
-                           & (subject_rows["n_voxels"].astype(str) == count)]
-        group = group_rows[(group_rows["direction"].astype(str) == direction)
-                           & (group_rows["n_voxels"].astype(str) == count)]
-        panel = {"direction": direction, "rois": list(rois), "scores": []}
+        panel = {"direction": direction, "rois": list(rois), "scores": [], "shown_counts": list(shown_counts)}
         for key in ("mean", "ci_low", "ci_high", "chance", "p_fwe"):
             panel[key] = np.full(len(rois), np.nan)
-        for index, roi in enumerate(rois):
-            panel["scores"].append(pd.to_numeric(own.loc[own["roi"].astype(str) == roi, "balanced_accuracy"],
-                                                 errors="coerce").to_numpy(dtype=np.float64))
-            row = group[group["roi"].astype(str) == roi]
+        for index, (roi, shown) in enumerate(zip(rois, shown_counts)):
+            own = subject_rows[(subject_rows["direction"].astype(str) == direction) & (subject_counts == shown)
+                               & (subject_rows["roi"].astype(str) == roi)]
+            panel["scores"].append(pd.to_numeric(own["balanced_accuracy"], errors="coerce").to_numpy(dtype=np.float64))
+            row = group_rows[(group_rows["direction"].astype(str) == direction) & (group_counts == shown) & (group_rois == roi)]
             if row.empty:
                 raise InputError(None, "roi, direction, n_voxels", f"no group row for ROI {roi}, direction {direction}, "
                                  f"{count} voxels", "rerun the group stage")
@@ -1070,7 +1079,10 @@ def comparison_figure(panels, title, alpha):
         if starred.any():
             axes.scatter(centres[starred], np.full(int(starred.sum()), _STAR_ROW), s=80, marker="*", color="black",
                          transform=axes.get_xaxis_transform(), zorder=4)
-        axes.set_xticks(np.arange(n_rois), [f"ROI {roi}" for roi in panel["rois"]], fontsize=_FONT_SIZE)
+        shown = panel.get("shown_counts") or [""] * n_rois
+        mixed = len(set(shown)) > 1  # ROIs smaller than the count shown are shown with all their voxels: marked
+        axes.set_xticks(np.arange(n_rois), [f"ROI {roi}" + (" (all)" if mixed and count == "all" else "")
+                                            for roi, count in zip(panel["rois"], shown)], fontsize=_FONT_SIZE)
         axes.set_xlim(-0.6, n_rois - 0.4)
         axes.set_ylim(low, high + _STAR_HEADROOM)
         axes.set_title(direction_label(panel["direction"]), fontsize=_FONT_SIZE + 1, y=_TITLE_Y)

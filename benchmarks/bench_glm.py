@@ -38,6 +38,7 @@ import tempfile
 import time
 import tracemalloc
 from pathlib import Path
+from types import SimpleNamespace
 
 import nibabel as nib
 import numpy as np
@@ -47,7 +48,9 @@ from foldwise.data.bids import load_bold, read_confounds, read_events
 from foldwise.data.fileio import save_nifti, write_json, write_tsv
 from foldwise.glm.estimate import estimate_patterns
 from foldwise.provenance.hashing import seed_from
+from foldwise.contract import TEMPLATES
 from foldwise.jobs import glm as glm_job
+from foldwise.plan import STEPS
 
 GRID_SHAPE = (64, 64, 40)
 N_SCANS = 200
@@ -122,9 +125,10 @@ def _params(mode):
 
 
 def _outputs(folder):
-    return {key: str(folder / name) for key, name in (("patterns", "patterns.nii.gz"), ("table", "patterns.tsv"),
-                                                      ("design", "design.tsv"), ("design_png", "design.png"),
-                                                      ("resvar", "resvar.nii.gz"), ("facts", "glm.json"))}
+    """The GLM job's outputs of one run, named as the workflow names them (the plan's list: none can go missing)."""
+    templates = SimpleNamespace(paths=SimpleNamespace(template=lambda name: TEMPLATES[name]))
+    return {key: str(folder / os.path.basename(template).format(subject="01", run_id="run-01"))
+            for key, template in STEPS["glm"].outputs(templates).items()}
 
 
 def _fit_inputs(inputs):

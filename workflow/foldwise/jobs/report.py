@@ -135,6 +135,13 @@ def _read_volume(data, path, what, shape=None):
     return values, image
 
 
+def _mean_and_brain(data, subject):
+    """A subject's mean image (values, image) and brain mask (bool, checked on the mean's grid), read once per job."""
+    mean, image = _read_volume(data, data["means"][subject], "mean image")
+    brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+    return mean, image, brain
+
+
 def _repetition_times(sidecars):
     values = []
     for path in _as_list(sidecars):
@@ -1017,8 +1024,7 @@ def _brainmask_specification(entry, data, log):
                 "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
 
     def build():
-        mean, image = _read_volume(data, data["means"][subject], "mean image")
-        brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
+        mean, image, brain = _mean_and_brain(data, subject)
         return images.brain_mask_png(mean, brain, image.affine, title)
 
     return (identity, build, f"Brain mask of sub-{subject}",
@@ -1045,9 +1051,8 @@ def _roimasks_specification(entry, data, log):
     def build():
         rows, affine = [], None
         for subject in subjects:
-            mean, image = _read_volume(data, data["means"][subject], "mean image")
+            mean, image, brain = _mean_and_brain(data, subject)
             affine = image.affine if affine is None else affine
-            brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
             mask = _volume(data["roi_mask_paths"][(subject, roi)], "ROI mask", mean.shape)[0] > 0
             rows.append((f"sub-{subject}", mean, brain, mask))
         return images.roi_masks_png(roi, rows, affine, colour, title)
@@ -1075,9 +1080,8 @@ def _resvar_specification(entry, data, log):
                 "brain": _file_identity(parts, data["brain_masks"][subject], "brain mask")}
 
     def build():
-        mean, _ = _read_volume(data, data["means"][subject], "mean image")
+        mean, _, brain = _mean_and_brain(data, subject)
         values, image = _read_volume(data, path, "residual variance image", mean.shape)
-        brain = _read_volume(data, data["brain_masks"][subject], "brain mask", mean.shape)[0] > 0
         return images.resvar_png(values, brain, image.affine, title)
 
     return (identity, build, f"GLM residual variance of sub-{subject}",

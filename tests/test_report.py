@@ -1136,13 +1136,18 @@ def _through_memo(inputs, outputs, params, folder, store):
     return json.loads(Path(output.provenance).read_text(encoding="utf-8"))
 
 
-def test_a_changed_roi_redraws_only_the_figures_that_show_it(tmp_path, monkeypatch):
-    monkeypatch.delenv("FOLDWISE_MEMO", raising=False)
+def _first_report_through_memo(tmp_path):
+    """One analysis, two subjects: (inputs, outputs, params, provenance record) of the report drawn from empty."""
     study = dict(STUDY, analyses=STUDY["analyses"][:1])
     subjects = SUBJECTS[:2]
     inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=subjects)
     outputs = outputs_for(tmp_path / "report", study, subjects)
-    first = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    return inputs, outputs, params, _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+
+
+def test_a_changed_roi_redraws_only_the_figures_that_show_it(tmp_path, monkeypatch):
+    monkeypatch.delenv("FOLDWISE_MEMO", raising=False)
+    inputs, outputs, params, first = _first_report_through_memo(tmp_path)
     assert first["parts"] and not any(part["restored"] for part in first["parts"])  # from empty: every figure drawn
     drawn_bytes = {path: Path(path).read_bytes() for path in outputs["previews"]}
     # glow's confusion counts change for one subject: only the glow confusion figure shows them
@@ -1168,11 +1173,7 @@ def test_a_changed_roi_mask_redraws_only_that_rois_figure(tmp_path, monkeypatch)
     # A quality-check figure shows one subject or one ROI: a new mask of ROI ember (every subject) redraws the
     # figure of ember's placement and nothing else -- not the subjects' brain masks, not glow's figure.
     monkeypatch.delenv("FOLDWISE_MEMO", raising=False)
-    study = dict(STUDY, analyses=STUDY["analyses"][:1])
-    subjects = SUBJECTS[:2]
-    inputs, params, _ = build_study(tmp_path / "inputs", study=study, subjects=subjects)
-    outputs = outputs_for(tmp_path / "report", study, subjects)
-    first = _through_memo(inputs, outputs, params, tmp_path, tmp_path / "store")
+    inputs, outputs, params, first = _first_report_through_memo(tmp_path)
     before = {path: Path(path).read_bytes() for path in outputs["previews"]}
     for path in inputs["roi_masks"]:
         if "_roi-ember_" in Path(path).name:
